@@ -1,0 +1,400 @@
+"""Safe, reproducible ``.npz`` files: the container of model files and patch banks.
+
+Writing
+    :func:`save_npz` writes a deterministic zip archive (sorted entry names, fixed entry time
+    1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through a temporary file
+    in the same folder and an atomic :func:`os.replace`, so a crash never leaves a half-written file
+    at the destination. The same arrays always give the same bytes (for one zlib version).
+
+Reading
+    :func:`read_npz` opens an archive without ever unpickling (object arrays are refused before their
+    data is read), and :func:`check_arrays` validates the arrays against a spec (dtype, number of
+    dimensions, fixed sizes and sizes shared between arrays). :func:`load_npz` does both. Every
+    problem, whatever the damage to the file, becomes one :class:`detector.errors.InputError` whose
+    message names the file: ``numpy.load(path, allow_pickle=False)`` opens the files too.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+import struct
+import tempfile
+import zipfile
+import zlib
+from dataclasses import dataclass
+
+import numpy as np
+
+from detector.errors import InputError
+
+__all__ = ["ArraySpec", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
+
+#: Entry time written for every member; the earliest time a zip archive can store.
+ZIP_EPOCH = (1980, 1, 1, 0, 0, 0)
+
+#: deflate can shrink data by at most about 1032:1 (zlib technical notes); a larger declared
+#: ratio means a damaged or hostile archive, refused before any memory is set aside for it.
+_MAX_DEFLATE_RATIO = 1100
+
+_READ_ERRORS = (
+    zipfile.BadZipFile,
+    zipfile.LargeZipFile,
+    zlib.error,
+    EOFError,
+    OSError,
+    ValueError,
+    TypeError,
+    KeyError,
+    IndexError,
+    struct.error,
+    NotImplementedError,
+    RuntimeError,
+    OverflowError,
+    MemoryError,
+    SyntaxError,
+    UnicodeError,
+)
+
+
+@dataclass(frozen=True)
+class ArraySpec:
+    """What one array of an ``.npz`` file must look like.
+
+    Parameters
+    ----------
+    dtype : str
+        A numpy dtype name (``"int32"``, ``"float32"``, ``"uint8"``, ``"bool"``), ``"str"`` for a
+        unicode string array of any length, or ``"integer"`` for any integer dtype.
+    shape : tuple
+        One entry per dimension: an ``int`` (that exact size), a ``str`` (a named size that must be
+        the same wherever the name appears in the spec) or ``None`` (any size).
+    required : bool, default=True
+        Whether the array must be present.
+
+    Examples
+    --------
+    >>> spec = {"features": ArraySpec("int32", ("F", 4, 5)), "weights": ArraySpec("float32", ("F",))}
+    """
+
+    dtype: str
+    shape: tuple
+    required: bool = True
+
+
+def _npy_bytes(array: np.ndarray) -> bytes:
+    buf = io.BytesIO()
+    np.lib.format.write_array(buf, np.ascontiguousarray(array), allow_pickle=False)
+    return buf.getvalue()
+
+
+def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:
+    """Write ``arrays`` to ``path`` as a deterministic ``.npz`` archive, atomically.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Destination, written exactly as given (no ``.npz`` is appended). An existing file is
+        replaced in one step; deciding whether it may be replaced is the caller's business.
+    arrays : dict of str to array_like
+        Entry names (without ``.npy``) to arrays. Object arrays are refused.
+
+    Raises
+    ------
+    ValueError
+        An array has an object dtype (it could only be stored by pickling).
+    InputError
+        The destination folder does not exist or cannot be written.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "x.npz")
+    >>> save_npz(p, {"b": np.arange(3, dtype=np.int32), "a": np.array("text")})
+    >>> sorted(np.load(p, allow_pickle=False).files)
+    ['a', 'b']
+    """
+    path = os.fspath(path)
+    payload = {}
+    for name in sorted(arrays):
+        arr = np.asarray(arrays[name])
+        if arr.dtype.hasobject:
+            raise ValueError(f"array {name!r} has an object dtype; it cannot be stored without pickle")
+        payload[name] = _npy_bytes(arr)
+
+    folder = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(folder):
+        raise InputError("the folder to write into does not exist", path=path)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write here ({exc.strerror or exc})", path=path) from None
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+                for name, data in payload.items():
+                    info = zipfile.ZipInfo(name + ".npy", date_time=ZIP_EPOCH)
+                    info.compress_type = zipfile.ZIP_DEFLATED
+                    info.create_system = 3
+                    info.external_attr = 0o644 << 16
+                    zf.writestr(info, data, compresslevel=6)
+            fh.flush()
+            os.fsync(fh.fileno())
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def _read_header(buf: bytearray) -> tuple[tuple, bool, np.dtype, int]:
+    """Parse the ``.npy`` header at the start of ``buf`` (no data is touched)."""
+    head = io.BytesIO(bytes(buf[: 1 << 17]))
+    version = np.lib.format.read_magic(head)
+    if version == (1, 0):
+        shape, fortran, dtype = np.lib.format.read_array_header_1_0(head)
+    elif version == (2, 0):
+        shape, fortran, dtype = np.lib.format.read_array_header_2_0(head)
+    else:
+        raise ValueError(f"unknown .npy version {version}")
+    return shape, fortran, dtype, head.tell()
+
+
+def _read_member(zf: zipfile.ZipFile, info: zipfile.ZipInfo, size_on_disk: int, path: str, kind: str):
+    name = info.filename[:-4]
+    if info.flag_bits & 0x1:
+        raise InputError(f"not a readable {kind} file: entry {name!r} is encrypted", path=path)
+    if info.compress_size > size_on_disk or info.file_size > _MAX_DEFLATE_RATIO * info.compress_size + 4096:
+        raise InputError(f"damaged {kind} file: entry {name!r} declares an impossible size", path=path)
+    buf = bytearray(info.file_size)
+    with zf.open(info) as fh:
+        view = memoryview(buf)
+        got = 0
+        while got < len(buf):
+            n = fh.readinto(view[got:])
+            if not n:
+                break
+            got += n
+        if got != len(buf) or fh.read(1):
+            raise InputError(f"damaged {kind} file: entry {name!r} is truncated", path=path)
+    shape, fortran, dtype, offset = _read_header(buf)
+    if dtype.hasobject:
+        raise InputError(
+            f"refused {kind} file: array {name!r} holds Python objects (patchwood never unpickles)",
+            path=path,
+        )
+    if any(int(s) < 0 for s in shape):
+        raise InputError(f"damaged {kind} file: array {name!r} has a negative size", path=path)
+    count = int(np.prod(shape, dtype=np.int64)) if shape else 1
+    if dtype.itemsize == 0 or len(buf) - offset != count * dtype.itemsize:
+        raise InputError(
+            f"damaged {kind} file: array {name!r} has {len(buf) - offset} data bytes for shape "
+            f"{tuple(shape)} of {dtype}",
+            path=path,
+        )
+    arr = np.frombuffer(buf, dtype=dtype, count=count, offset=offset)
+    return arr.reshape(shape, order="F" if fortran else "C")
+
+
+def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarray]:
+    """Read every array of an ``.npz`` archive, never unpickling.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The archive.
+    kind : str, default="model"
+        What the file should be ("model", "patch bank"), used in messages.
+
+    Returns
+    -------
+    dict of str to ndarray
+        Entry name (without ``.npy``) to a writable array.
+
+    Raises
+    ------
+    InputError
+        Missing file, not a zip archive, truncated or damaged entries, an entry that is not an
+        ``.npy`` array, duplicate names, or an object array (refused before its data is read).
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "x.npz")
+    >>> save_npz(p, {"a": np.eye(2, dtype=np.float32)})
+    >>> read_npz(p)["a"].tolist()
+    [[1.0, 0.0], [0.0, 1.0]]
+    """
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise InputError(f"no such {kind} file", path=path)
+    if os.path.isdir(path):
+        raise InputError(f"is a folder, not a {kind} file", path=path)
+    try:
+        size = os.path.getsize(path)
+        if not zipfile.is_zipfile(path):
+            raise InputError(f"not a {kind} file (not an .npz archive, or truncated)", path=path)
+        out: dict[str, np.ndarray] = {}
+        with zipfile.ZipFile(path, "r") as zf:
+            for info in zf.infolist():
+                if not info.filename.endswith(".npy") or len(info.filename) == 4:
+                    raise InputError(
+                        f"not a {kind} file: unexpected entry {info.filename!r} in the archive", path=path
+                    )
+                name = info.filename[:-4]
+                if name in out:
+                    raise InputError(f"damaged {kind} file: entry {name!r} appears twice", path=path)
+                out[name] = _read_member(zf, info, size, path, kind)
+        return out
+    except InputError:
+        raise
+    except _READ_ERRORS as exc:
+        detail = " ".join(str(exc).split())[:120] or type(exc).__name__
+        raise InputError(f"damaged or not a {kind} file ({detail})", path=path) from None
+
+
+def _dtype_ok(arr: np.ndarray, want: str) -> bool:
+    if want == "str":
+        return arr.dtype.kind == "U"
+    if want == "integer":
+        return arr.dtype.kind in "iu"
+    want_dt = np.dtype(want)
+    return arr.dtype.kind == want_dt.kind and arr.dtype.itemsize == want_dt.itemsize
+
+
+def check_arrays(
+    arrays: dict[str, np.ndarray], spec: dict[str, ArraySpec], path: str | os.PathLike, kind: str = "model"
+) -> dict[str, int]:
+    """Validate arrays against a spec; convert each to native byte order in place.
+
+    Parameters
+    ----------
+    arrays : dict of str to ndarray
+        As returned by :func:`read_npz` (modified in place: byte order made native).
+    spec : dict of str to ArraySpec
+        Required and optional arrays.
+    path : str or os.PathLike
+        The file the arrays came from, for messages.
+    kind : str, default="model"
+        What the file should be, for messages.
+
+    Returns
+    -------
+    dict of str to int
+        The value of every named size in the spec.
+
+    Raises
+    ------
+    InputError
+        A required array is missing, or an array has the wrong dtype, number of dimensions, size,
+        or a size that disagrees with another array's.
+
+    Examples
+    --------
+    >>> spec = {"a": ArraySpec("int32", ("N", 2)), "b": ArraySpec("float32", ("N",))}
+    >>> check_arrays({"a": np.zeros((3, 2), np.int32), "b": np.zeros(3, np.float32)}, spec, "x.npz")
+    {'N': 3}
+    """
+    sizes: dict[str, int] = {}
+    where: dict[str, str] = {}
+    for name, s in spec.items():
+        if name not in arrays:
+            if s.required:
+                raise InputError(f"not a complete {kind} file: array {name!r} is missing", path=path)
+            continue
+        arr = arrays[name]
+        if not _dtype_ok(arr, s.dtype):
+            raise InputError(
+                f"{kind} array {name!r} has dtype {arr.dtype}; expected {s.dtype}", path=path
+            )
+        if not arr.dtype.isnative:
+            arr = arrays[name] = arr.astype(arr.dtype.newbyteorder("="))
+        if arr.ndim != len(s.shape):
+            raise InputError(
+                f"{kind} array {name!r} has {arr.ndim} dimensions; expected {len(s.shape)}", path=path
+            )
+        for axis, (got, want) in enumerate(zip(arr.shape, s.shape)):
+            if want is None:
+                continue
+            if isinstance(want, int):
+                if got != want:
+                    raise InputError(
+                        f"{kind} array {name!r} has size {got} along axis {axis}; expected {want}",
+                        path=path,
+                    )
+            elif want in sizes:
+                if got != sizes[want]:
+                    raise InputError(
+                        f"{kind} array {name!r} has size {got} along axis {axis}, but array "
+                        f"{where[want]!r} says {sizes[want]}",
+                        path=path,
+                    )
+            else:
+                sizes[want] = int(got)
+                where[want] = name
+    return sizes
+
+
+def load_npz(
+    path: str | os.PathLike, spec: dict[str, ArraySpec] | None = None, kind: str = "model"
+) -> dict[str, np.ndarray]:
+    """Open an ``.npz`` file safely and validate it against ``spec``.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The archive.
+    spec : dict of str to ArraySpec, optional
+        What the arrays must look like (arrays not named in it are returned unchecked); None reads
+        without checking shapes (object arrays and damage are still refused).
+    kind : str, default="model"
+        What the file should be, for messages.
+
+    Returns
+    -------
+    dict of str to ndarray
+
+    Raises
+    ------
+    InputError
+        See :func:`read_npz` and :func:`check_arrays`.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "x.npz")
+    >>> save_npz(p, {"a": np.zeros((2, 3), np.uint8)})
+    >>> load_npz(p, {"a": ArraySpec("uint8", (None, 3))}, kind="patch bank")["a"].shape
+    (2, 3)
+    """
+    arrays = read_npz(path, kind=kind)
+    if spec:
+        check_arrays(arrays, spec, path, kind=kind)
+    return arrays
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file's bytes (FIPS 180-4), read in 1 MiB blocks.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "x")
+    >>> _ = open(p, "wb").write(b"abc")
+    >>> file_sha256(p)[:16]
+    'ba7816bf8f01cfea'
+    """
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except OSError as exc:
+        raise InputError(f"cannot read ({exc.strerror or exc})", path=path) from None
+    return h.hexdigest()
