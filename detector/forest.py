@@ -1,0 +1,671 @@
+"""Forests of shallow trees over a feature pool, flattened into arrays the scanning engine reads.
+
+Two ways of growing them, both on scikit-learn's exact tree learners (``splitter="best"``):
+
+``mode="bagged"``
+    The random forest (Breiman, Machine Learning 2001): every tree is grown on a bootstrap sample
+    of the patches, drawn as per-patch counts passed as ``sample_weight`` (no copy of the feature
+    matrix; scikit-learn's ``RandomForestClassifier`` does the same), with a fresh random subset of
+    ``features_per_node`` pool columns at every node, thresholds at the midpoints between
+    consecutive distinct projected values (scikit-learn's rule), chosen by the largest information
+    gain (``criterion="entropy"``). A leaf holds the class histogram of its in-bag patches; the
+    flat tree stores its object fraction, and the forest's score is the average over the trees.
+``mode="boosted"``
+    Gentle AdaBoost (Friedman, Hastie and Tibshirani, "Additive logistic regression", Ann. Statist.
+    2000, Algorithm 4): stage by stage, a regression tree fitted by weighted least squares to
+    ``y`` in {-1, +1} (leaf = weighted mean), then the weights multiplied by ``exp(-y f(x))``. Per
+    stage only a random ``sample_fraction`` of the patches (drawn without replacement) carries
+    weight, as in stochastic gradient boosting (Friedman, Comput. Stat. Data Anal. 2002), and every
+    node sees a random subset of the pool. The score is the logistic link ``1 / (1 + exp(-2 F))``
+    of the summed leaf values ``F``.
+
+Flat trees
+    Every tree is a complete binary tree of depth ``D``: ``node_features`` int32 ``(T, 2**D - 1)``,
+    ``node_thresholds`` float32 ``(T, 2**D - 1)``, ``leaf_values`` float32 ``(T, 2**D)``, nodes in
+    heap order (children of node ``i`` are ``2i+1`` and ``2i+2``; past the last level, node ``i``'s
+    children are leaves ``2i+1-(2**D-1)`` and ``+1``); go left when ``x <= threshold``. A
+    scikit-learn leaf above depth ``D`` is padded with feature 0, threshold 0.0 and identical leaves
+    below it. Each threshold is the largest float32 not above scikit-learn's float64 threshold, so
+    that float32 inputs take exactly scikit-learn's decisions.
+
+Early exit (soft cascade; Bourdev and Brandt, CVPR 2005)
+    The running score after tree ``t`` is ``s_t = s_{t-1} + leaf_values[t, leaf]`` (``s_0 = 0``,
+    float32 sums in tree order), and a window is dropped after tree ``t`` as soon as
+    ``s_t < exit_thresholds[t]``. :func:`calibrate_exit` sets the thresholds from object patches
+    held out of training.
+"""
+
+from __future__ import annotations
+
+import numbers
+import os
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
+
+__all__ = [
+    "FlatForest",
+    "grow_forest",
+    "flatten_tree",
+    "float32_thresholds",
+    "forest_leaves",
+    "forest_running_scores",
+    "forest_score",
+    "calibrate_exit",
+    "trees_evaluated",
+    "seed_sequence",
+    "MODES",
+]
+
+MODES = ("bagged", "boosted")
+MAX_DEPTH = 12
+
+
+def seed_sequence(random_state) -> np.random.SeedSequence:
+    """A :class:`numpy.random.SeedSequence` from any scikit-learn style ``random_state``.
+
+    Parameters
+    ----------
+    random_state : None, int, SeedSequence, Generator or RandomState
+        None draws fresh entropy; an int gives a reproducible sequence; a generator is consumed
+        once.
+
+    Examples
+    --------
+    >>> seed_sequence(7).generate_state(1) == seed_sequence(7).generate_state(1)
+    array([ True])
+    """
+    if random_state is None:
+        return np.random.SeedSequence()
+    if isinstance(random_state, np.random.SeedSequence):
+        return random_state
+    if isinstance(random_state, numbers.Integral) and not isinstance(random_state, bool):
+        if random_state < 0:
+            raise ValueError(f"random_state must be >= 0, got {random_state}")
+        return np.random.SeedSequence(int(random_state))
+    if isinstance(random_state, np.random.Generator):
+        return np.random.SeedSequence(int(random_state.integers(0, 2**63)))
+    if isinstance(random_state, np.random.RandomState):
+        return np.random.SeedSequence(int(random_state.randint(0, 2**31 - 1)))
+    raise ValueError(f"random_state must be None, an int or a numpy generator, got {random_state!r}")
+
+
+@dataclass
+class FlatForest:
+    """A forest of complete binary trees of one depth, as flat arrays.
+
+    Attributes
+    ----------
+    mode : {"bagged", "boosted"}
+    node_features : ndarray of int32, shape (T, 2**D - 1)
+        Column of the feature matrix each node compares.
+    node_thresholds : ndarray of float32, shape (T, 2**D - 1)
+        Go left when ``x <= threshold``.
+    leaf_values : ndarray of float32, shape (T, 2**D)
+        Bagged: the object fraction of the leaf's in-bag patches; boosted: the leaf's weighted mean
+        of ``y`` in {-1, +1}.
+    split_mask : ndarray of bool, shape (T, 2**D - 1)
+        True for real splits, False for padding nodes.
+    importances : ndarray of float64, shape (n_features,)
+        Weighted impurity decrease summed over all trees (information gain in bits for bagged
+        trees, squared-error decrease for boosted ones), per column.
+    oob_error : float or None
+        Bagged: fraction of patches misclassified by the trees that did not draw them (score > 0.5
+        means object); None for boosted forests or when no patch was ever out of bag.
+    estimators : list or None
+        The scikit-learn trees (only with ``keep_estimators=True``).
+    in_bag : ndarray of int32, shape (T, N) or None
+        Bootstrap counts (bagged) or stage sample masks (boosted), only with
+        ``keep_estimators=True``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(60, 4)).astype(np.float32); y = (X[:, 1] > 0).astype(int)
+    >>> f = grow_forest(X, y, n_trees=5, depth=2, random_state=0)
+    >>> f.node_features.shape, f.leaf_values.shape, f.depth
+    ((5, 3), (5, 4), 2)
+    """
+
+    mode: str
+    node_features: np.ndarray
+    node_thresholds: np.ndarray
+    leaf_values: np.ndarray
+    split_mask: np.ndarray | None = None
+    importances: np.ndarray | None = None
+    oob_error: float | None = None
+    estimators: list | None = field(default=None, repr=False)
+    in_bag: np.ndarray | None = field(default=None, repr=False)
+
+    def __post_init__(self):
+        if self.mode not in MODES:
+            raise ValueError(f"mode must be one of {MODES}, got {self.mode!r}")
+        self.node_features = np.ascontiguousarray(self.node_features, dtype=np.int32)
+        self.node_thresholds = np.ascontiguousarray(self.node_thresholds, dtype=np.float32)
+        self.leaf_values = np.ascontiguousarray(self.leaf_values, dtype=np.float32)
+        t, n = self.node_features.shape
+        if self.node_thresholds.shape != (t, n) or self.leaf_values.shape != (t, n + 1):
+            raise ValueError("node and leaf arrays disagree in shape")
+        if n < 1 or (n + 1) & n:
+            raise ValueError(f"{n} nodes per tree is not 2**D - 1")
+        if self.split_mask is None:
+            self.split_mask = _infer_split_mask(self)
+        self.split_mask = np.ascontiguousarray(self.split_mask, dtype=bool)
+
+    @property
+    def n_trees(self) -> int:
+        return int(self.node_features.shape[0])
+
+    @property
+    def depth(self) -> int:
+        return int(self.node_features.shape[1] + 1).bit_length() - 1
+
+    def reindex(self) -> tuple[np.ndarray, "FlatForest"]:
+        """The columns the trees use, and the forest re-indexed into them.
+
+        Returns
+        -------
+        used : ndarray of int64, shape (F_used,)
+            Sorted column indices of real splits (``[0]`` when no tree splits at all, so the
+            feature array is never empty).
+        forest : FlatForest
+            Same trees with ``node_features`` indexing into ``used`` (padding nodes point at 0)
+            and ``importances`` restricted to ``used``.
+
+        Examples
+        --------
+        >>> f = FlatForest("bagged", [[7, 3, 7]], [[0.5, 1, 2]], [[0, 0, 1, 1]])
+        >>> used, g = f.reindex()
+        >>> used.tolist(), g.node_features.tolist()
+        ([3, 7], [[1, 0, 1]])
+        """
+        used = np.unique(self.node_features[self.split_mask]).astype(np.int64)
+        if used.size == 0:
+            used = np.zeros(1, np.int64)
+        nf = np.searchsorted(used, self.node_features).astype(np.int32)
+        nf[~self.split_mask] = 0
+        nf = np.minimum(nf, used.size - 1)
+        imp = None if self.importances is None else np.asarray(self.importances)[used]
+        return used, replace(self, node_features=nf, importances=imp, estimators=None, in_bag=None)
+
+
+def _infer_split_mask(flat: FlatForest) -> np.ndarray:
+    """Padding nodes are the ones whose two subtrees are the same (feature 0, threshold 0)."""
+    t, n = flat.node_features.shape
+    d = flat.depth
+    mask = np.ones((t, n), bool)
+    for i in range(n):
+        level = (i + 1).bit_length() - 1
+        span = 1 << (d - level)  # leaves under node i
+        first = (i + 1) * span - (n + 1)
+        left = flat.leaf_values[:, first : first + span // 2]
+        right = flat.leaf_values[:, first + span // 2 : first + span]
+        pad = (flat.node_features[:, i] == 0) & (flat.node_thresholds[:, i] == 0) & (left == right).all(1)
+        mask[:, i] = ~pad
+    return mask
+
+
+def float32_thresholds(thresholds) -> np.ndarray:
+    """The largest float32 not above each float64 threshold.
+
+    With it, ``x <= t32`` equals ``x <= t64`` for every float32 ``x``: a plain cast rounds to the
+    nearest float32 and may round up, past a float32 value that should go right.
+
+    Examples
+    --------
+    >>> a = np.nextafter(np.float32(1), np.float32(2)); b = np.nextafter(a, np.float32(2))
+    >>> mid = (float(a) + float(b)) / 2   # halfway; a plain cast rounds to the even one, b
+    >>> bool(np.float32(mid) == b), bool(float32_thresholds([mid])[0] == a)
+    (True, True)
+    """
+    t64 = np.asarray(thresholds, dtype=np.float64)
+    with np.errstate(over="ignore"):
+        t32 = t64.astype(np.float32)
+    up = t32.astype(np.float64) > t64
+    t32[up] = np.nextafter(t32[up], np.float32(-np.inf))
+    return t32
+
+
+def flatten_tree(estimator, depth: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Export a fitted scikit-learn tree into complete heap-ordered arrays of depth ``depth``.
+
+    Parameters
+    ----------
+    estimator : DecisionTreeClassifier or DecisionTreeRegressor
+        Fitted with ``max_depth <= depth``; a classifier must have ``classes_ == [0, 1]`` (its leaf
+        value is the class-1 fraction, i.e. ``predict_proba[:, 1]``), a regressor one output.
+    depth : int
+
+    Returns
+    -------
+    features : ndarray of int32, shape (2**depth - 1,)
+    thresholds : ndarray of float32, shape (2**depth - 1,)
+    leaves : ndarray of float32, shape (2**depth,)
+    split_mask : ndarray of bool, shape (2**depth - 1,)
+
+    Examples
+    --------
+    >>> X = np.array([[0.0], [1.0], [2.0], [3.0]], np.float32)
+    >>> t = DecisionTreeClassifier(max_depth=2).fit(X, [0, 0, 1, 1])
+    >>> f, thr, leaves, m = flatten_tree(t, 2)
+    >>> thr.tolist(), leaves.tolist(), m.tolist()     # root is the only split; both sides padded
+    ([1.5, 0.0, 0.0], [0.0, 0.0, 1.0, 1.0], [True, False, False])
+    """
+    tree = estimator.tree_
+    n_nodes = (1 << depth) - 1
+    if tree.max_depth > depth:
+        raise ValueError(f"tree of depth {tree.max_depth} does not fit depth {depth}")
+    if hasattr(estimator, "classes_"):
+        if list(np.asarray(estimator.classes_).tolist()) != [0, 1]:
+            raise ValueError("classifier trees must have classes [0, 1]")
+        value = tree.value[:, 0, 1].astype(np.float64)
+    else:
+        value = tree.value[:, 0, 0].astype(np.float64)
+    left, right = tree.children_left, tree.children_right
+    sk_feature = tree.feature
+    sk_threshold = float32_thresholds(tree.threshold)
+
+    features = np.zeros(n_nodes, np.int32)
+    thresholds = np.zeros(n_nodes, np.float32)
+    leaves = np.zeros(n_nodes + 1, np.float32)
+    mask = np.zeros(n_nodes, bool)
+    # walk (scikit-learn node, heap index) pairs; a leaf above the last level fills both children
+    stack = [(0, 0)]
+    while stack:
+        node, i = stack.pop()
+        if i >= n_nodes:
+            leaves[i - n_nodes] = value[node]
+            continue
+        if left[node] == -1:  # a leaf above the last level: pad
+            stack.append((node, 2 * i + 1))
+            stack.append((node, 2 * i + 2))
+            continue
+        features[i] = sk_feature[node]
+        thresholds[i] = sk_threshold[node]
+        mask[i] = True
+        stack.append((left[node], 2 * i + 1))
+        stack.append((right[node], 2 * i + 2))
+    if not np.isfinite(thresholds).all():
+        raise ValueError("a tree threshold is not finite: feature values must be finite")
+    return features, thresholds, leaves, mask
+
+
+def forest_leaves(flat, X, chunk: int = 8192) -> np.ndarray:
+    """Leaf reached in every tree by every row of ``X`` (numpy reference).
+
+    Parameters
+    ----------
+    flat : FlatForest or Model-like
+        Anything with ``node_features``, ``node_thresholds``, ``leaf_values``.
+    X : ndarray of float32, shape (N, F)
+        Feature values; ``node_features`` index its columns (any memory order).
+    chunk : int
+        Rows per block (bounds temporary memory to about ``chunk * T * 24`` bytes).
+
+    Returns
+    -------
+    ndarray of intp, shape (N, T)
+        Leaf index in ``0 .. 2**D - 1``.
+
+    Examples
+    --------
+    >>> f = FlatForest("bagged", [[0, 0, 0]], [[0.5, 0.25, 0.75]], [[0, .2, .6, 1]])
+    >>> forest_leaves(f, np.array([[0.2], [0.3], [0.7], [0.9]], np.float32)).ravel().tolist()
+    [0, 1, 2, 3]
+    """
+    nf = np.asarray(flat.node_features)
+    thr = np.asarray(flat.node_thresholds)
+    t, n_nodes = nf.shape
+    depth = (n_nodes + 1).bit_length() - 1
+    X = np.asarray(X)
+    n = X.shape[0]
+    out = np.empty((n, t), np.intp)
+    tcols = np.arange(t)[None, :]
+    for a in range(0, n, chunk):
+        b = min(n, a + chunk)
+        rows = np.arange(a, b)[:, None]
+        idx = np.zeros((b - a, t), np.intp)
+        for _ in range(depth):
+            x = X[rows, nf[tcols, idx]]
+            idx = 2 * idx + 1 + (x > thr[tcols, idx])
+        out[a:b] = idx - n_nodes
+    return out
+
+
+def forest_running_scores(flat, X) -> np.ndarray:
+    """Running scores ``s_t`` after each tree, float32 sums in tree order.
+
+    Parameters
+    ----------
+    flat : FlatForest or Model-like
+    X : ndarray of float32, shape (N, F)
+
+    Returns
+    -------
+    ndarray of float32, shape (N, T)
+
+    Examples
+    --------
+    >>> f = FlatForest("bagged", [[0], [0]], [[0.5], [0.0]], [[0, 1], [0.25, 0.75]])
+    >>> forest_running_scores(f, np.array([[0.2], [0.9]], np.float32)).tolist()
+    [[0.0, 0.75], [1.0, 1.75]]
+    """
+    leaves = forest_leaves(flat, X)
+    lv = np.asarray(flat.leaf_values, dtype=np.float32)
+    vals = lv[np.arange(lv.shape[0])[None, :], leaves]
+    return np.cumsum(vals, axis=1, dtype=np.float32)
+
+
+def _final_score(mode: str, total: np.ndarray, n_trees: int) -> np.ndarray:
+    total = np.asarray(total, dtype=np.float32)
+    if mode == "bagged":
+        return total / np.float32(n_trees)
+    # 1 / (1 + exp(-2 s)) == (1 + tanh(s)) / 2, without overflow
+    return ((1.0 + np.tanh(total.astype(np.float64))) / 2.0).astype(np.float32)
+
+
+def forest_score(flat, X) -> np.ndarray:
+    """The forest's score in 0..1 for every row of ``X`` (no early exit).
+
+    Bagged: mean leaf object fraction ``s_T / T``. Boosted: ``1 / (1 + exp(-2 s_T))``, the
+    logistic link of Gentle/Real AdaBoost (Friedman, Hastie and Tibshirani, Ann. Statist. 2000).
+
+    Parameters
+    ----------
+    flat : FlatForest or Model-like (with ``mode``)
+    X : ndarray of float32, shape (N, F)
+
+    Returns
+    -------
+    ndarray of float32, shape (N,)
+
+    Examples
+    --------
+    >>> f = FlatForest("bagged", [[0], [0]], [[0.5], [0.0]], [[0, 1], [0.25, 0.75]])
+    >>> forest_score(f, np.array([[0.2], [0.9]], np.float32)).tolist()
+    [0.375, 0.875]
+    """
+    running = forest_running_scores(flat, X)
+    return _final_score(flat.mode, running[:, -1], running.shape[1])
+
+
+def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
+    """Early-exit thresholds from the running scores of held-out object patches.
+
+    The ``floor((1 - exit_recall) * N)`` objects with the lowest final score are set aside; each
+    threshold is the minimum running score, after that tree, of the objects kept (the common
+    approach for soft cascades; Bourdev and Brandt, CVPR 2005, calibrate a rejection trace on
+    positives). A window is dropped after tree ``t`` when ``s_t < thresholds[t]``, so no kept object
+    is ever dropped and at most ``1 - exit_recall`` of the calibration objects are dropped over the
+    whole cascade.
+
+    Parameters
+    ----------
+    running_scores : ndarray, shape (N, T)
+        From :func:`forest_running_scores` on object patches.
+    exit_recall : float in (0, 1]
+        Fraction of calibration objects that must survive every exit.
+
+    Returns
+    -------
+    ndarray of float32, shape (T,)
+        ``-inf`` everywhere (never exit) when there are no calibration objects.
+
+    Examples
+    --------
+    >>> r = np.array([[1, 2], [0, 3], [2, 1]], np.float32)   # final scores 2, 3, 1
+    >>> calibrate_exit(r, exit_recall=0.5).tolist()            # floor(0.5*3)=1 dropped: row 3
+    [0.0, 2.0]
+    """
+    r = np.asarray(running_scores, dtype=np.float32)
+    if r.ndim != 2:
+        raise ValueError("running_scores must be (N, T)")
+    if not 0.0 < exit_recall <= 1.0:
+        raise ValueError(f"exit_recall must be in (0, 1], got {exit_recall}")
+    n, t = r.shape
+    if n == 0:
+        return np.full(t, -np.inf, np.float32)
+    n_drop = int(np.floor((1.0 - exit_recall) * n + 1e-9))
+    n_drop = min(n_drop, n - 1)
+    order = np.argsort(r[:, -1], kind="stable")
+    kept = r[order[n_drop:]]
+    return kept.min(axis=0).astype(np.float32)
+
+
+def trees_evaluated(running_scores, exit_thresholds) -> np.ndarray:
+    """How many trees each window evaluates before it exits (T when it never exits).
+
+    Examples
+    --------
+    >>> r = np.array([[1, 2, 3], [0, 3, 4], [2, 0, 5]], np.float32)
+    >>> trees_evaluated(r, np.array([0.5, 1.0, 3.5], np.float32)).tolist()
+    [3, 1, 2]
+    """
+    r = np.asarray(running_scores, dtype=np.float32)
+    below = r < np.asarray(exit_thresholds, dtype=np.float32)[None, :]
+    first = np.argmax(below, axis=1)
+    return np.where(below.any(axis=1), first + 1, r.shape[1]).astype(np.int64)
+
+
+def _check_finite(X: np.ndarray, block: int = 256) -> bool:
+    """All values finite, checked in column (Fortran) or row (C) blocks to bound temporaries."""
+    if X.flags.f_contiguous and not X.flags.c_contiguous:
+        return all(np.isfinite(X[:, a : a + block]).all() for a in range(0, X.shape[1], block))
+    return all(np.isfinite(X[a : a + block]).all() for a in range(0, X.shape[0], block))
+
+
+def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
+    X = np.asarray(X)
+    if X.ndim != 2:
+        raise ValueError(f"X must be 2-D (patches x features), got shape {X.shape}")
+    if X.dtype != np.float32 or not (X.flags.f_contiguous or X.flags.c_contiguous):
+        X = np.asfortranarray(X, dtype=np.float32)
+    n, n_features = X.shape
+    y = np.asarray(y)
+    if y.shape != (n,):
+        raise ValueError(f"y must have shape ({n},), got {y.shape}")
+    if y.dtype == bool:
+        y = y.astype(np.int64)
+    if not np.isin(y, (0, 1)).all():
+        raise ValueError("y must hold 0 (background) and 1 (object) only")
+    y = y.astype(np.int64)
+    if y.min(initial=1) == y.max(initial=0) or n < 2:
+        raise ValueError("y must hold both object (1) and background (0) patches")
+    if mode not in MODES:
+        raise ValueError(f"mode must be one of {MODES}, got {mode!r}")
+    if not isinstance(n_trees, numbers.Integral) or n_trees < 1:
+        raise ValueError(f"n_trees must be a positive integer, got {n_trees!r}")
+    if not isinstance(depth, numbers.Integral) or not 1 <= depth <= MAX_DEPTH:
+        raise ValueError(f"depth must be an integer in 1..{MAX_DEPTH}, got {depth!r}")
+    if features_per_node is None:
+        features_per_node = max(1, int(round(np.sqrt(n_features))))
+    if not isinstance(features_per_node, numbers.Integral) or features_per_node < 1:
+        raise ValueError(f"features_per_node must be a positive integer, got {features_per_node!r}")
+    features_per_node = int(min(features_per_node, n_features))
+    if not 0.0 < float(sample_fraction) <= 1.0:
+        raise ValueError(f"sample_fraction must be in (0, 1], got {sample_fraction!r}")
+    if n_features < 1:
+        raise ValueError("X has no feature columns")
+    if not _check_finite(X):
+        raise ValueError("X holds non-finite feature values")
+    return X, y, int(n_trees), int(depth), features_per_node, float(sample_fraction)
+
+
+def _n_jobs(n_jobs) -> int:
+    if n_jobs is None:
+        return 1
+    if n_jobs < 0:
+        return max(1, (os.cpu_count() or 1) + 1 + n_jobs)
+    return max(1, int(n_jobs))
+
+
+def grow_forest(
+    X,
+    y,
+    *,
+    mode: str = "bagged",
+    n_trees: int = 200,
+    depth: int = 2,
+    features_per_node: int | None = None,
+    sample_fraction: float = 1.0,
+    random_state=None,
+    progress=None,
+    n_jobs: int | None = None,
+    keep_estimators: bool = False,
+) -> FlatForest:
+    """Grow a bagged or boosted forest of shallow trees and flatten it.
+
+    Parameters
+    ----------
+    X : ndarray of float32, shape (N, F)
+        Feature matrix (pool values of every patch). Pass it Fortran-ordered (e.g. the transpose of
+        ``evaluate_features(..., transpose=True)``): scikit-learn's splitter gathers
+        ``X[samples, f]`` one column at a time. Float32 C- or Fortran-contiguous input is used
+        without any copy; other input is converted once.
+    y : ndarray of int, shape (N,)
+        1 for object patches, 0 for background.
+    mode : {"bagged", "boosted"}, default="bagged"
+        Random forest (Breiman 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000);
+        see the module docstring.
+    n_trees : int, default=200
+    depth : int, default=2
+        Depth of every (complete) tree.
+    features_per_node : int, optional
+        Pool columns drawn at random at every node; default ``round(sqrt(F))`` (common practice for
+        random forests).
+    sample_fraction : float in (0, 1], default=1.0
+        Bagged: bootstrap draws per tree as a fraction of N (with replacement). Boosted: fraction of
+        patches (without replacement) that carry weight in each stage.
+    random_state : None, int or numpy generator
+        Every tree gets its own child of one :class:`numpy.random.SeedSequence`; the same seed gives
+        the same forest, whatever ``n_jobs``.
+    progress : callable(done, total), optional
+        Called after every tree.
+    n_jobs : int, optional
+        Threads growing bagged trees at once (scikit-learn's tree builder releases the GIL);
+        None means 1, -1 all cores. Boosting is sequential.
+    keep_estimators : bool, default=False
+        Keep the scikit-learn trees and the per-tree sample counts (for tests and inspection).
+
+    Returns
+    -------
+    FlatForest
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(200, 6)).astype(np.float32); y = (X[:, 2] + X[:, 4] > 0).astype(int)
+    >>> f = grow_forest(X, y, n_trees=20, random_state=0)
+    >>> bool(f.oob_error < 0.2), int(np.argmax(f.importances)) in (2, 4)
+    (True, True)
+    """
+    X, y, n_trees, depth, fpn, fraction = _validate(
+        X, y, mode, n_trees, depth, features_per_node, sample_fraction
+    )
+    n, n_features = X.shape
+    children = seed_sequence(random_state).spawn(n_trees)
+    n_nodes = (1 << depth) - 1
+    node_features = np.zeros((n_trees, n_nodes), np.int32)
+    node_thresholds = np.zeros((n_trees, n_nodes), np.float32)
+    leaf_values = np.zeros((n_trees, n_nodes + 1), np.float32)
+    split_mask = np.zeros((n_trees, n_nodes), bool)
+    importances = np.zeros(n_features, np.float64)
+    estimators = [] if keep_estimators else None
+    in_bag = np.zeros((n_trees, n), np.int32) if keep_estimators else None
+
+    def store(t, est):
+        f, thr, lv, m = flatten_tree(est, depth)
+        node_features[t], node_thresholds[t], leaf_values[t], split_mask[t] = f, thr, lv, m
+        root_weight = est.tree_.weighted_n_node_samples[0]
+        importances[:] += est.tree_.compute_feature_importances(normalize=False) * root_weight / n
+        if estimators is not None:
+            estimators.append(est)
+
+    def one_tree_leaves(t):
+        single = FlatForest(mode, node_features[t : t + 1], node_thresholds[t : t + 1],
+                            leaf_values[t : t + 1], split_mask[t : t + 1])
+        return forest_leaves(single, X)[:, 0]
+
+    oob_error = None
+    if mode == "bagged":
+        n_draw = max(1, int(round(fraction * n)))
+
+        def fit_one(t):
+            boot_ss, tree_ss = children[t].spawn(2)
+            draws = np.random.default_rng(boot_ss).integers(0, n, n_draw)
+            counts = np.bincount(draws, minlength=n)
+            est = DecisionTreeClassifier(
+                criterion="entropy",
+                splitter="best",
+                max_depth=depth,
+                max_features=fpn,
+                random_state=int(tree_ss.generate_state(1)[0]),
+            )
+            est.fit(X, y, sample_weight=counts.astype(np.float64), check_input=False)
+            return est, counts
+
+        oob_sum = np.zeros(n, np.float64)
+        oob_count = np.zeros(n, np.int64)
+        workers = _n_jobs(n_jobs)
+        pool = ThreadPoolExecutor(max_workers=workers) if workers > 1 else None
+        try:
+            results = pool.map(fit_one, range(n_trees)) if pool else map(fit_one, range(n_trees))
+            for t, (est, counts) in enumerate(results):
+                store(t, est)
+                out = counts == 0
+                if out.any():
+                    oob_sum[out] += leaf_values[t][one_tree_leaves(t)[out]]
+                    oob_count[out] += 1
+                if in_bag is not None:
+                    in_bag[t] = counts
+                if progress is not None:
+                    progress(t + 1, n_trees)
+        finally:
+            if pool:
+                pool.shutdown(cancel_futures=True)
+        seen = oob_count > 0
+        if seen.any():
+            predicted = (oob_sum[seen] / oob_count[seen]) > 0.5
+            oob_error = float(np.mean(predicted != (y[seen] == 1)))
+    else:
+        signed = np.where(y == 1, 1.0, -1.0)
+        weights = np.ones(n, np.float64)
+        n_sub = max(1, int(round(fraction * n)))
+        for t in range(n_trees):
+            sub_ss, tree_ss = children[t].spawn(2)
+            if n_sub < n:
+                chosen = np.random.default_rng(sub_ss).choice(n, n_sub, replace=False)
+                stage_weight = np.zeros(n, np.float64)
+                stage_weight[chosen] = weights[chosen]
+            else:
+                stage_weight = weights
+            est = DecisionTreeRegressor(
+                criterion="squared_error",
+                splitter="best",
+                max_depth=depth,
+                max_features=fpn,
+                random_state=int(tree_ss.generate_state(1)[0]),
+            )
+            est.fit(X, signed, sample_weight=stage_weight, check_input=False)
+            store(t, est)
+            if in_bag is not None:
+                in_bag[t] = stage_weight > 0
+            f_t = leaf_values[t][one_tree_leaves(t)].astype(np.float64)
+            weights = weights * np.exp(-signed * f_t)
+            weights /= weights.mean()
+            if progress is not None:
+                progress(t + 1, n_trees)
+
+    return FlatForest(
+        mode=mode,
+        node_features=node_features,
+        node_thresholds=node_thresholds,
+        leaf_values=leaf_values,
+        split_mask=split_mask,
+        importances=importances,
+        oob_error=oob_error,
+        estimators=estimators,
+        in_bag=in_bag,
+    )

@@ -1,0 +1,246 @@
+"""Growing and flattening forests: the flat trees must take scikit-learn's decisions exactly.
+
+Reference library throughout: scikit-learn's DecisionTreeClassifier / DecisionTreeRegressor (the
+fitted trees are kept with ``keep_estimators=True`` and compared with the flat arrays).
+"""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
+from sklearn.metrics import roc_auc_score
+from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
+
+from detector.forest import (
+    FlatForest,
+    calibrate_exit,
+    flatten_tree,
+    float32_thresholds,
+    forest_leaves,
+    forest_running_scores,
+    forest_score,
+    grow_forest,
+    trees_evaluated,
+)
+
+
+def _data(n=300, f=24, seed=0, ties=False):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, f))
+    if ties:  # few distinct values per column: thresholds fall between repeated values
+        X = np.round(X * 3) / 7
+    y = ((X[:, 3] - 0.5 * X[:, 7] + 0.3 * rng.normal(size=n)) > 0.2).astype(np.int64)
+    return np.asfortranarray(X, dtype=np.float32), y
+
+
+def _assert_same_partition(our_leaves, sk_leaves):
+    """Every flat leaf is reached only by samples that share one scikit-learn leaf."""
+    for leaf in np.unique(our_leaves):
+        assert np.unique(sk_leaves[our_leaves == leaf]).size == 1
+
+
+@pytest.mark.parametrize("ties", [False, True])
+@pytest.mark.parametrize("depth", [1, 2, 3])
+def test_bagged_export_matches_sklearn_exactly(depth, ties):
+    X, y = _data(ties=ties, seed=depth)
+    forest = grow_forest(X, y, mode="bagged", n_trees=12, depth=depth, random_state=3, keep_estimators=True)
+    leaves = forest_leaves(forest, X)
+    proba = np.empty((len(X), forest.n_trees))
+    for t, est in enumerate(forest.estimators):
+        p = est.predict_proba(X)[:, 1]
+        proba[:, t] = p
+        # the leaf values are scikit-learn's predict_proba, rounded once to float32
+        np.testing.assert_array_equal(forest.leaf_values[t][leaves[:, t]], p.astype(np.float32))
+        _assert_same_partition(leaves[:, t], est.apply(X))
+    # the forest's score is the average of the trees' probabilities (float32 sums)
+    np.testing.assert_allclose(forest_score(forest, X), proba.mean(axis=1), rtol=0, atol=2e-6)
+
+
+@pytest.mark.parametrize("fraction", [1.0, 0.6])
+def test_boosted_export_matches_sklearn_exactly(fraction):
+    X, y = _data(seed=5)
+    forest = grow_forest(X, y, mode="boosted", n_trees=10, depth=2, sample_fraction=fraction,
+                         random_state=1, keep_estimators=True)
+    leaves = forest_leaves(forest, X)
+    total = np.zeros(len(X))
+    for t, est in enumerate(forest.estimators):
+        p = est.predict(X)
+        np.testing.assert_array_equal(forest.leaf_values[t][leaves[:, t]], p.astype(np.float32))
+        _assert_same_partition(leaves[:, t], est.apply(X))
+        total += p
+    # logistic link of Gentle AdaBoost: 1 / (1 + exp(-2 F)) (Friedman, Hastie and Tibshirani 2000)
+    np.testing.assert_allclose(forest_score(forest, X), 1 / (1 + np.exp(-2 * total)), atol=2e-6)
+    assert roc_auc_score(y, forest_score(forest, X)) > 0.9  # sklearn's ROC AUC
+
+
+def test_boosted_weights_follow_gentle_adaboost():
+    """Refit every stage with weights from a slow loop over Algorithm 4 of Friedman, Hastie and
+    Tibshirani (2000): w <- w * exp(-y f(x)), y in {-1, +1}; the trees must come out the same."""
+    X, y = _data(n=200, seed=9)
+    forest = grow_forest(X, y, mode="boosted", n_trees=6, depth=2, random_state=4, keep_estimators=True)
+    signed = np.where(y == 1, 1.0, -1.0)
+    w = np.ones(len(y))
+    for est in forest.estimators:
+        again = DecisionTreeRegressor(**est.get_params()).fit(X, signed, sample_weight=w)
+        np.testing.assert_array_equal(again.tree_.feature, est.tree_.feature)
+        np.testing.assert_array_equal(again.tree_.threshold, est.tree_.threshold)
+        f = est.predict(X).astype(np.float32).astype(np.float64)
+        for i in range(len(w)):
+            w[i] = w[i] * np.exp(-signed[i] * f[i])
+        w = w / w.mean()
+
+
+def test_padding_of_a_leaf_above_the_last_level():
+    # X = 0,1,2,3 with y = 0,0,1,1: one split at (1+2)/2 = 1.5 makes both children pure, so at
+    # depth 2 nodes 1 and 2 are padding (feature 0, threshold 0) over identical leaves.
+    X = np.array([[0.0, 5], [1, 5], [2, 5], [3, 5]], np.float32)
+    est = DecisionTreeClassifier(max_depth=2, random_state=0).fit(X, [0, 0, 1, 1])
+    f, thr, leaves, mask = flatten_tree(est, 2)
+    assert f.tolist() == [0, 0, 0] and thr.tolist() == [1.5, 0.0, 0.0]
+    assert leaves.tolist() == [0.0, 0.0, 1.0, 1.0] and mask.tolist() == [True, False, False]
+    flat = FlatForest("bagged", f[None], thr[None], leaves[None], mask[None])
+    probe = np.random.default_rng(0).uniform(-4, 4, size=(200, 2)).astype(np.float32)
+    np.testing.assert_array_equal(forest_score(flat, probe), est.predict_proba(probe)[:, 1].astype(np.float32))
+
+
+def test_padding_when_the_root_cannot_split():
+    # a constant column cannot split: the root is a leaf with class fraction 2/4 = 0.5
+    X = np.ones((4, 1), np.float32)
+    est = DecisionTreeClassifier(max_depth=3).fit(X, [0, 1, 0, 1])
+    f, thr, leaves, mask = flatten_tree(est, 3)
+    assert not mask.any() and (f == 0).all() and (thr == 0).all()
+    assert leaves.tolist() == [0.5] * 8
+    flat = FlatForest("bagged", f[None], thr[None], leaves[None])
+    assert not flat.split_mask.any()  # padding is recognised when the mask is not given
+    used, g = flat.reindex()
+    assert used.tolist() == [0] and g.node_features.tolist() == [[0] * 7]
+
+
+def test_threshold_float32_rounding_edge_case():
+    # a and b are neighbouring float32 values; a's last mantissa bit is 1, b's is 0, so the float64
+    # midpoint (a+b)/2 is exactly halfway and a plain float32 cast rounds it to the even one, b.
+    # (Near 3.0 the float32 spacing, 2.4e-7, exceeds scikit-learn's tie tolerance of 1e-7; near 1.0
+    # it would not, and scikit-learn would treat a and b as one value.)
+    a = np.nextafter(np.float32(3), np.float32(4))
+    b = np.nextafter(a, np.float32(4))
+    mid = (np.float64(a) + np.float64(b)) / 2
+    assert np.float32(mid) == b  # the naive cast would send b to the left
+    X = np.array([[a], [a], [b], [b]], np.float32)
+    est = DecisionTreeClassifier(max_depth=1).fit(X, [0, 0, 1, 1])
+    assert est.tree_.threshold[0] == mid  # scikit-learn's midpoint rule
+    f, thr, leaves, _ = flatten_tree(est, 1)
+    assert thr[0] == a
+    flat = FlatForest("bagged", f[None], thr[None], leaves[None])
+    np.testing.assert_array_equal(forest_score(flat, X), est.predict_proba(X)[:, 1].astype(np.float32))
+    naive = FlatForest("bagged", f[None], np.float32([[mid]]), leaves[None])
+    assert forest_score(naive, X)[2] != forest_score(flat, X)[2]
+
+
+@settings(max_examples=60, deadline=None)
+@given(hnp.arrays(np.float64, st.integers(1, 20),
+                  elements=st.floats(-1e30, 1e30, allow_nan=False, allow_infinity=False)))
+def test_float32_thresholds_is_the_largest_float32_not_above(t64):
+    t32 = float32_thresholds(t64)
+    assert t32.dtype == np.float32 and np.isfinite(t32).all()
+    assert (t32.astype(np.float64) <= t64).all()
+    above = np.nextafter(t32, np.float32(np.inf)).astype(np.float64)
+    assert (above > t64).all()
+
+
+def test_out_of_bag_error_matches_a_slow_direct_computation():
+    X, y = _data(n=150, seed=2)
+    forest = grow_forest(X, y, n_trees=15, depth=2, random_state=7, keep_estimators=True)
+    wrong, seen = 0, 0
+    for i in range(len(X)):
+        votes = [est.predict_proba(X[i : i + 1])[0, 1].astype(np.float32)
+                 for t, est in enumerate(forest.estimators) if forest.in_bag[t, i] == 0]
+        if votes:
+            seen += 1
+            wrong += int((np.mean(np.float64(votes)) > 0.5) != (y[i] == 1))
+    assert seen > 0.9 * len(X)  # with 15 trees nearly every patch is out of bag at least once
+    assert forest.oob_error == pytest.approx(wrong / seen, abs=0)
+    # bootstrap counts: n draws with replacement
+    assert (forest.in_bag.sum(axis=1) == len(X)).all()
+
+
+def test_same_seed_same_forest_and_threads_do_not_matter():
+    X, y = _data(seed=4)
+    a = grow_forest(X, y, n_trees=8, random_state=11, n_jobs=1)
+    b = grow_forest(np.ascontiguousarray(X), y, n_trees=8, random_state=11, n_jobs=2)
+    c = grow_forest(X, y, n_trees=8, random_state=12)
+    for name in ("node_features", "node_thresholds", "leaf_values", "importances"):
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+    assert a.oob_error == b.oob_error
+    assert not np.array_equal(a.node_thresholds, c.node_thresholds)
+
+
+def test_importances_sum_sklearn_impurity_decreases():
+    X, y = _data(seed=6)
+    forest = grow_forest(X, y, n_trees=10, random_state=0, keep_estimators=True)
+    expected = sum(est.tree_.compute_feature_importances(normalize=False) for est in forest.estimators)
+    np.testing.assert_allclose(forest.importances, expected, rtol=1e-12)
+    assert np.argmax(forest.importances) in (3, 7)  # y depends on columns 3 and 7
+
+
+def test_progress_and_feature_subsets():
+    X, y = _data(n=120, seed=1)
+    calls = []
+    forest = grow_forest(X, y, n_trees=5, features_per_node=1, random_state=0,
+                         progress=lambda d, t: calls.append((d, t)), keep_estimators=True)
+    assert calls == [(i, 5) for i in range(1, 6)]
+    assert all(est.max_features_ == 1 for est in forest.estimators)
+    default = grow_forest(X, y, n_trees=1, random_state=0, keep_estimators=True)
+    assert default.estimators[0].max_features_ == round(np.sqrt(24))  # round(sqrt(F)) = 5
+
+
+def test_reindex_keeps_scores():
+    X, y = _data(seed=8)
+    forest = grow_forest(X, y, n_trees=20, depth=3, random_state=2)
+    used, small = forest.reindex()
+    assert small.node_features.max() < used.size
+    np.testing.assert_array_equal(forest_score(small, X[:, used]), forest_score(forest, X))
+    np.testing.assert_array_equal(small.importances, forest.importances[used])
+
+
+def test_bad_inputs_are_refused():
+    X, y = _data(n=40)
+    with pytest.raises(ValueError, match="both"):
+        grow_forest(X, np.zeros(40, int))
+    bad = X.copy()
+    bad[3, 2] = np.nan
+    with pytest.raises(ValueError, match="non-finite"):
+        grow_forest(bad, y)
+    with pytest.raises(ValueError, match="mode"):
+        grow_forest(X, y, mode="stacked")
+    with pytest.raises(ValueError, match="sample_fraction"):
+        grow_forest(X, y, sample_fraction=1.5)
+
+
+def test_running_scores_and_trees_evaluated_by_hand():
+    # one feature, two depth-1 trees: leaves (0, 1) at 0.5 and (0.25, 0.75) at 0.0
+    flat = FlatForest("bagged", [[0], [0]], [[0.5], [0.0]], [[0, 1], [0.25, 0.75]])
+    X = np.array([[0.2], [0.9], [-1.0]], np.float32)
+    # x=0.2: 0 then +0.75; x=0.9: 1 then +0.75; x=-1: 0 then +0.25
+    np.testing.assert_array_equal(forest_running_scores(flat, X), [[0, 0.75], [1, 1.75], [0, 0.25]])
+    # thresholds (0.0, 0.5): x=-1 is dropped after tree 2 (0.25 < 0.5)
+    assert trees_evaluated(forest_running_scores(flat, X), [0.0, 0.5]).tolist() == [2, 2, 2]
+    assert trees_evaluated(forest_running_scores(flat, X), [0.5, 0.5]).tolist() == [1, 2, 1]
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.integers(1, 60), st.integers(1, 12), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+def test_calibrated_exit_keeps_the_promised_recall(n, t, recall, seed):
+    rng = np.random.default_rng(seed)
+    running = np.cumsum(rng.normal(size=(n, t)).astype(np.float32), axis=1, dtype=np.float32)
+    thr = calibrate_exit(running, recall)
+    dropped = trees_evaluated(running, thr) < t
+    dropped |= running[:, -1] < thr[-1]
+    assert dropped.sum() <= np.floor((1 - recall) * n + 1e-9)
+    # tight: every threshold is reached by some kept object (raising it would drop one more)
+    kept = running[~dropped]
+    np.testing.assert_array_equal(kept.min(axis=0), thr)
+
+
+def test_calibrate_exit_without_objects_never_exits():
+    assert np.isneginf(calibrate_exit(np.zeros((0, 4), np.float32))).all()
