@@ -85,7 +85,8 @@ class ArraySpec:
 
 def _npy_bytes(array: np.ndarray) -> bytes:
     buf = io.BytesIO()
-    np.lib.format.write_array(buf, np.ascontiguousarray(array), allow_pickle=False)
+    array = array if array.flags.c_contiguous else array.copy(order="C")  # keeps 0-d arrays 0-d
+    np.lib.format.write_array(buf, array, allow_pickle=False)
     return buf.getvalue()
 
 
