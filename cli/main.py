@@ -36,16 +36,39 @@ def _register() -> None:
 _register()
 
 
+# Typer ships its own copy of click; reach its exception classes through Typer's public names.
+_UsageError = typer.BadParameter.__bases__[0]
+_ClickError = _UsageError.__bases__[0]
+
+
 def run() -> None:
     """Console entry point: one-line errors for bad input, never a traceback."""
     try:
-        app(standalone_mode=True)
+        code = app(standalone_mode=False)
+    except _UsageError as err:
+        if type(err).__name__ == "NoArgsIsHelpError":  # bare `patchwood`: show the help
+            typer.echo(err.format_message())
+            sys.exit(0)
+        where = err.ctx.command_path if err.ctx is not None else "patchwood"
+        typer.echo(f"error: {err.format_message()} (see '{where} --help')", err=True)
+        sys.exit(2)
+    except _ClickError as err:
+        typer.echo(f"error: {err.format_message()}", err=True)
+        sys.exit(err.exit_code or 1)
+    except typer.Abort:
+        typer.echo("aborted", err=True)
+        sys.exit(1)
     except InputError as err:
         typer.echo(f"error: {err}", err=True)
         sys.exit(1)
     except KeyboardInterrupt:
         typer.echo("interrupted", err=True)
         sys.exit(130)
+    except OSError as err:
+        # file-system trouble the library did not turn into an InputError: still one line
+        typer.echo(f"error: {err.filename or ''}: {err.strerror or err}", err=True)
+        sys.exit(1)
+    sys.exit(code if isinstance(code, int) else 0)
 
 
 if __name__ == "__main__":
