@@ -184,7 +184,11 @@ def _read_member(zf: zipfile.ZipFile, info: zipfile.ZipInfo, size_on_disk: int, 
             got += n
         if got != len(buf) or fh.read(1):
             raise InputError(f"damaged {kind} file: entry {name!r} is truncated", path=path)
-    shape, fortran, dtype, offset = _read_header(buf)
+    try:
+        shape, fortran, dtype, offset = _read_header(buf)
+    except Exception as exc:  # numpy's header parser on untrusted bytes: any failure means damage
+        detail = " ".join(str(exc).split())[:80] or type(exc).__name__
+        raise InputError(f"damaged {kind} file: array {name!r} has a bad header ({detail})", path=path) from None
     if dtype.hasobject:
         raise InputError(
             f"refused {kind} file: array {name!r} holds Python objects (patchwood never unpickles)",

@@ -1,0 +1,334 @@
+"""A scikit-learn style classifier of fixed-size grey patches: object (1) or background (0).
+
+:class:`PatchClassifier` draws a random pool of rectangle-difference features, evaluates it on the
+patches, grows a forest of shallow trees (:func:`detector.forest.grow_forest`), keeps only the
+features the trees use, and calibrates the early-exit thresholds on object patches held out from
+growing. The result is a :class:`detector.model.Model`, the same object the model file stores and
+the scanning engine reads, so ``clone``, ``cross_val_score`` and parameter searches of
+scikit-learn work on exactly what ``patchwood train`` ships.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import time
+
+import numpy as np
+from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.utils.validation import check_is_fitted
+
+from detector import features as _features
+from detector.errors import InputError
+from detector.forest import (
+    MAX_DEPTH,
+    MODES,
+    calibrate_exit,
+    final_score,
+    forest_running_scores,
+    grow_forest,
+    seed_sequence,
+    trees_evaluated,
+)
+from detector.model import Model, library_versions, training_date
+
+__all__ = ["PatchClassifier", "calibration_count", "check_patches"]
+
+#: Fraction of object patches held out from growing to calibrate the early exit ...
+CALIBRATION_FRACTION = 0.1
+#: ... but at least this many when there are four times as many object patches.
+CALIBRATION_MINIMUM = 20
+
+
+def calibration_count(n_objects: int) -> int:
+    """How many object patches to hold out for the early-exit calibration.
+
+    10 % of them, rounded up; at least 20 while that leaves three quarters for growing.
+
+    Examples
+    --------
+    >>> [calibration_count(n) for n in (0, 3, 40, 80, 100, 5000)]
+    [0, 0, 10, 20, 20, 500]
+    """
+    n_cal = math.ceil(CALIBRATION_FRACTION * n_objects)
+    if n_cal < CALIBRATION_MINIMUM:
+        n_cal = min(CALIBRATION_MINIMUM, n_objects // 4)
+    return int(n_cal)
+
+
+def check_patches(patches, window=None) -> np.ndarray:
+    """Validate grey patches: a (N, height, width) array of grey levels 0..255 -> uint8.
+
+    Parameters
+    ----------
+    patches : array_like
+    window : (int, int), optional
+        Required ``(width, height)``.
+
+    Examples
+    --------
+    >>> check_patches(np.zeros((2, 3, 4), np.int64)).dtype
+    dtype('uint8')
+    """
+    patches = np.asarray(patches)
+    if patches.ndim != 3:
+        raise InputError(f"patches must be a (N, height, width) array, got shape {patches.shape}")
+    if patches.dtype != np.uint8:
+        if patches.dtype.kind not in "iu" or (patches.size and (patches.min() < 0 or patches.max() > 255)):
+            raise InputError(f"patches must be uint8 grey levels (0..255), got dtype {patches.dtype}")
+        patches = patches.astype(np.uint8)
+    if window is not None and patches.shape[1:] != (window[1], window[0]):
+        raise InputError(f"patches are {patches.shape[2]}x{patches.shape[1]}; the model's window is "
+                         f"{window[0]}x{window[1]} (width x height)")
+    return patches
+
+
+class PatchClassifier(ClassifierMixin, BaseEstimator):
+    """Forest of shallow trees over rectangle-difference features, as a scikit-learn classifier.
+
+    Parameters
+    ----------
+    n_trees : int, default=200
+    depth : int, default=2
+        Depth of every tree.
+    mode : {"bagged", "boosted"}, default="bagged"
+        Random forest (Breiman 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000).
+    pool : int, default=20000
+        Size of the random feature pool (capped at the number of features the window holds).
+    features_per_node : int, optional
+        Pool features tried at every node; default ``round(sqrt(pool))``.
+    sample_fraction : float in (0, 1], default=1.0
+        Bootstrap size (bagged) or per-stage subsample (boosted), as a fraction of the patches.
+    normalize : bool, default=True
+        Contrast-normalise feature values per patch.
+    exit_recall : float in (0, 1], default=0.995
+        Fraction of held-out object patches that must pass every early exit.
+    random_state : None, int or numpy generator
+        Same seed and same patches give the same model, byte for byte in the model file.
+    n_jobs : int, optional
+        Threads growing bagged trees (None: 1, -1: all cores); the result does not depend on it.
+
+    Attributes
+    ----------
+    model_ : detector.model.Model
+    classes_ : ndarray, ``[0, 1]``
+    oob_error_ : float
+        Out-of-bag error of a bagged forest (nan for boosted).
+    feature_importances_ : ndarray of float64, shape (F_used,)
+        Summed impurity decrease of each of ``model_.features``, normalised to sum to 1.
+    calibration_indices_ : ndarray of int
+        Indices (into the patches given to ``fit``) of the object patches held out from growing to
+        calibrate the early exit.
+    timings_ : dict
+        Wall seconds of the last fit: ``evaluate_seconds`` (pool draw and feature values),
+        ``grow_seconds``, ``calibrate_seconds`` (kept out of the model file, which stays
+        byte-identical between runs).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> bright = rng.integers(0, 60, (40, 12, 12)); bright[:, :6] += 150   # top half brighter
+    >>> dull = rng.integers(0, 210, (40, 12, 12))
+    >>> patches = np.concatenate([bright, dull]).astype(np.uint8); y = np.r_[np.ones(40), np.zeros(40)]
+    >>> clf = PatchClassifier(n_trees=20, pool=500, random_state=0).fit(patches, y)
+    >>> bool((clf.predict(patches) == y).mean() > 0.95)
+    True
+    """
+
+    def __init__(
+        self,
+        n_trees=200,
+        depth=2,
+        mode="bagged",
+        pool=20000,
+        features_per_node=None,
+        sample_fraction=1.0,
+        normalize=True,
+        exit_recall=0.995,
+        random_state=None,
+        n_jobs=None,
+    ):
+        self.n_trees = n_trees
+        self.depth = depth
+        self.mode = mode
+        self.pool = pool
+        self.features_per_node = features_per_node
+        self.sample_fraction = sample_fraction
+        self.normalize = normalize
+        self.exit_recall = exit_recall
+        self.random_state = random_state
+        self.n_jobs = n_jobs
+
+    def _check_parameters(self):
+        def integer(name, low, high=None):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, numbers.Integral) or v < low or (high and v > high):
+                span = f"{low}..{high}" if high else f">= {low}"
+                raise InputError(f"{name} must be an integer {span}, got {v!r}")
+
+        integer("n_trees", 1)
+        integer("depth", 1, MAX_DEPTH)
+        integer("pool", 1)
+        if self.features_per_node is not None:
+            integer("features_per_node", 1)
+        if self.mode not in MODES:
+            raise InputError(f"mode must be one of {', '.join(MODES)}, got {self.mode!r}")
+        for name in ("sample_fraction", "exit_recall"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
+                raise InputError(f"{name} must be a number in (0, 1], got {v!r}")
+
+    def fit(self, patches, y, *, progress=None):
+        """Grow the forest on grey patches.
+
+        Parameters
+        ----------
+        patches : ndarray of uint8, shape (N, height, width)
+        y : array_like of {0, 1}, shape (N,)
+            1 for object patches, 0 for background; both must occur.
+        progress : callable(done, total), optional
+            Called after every tree.
+
+        Returns
+        -------
+        self
+        """
+        started = time.perf_counter()
+        self._check_parameters()
+        patches = check_patches(patches)
+        y = np.asarray(y)
+        if y.shape != (len(patches),):
+            raise InputError(f"y must hold one label per patch ({len(patches)}), got shape {y.shape}")
+        if y.dtype.kind not in "biuf" or not np.isin(y, (0, 1)).all():
+            raise InputError("y must hold 0 (background) and 1 (object) only")
+        y = y.astype(np.int64)
+        if y.min(initial=1) == y.max(initial=0):
+            raise InputError("training needs both object (1) and background (0) patches")
+        height, width = patches.shape[1:]
+
+        pool_ss, split_ss, forest_ss = seed_sequence(self.random_state).spawn(3)
+        pool_size = min(int(self.pool), _features.count_features(width, height))
+        pool = _features.random_pool(width, height, pool_size,
+                                     random_state=int(pool_ss.generate_state(1)[0]))
+
+        objects = np.flatnonzero(y == 1)
+        n_cal = calibration_count(len(objects))
+        held = np.sort(np.random.default_rng(split_ss).choice(objects, n_cal, replace=False))
+        grow = np.ones(len(y), bool)
+        grow[held] = False
+        if not (y[grow] == 1).any():
+            held, grow[:] = held[:0], True
+        grow_patches = patches[grow]
+        grow_y = y[grow]
+
+        # (P, N) C-ordered, so X = values.T is Fortran-ordered: contiguous pool columns
+        values = _features.evaluate_features(pool, grow_patches, normalize=bool(self.normalize),
+                                             transpose=True)
+        evaluated = time.perf_counter()
+        forest = grow_forest(
+            values.T, grow_y, mode=self.mode, n_trees=int(self.n_trees), depth=int(self.depth),
+            features_per_node=self.features_per_node, sample_fraction=float(self.sample_fraction),
+            random_state=forest_ss, progress=progress, n_jobs=self.n_jobs,
+        )
+        grown = time.perf_counter()
+        used, small = forest.reindex()
+        background_values = values[used][:, grow_y == 0].T
+        del values
+
+        model = Model(
+            window=(width, height), features=pool[used], node_features=small.node_features,
+            node_thresholds=small.node_thresholds, leaf_values=small.leaf_values,
+            exit_thresholds=np.full(small.n_trees, -np.inf, np.float32), mode=self.mode,
+            normalize=bool(self.normalize), feature_importances=small.importances,
+        )
+        if len(held):
+            running = model.running_scores(patches[held])
+            model.exit_thresholds = calibrate_exit(running, float(self.exit_recall))
+            mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
+        else:
+            mean_objects = None
+        bg_running = forest_running_scores(model, background_values)
+        mean_background = float(trees_evaluated(bg_running, model.exit_thresholds).mean())
+
+        model.metadata = {
+            "kind": "model",
+            "parameters": {k: v for k, v in self.get_params().items()
+                           if k not in ("n_jobs",) and (k != "random_state" or v is None
+                                                         or isinstance(v, numbers.Integral))},
+            "features_per_node": int(self.features_per_node or max(1, round(math.sqrt(pool_size)))),
+            "pool_drawn": int(pool_size),
+            "patches": {"objects": int((grow_y == 1).sum()), "background": int((grow_y == 0).sum()),
+                        "window": [int(width), int(height)]},
+            "oob_error": forest.oob_error,
+            "calibration": {
+                "exit_recall": float(self.exit_recall),
+                "objects": int(len(held)),
+                "mean_trees_objects": mean_objects,
+                "mean_trees_background": mean_background,
+                "background_source": "training background patches",
+            },
+            "date": training_date(),
+            "versions": library_versions(),
+        }
+        self.timings_ = {
+            "evaluate_seconds": evaluated - started,
+            "grow_seconds": grown - evaluated,
+            "calibrate_seconds": time.perf_counter() - grown,
+        }
+        self.calibration_indices_ = held
+        self.model_ = model
+        self.classes_ = np.array([0, 1])
+        self.oob_error_ = float("nan") if forest.oob_error is None else float(forest.oob_error)
+        imp = small.importances
+        total = imp.sum()
+        self.feature_importances_ = imp / total if total > 0 else np.full(len(imp), 1.0 / len(imp))
+        return self
+
+    def _raw(self, patches) -> np.ndarray:
+        check_is_fitted(self, "model_")
+        patches = check_patches(patches, self.model_.window)
+        return self.model_.running_scores(patches)[:, -1]
+
+    def decision_function(self, patches) -> np.ndarray:
+        """Signed confidence, > 0 for objects.
+
+        Bagged: mean leaf object fraction minus 0.5. Boosted: the additive model ``F(x)``, the sum
+        of the leaf values (half the log-odds).
+        """
+        raw = self._raw(patches)
+        if self.model_.mode == "bagged":
+            return raw / self.model_.n_trees - 0.5
+        return raw
+
+    def predict_proba(self, patches) -> np.ndarray:
+        """Scores as ``[[1 - s, s], ...]`` for classes ``[0, 1]``; ``s`` is the forest's score in 0..1
+        (no early exit)."""
+        raw = self._raw(patches)
+        s = final_score(self.model_.mode, raw, self.model_.n_trees)
+        return np.column_stack([1.0 - s, s])
+
+    def predict(self, patches) -> np.ndarray:
+        """1 where the score exceeds 0.5, else 0."""
+        return self.classes_[(self.predict_proba(patches)[:, 1] > 0.5).astype(np.intp)]
+
+    @classmethod
+    def from_model(cls, model: Model) -> "PatchClassifier":
+        """A fitted classifier around a loaded model (for scoring patches with a model file).
+
+        Examples
+        --------
+        >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+        ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False)
+        >>> PatchClassifier.from_model(m).predict(np.array([[[9, 9], [1, 1]]], np.uint8)).tolist()
+        [0]
+        """
+        params = dict(model.metadata.get("parameters", {}))
+        clf = cls(**{k: v for k, v in params.items() if k in cls().get_params()})
+        clf.model_ = model
+        clf.classes_ = np.array([0, 1])
+        oob = model.metadata.get("oob_error")
+        clf.oob_error_ = float("nan") if oob is None else float(oob)
+        imp = model.feature_importances
+        if imp is not None and imp.sum() > 0:
+            clf.feature_importances_ = imp / imp.sum()
+        return clf

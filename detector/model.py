@@ -1,0 +1,388 @@
+"""The model file: a trained forest with its features and early-exit thresholds, saved and loaded
+safely.
+
+One ``.npz`` archive (written by :func:`detector.npzfile.save_npz`, deterministic and atomic) that
+``numpy.load(path, allow_pickle=False)`` opens:
+
+=====================  =================  =====================================================
+array                  dtype, shape       meaning
+=====================  =================  =====================================================
+``format_version``     int64, ()          1
+``kind``               str, ()            ``"model"``
+``window``             int32, (2,)        window width and height in pixels
+``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
+                                          features the trees use (unused slots all zero)
+``node_features``      int32, (T, 2**D-1) index into ``features``, heap order
+``node_thresholds``    float32, (T, 2**D-1)  go left when ``value <= threshold``
+``leaf_values``        float32, (T, 2**D)    added to the running score
+``exit_thresholds``    float32, (T,)      drop a window after tree t when ``s_t < exit[t]``
+                                          (``-inf``: never)
+``feature_importances``  float64, (F,)    summed impurity decrease per feature (optional)
+``mode``               str, ()            ``"bagged"`` or ``"boosted"``
+``normalize``          bool, ()           per-window contrast normalisation of the features
+``metadata``           str, ()            JSON: parameters, bank hash, training figures, date,
+                                          library versions
+=====================  =================  =====================================================
+
+See :mod:`detector.forest` for the tree layout, the running score and the final score.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from detector import npzfile
+from detector.errors import InputError
+from detector.forest import MODES, FlatForest, final_score, forest_running_scores
+
+__all__ = ["FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model", "load_model", "training_date",
+           "library_versions", "model_arrays"]
+
+FORMAT_VERSION = 1
+
+MODEL_SPEC = {
+    "format_version": npzfile.ArraySpec("integer", ()),
+    "kind": npzfile.ArraySpec("str", ()),
+    "window": npzfile.ArraySpec("int32", (2,)),
+    "features": npzfile.ArraySpec("int32", ("F", 4, 5)),
+    "node_features": npzfile.ArraySpec("int32", ("T", "nodes")),
+    "node_thresholds": npzfile.ArraySpec("float32", ("T", "nodes")),
+    "leaf_values": npzfile.ArraySpec("float32", ("T", "leaves")),
+    "exit_thresholds": npzfile.ArraySpec("float32", ("T",)),
+    "feature_importances": npzfile.ArraySpec("float64", ("F",), required=False),
+    "mode": npzfile.ArraySpec("str", ()),
+    "normalize": npzfile.ArraySpec("bool", ()),
+    "metadata": npzfile.ArraySpec("str", ()),
+}
+
+
+def training_date() -> str:
+    """UTC day ``YYYY-MM-DD`` for the metadata; ``SOURCE_DATE_EPOCH`` wins when set.
+
+    ``SOURCE_DATE_EPOCH`` (seconds since 1970-01-01 UTC) is the reproducible-builds.org convention,
+    so that the same seed and bank give byte-identical model files on any day.
+
+    Examples
+    --------
+    >>> os.environ["SOURCE_DATE_EPOCH"] = "0"; training_date()
+    '1970-01-01'
+    >>> del os.environ["SOURCE_DATE_EPOCH"]
+    """
+    value = os.environ.get("SOURCE_DATE_EPOCH")
+    if value is not None and value.strip():
+        try:
+            seconds = int(value.strip())
+            when = _dt.datetime.fromtimestamp(seconds, tz=_dt.timezone.utc)
+        except (ValueError, OverflowError, OSError):
+            raise InputError(f"SOURCE_DATE_EPOCH must be whole seconds since 1970, got {value!r}") from None
+    else:
+        when = _dt.datetime.now(tz=_dt.timezone.utc)
+    return when.strftime("%Y-%m-%d")
+
+
+def library_versions() -> dict[str, str]:
+    """Versions of numpy, scikit-learn and patchwood, for the metadata."""
+    import sklearn
+
+    import detector
+
+    return {"numpy": np.__version__, "scikit-learn": sklearn.__version__, "patchwood": detector.__version__}
+
+
+def _jsonable(value):
+    """Plain JSON values: numpy scalars and arrays to Python, NaN and infinities to None."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _jsonable(value.tolist())
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+@dataclass
+class Model:
+    """A trained detector: window, features, flat trees, early-exit thresholds, metadata.
+
+    Attributes
+    ----------
+    window : tuple of int
+        ``(width, height)`` in pixels.
+    features : ndarray of int32, shape (F, 4, 5)
+        The features the trees use.
+    node_features, node_thresholds, leaf_values : ndarray
+        The flat trees (see :mod:`detector.forest`); ``node_features`` index ``features``.
+    exit_thresholds : ndarray of float32, shape (T,)
+    mode : {"bagged", "boosted"}
+    normalize : bool
+    metadata : dict
+    feature_importances : ndarray of float64, shape (F,), optional
+
+    Examples
+    --------
+    >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+    ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False)
+    >>> m.score(np.array([[[9, 9], [1, 1]], [[1, 1], [9, 9]]], np.uint8)).tolist()   # -(18)+2, -2+18
+    [0.0, 1.0]
+    """
+
+    window: tuple[int, int]
+    features: np.ndarray
+    node_features: np.ndarray
+    node_thresholds: np.ndarray
+    leaf_values: np.ndarray
+    exit_thresholds: np.ndarray
+    mode: str = "bagged"
+    normalize: bool = True
+    metadata: dict = field(default_factory=dict)
+    feature_importances: np.ndarray | None = None
+
+    def __post_init__(self):
+        self.window = tuple(int(v) for v in self.window)
+        self.features = np.ascontiguousarray(self.features, dtype=np.int32)
+        self.node_features = np.ascontiguousarray(self.node_features, dtype=np.int32)
+        self.node_thresholds = np.ascontiguousarray(self.node_thresholds, dtype=np.float32)
+        self.leaf_values = np.ascontiguousarray(self.leaf_values, dtype=np.float32)
+        self.exit_thresholds = np.ascontiguousarray(self.exit_thresholds, dtype=np.float32)
+        self.normalize = bool(self.normalize)
+        if self.feature_importances is not None:
+            self.feature_importances = np.ascontiguousarray(self.feature_importances, dtype=np.float64)
+        if self.mode not in MODES:
+            raise ValueError(f"mode must be one of {MODES}, got {self.mode!r}")
+
+    @classmethod
+    def from_forest(cls, window, pool, forest: FlatForest, exit_thresholds=None, *, normalize=True,
+                    metadata=None) -> "Model":
+        """Model from a forest grown on a feature pool: keeps only the features the trees use.
+
+        Parameters
+        ----------
+        window : (int, int)
+        pool : ndarray of int32, shape (P, 4, 5)
+            The pool ``forest.node_features`` index.
+        forest : FlatForest
+        exit_thresholds : ndarray of float32, shape (T,), optional
+            Default ``-inf`` (never exit).
+        normalize : bool
+        metadata : dict, optional
+        """
+        used, small = forest.reindex()
+        exits = np.full(small.n_trees, -np.inf, np.float32) if exit_thresholds is None else exit_thresholds
+        return cls(window, np.asarray(pool)[used], small.node_features, small.node_thresholds,
+                   small.leaf_values, exits, small.mode, normalize, dict(metadata or {}),
+                   small.importances)
+
+    @property
+    def n_trees(self) -> int:
+        return int(self.node_features.shape[0])
+
+    @property
+    def depth(self) -> int:
+        return int(self.node_features.shape[1] + 1).bit_length() - 1
+
+    @property
+    def forest(self) -> FlatForest:
+        """The trees as a :class:`detector.forest.FlatForest` (indices into ``features``)."""
+        return FlatForest(self.mode, self.node_features, self.node_thresholds, self.leaf_values,
+                          importances=self.feature_importances)
+
+    def feature_values(self, patches) -> np.ndarray:
+        """Values of the model's features on patches (N, h, w): float32 (N, F)."""
+        from detector.features import evaluate_features
+
+        patches = np.asarray(patches)
+        if patches.ndim != 3 or patches.shape[1:] != (self.window[1], self.window[0]):
+            raise InputError(
+                f"patches of shape {patches.shape[1:]} do not fit the model's window "
+                f"{self.window[0]}x{self.window[1]} (width x height)"
+            )
+        return evaluate_features(self.features, patches, normalize=self.normalize)
+
+    def running_scores(self, patches) -> np.ndarray:
+        """Running scores after each tree, float64 (N, T) (no early exit)."""
+        return forest_running_scores(self, self.feature_values(patches))
+
+    def score(self, patches) -> np.ndarray:
+        """Scores in 0..1 of patches (N, h, w), without early exit: float64 (N,)."""
+        return final_score(self.mode, self.running_scores(patches)[:, -1], self.n_trees)
+
+    def summary(self) -> list[str]:
+        """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.
+
+        Examples
+        --------
+        >>> m = Model((24, 24), np.zeros((1, 4, 5), np.int32), [[0]], [[0.0]], [[0.0, 1.0]],
+        ...           [-np.inf], "bagged", metadata={"date": "2025-01-02"})
+        >>> m.summary()[0]
+        'window: 24 x 24 pixels (width x height)'
+        """
+        md = self.metadata
+        kind = "random forest (bagged)" if self.mode == "bagged" else "Gentle AdaBoost (boosted)"
+        lines = [
+            f"window: {self.window[0]} x {self.window[1]} pixels (width x height)",
+            f"trees: {self.n_trees} of depth {self.depth}, {kind}",
+        ]
+        pool = md.get("pool_drawn") or md.get("parameters", {}).get("pool")
+        used = f"features used: {len(self.features)}"
+        lines.append(used + (f" of a pool of {pool}" if pool else "") +
+                     f" ({'contrast-normalised' if self.normalize else 'raw'} values)")
+        oob = md.get("oob_error")
+        lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
+        active = np.isfinite(self.exit_thresholds).sum()
+        cal = md.get("calibration", {})
+        text = f"early exit: {active} of {self.n_trees} trees have an exit threshold"
+        if cal.get("exit_recall") is not None:
+            text += f", calibrated for recall {cal['exit_recall']} on {cal.get('objects', 0)} held-out objects"
+        lines.append(text)
+        if cal.get("mean_trees_objects") is not None:
+            lines.append(
+                f"mean trees evaluated per window: objects {cal['mean_trees_objects']:.1f}, "
+                f"background {cal.get('mean_trees_background', float('nan')):.1f}"
+            )
+        bank = md.get("bank_sha256")
+        lines.append(f"trained: {md.get('date', 'unknown date')}"
+                     + (f", bank sha256 {bank[:12]}" if bank else ""))
+        return lines
+
+
+def model_arrays(model: Model) -> dict[str, np.ndarray]:
+    """The arrays of the model file (see the module docstring)."""
+    arrays = {
+        "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
+        "kind": np.array("model"),
+        "window": np.array(model.window, dtype=np.int32),
+        "features": model.features,
+        "node_features": model.node_features,
+        "node_thresholds": model.node_thresholds,
+        "leaf_values": model.leaf_values,
+        "exit_thresholds": model.exit_thresholds,
+        "mode": np.array(model.mode),
+        "normalize": np.array(model.normalize, dtype=bool),
+        "metadata": np.array(json.dumps(_jsonable(model.metadata), sort_keys=True, allow_nan=False)),
+    }
+    if model.feature_importances is not None:
+        arrays["feature_importances"] = model.feature_importances
+    return arrays
+
+
+def save_model(path: str | os.PathLike, model: Model) -> None:
+    """Write the model file (deterministic bytes, atomic replace).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> p = os.path.join(tempfile.mkdtemp(), "m.npz")
+    >>> m = Model((2, 2), np.array([[[0, 0, 1, 2, -1], [1, 0, 1, 2, 1]] + [[0] * 5] * 2], np.int32),
+    ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged")
+    >>> save_model(p, m); load_model(p).window
+    (2, 2)
+    """
+    arrays = model_arrays(model)
+    validate_model(dict(arrays), path)
+    npzfile.save_npz(path, arrays)
+
+
+def validate_model(a: dict[str, np.ndarray], path) -> dict:
+    """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata."""
+    sizes = npzfile.check_arrays(a, MODEL_SPEC, path, kind="model")
+    t, nodes, leaves, n_features = sizes["T"], sizes["nodes"], sizes["leaves"], sizes["F"]
+    if t < 1:
+        raise InputError("model has no trees", path=path)
+    if nodes < 1 or (nodes + 1) & nodes or leaves != nodes + 1:
+        raise InputError(f"model trees have {nodes} nodes and {leaves} leaves; a tree of depth D "
+                         "has 2**D - 1 nodes and 2**D leaves", path=path)
+    if n_features < 1:
+        raise InputError("model has no features", path=path)
+    width, height = (int(v) for v in a["window"])
+    if width < 1 or height < 1:
+        raise InputError(f"model window {width}x{height} is empty", path=path)
+    nf = a["node_features"]
+    if nf.min() < 0 or nf.max() >= n_features:
+        raise InputError(f"model node feature index out of range (0..{n_features - 1}): "
+                         f"{int(nf.min() if nf.min() < 0 else nf.max())}", path=path)
+    if not np.isfinite(a["node_thresholds"]).all():
+        raise InputError("model node thresholds must be finite", path=path)
+    if not np.isfinite(a["leaf_values"]).all():
+        raise InputError("model leaf values must be finite", path=path)
+    ex = a["exit_thresholds"]
+    if np.isnan(ex).any() or np.isposinf(ex).any():
+        raise InputError("model exit thresholds must be finite or -inf", path=path)
+    f = a["features"].astype(np.int64)
+    used = f[:, :, 4] != 0
+    if (f[~used] != 0).any():
+        raise InputError("model feature has a rectangle with weight 0 that is not all zeros", path=path)
+    if not used.any(axis=1).all():
+        raise InputError("model feature has no rectangle", path=path)
+    r = f[used]
+    if ((r[:, 0] < 0) | (r[:, 1] < 0) | (r[:, 2] < 1) | (r[:, 3] < 1)
+            | (r[:, 0] + r[:, 2] > width) | (r[:, 1] + r[:, 3] > height)).any():
+        raise InputError(f"model feature rectangle lies outside the {width}x{height} window", path=path)
+    if "feature_importances" in a and not np.isfinite(a["feature_importances"]).all():
+        raise InputError("model feature importances must be finite", path=path)
+    mode = str(a["mode"])
+    if mode not in MODES:
+        raise InputError(f"model mode {mode!r} is not one of {', '.join(MODES)}", path=path)
+    try:
+        metadata = json.loads(str(a["metadata"]))
+    except (json.JSONDecodeError, RecursionError):
+        raise InputError("model metadata is not valid JSON", path=path) from None
+    if not isinstance(metadata, dict):
+        raise InputError("model metadata is not a JSON object", path=path)
+    return metadata
+
+
+def load_model(path: str | os.PathLike) -> Model:
+    """Read and validate a model file; every problem is one :class:`InputError` naming the file.
+
+    Refuses: a file that is not an ``.npz`` archive or is truncated or damaged, object arrays
+    (never unpickled), a patch bank or other file given instead of a model, an unknown format
+    version, missing arrays, wrong dtypes or shapes, inconsistent tree sizes, node feature indices
+    out of range, rectangles outside the window, non-finite thresholds or leaf values.
+
+    Examples
+    --------
+    >>> load_model("no/such/model.npz")
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: no/such/model.npz: no such model file
+    """
+    a = npzfile.read_npz(path, kind="model")
+    kind = a.get("kind")
+    if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 and str(kind) != "model":
+        if str(kind) == "patch-bank":
+            raise InputError("this is a patch bank, not a model (train one with "
+                             "`patchwood train BANK.npz --out MODEL.npz`)", path=path)
+        raise InputError(f"this file holds a {str(kind)[:40]!r}, not a model", path=path)
+    if kind is None and "node_features" not in a and "patches" in a:
+        raise InputError("this looks like a patch bank, not a model", path=path)
+    version = a.get("format_version")
+    if version is None:
+        raise InputError("not a model file: array 'format_version' is missing", path=path)
+    if version.ndim != 0 or version.dtype.kind not in "iu":
+        raise InputError("model array 'format_version' must be one integer", path=path)
+    if int(version) != FORMAT_VERSION:
+        raise InputError(f"unsupported model format version {int(version)} "
+                         f"(this patchwood reads {FORMAT_VERSION})", path=path)
+    metadata = validate_model(a, path)
+    return Model(
+        window=tuple(int(v) for v in a["window"]),
+        features=a["features"],
+        node_features=a["node_features"],
+        node_thresholds=a["node_thresholds"],
+        leaf_values=a["leaf_values"],
+        exit_thresholds=a["exit_thresholds"],
+        mode=str(a["mode"]),
+        normalize=bool(a["normalize"]),
+        metadata=metadata,
+        feature_importances=a.get("feature_importances"),
+    )

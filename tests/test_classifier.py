@@ -1,0 +1,150 @@
+"""PatchClassifier as a scikit-learn estimator, and its outside check on real faces.
+
+Outside references: scikit-learn's clone / cross_val_score / roc_auc_score, and the Labeled Faces in
+the Wild subset that scikit-image bundles (skimage.data.lfw_subset: 100 face and 100 non-face
+patches of 25 x 25; Huang et al., "Labeled Faces in the Wild", UMass TR 07-49, 2007).
+"""
+
+import numpy as np
+import pytest
+from skimage.data import lfw_subset
+from sklearn.base import clone
+from sklearn.model_selection import StratifiedKFold, cross_val_score
+
+from detector.classifier import PatchClassifier, calibration_count
+from detector.errors import InputError
+from detector.forest import trees_evaluated
+
+
+def _patches(n_objects=60, n_background=60, size=12, seed=0):
+    """Bright ring on a darker ground (objects) against noisy ground with random bright blobs."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:size, :size] - (size - 1) / 2
+    r = np.hypot(xx, yy)
+    ring = (r < size / 2.5) & (r > size / 6)
+    obj = rng.normal(70, 20, (n_objects, size, size)) + rng.uniform(60, 120, (n_objects, 1, 1)) * ring
+    bg = rng.normal(90, 30, (n_background, size, size))
+    bg[: n_background // 2, : size // 2] += 80
+    patches = np.clip(np.concatenate([obj, bg]), 0, 255).astype(np.uint8)
+    y = np.r_[np.ones(n_objects, int), np.zeros(n_background, int)]
+    order = rng.permutation(len(y))
+    return patches[order], y[order]
+
+
+def test_lfw_cross_validated_auc_with_default_settings():
+    """Outside check: 5-fold ROC AUC on skimage's LFW subset is at least 0.99 (for scale, skimage
+    Haar features (random 5,000) + sklearn RandomForestClassifier (200 trees, depth 2, entropy)
+    reach 0.999 there)."""
+    faces = np.round(lfw_subset() * 255).astype(np.uint8)
+    y = np.r_[np.ones(100, int), np.zeros(100, int)]
+    folds = StratifiedKFold(5, shuffle=True, random_state=0)
+    auc = cross_val_score(PatchClassifier(random_state=0), faces, y, cv=folds, scoring="roc_auc")
+    assert auc.mean() >= 0.99, auc
+
+
+def test_clone_and_cross_val_score():
+    patches, y = _patches()
+    clf = PatchClassifier(n_trees=15, pool=300, depth=3, mode="boosted", random_state=1)
+    twin = clone(clf)
+    assert twin.get_params() == clf.get_params() and not hasattr(twin, "model_")
+    accuracy = cross_val_score(twin, patches, y, cv=3)
+    assert accuracy.mean() > 0.9
+    auc = cross_val_score(clone(clf).set_params(mode="bagged"), patches, y, cv=3, scoring="roc_auc")
+    assert auc.mean() > 0.95
+
+
+def test_predictions_agree_with_each_other_and_the_model():
+    patches, y = _patches(seed=2)
+    for mode in ("bagged", "boosted"):
+        clf = PatchClassifier(n_trees=20, pool=300, mode=mode, random_state=0).fit(patches, y)
+        proba = clf.predict_proba(patches)
+        assert proba.shape == (len(y), 2) and np.allclose(proba.sum(axis=1), 1)
+        assert ((proba >= 0) & (proba <= 1)).all()
+        np.testing.assert_array_equal(proba[:, 1], clf.model_.score(patches))
+        decision = clf.decision_function(patches)
+        np.testing.assert_array_equal(clf.predict(patches), (decision > 0).astype(int))
+        np.testing.assert_array_equal(clf.predict(patches), (proba[:, 1] > 0.5).astype(int))
+        assert (clf.predict(patches) == y).mean() > 0.9
+        assert clf.classes_.tolist() == [0, 1]
+        imp = clf.feature_importances_
+        assert imp.shape == (len(clf.model_.features),) and imp.sum() == pytest.approx(1) and (imp >= 0).all()
+        if mode == "bagged":
+            assert 0 <= clf.oob_error_ < 0.2
+        else:
+            assert np.isnan(clf.oob_error_)
+
+
+def test_early_exit_keeps_the_calibration_objects():
+    patches, y = _patches(n_objects=300, n_background=100, seed=3)
+    clf = PatchClassifier(n_trees=30, pool=300, exit_recall=0.98, random_state=0).fit(patches, y)
+    held = clf.calibration_indices_
+    assert len(held) == calibration_count(300) == 30 and (y[held] == 1).all()
+    running = clf.model_.running_scores(patches[held])
+    dropped = (running < clf.model_.exit_thresholds.astype(np.float64)).any(axis=1)
+    assert dropped.sum() <= np.floor(0.02 * 30)  # floor((1 - 0.98) * 30) = 0 may be dropped
+    cal = clf.model_.metadata["calibration"]
+    assert cal["objects"] == 30
+    assert cal["mean_trees_objects"] == pytest.approx(trees_evaluated(running, clf.model_.exit_thresholds).mean())
+    # background leaves early on average: that is what the exit is for
+    assert cal["mean_trees_background"] < 0.5 * cal["mean_trees_objects"]
+    # held-out patches took no part in growing: the growing set's counts say so
+    assert clf.model_.metadata["patches"] == {"objects": 270, "background": 100, "window": [12, 12]}
+
+
+def test_same_seed_same_model_and_progress():
+    patches, y = _patches(seed=4)
+    calls = []
+    a = PatchClassifier(n_trees=6, pool=200, random_state=9).fit(patches, y, progress=lambda d, t: calls.append(d))
+    b = PatchClassifier(n_trees=6, pool=200, random_state=9, n_jobs=2).fit(patches, y)
+    c = PatchClassifier(n_trees=6, pool=200, random_state=10).fit(patches, y)
+    assert calls == [1, 2, 3, 4, 5, 6]
+    np.testing.assert_array_equal(a.model_.features, b.model_.features)
+    np.testing.assert_array_equal(a.model_.node_thresholds, b.model_.node_thresholds)
+    np.testing.assert_array_equal(a.model_.exit_thresholds, b.model_.exit_thresholds)
+    assert not np.array_equal(a.model_.features, c.model_.features)
+
+
+@pytest.mark.parametrize(
+    "params, message",
+    [
+        (dict(mode="stacked"), "mode must be one of bagged, boosted"),
+        (dict(n_trees=0), "n_trees must be an integer >= 1"),
+        (dict(depth=13), "depth must be an integer 1..12"),
+        (dict(sample_fraction=0.0), "sample_fraction must be a number in (0, 1]"),
+        (dict(exit_recall=1.5), "exit_recall must be a number in (0, 1]"),
+        (dict(pool=2.5), "pool must be an integer >= 1"),
+    ],
+)
+def test_bad_parameters_are_refused_at_fit(params, message):
+    patches, y = _patches(n_objects=10, n_background=10)
+    clf = PatchClassifier(**params)  # stored unchanged; checked at fit, sklearn style
+    assert all(clf.get_params()[k] == v for k, v in params.items())
+    with pytest.raises(InputError) as err:
+        clf.fit(patches, y)
+    assert str(err.value) == message + f", got {next(iter(params.values()))!r}"
+
+
+def test_bad_data_is_refused():
+    patches, y = _patches(n_objects=10, n_background=10)
+    with pytest.raises(InputError, match="both object"):
+        PatchClassifier(n_trees=2, pool=50).fit(patches, np.ones(len(y)))
+    with pytest.raises(InputError, match="0 .background. and 1 .object. only"):
+        PatchClassifier(n_trees=2, pool=50).fit(patches, y * 2)
+    with pytest.raises(InputError, match="uint8 grey levels"):
+        PatchClassifier(n_trees=2, pool=50).fit(patches / 255.0, y)
+    with pytest.raises(InputError, match=r"\(N, height, width\)"):
+        PatchClassifier(n_trees=2, pool=50).fit(patches[:, 0], y)
+    clf = PatchClassifier(n_trees=2, pool=50, random_state=0).fit(patches, y)
+    with pytest.raises(InputError, match="window is 12x12"):
+        clf.predict_proba(patches[:, :10, :10])
+
+
+def test_from_model_scores_like_the_fitted_classifier(tmp_path):
+    from detector.model import load_model, save_model
+
+    patches, y = _patches(seed=6)
+    clf = PatchClassifier(n_trees=10, pool=200, mode="boosted", random_state=0).fit(patches, y)
+    save_model(tmp_path / "m.npz", clf.model_)
+    again = PatchClassifier.from_model(load_model(tmp_path / "m.npz"))
+    np.testing.assert_array_equal(again.predict_proba(patches), clf.predict_proba(patches))
+    assert again.get_params()["mode"] == "boosted" and again.get_params()["n_trees"] == 10
