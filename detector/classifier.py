@@ -92,7 +92,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
     depth : int, default=2
         Depth of every tree.
     mode : {"bagged", "boosted"}, default="bagged"
-        Random forest (Breiman 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000).
+        Random forest ("Random Forests", Machine Learning 45, 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000).
     pool : int, default=20000
         Size of the random feature pool (capped at the number of features the window holds).
     features_per_node : int, optional

@@ -3,8 +3,8 @@
 Two ways of growing them, both on scikit-learn's exact tree learners (``splitter="best"``):
 
 ``mode="bagged"``
-    The random forest (Breiman, Machine Learning 2001): every tree is grown on a bootstrap sample
-    of the patches, drawn as per-patch counts passed as ``sample_weight`` (no copy of the feature
+    The random forest ("Random Forests", Machine Learning 45, 2001): every tree is grown on a
+    bootstrap sample of the patches, drawn as per-patch counts passed as ``sample_weight`` (no copy of the feature
     matrix; scikit-learn's ``RandomForestClassifier`` does the same), with a fresh random subset of
     ``features_per_node`` pool columns at every node, thresholds at the midpoints between
     consecutive distinct projected values (scikit-learn's rule), chosen by the largest information
@@ -29,10 +29,10 @@ Flat trees
     that float32 inputs take exactly scikit-learn's decisions.
 
 Early exit (soft cascade; Bourdev and Brandt, CVPR 2005)
-    The running score after tree ``t`` is ``s_t = s_{t-1} + leaf_values[t, leaf]`` (``s_0 = 0``,
-    float32 sums in tree order), and a window is dropped after tree ``t`` as soon as
-    ``s_t < exit_thresholds[t]``. :func:`calibrate_exit` sets the thresholds from object patches
-    held out of training.
+    The running score after tree ``t`` is ``s_t = s_{t-1} + leaf_values[t, leaf]`` (``s_0 = 0``;
+    the float32 leaf values summed in float64, in tree order), and a window is dropped after tree
+    ``t`` as soon as ``s_t < exit_thresholds[t]``. :func:`calibrate_exit` sets the thresholds from
+    object patches held out of training.
 """
 
 from __future__ import annotations
@@ -53,6 +53,7 @@ __all__ = [
     "forest_leaves",
     "forest_running_scores",
     "forest_score",
+    "final_score",
     "calibrate_exit",
     "trees_evaluated",
     "seed_sequence",
@@ -335,7 +336,7 @@ def forest_leaves(flat, X, chunk: int = 8192) -> np.ndarray:
 
 
 def forest_running_scores(flat, X) -> np.ndarray:
-    """Running scores ``s_t`` after each tree, float32 sums in tree order.
+    """Running scores ``s_t`` after each tree: float32 leaf values summed in float64, tree order.
 
     Parameters
     ----------
@@ -344,7 +345,7 @@ def forest_running_scores(flat, X) -> np.ndarray:
 
     Returns
     -------
-    ndarray of float32, shape (N, T)
+    ndarray of float64, shape (N, T)
 
     Examples
     --------
@@ -355,15 +356,22 @@ def forest_running_scores(flat, X) -> np.ndarray:
     leaves = forest_leaves(flat, X)
     lv = np.asarray(flat.leaf_values, dtype=np.float32)
     vals = lv[np.arange(lv.shape[0])[None, :], leaves]
-    return np.cumsum(vals, axis=1, dtype=np.float32)
+    return np.cumsum(vals, axis=1, dtype=np.float64)
 
 
-def _final_score(mode: str, total: np.ndarray, n_trees: int) -> np.ndarray:
-    total = np.asarray(total, dtype=np.float32)
+def final_score(mode: str, total, n_trees: int) -> np.ndarray:
+    """Running score after the last tree -> score in 0..1 (float64).
+
+    Examples
+    --------
+    >>> final_score("bagged", [3.0], 4).tolist(), final_score("boosted", [0.0], 4).tolist()
+    ([0.75], [0.5])
+    """
+    total = np.asarray(total, dtype=np.float64)
     if mode == "bagged":
-        return total / np.float32(n_trees)
-    # 1 / (1 + exp(-2 s)) == (1 + tanh(s)) / 2, without overflow
-    return ((1.0 + np.tanh(total.astype(np.float64))) / 2.0).astype(np.float32)
+        return total / n_trees
+    with np.errstate(over="ignore"):
+        return 1.0 / (1.0 + np.exp(-2.0 * total))
 
 
 def forest_score(flat, X) -> np.ndarray:
@@ -379,7 +387,7 @@ def forest_score(flat, X) -> np.ndarray:
 
     Returns
     -------
-    ndarray of float32, shape (N,)
+    ndarray of float64, shape (N,)
 
     Examples
     --------
@@ -388,14 +396,15 @@ def forest_score(flat, X) -> np.ndarray:
     [0.375, 0.875]
     """
     running = forest_running_scores(flat, X)
-    return _final_score(flat.mode, running[:, -1], running.shape[1])
+    return final_score(flat.mode, running[:, -1], running.shape[1])
 
 
 def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     """Early-exit thresholds from the running scores of held-out object patches.
 
     The ``floor((1 - exit_recall) * N)`` objects with the lowest final score are set aside; each
-    threshold is the minimum running score, after that tree, of the objects kept (the common
+    threshold is the minimum running score, after that tree, of the objects kept, rounded down to
+    float32 (the common
     approach for soft cascades; Bourdev and Brandt, CVPR 2005, calibrate a rejection trace on
     positives). A window is dropped after tree ``t`` when ``s_t < thresholds[t]``, so no kept object
     is ever dropped and at most ``1 - exit_recall`` of the calibration objects are dropped over the
@@ -403,7 +412,7 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
 
     Parameters
     ----------
-    running_scores : ndarray, shape (N, T)
+    running_scores : ndarray of float64, shape (N, T)
         From :func:`forest_running_scores` on object patches.
     exit_recall : float in (0, 1]
         Fraction of calibration objects that must survive every exit.
@@ -419,7 +428,7 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     >>> calibrate_exit(r, exit_recall=0.5).tolist()            # floor(0.5*3)=1 dropped: row 3
     [0.0, 2.0]
     """
-    r = np.asarray(running_scores, dtype=np.float32)
+    r = np.asarray(running_scores, dtype=np.float64)
     if r.ndim != 2:
         raise ValueError("running_scores must be (N, T)")
     if not 0.0 < exit_recall <= 1.0:
@@ -431,7 +440,7 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     n_drop = min(n_drop, n - 1)
     order = np.argsort(r[:, -1], kind="stable")
     kept = r[order[n_drop:]]
-    return kept.min(axis=0).astype(np.float32)
+    return float32_thresholds(kept.min(axis=0))
 
 
 def trees_evaluated(running_scores, exit_thresholds) -> np.ndarray:
@@ -443,8 +452,8 @@ def trees_evaluated(running_scores, exit_thresholds) -> np.ndarray:
     >>> trees_evaluated(r, np.array([0.5, 1.0, 3.5], np.float32)).tolist()
     [3, 1, 2]
     """
-    r = np.asarray(running_scores, dtype=np.float32)
-    below = r < np.asarray(exit_thresholds, dtype=np.float32)[None, :]
+    r = np.asarray(running_scores, dtype=np.float64)
+    below = r < np.asarray(exit_thresholds, dtype=np.float32).astype(np.float64)[None, :]
     first = np.argmax(below, axis=1)
     return np.where(below.any(axis=1), first + 1, r.shape[1]).astype(np.int64)
 
@@ -527,7 +536,7 @@ def grow_forest(
     y : ndarray of int, shape (N,)
         1 for object patches, 0 for background.
     mode : {"bagged", "boosted"}, default="bagged"
-        Random forest (Breiman 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000);
+        Random forest ("Random Forests", Machine Learning 45, 2001) or Gentle AdaBoost (Friedman, Hastie and Tibshirani 2000);
         see the module docstring.
     n_trees : int, default=200
     depth : int, default=2
