@@ -3,13 +3,15 @@
 The plain-numpy twin of :func:`evaluate_tiles` is :func:`detector.features.evaluate_features_numpy`;
 ``tests/test_features.py`` holds the two equal.
 
-Layout (measured in ``benchmarks/features.py``): the integral images of a tile of ``TILE`` patches are
-copied into a corner-major buffer ``buffer[corner, patch]``, so that one corner of one feature is a
-contiguous run of ``TILE`` values and the inner loop is a vectorised multiply-add. Each feature is a
-short list of flat corner offsets (``corner = y * (w + 1) + x``) with integer coefficients, in which
-the corners that neighbouring rectangles share are already merged. The buffer of one tile
-(``(h + 1) * (w + 1) * TILE`` values, 40 kB for a 24 x 24 window in float32) stays in the first-level
-cache while all features run over it.
+Layout (measured in ``benchmarks/features.py``): the integral images of a tile of ``TILE`` patches
+are copied into a corner-major buffer ``buffer[tile, corner, patch]``, so that one corner of one
+feature over a tile is a contiguous run of ``TILE`` values and the inner loop is a vectorised
+multiply-add. Each feature is a short list of flat corner offsets (``corner = y * (w + 1) + x``)
+with integer coefficients, in which the corners that neighbouring rectangles share are already
+merged (6 look-ups for two rectangles, 8 for three, 9 for four). A chunk of ``CHUNK`` tiles
+(``CHUNK * (h + 1) * (w + 1) * TILE`` values, 1.3 MB for a 24 x 24 window in float32) stays in the
+cache while a block of ``BLOCK`` features runs over it, and the block's values are written out in
+contiguous runs.
 """
 
 from __future__ import annotations
@@ -21,14 +23,20 @@ import numpy as np
 #: multiply-adds (numba leaves the SLP vectorizer off, so a fully unrolled 16-wide loop stays scalar).
 TILE = 64
 
-#: Features whose values are gathered in a small block before they are written to ``out``, so that
-#: both output layouts are written in contiguous runs.
+#: Tiles whose buffers are filled at once; every block of features runs over all of them before the
+#: next block, so each output row is written in runs of ``CHUNK * TILE`` values (or, in the (N, F)
+#: layout, ``BLOCK`` values), not in scattered 64-value pieces.
+CHUNK = 8
+
+#: Features evaluated together over a chunk; their values are gathered in a small block before
+#: they are written to ``out``.
 BLOCK = 64
 
 
-@numba.njit(cache=True)
+# error_model="numpy": no zero-division check, so the division vectorises (divisors are >= 1)
+@numba.njit(cache=True, error_model="numpy")
 def evaluate_tiles(integrals, indptr, offsets, coefficients, weighted_area, mean, scale,
-                   normalize, transpose, buffer, out):
+                   normalize, transpose, buffer, first, out):
     """Evaluate F features on N integral images; write float32 values into ``out``.
 
     Parameters
@@ -47,53 +55,67 @@ def evaluate_tiles(integrals, indptr, offsets, coefficients, weighted_area, mean
         Window mean and ``max(sigma, SIGMA_FLOOR) * window area`` of each patch.
     normalize, transpose : bool
         Whether to normalise; whether ``out`` is ``(F, N)`` instead of ``(N, F)``.
-    buffer : ((h + 1) * (w + 1), TILE) ndarray, float32 or float64
+    buffer : (CHUNK, (h + 1) * (w + 1), TILE) ndarray, float32 or float64
         Work space; float32 only when every partial sum is an integer below 2**24 (exact).
-    out : (N, F) or (F, N) float32 ndarray
+    first : int
+        Index in ``out`` of the first patch (``out`` may hold more patches than ``integrals``).
+    out : (N_out, F) or (F, N_out) float32 ndarray
     """
     n_patches, n_cells = integrals.shape
     n_features = indptr.shape[0] - 1
     accumulator = np.zeros(TILE, dtype=buffer.dtype)
-    shift = np.zeros(TILE, dtype=np.float64)
-    divisor = np.ones(TILE, dtype=np.float64)
+    shift = np.zeros((CHUNK, TILE), dtype=np.float64)
+    divisor = np.ones((CHUNK, TILE), dtype=np.float64)
     block = np.zeros((BLOCK, TILE), dtype=np.float32)
-    for start in range(0, n_patches, TILE):
-        count = min(TILE, n_patches - start)
-        for j in range(TILE):  # corner-major copy of this tile's integral images
-            if j < count:
-                for cell in range(n_cells):
-                    buffer[cell, j] = integrals[start + j, cell]
-                if normalize:
-                    shift[j] = mean[start + j]
-                    divisor[j] = scale[start + j]
-            else:
-                for cell in range(n_cells):
-                    buffer[cell, j] = 0
-        for first in range(0, n_features, BLOCK):
-            size = min(BLOCK, n_features - first)
-            for b in range(size):
-                f = first + b
-                for j in range(TILE):
-                    accumulator[j] = 0
-                for k in range(indptr[f], indptr[f + 1]):
-                    c = coefficients[k]
-                    row = buffer[offsets[k]]
-                    for j in range(TILE):
-                        accumulator[j] += c * row[j]
-                values = block[b]
-                if normalize:
-                    area = weighted_area[f]
-                    for j in range(TILE):
-                        values[j] = (np.float64(accumulator[j]) - shift[j] * area) / divisor[j]
+    for chunk_start in range(0, n_patches, CHUNK * TILE):
+        n_tiles = min(CHUNK, (n_patches - chunk_start + TILE - 1) // TILE)
+        for t in range(n_tiles):  # corner-major copies of the integral images of this chunk
+            for j in range(TILE):
+                n = chunk_start + t * TILE + j
+                if n < n_patches:
+                    for cell in range(n_cells):
+                        buffer[t, cell, j] = integrals[n, cell]
+                    if normalize:
+                        shift[t, j] = mean[n]
+                        divisor[t, j] = scale[n]
                 else:
-                    for j in range(TILE):
-                        values[j] = accumulator[j]
-            if transpose:
+                    for cell in range(n_cells):
+                        buffer[t, cell, j] = 0
+        for feature_start in range(0, n_features, BLOCK):
+            size = min(BLOCK, n_features - feature_start)
+            for t in range(n_tiles):
+                start = chunk_start + t * TILE
+                count = min(TILE, n_patches - start)
+                tile = buffer[t]
+                tile_shift = shift[t]
+                tile_divisor = divisor[t]
                 for b in range(size):
-                    for j in range(count):
-                        out[first + b, start + j] = block[b, j]
-            else:
-                for j in range(count):
+                    f = feature_start + b
+                    for j in range(TILE):
+                        accumulator[j] = 0
+                    for k in range(indptr[f], indptr[f + 1]):
+                        c = coefficients[k]
+                        row = tile[offsets[k]]
+                        for j in range(TILE):
+                            accumulator[j] += c * row[j]
+                    values = block[b]
+                    if normalize:
+                        area = weighted_area[f]
+                        for j in range(TILE):
+                            values[j] = (np.float64(accumulator[j]) - tile_shift[j] * area) \
+                                / tile_divisor[j]
+                    else:
+                        for j in range(TILE):
+                            values[j] = accumulator[j]
+                column = first + start
+                if transpose:
                     for b in range(size):
-                        out[start + j, first + b] = block[b, j]
+                        target = out[feature_start + b]
+                        for j in range(count):
+                            target[column + j] = block[b, j]
+                else:
+                    for j in range(count):
+                        target = out[column + j]
+                        for b in range(size):
+                            target[feature_start + b] = block[b, j]
     return out

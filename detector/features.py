@@ -39,7 +39,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from detector._feature_kernels import TILE, evaluate_tiles
+from detector._feature_kernels import CHUNK, TILE, evaluate_tiles
 from detector.errors import InputError
 from detector.integral import integral_images
 
@@ -70,6 +70,9 @@ _LAYOUTS = {
 
 # float32 holds every integer below 2**24 exactly; the kernel uses it when all partial sums do.
 _FLOAT32_EXACT = 2 ** 24
+
+# patches whose integral images evaluate_features makes at once (a multiple of CHUNK * TILE)
+_PATCH_BATCH = 8192
 
 
 # ----------------------------------------------------------------------------------------------
@@ -386,31 +389,50 @@ def feature_corners(features, stride):
     return (indptr, (key % span).astype(np.int32), merged.astype(np.int32), weighted_area)
 
 
-def _prepare_integrals(patches, integrals) -> tuple[np.ndarray, np.ndarray | None]:
-    """The integral images (int64 or float64) and the patches, as arrays."""
+def _prepare(features, patches, integrals, squared):
+    """Validated features, patches, integral images and squared integral images (None if absent),
+    with the patch count and size."""
+    features = _check_features(features)
     if patches is not None:
         patches = np.asarray(patches)
         if patches.ndim != 3:
             raise InputError(f"patches must be a 3-d array (count, height, width), got shape "
                              f"{patches.shape}")
+        if not (np.issubdtype(patches.dtype, np.number) or patches.dtype == np.bool_) \
+                or np.issubdtype(patches.dtype, np.complexfloating):
+            raise InputError(f"patches must hold integers or real numbers, got dtype "
+                             f"{patches.dtype}")
     if integrals is None:
         if patches is None:
             raise InputError("give the patches or their integral images")
-        return integral_images(patches), patches
-    integrals = np.asarray(integrals)
-    if integrals.ndim != 3 or integrals.shape[1] < 1 or integrals.shape[2] < 1:
-        raise InputError(f"integral images must be a 3-d array (count, height + 1, width + 1), "
-                         f"got shape {integrals.shape}")
-    if patches is not None and (patches.shape[0], patches.shape[1] + 1, patches.shape[2] + 1) \
-            != integrals.shape:
-        raise InputError(f"patches {patches.shape} and integral images {integrals.shape} differ")
-    if np.issubdtype(integrals.dtype, np.integer):
-        integrals = integrals.astype(np.int64, copy=False)
-    elif np.issubdtype(integrals.dtype, np.floating):
-        integrals = integrals.astype(np.float64, copy=False)
+        n, rows, columns = patches.shape
     else:
-        raise InputError(f"integral images must hold numbers, got dtype {integrals.dtype}")
-    return integrals, patches
+        integrals = np.asarray(integrals)
+        if integrals.ndim != 3 or integrals.shape[1] < 1 or integrals.shape[2] < 1:
+            raise InputError(f"integral images must be a 3-d array (count, height + 1, width + 1),"
+                             f" got shape {integrals.shape}")
+        if np.issubdtype(integrals.dtype, np.integer):
+            integrals = integrals.astype(np.int64, copy=False)
+        elif np.issubdtype(integrals.dtype, np.floating):
+            integrals = integrals.astype(np.float64, copy=False)
+        else:
+            raise InputError(f"integral images must hold numbers, got dtype {integrals.dtype}")
+        n, rows, columns = integrals.shape[0], integrals.shape[1] - 1, integrals.shape[2] - 1
+        if patches is not None and patches.shape != (n, rows, columns):
+            raise InputError(f"patches {patches.shape} and integral images {integrals.shape} "
+                             f"differ")
+    if squared is not None:
+        squared = np.asarray(squared)
+        if squared.shape != (n, rows + 1, columns + 1):
+            raise InputError(f"squared integral images {squared.shape} do not fit {n} patches of "
+                             f"{columns} x {rows}")
+    if rows < 1 or columns < 1:
+        raise InputError(f"patches must be at least 1 x 1 pixels, got {columns} x {rows}")
+    reach_x, reach_y = _extent(features)
+    if reach_x > columns or reach_y > rows:
+        raise InputError(f"features reach {reach_x} x {reach_y} pixels but the patches are "
+                         f"{columns} x {rows}")
+    return features, patches, integrals, squared, (n, rows, columns)
 
 
 def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarray]:
@@ -418,38 +440,18 @@ def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarr
     n, rows, columns = integrals.shape[0], integrals.shape[1] - 1, integrals.shape[2] - 1
     area = float(rows * columns)
     if squared is not None:
-        squared = np.asarray(squared)
-        if squared.shape != integrals.shape:
-            raise InputError(f"squared integral images {squared.shape} and integral images "
-                             f"{integrals.shape} differ")
         square_total = squared[:, -1, -1].astype(np.float64)
     else:
         if patches is None:  # recover the pixels from the integral images (exact for integers)
             patches = np.diff(np.diff(integrals, axis=1), axis=2)
-        wide = patches.astype(np.int64 if np.issubdtype(patches.dtype, np.integer)
-                              else np.float64, copy=False).reshape(n, rows * columns)
-        square_total = np.einsum("ij,ij->i", wide, wide).astype(np.float64)
+        flat = patches.reshape(n, rows * columns)
+        exact = np.int64 if np.issubdtype(flat.dtype, np.integer) or flat.dtype == np.bool_ \
+            else np.float64
+        square_total = np.einsum("ij,ij->i", flat, flat, dtype=exact).astype(np.float64)
     mean = integrals[:, -1, -1].astype(np.float64) / area
     var = np.maximum(square_total / area - mean * mean, 0.0)
     scale = np.maximum(np.sqrt(var), SIGMA_FLOOR) * area
     return mean, scale
-
-
-def _prepare(features, patches, integrals, squared, normalize):
-    features = _check_features(features)
-    integrals, patches = _prepare_integrals(patches, integrals)
-    rows, columns = integrals.shape[1] - 1, integrals.shape[2] - 1
-    if rows < 1 or columns < 1:
-        raise InputError(f"patches must be at least 1 x 1 pixels, got {columns} x {rows}")
-    reach_x, reach_y = _extent(features)
-    if reach_x > columns or reach_y > rows:
-        raise InputError(f"features reach {reach_x} x {reach_y} pixels but the patches are "
-                         f"{columns} x {rows}")
-    if normalize:
-        mean, scale = _patch_statistics(integrals, patches, squared)
-    else:
-        mean = scale = np.ones(integrals.shape[0], dtype=np.float64)
-    return features, integrals, mean, scale
 
 
 def _check_out(out, shape):
@@ -513,21 +515,42 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     >>> evaluate_features(features, patch).round(6)    # 4 / (sqrt(7.5 - 2.5**2) * 4)
     array([[0.894427]], dtype=float32)
     """
-    features, integrals, mean, scale = _prepare(features, patches, integrals, squared, normalize)
-    n, rows, columns = integrals.shape
+    features, patches, integrals, squared, (n, rows, columns) = _prepare(
+        features, patches, integrals, squared)
     shape = (len(features), n) if transpose else (n, len(features))
     out = _check_out(out, shape)
     if out.size == 0:
         return out
-    indptr, offsets, coefficients, weighted_area = feature_corners(features, columns)
-    flat = np.ascontiguousarray(integrals.reshape(n, rows * columns))
-    partial_bound = float(np.abs(flat).max()) * float(
-        np.add.reduceat(np.abs(coefficients), indptr[:-1]).max() if coefficients.size else 0)
-    exact_in_float32 = (np.issubdtype(flat.dtype, np.integer) and partial_bound < _FLOAT32_EXACT)
+    indptr, offsets, coefficients, weighted_area = feature_corners(features, columns + 1)
+    # float32 work space when it is exact: every partial sum of a feature's corner terms is at most
+    # sum |coefficient| * max |ii|, and |ii| <= max |pixel| * area for integer patches
+    source = patches if integrals is None else integrals
+    exact_in_float32 = False
+    if np.issubdtype(source.dtype, np.integer) and coefficients.size:
+        if integrals is None:
+            largest = max(abs(int(patches.min())), abs(int(patches.max()))) * rows * columns
+        else:
+            largest = int(np.abs(integrals).max())
+        partial_bound = largest * int(np.add.reduceat(np.abs(coefficients), indptr[:-1]).max())
+        exact_in_float32 = partial_bound < _FLOAT32_EXACT
     work = np.float32 if exact_in_float32 else np.float64
-    buffer = np.zeros((rows * columns, TILE), dtype=work)
-    evaluate_tiles(flat, indptr, offsets, coefficients.astype(work), weighted_area.astype(np.float64),
-                   mean, scale, bool(normalize), bool(transpose), buffer, out)
+    buffer = np.zeros((CHUNK, (rows + 1) * (columns + 1), TILE), dtype=work)
+    coefficients = coefficients.astype(work)
+    weighted_area = weighted_area.astype(np.float64)
+    # from patches, integral images are made a batch at a time to bound the memory they take
+    step = n if integrals is not None else _PATCH_BATCH
+    for start in range(0, n, step):
+        stop = min(n, start + step)
+        ii = integrals[start:stop] if integrals is not None else integral_images(patches[start:stop])
+        if normalize:
+            mean, scale = _patch_statistics(
+                ii, None if patches is None else patches[start:stop],
+                None if squared is None else squared[start:stop])
+        else:
+            mean = scale = np.ones(stop - start, dtype=np.float64)
+        flat = np.ascontiguousarray(ii.reshape(stop - start, (rows + 1) * (columns + 1)))
+        evaluate_tiles(flat, indptr, offsets, coefficients, weighted_area, mean, scale,
+                       bool(normalize), bool(transpose), buffer, start, out)
     return out
 
 
@@ -546,8 +569,12 @@ def evaluate_features_numpy(features, patches=None, *, integrals=None, squared=N
     >>> evaluate_features_numpy(features, patch, normalize=False)     # -(1 + 3) + (2 + 4)
     array([[2.]], dtype=float32)
     """
-    features, integrals, mean, scale = _prepare(features, patches, integrals, squared, normalize)
-    n = integrals.shape[0]
+    features, patches, integrals, squared, (n, _, _) = _prepare(features, patches, integrals,
+                                                                squared)
+    if integrals is None:
+        integrals = integral_images(patches)
+    if normalize:
+        mean, scale = _patch_statistics(integrals, patches, squared)
     f = len(features)
     values = np.empty((n, f), dtype=np.float64)
     exact = np.int64 if np.issubdtype(integrals.dtype, np.integer) else np.float64

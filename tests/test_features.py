@@ -435,6 +435,17 @@ def test_integral_inputs_out_and_transpose():
     np.testing.assert_array_equal(evaluate_features(messy, patches), reference)
 
 
+def test_patches_are_evaluated_in_batches_with_the_same_values(monkeypatch):
+    import detector.features as module
+    patches = random_patches(250, 9, 8, seed=14)
+    features = random_pool(9, 8, 70, random_state=14)
+    whole = evaluate_features_numpy(features, patches)
+    monkeypatch.setattr(module, "_PATCH_BATCH", 100)      # batches of 100, 100 and 50 patches
+    for transpose in (False, True):
+        values = evaluate_features(features, patches, transpose=transpose)
+        np.testing.assert_array_equal(values.T if transpose else values, whole)
+
+
 @pytest.mark.parametrize("call", [
     lambda p: evaluate_features(np.zeros((3, 4)), p),
     lambda p: evaluate_features(np.array([[[0, 0, 13, 1, 1]] + [[0] * 5] * 3]), p),   # too wide
@@ -447,6 +458,8 @@ def test_integral_inputs_out_and_transpose():
     lambda p: evaluate_features(enumerate_features(2, 2), p, out=np.empty((3, 7), np.float64)),
     lambda p: evaluate_features(enumerate_features(2, 2), p, out=np.empty((7, 3), np.float32)),
     lambda p: evaluate_features(enumerate_features(2, 2), p, integrals=np.zeros((3, 5, 5))),
+    lambda p: evaluate_features(enumerate_features(2, 2), p.astype(np.complex64)),
+    lambda p: evaluate_features(enumerate_features(2, 2), p, squared=np.zeros((3, 11, 12))),
 ])
 def test_bad_evaluation_input_raises_one_line_input_error(call):
     patches = random_patches(3, 12, 10, seed=13)
