@@ -356,8 +356,10 @@ def feature_corners(features, stride):
     [0]
     """
     features = _check_features(features)
-    if int(stride) < 1:
-        raise InputError(f"stride must be >= 1, got {stride}")
+    reach_x, _ = _extent(features)
+    if int(stride) < reach_x + 1:
+        raise InputError(f"stride {stride} is shorter than the {reach_x + 1} integral-image columns "
+                         f"the features reach")
     stride = int(stride)
     f64 = features.astype(np.int64)
     x, y, w, h, weight = (f64[:, :, i] for i in range(5))

@@ -459,6 +459,7 @@ def test_patches_are_evaluated_in_batches_with_the_same_values(monkeypatch):
     lambda p: evaluate_features(enumerate_features(2, 2), p, out=np.empty((7, 3), np.float32)),
     lambda p: evaluate_features(enumerate_features(2, 2), p, integrals=np.zeros((3, 5, 5))),
     lambda p: evaluate_features(enumerate_features(2, 2), p.astype(np.complex64)),
+    lambda p: feature_corners(enumerate_features(4, 4), stride=4),     # needs rows of 5 columns
     lambda p: evaluate_features(enumerate_features(2, 2), p, squared=np.zeros((3, 11, 12))),
 ])
 def test_bad_evaluation_input_raises_one_line_input_error(call):
