@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import resource
 import sys
 import time
@@ -160,6 +161,7 @@ def main(argv=None):
     ap.add_argument("--pool", type=int, default=20000)
     ap.add_argument("--mode", default="bagged", choices=("bagged", "boosted"))
     ap.add_argument("--jobs", type=int, default=2, help="threads growing bagged trees")
+    ap.add_argument("--max-bins", type=int, default=256, help="0 grows on the feature values themselves")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--order-check-patches", type=int, default=6000,
                     help="patches for the Fortran/C comparison (0 skips it)")
@@ -177,13 +179,13 @@ def main(argv=None):
     features.evaluate_features(features.random_pool(args.size, args.size, 8, random_state=0), patches[:4])
 
     clf = PatchClassifier(n_trees=args.trees, depth=args.depth, mode=args.mode, pool=args.pool,
-                          random_state=args.seed, n_jobs=args.jobs)
+                          max_bins=args.max_bins or None, random_state=args.seed, n_jobs=args.jobs)
     rss_before = peak_rss_gb()
     if not args.no_tracemalloc:
         tracemalloc.start()
-    start = time.perf_counter()
+    start, cpu_start = time.perf_counter(), time.process_time()
     clf.fit(patches, labels)
-    fit_seconds = time.perf_counter() - start
+    fit_seconds, fit_cpu = time.perf_counter() - start, time.process_time() - cpu_start
     traced_peak = tracemalloc.get_traced_memory()[1] / 1e9 if tracemalloc.is_tracing() else float("nan")
     tracemalloc.stop()
     rss_peak = peak_rss_gb()
@@ -193,7 +195,8 @@ def main(argv=None):
     tm = clf.timings_
     print(f"fit: {fit_seconds:.1f} s total (goal <= 60 s): evaluate pool {tm['evaluate_seconds']:.1f} s, "
           f"grow {tm['grow_seconds']:.1f} s ({args.trees} trees, {args.jobs} thread(s), "
-          f"{tm['grow_seconds'] / args.trees * 1e3:.0f} ms per tree), calibrate {tm['calibrate_seconds']:.2f} s")
+          f"{tm['grow_seconds'] / args.trees * 1e3:.0f} ms per tree), calibrate {tm['calibrate_seconds']:.2f} s; "
+          f"CPU {fit_cpu:.1f} s (load average at the end {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
     print(f"memory: peak RSS {rss_peak:.2f} GB (goal <= 3 GB; {rss_before:.2f} GB before fit), "
           f"tracemalloc peak during fit {traced_peak:.2f} GB; pool matrix {n_grow} x {args.pool} "
           f"float32 = {matrix_gb:.2f} GB, traced peak / matrix = {traced_peak / matrix_gb:.2f}")

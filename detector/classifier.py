@@ -23,11 +23,13 @@ from detector.errors import InputError
 from detector.forest import (
     MAX_DEPTH,
     MODES,
+    bin_columns,
     calibrate_exit,
     final_score,
-    forest_running_scores,
     grow_forest,
+    quantile_cuts,
     seed_sequence,
+    thresholds_from_bins,
     trees_evaluated,
 )
 from detector.model import Model, library_versions, training_date
@@ -103,6 +105,10 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         Contrast-normalise feature values per patch.
     exit_recall : float in (0, 1], default=0.995
         Fraction of held-out object patches that must pass every early exit.
+    max_bins : int in 2..256 or None, default=256
+        Grow on quantile-bin indices of every pool feature (at most ``max_bins`` distinct values per
+        feature; see :mod:`detector.forest`, "Binned growing"), then map the thresholds back to
+        feature values; about 2.5 times faster. None grows on the feature values themselves.
     random_state : None, int or numpy generator
         Same seed and same patches give the same model, byte for byte in the model file.
     n_jobs : int, optional
@@ -145,6 +151,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         sample_fraction=1.0,
         normalize=True,
         exit_recall=0.995,
+        max_bins=256,
         random_state=None,
         n_jobs=None,
     ):
@@ -156,6 +163,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         self.sample_fraction = sample_fraction
         self.normalize = normalize
         self.exit_recall = exit_recall
+        self.max_bins = max_bins
         self.random_state = random_state
         self.n_jobs = n_jobs
 
@@ -171,6 +179,8 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         integer("pool", 1)
         if self.features_per_node is not None:
             integer("features_per_node", 1)
+        if self.max_bins is not None:
+            integer("max_bins", 2, 256)
         if self.mode not in MODES:
             raise InputError(f"mode must be one of {', '.join(MODES)}, got {self.mode!r}")
         for name in ("sample_fraction", "exit_recall"):
@@ -206,7 +216,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             raise InputError("training needs both object (1) and background (0) patches")
         height, width = patches.shape[1:]
 
-        pool_ss, split_ss, forest_ss = seed_sequence(self.random_state).spawn(3)
+        pool_ss, split_ss, forest_ss, bin_ss = seed_sequence(self.random_state).spawn(4)
         pool_size = min(int(self.pool), _features.count_features(width, height))
         pool = _features.random_pool(width, height, pool_size,
                                      random_state=int(pool_ss.generate_state(1)[0]))
@@ -224,16 +234,20 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         # (P, N) C-ordered, so X = values.T is Fortran-ordered: contiguous pool columns
         values = _features.evaluate_features(pool, grow_patches, normalize=bool(self.normalize),
                                              transpose=True)
+        if self.max_bins is not None:
+            cuts, n_cuts = quantile_cuts(values.T, int(self.max_bins), random_state=bin_ss)
+            bin_columns(values.T, cuts, n_cuts, n_jobs=self.n_jobs)
         evaluated = time.perf_counter()
         forest = grow_forest(
             values.T, grow_y, mode=self.mode, n_trees=int(self.n_trees), depth=int(self.depth),
             features_per_node=self.features_per_node, sample_fraction=float(self.sample_fraction),
             random_state=forest_ss, progress=progress, n_jobs=self.n_jobs,
         )
+        del values
+        if self.max_bins is not None:
+            forest = thresholds_from_bins(forest, cuts)
         grown = time.perf_counter()
         used, small = forest.reindex()
-        background_values = values[used][:, grow_y == 0].T
-        del values
 
         model = Model(
             window=(width, height), features=pool[used], node_features=small.node_features,
@@ -247,7 +261,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
         else:
             mean_objects = None
-        bg_running = forest_running_scores(model, background_values)
+        bg_running = model.running_scores(grow_patches[grow_y == 0])
         mean_background = float(trees_evaluated(bg_running, model.exit_thresholds).mean())
 
         model.metadata = {
@@ -271,7 +285,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             "versions": library_versions(),
         }
         self.timings_ = {
-            "evaluate_seconds": evaluated - started,
+            "evaluate_seconds": evaluated - started,  # pool draw, feature values, binning
             "grow_seconds": grown - evaluated,
             "calibrate_seconds": time.perf_counter() - grown,
         }

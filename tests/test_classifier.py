@@ -55,8 +55,8 @@ def test_clone_and_cross_val_score():
 
 def test_predictions_agree_with_each_other_and_the_model():
     patches, y = _patches(seed=2)
-    for mode in ("bagged", "boosted"):
-        clf = PatchClassifier(n_trees=20, pool=300, mode=mode, random_state=0).fit(patches, y)
+    for mode, bins in (("bagged", 256), ("boosted", 256), ("bagged", None), ("boosted", 8)):
+        clf = PatchClassifier(n_trees=20, pool=300, mode=mode, max_bins=bins, random_state=0).fit(patches, y)
         proba = clf.predict_proba(patches)
         assert proba.shape == (len(y), 2) and np.allclose(proba.sum(axis=1), 1)
         assert ((proba >= 0) & (proba <= 1)).all()
@@ -113,6 +113,7 @@ def test_same_seed_same_model_and_progress():
         (dict(sample_fraction=0.0), "sample_fraction must be a number in (0, 1]"),
         (dict(exit_recall=1.5), "exit_recall must be a number in (0, 1]"),
         (dict(pool=2.5), "pool must be an integer >= 1"),
+        (dict(max_bins=1), "max_bins must be an integer 2..256"),
     ],
 )
 def test_bad_parameters_are_refused_at_fit(params, message):

@@ -14,6 +14,8 @@ from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 from detector.forest import (
     FlatForest,
+    bin_columns,
+    bin_columns_numpy,
     calibrate_exit,
     flatten_tree,
     float32_thresholds,
@@ -21,6 +23,9 @@ from detector.forest import (
     forest_running_scores,
     forest_score,
     grow_forest,
+    quantile_cuts,
+    quantile_cuts_numpy,
+    thresholds_from_bins,
     trees_evaluated,
 )
 
@@ -53,8 +58,10 @@ def test_bagged_export_matches_sklearn_exactly(depth, ties):
         # the leaf values are scikit-learn's predict_proba, rounded once to float32
         np.testing.assert_array_equal(forest.leaf_values[t][leaves[:, t]], p.astype(np.float32))
         _assert_same_partition(leaves[:, t], est.apply(X))
-    # the forest's score is the average of the trees' probabilities (float32 sums)
-    np.testing.assert_allclose(forest_score(forest, X), proba.mean(axis=1), rtol=0, atol=2e-6)
+    # the forest's score is the average of the trees' probabilities (their float32 values)
+    np.testing.assert_allclose(forest_score(forest, X), proba.mean(axis=1), rtol=0, atol=1e-7)
+    np.testing.assert_array_equal(forest_score(forest, X),
+                                  proba.astype(np.float32).astype(np.float64).sum(axis=1) / forest.n_trees)
 
 
 @pytest.mark.parametrize("fraction", [1.0, 0.6])
@@ -70,7 +77,7 @@ def test_boosted_export_matches_sklearn_exactly(fraction):
         _assert_same_partition(leaves[:, t], est.apply(X))
         total += p
     # logistic link of Gentle AdaBoost: 1 / (1 + exp(-2 F)) (Friedman, Hastie and Tibshirani 2000)
-    np.testing.assert_allclose(forest_score(forest, X), 1 / (1 + np.exp(-2 * total)), atol=2e-6)
+    np.testing.assert_allclose(forest_score(forest, X), 1 / (1 + np.exp(-2 * total)), atol=1e-6)
     assert roc_auc_score(y, forest_score(forest, X)) > 0.9  # sklearn's ROC AUC
 
 
@@ -232,15 +239,88 @@ def test_running_scores_and_trees_evaluated_by_hand():
 @given(st.integers(1, 60), st.integers(1, 12), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
 def test_calibrated_exit_keeps_the_promised_recall(n, t, recall, seed):
     rng = np.random.default_rng(seed)
-    running = np.cumsum(rng.normal(size=(n, t)).astype(np.float32), axis=1, dtype=np.float32)
+    running = np.cumsum(rng.normal(size=(n, t)).astype(np.float32), axis=1, dtype=np.float64)
     thr = calibrate_exit(running, recall)
-    dropped = trees_evaluated(running, thr) < t
-    dropped |= running[:, -1] < thr[-1]
+    assert thr.dtype == np.float32
+    dropped = (running < thr.astype(np.float64)).any(axis=1)
     assert dropped.sum() <= np.floor((1 - recall) * n + 1e-9)
-    # tight: every threshold is reached by some kept object (raising it would drop one more)
+    assert ((trees_evaluated(running, thr) < t) | (running[:, -1] < thr[-1]) == dropped).all()
+    # tight: every threshold is the kept objects' minimum, rounded down to float32 (raising it to the
+    # next float32 would drop one more object)
     kept = running[~dropped]
-    np.testing.assert_array_equal(kept.min(axis=0), thr)
+    assert (thr.astype(np.float64) <= kept.min(axis=0)).all()
+    assert (np.nextafter(thr, np.float32(np.inf)).astype(np.float64) > kept.min(axis=0)).all()
 
 
 def test_calibrate_exit_without_objects_never_exits():
     assert np.isneginf(calibrate_exit(np.zeros((0, 4), np.float32))).all()
+
+
+# ---------------------------------------------------------------------------------------------
+# binned growing
+
+
+@pytest.mark.parametrize("max_bins", [2, 3, 16, 256])
+def test_binning_kernel_equals_its_numpy_twin(max_bins):
+    X, _ = _data(n=700, f=9, seed=max_bins)
+    X[:, 2] = np.round(X[:, 2])  # few distinct values
+    X[:, 5] = 0.25  # constant
+    cuts, n_cuts = quantile_cuts(X, max_bins=max_bins, sample_rows=500, random_state=1)
+    cuts2, n_cuts2 = quantile_cuts_numpy(X, max_bins=max_bins, sample_rows=500, random_state=1)
+    np.testing.assert_array_equal(cuts, cuts2)
+    np.testing.assert_array_equal(n_cuts, n_cuts2)
+    assert (n_cuts <= max_bins - 1).all() and n_cuts[5] == 0
+    probe = np.concatenate([X, cuts[:, :1].T.clip(-9, 9), np.nextafter(cuts[:, :1].T, np.inf).clip(-9, 9)])
+    for jobs in (1, 2):
+        a = bin_columns(probe.copy(order="F"), cuts, n_cuts, n_jobs=jobs)
+        b = bin_columns_numpy(probe.copy(), cuts, n_cuts)
+        np.testing.assert_array_equal(a, b)
+    assert a.max() <= max_bins - 1
+
+
+@settings(max_examples=40, deadline=None)
+@given(hnp.arrays(np.float32, st.tuples(st.integers(2, 300), st.integers(1, 3)),
+                  elements=st.floats(-100, 100, width=32)),
+       st.integers(2, 40))
+def test_bins_keep_order_and_cut_exactly(X, max_bins):
+    cuts, n_cuts = quantile_cuts(X, max_bins=max_bins, sample_rows=128, random_state=0)
+    binned = bin_columns(np.asfortranarray(X.copy()), cuts, n_cuts)
+    for f in range(X.shape[1]):
+        c = cuts[f, : n_cuts[f]]
+        assert (np.diff(c) > 0).all()
+        for k in range(c.size):  # x <= cut k exactly when bin <= k
+            np.testing.assert_array_equal(X[:, f] <= c[k], binned[:, f] <= k)
+        sampled = X[:, f] if len(X) <= 128 else None
+        if sampled is not None and np.unique(sampled).size <= max_bins:
+            # few distinct values: every distinct value has a bin of its own
+            assert np.unique(binned[:, f]).size == np.unique(X[:, f]).size
+
+
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_trees_grown_on_bins_decide_on_values_exactly(mode):
+    X, y = _data(n=2000, f=12, seed=11)
+    cuts, n_cuts = quantile_cuts(X, max_bins=32, sample_rows=1000, random_state=0)
+    Xb = bin_columns(X.copy(order="F"), cuts, n_cuts)
+    forest = grow_forest(Xb, y, mode=mode, n_trees=6, depth=3, random_state=2, keep_estimators=True)
+    on_values = thresholds_from_bins(forest, cuts)
+    leaves = forest_leaves(on_values, X)  # the raw feature values, not the bins
+    # same scores (leaf indices may differ below padding nodes, whose subtrees are identical)
+    np.testing.assert_array_equal(forest_running_scores(on_values, X), forest_running_scores(forest, Xb))
+    for t, est in enumerate(forest.estimators):
+        sk = est.predict_proba(Xb)[:, 1] if mode == "bagged" else est.predict(Xb)
+        np.testing.assert_array_equal(on_values.leaf_values[t][leaves[:, t]], sk.astype(np.float32))
+        _assert_same_partition(leaves[:, t], est.apply(Xb))
+
+
+def test_binning_is_lossless_with_few_distinct_values():
+    """With at most max_bins distinct values per column (here multiples of 1/7, spaced far beyond
+    scikit-learn's 1e-7 tie tolerance), the trees grown on bins equal the trees grown on values."""
+    X, y = _data(n=400, f=10, seed=12, ties=True)
+    assert max(np.unique(X[:, j]).size for j in range(X.shape[1])) <= 64
+    cuts, n_cuts = quantile_cuts(X, max_bins=64)
+    exact = grow_forest(X, y, n_trees=8, depth=2, random_state=5)
+    binned = thresholds_from_bins(
+        grow_forest(bin_columns(X.copy(order="F"), cuts, n_cuts), y, n_trees=8, depth=2, random_state=5), cuts)
+    for name in ("node_features", "node_thresholds", "leaf_values"):
+        np.testing.assert_array_equal(getattr(binned, name), getattr(exact, name))
+    assert binned.oob_error == exact.oob_error
