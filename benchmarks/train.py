@@ -16,6 +16,24 @@ default settings (200 trees of depth 2, a pool of 20,000 features), and prints:
   hands it to scikit-learn) against C-ordered, on a subset, medians of several trees.
 
 Goals (2-core machine): fit at most 60 s and at most 3 GB peak.
+
+Measured here (2 cores shared with other work, load average about 1.8; numpy 2.4, scikit-learn 1.9):
+
+=====================================  ==========  ==========
+``benchmarks/train.py`` (defaults)     binned      exact
+                                       (256 bins)  (``--max-bins 0``)
+=====================================  ==========  ==========
+fit, wall seconds                      55.6        126.8
+  pool values (+ binning)              12.8        5.9
+  growing 200 trees, 2 threads         42.2        120.2
+peak RSS, GB                           2.85        2.77
+tracemalloc peak during fit, GB        2.56        2.47
+OOB error                              0.0257      0.0256
+ROC AUC, fresh 1000 + 5000 patches     0.9945      0.9945
+=====================================  ==========  ==========
+
+The pool matrix (29,500 x 20,000 float32) is 2.36 GB, so fit holds about 1.1 times it at its peak.
+Column order, 6,000 patches: Fortran 204 ms per tree, C 237 ms (C / Fortran = 1.16).
 """
 
 from __future__ import annotations

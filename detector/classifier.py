@@ -188,7 +188,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
                 raise InputError(f"{name} must be a number in (0, 1], got {v!r}")
 
-    def fit(self, patches, y, *, progress=None):
+    def fit(self, patches, y, *, progress=None, metadata=None):
         """Grow the forest on grey patches.
 
         Parameters
@@ -198,6 +198,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             1 for object patches, 0 for background; both must occur.
         progress : callable(done, total), optional
             Called after every tree.
+        metadata : dict, optional
+            Extra entries for the model's metadata, JSON-serialisable: for example ``bank_sha256``
+            (:func:`detector.npzfile.file_sha256` of the patch bank file) and the bank's ``margin``.
 
         Returns
         -------
@@ -269,7 +272,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             "parameters": {k: v for k, v in self.get_params().items()
                            if k not in ("n_jobs",) and (k != "random_state" or v is None
                                                          or isinstance(v, numbers.Integral))},
-            "features_per_node": int(self.features_per_node or max(1, round(math.sqrt(pool_size)))),
+            "features_per_node": int(min(pool_size, self.features_per_node or max(1, round(math.sqrt(pool_size))))),
             "pool_drawn": int(pool_size),
             "patches": {"objects": int((grow_y == 1).sum()), "background": int((grow_y == 0).sum()),
                         "window": [int(width), int(height)]},
@@ -284,6 +287,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             "date": training_date(),
             "versions": library_versions(),
         }
+        model.metadata.update(metadata or {})
         self.timings_ = {
             "evaluate_seconds": evaluated - started,  # pool draw, feature values, binning
             "grow_seconds": grown - evaluated,

@@ -149,3 +149,19 @@ def test_from_model_scores_like_the_fitted_classifier(tmp_path):
     again = PatchClassifier.from_model(load_model(tmp_path / "m.npz"))
     np.testing.assert_array_equal(again.predict_proba(patches), clf.predict_proba(patches))
     assert again.get_params()["mode"] == "boosted" and again.get_params()["n_trees"] == 10
+
+
+def test_caller_metadata_reaches_the_model_file(tmp_path):
+    from detector.model import load_model, save_model
+    from detector.npzfile import file_sha256, save_npz
+
+    patches, y = _patches(seed=7)
+    bank = tmp_path / "bank.npz"
+    save_npz(bank, {"patches": patches, "labels": y.astype(np.uint8)})
+    digest = file_sha256(bank)
+    clf = PatchClassifier(n_trees=4, pool=100, random_state=0).fit(
+        patches, y, metadata={"bank_sha256": digest, "margin": 0.1})
+    save_model(tmp_path / "m.npz", clf.model_)
+    back = load_model(tmp_path / "m.npz")
+    assert back.metadata["bank_sha256"] == digest and back.metadata["margin"] == 0.1
+    assert f"bank sha256 {digest[:12]}" in back.summary()[-1]
