@@ -249,7 +249,7 @@ class Model:
                 f"mean trees evaluated per window: objects {cal['mean_trees_objects']:.1f}, "
                 f"background {cal.get('mean_trees_background', float('nan')):.1f}"
             )
-        bank = md.get("bank_sha256")
+        bank = md.get("bank_sha256") or (md.get("bank") or {}).get("sha256")
         lines.append(f"trained: {md.get('date', 'unknown date')}"
                      + (f", bank sha256 {bank[:12]}" if bank else ""))
         return lines

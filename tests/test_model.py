@@ -367,6 +367,9 @@ def test_summary_reads_at_a_glance(fitted):
     model.metadata["bank_sha256"] = "ab" * 32
     assert "bank sha256 abababababab" in model.summary()[-1]
     del model.metadata["bank_sha256"]
+    model.metadata["bank"] = {"sha256": "cd" * 32}  # the nested form training from a bank writes
+    assert "bank sha256 cdcdcdcdcdcd" in model.summary()[-1]
+    del model.metadata["bank"]
 
 
 def test_from_forest_keeps_only_used_features(fitted):
