@@ -125,8 +125,10 @@ class FlatForest:
     split_mask : ndarray of bool, shape (T, 2**D - 1)
         True for real splits, False for padding nodes.
     importances : ndarray of float64, shape (n_features,)
-        Weighted impurity decrease summed over all trees (information gain in bits for bagged
-        trees, squared-error decrease for boosted ones), per column.
+        Per column, the weighted impurity decrease of its splits summed over all trees and divided
+        by the number of patches N (information gain in bits for bagged trees, squared-error
+        decrease for boosted ones); with ``sample_fraction=1`` each tree's share equals
+        scikit-learn's ``tree_.compute_feature_importances(normalize=False)``.
     oob_error : float or None
         Bagged: fraction of patches misclassified by the trees that did not draw them (score > 0.5
         means object); None for boosted forests or when no patch was ever out of bag.
