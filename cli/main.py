@@ -27,9 +27,13 @@ app = typer.Typer(
 
 
 def _register() -> None:
-    from cli import synth, demo
+    from cli import demo, harvest, scan, score, synth, train
 
     app.command("synth")(synth.synth)
+    app.command("harvest")(harvest.harvest)
+    app.command("train")(train.train)
+    app.command("scan")(scan.scan)
+    app.command("score")(score.score)
     app.command("demo")(demo.demo)
 
 

@@ -1,0 +1,119 @@
+"""Small pieces the commands share: output-file checks, progress bars, option parsing."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import sys
+import time
+from pathlib import Path
+
+import typer
+from rich.console import Console
+from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
+                           TimeElapsedColumn, TimeRemainingColumn)
+
+from detector.errors import InputError
+
+console = Console(stderr=True, highlight=False)
+
+
+def check_output_file(path: Path, force: bool, what: str = "output") -> None:
+    """Refuse to replace an existing file unless ``force``; refuse a missing parent folder."""
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{what} must be a file, but this is a folder", path=path)
+    if path.exists() and not force:
+        raise InputError(f"{what} exists; add --force to replace it", path=path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise InputError(f"folder for the {what} does not exist", path=parent)
+
+
+def parse_window_option(text: str | None):
+    """``--window WxH`` -> (W, H) or None; a bad value is a usage error (exit 2)."""
+    if text is None:
+        return None
+    from detector.harvest import parse_window
+
+    try:
+        return parse_window(text)
+    except ValueError as err:
+        raise typer.BadParameter(str(err)) from None
+
+
+class _Rate(TextColumn):
+    """Items per second since the start."""
+
+    def __init__(self, unit: str):
+        super().__init__("")
+        self.unit = unit
+
+    def render(self, task):
+        from rich.text import Text
+
+        elapsed = task.elapsed or 0.0
+        rate = task.completed / elapsed if elapsed > 0 else 0.0
+        return Text(f"{rate:6.1f} {self.unit}/s")
+
+
+@contextlib.contextmanager
+def progress_bar(description: str, total: int | None = None, unit: str = "items"):
+    """A progress bar on stderr with rate and time left; yields ``update(done, total=None)``.
+
+    Quiet when stderr is not a terminal except for one closing line, so logs stay readable.
+    """
+    live = console.is_terminal
+    start = time.perf_counter()
+    state = {"done": 0, "total": total}
+    if live:
+        bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                       _Rate(unit), TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
+                       console=console, transient=False)
+        bar.start()
+        task = bar.add_task(description, total=total)
+    failed = False
+    try:
+        def update(done: int, new_total: int | None = None) -> None:
+            state["done"] = done
+            if new_total is not None:
+                state["total"] = new_total
+            if live:
+                bar.update(task, completed=done, total=state["total"])
+
+        yield update
+    except BaseException:
+        failed = True
+        raise
+    finally:
+        if live:
+            bar.stop()
+        elif not failed:
+            seconds = time.perf_counter() - start
+            done = state["done"]
+            rate = done / seconds if seconds > 0 else 0.0
+            of = f"/{state['total']}" if state["total"] else ""
+            console.print(f"{description}: {done}{of} {unit} in {seconds:.1f} s ({rate:.1f} {unit}/s)")
+
+
+def echo(text: str = "") -> None:
+    """Print a line of results to stdout."""
+    typer.echo(text)
+
+
+def fail(message: str, path=None) -> None:
+    """Stop with a one-line input error."""
+    raise InputError(message, path=path)
+
+
+def human_path(path) -> str:
+    """A path as the user would type it: relative to the working folder when inside it."""
+    try:
+        rel = os.path.relpath(path)
+    except ValueError:
+        return str(path)
+    return rel if not rel.startswith("..") else str(path)
+
+
+def flush() -> None:
+    sys.stdout.flush()

@@ -1,0 +1,384 @@
+"""Scanning many images: folders, worker processes, a Dask cluster, resumable atomic output.
+
+A run never dies on one bad file: a file that cannot be read is recorded as a failure (listed at the
+end and in a side file) and the run goes on. The output file is rewritten atomically after every
+batch of images, so an interrupted run leaves a valid detections file that ``resume=True``
+continues.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from detector.errors import InputError
+from detector.images import list_images, read_gray
+from detector.labels import (ImageDetections, read_detections, write_detections_coco,
+                             write_detections_csv)
+from detector.model import Model, load_model
+from detector.scan import Engine, ScanSettings
+
+# the project's own marks for drawn detections (BGR): a warm amber box, its score on a dark tab
+DETECTION_COLOUR = (0, 176, 255)
+TEXT_COLOUR = (20, 20, 20)
+
+
+@dataclass
+class ImageResult:
+    """What scanning one image gave."""
+
+    image: str  # display name (relative to the scanned folder)
+    boxes: np.ndarray
+    scores: np.ndarray
+    windows: int = 0
+    trees: int = 0
+    error: str | None = None
+    seconds: float = 0.0
+
+
+@dataclass
+class RunSummary:
+    """Totals of a scan run."""
+
+    images: int = 0
+    resumed: int = 0
+    detections: int = 0
+    failures: list = field(default_factory=list)  # (image, reason)
+    skipped_files: int = 0
+    seconds: float = 0.0
+    windows: int = 0
+    trees: int = 0
+    out: str = ""
+    failures_file: str | None = None
+    drawn: int = 0
+
+    @property
+    def mean_trees(self) -> float:
+        return self.trees / self.windows if self.windows else 0.0
+
+    @property
+    def images_per_second(self) -> float:
+        return self.images / self.seconds if self.seconds > 0 else 0.0
+
+
+# ---------------------------------------------------------------- workers
+
+_ENGINES: dict = {}
+
+
+def _engine_from_bytes(model_bytes: bytes, settings: dict) -> Engine:
+    key = (hashlib.sha256(model_bytes).hexdigest(), tuple(sorted(settings.items())))
+    if key not in _ENGINES:
+        import tempfile
+
+        with tempfile.NamedTemporaryFile(suffix=".npz", delete=False) as fh:
+            fh.write(model_bytes)
+            name = fh.name
+        try:
+            model = load_model(name)
+        finally:
+            os.unlink(name)
+        _ENGINES.clear()
+        _ENGINES[key] = Engine(model, ScanSettings(**settings))
+    return _ENGINES[key]
+
+
+def decode_gray(data: bytes, name: str) -> np.ndarray:
+    """Decode image bytes the way :func:`detector.images.read_gray` reads files."""
+    import tempfile
+
+    suffix = Path(name).suffix or ".png"
+    with tempfile.NamedTemporaryFile(suffix=suffix, delete=False) as fh:
+        fh.write(data)
+        tmp = fh.name
+    try:
+        return read_gray(tmp)
+    except InputError as err:
+        raise InputError(err.message, path=name) from None
+    finally:
+        os.unlink(tmp)
+
+
+def scan_one(engine: Engine, path, name: str, data: bytes | None = None) -> ImageResult:
+    """Scan one image; a file that cannot be read becomes a failure, not an exception."""
+    start = time.perf_counter()
+    try:
+        gray = decode_gray(data, name) if data is not None else read_gray(path)
+        r = engine.scan(gray)
+    except InputError as err:
+        return ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=err.message)
+    except MemoryError:
+        return ImageResult(name, np.zeros((0, 4)), np.zeros(0), error="out of memory")
+    return ImageResult(name, r.boxes, r.scores, r.windows, r.trees,
+                       seconds=time.perf_counter() - start)
+
+
+def _scan_in_worker(args):
+    path, name = args
+    return scan_one(_WORKER["engine"], path, name)
+
+
+_WORKER: dict = {}
+
+
+def _init_worker(model_path: str, settings: dict):
+    _WORKER["engine"] = Engine(load_model(model_path), ScanSettings(**settings))
+
+
+def scan_bytes_task(model_bytes: bytes, settings: dict, name: str, data: bytes) -> ImageResult:
+    """Task run on a Dask worker: the model and the image travel as bytes, so workers need no
+    shared file system."""
+    return scan_one(_engine_from_bytes(model_bytes, settings), None, name, data)
+
+
+# ---------------------------------------------------------------- drawing
+
+def draw_detections(gray: np.ndarray, boxes, scores, title: str | None = None) -> np.ndarray:
+    """A colour copy of ``gray`` with every detection boxed and scored, and a legend.
+
+    >>> img = draw_detections(np.zeros((40, 60), np.uint8), np.array([[5., 5., 20., 20.]]), [0.9])
+    >>> img.shape
+    (40, 60, 3)
+    """
+    im = cv2.cvtColor(np.ascontiguousarray(gray), cv2.COLOR_GRAY2BGR)
+    h, w = gray.shape
+    scale = max(0.35, min(w, h) / 900)
+    thick = max(1, int(round(min(w, h) / 400)))
+    for (x, y, bw, bh), s in zip(np.asarray(boxes).reshape(-1, 4), scores):
+        p0 = (int(round(x)), int(round(y)))
+        p1 = (int(round(x + bw)), int(round(y + bh)))
+        cv2.rectangle(im, p0, p1, DETECTION_COLOUR, thick, cv2.LINE_AA)
+        label = f"{s:.2f}"
+        (tw, th), base = cv2.getTextSize(label, cv2.FONT_HERSHEY_SIMPLEX, scale, 1)
+        ty = max(th + 2, p0[1])
+        cv2.rectangle(im, (p0[0], ty - th - 2), (p0[0] + tw + 2, ty), DETECTION_COLOUR, -1)
+        cv2.putText(im, label, (p0[0] + 1, ty - 2), cv2.FONT_HERSHEY_SIMPLEX, scale, TEXT_COLOUR,
+                    1, cv2.LINE_AA)
+    legend = f"detection (score)  n={len(scores)}" + (f"  {title}" if title else "")
+    (tw, th), _ = cv2.getTextSize(legend, cv2.FONT_HERSHEY_SIMPLEX, scale, 1)
+    cv2.rectangle(im, (0, h - th - 8), (tw + 26, h), (30, 30, 30), -1)
+    cv2.rectangle(im, (4, h - th - 4), (16, h - 4), DETECTION_COLOUR, thick)
+    cv2.putText(im, legend, (22, h - 5), cv2.FONT_HERSHEY_SIMPLEX, scale, (235, 235, 235), 1,
+                cv2.LINE_AA)
+    return im
+
+
+def _draw_path(draw_dir: Path, name: str) -> Path:
+    rel = Path(*[p for p in Path(name.replace("\\", "/")).parts if p not in ("..", "/", "")])
+    return Path(draw_dir) / rel.with_suffix(".png")
+
+
+# ---------------------------------------------------------------- the run
+
+def _inside(child: Path, parent: Path) -> bool:
+    try:
+        child.resolve().relative_to(parent.resolve())
+        return True
+    except ValueError:
+        return False
+
+
+def check_draw_dir(draw_dir, inputs) -> None:
+    """Refuse a drawing folder inside an input folder (drawings never go among the inputs)."""
+    for p in inputs:
+        p = Path(p)
+        folder = p if p.is_dir() else p.parent
+        if _inside(Path(draw_dir), folder):
+            raise InputError("--draw folder lies inside an input folder; choose a folder outside "
+                             "the images", path=draw_dir)
+
+
+def _write(out, fmt, results: list[ImageResult]):
+    # 1/100 pixel and 6 digits of score are plenty, and keep the file readable
+    items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, 6)) for r in results]
+    if fmt == "coco":
+        write_detections_coco(out, items)
+    else:
+        write_detections_csv(out, items)
+
+
+def failures_path(out) -> Path:
+    """Side file listing images that could not be scanned: ``detections.failures.csv``."""
+    out = Path(out)
+    return out.with_name(out.stem + ".failures.csv")
+
+
+def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
+               cluster: str | None = None, resume: bool = False, force: bool = False,
+               draw_dir=None, fmt: str = "csv", batch_images: int = 16, batch_seconds: float = 2.0,
+               progress=None, on_image=None) -> RunSummary:
+    """Scan image files and folders with a model file; write the detections file.
+
+    Parameters
+    ----------
+    model_path : path
+        Model file (.npz).
+    paths : list of paths
+        Image files and folders (searched recursively).
+    out : path
+        Detections file (CSV contract, or COCO JSON with ``fmt="coco"``).
+    settings : ScanSettings
+    jobs : int
+        Worker processes on this machine.
+    cluster : str, optional
+        Address of a Dask distributed scheduler; the images run there.
+    resume : bool
+        Keep the images already in ``out`` and scan only the rest.
+    force : bool
+        Replace an existing ``out``.
+    draw_dir : path, optional
+        Write annotated copies here (never inside an input folder).
+    progress : callable(done, total), optional
+    on_image : callable(ImageResult), optional
+
+    Returns
+    -------
+    RunSummary
+    """
+    settings = settings or ScanSettings()
+    out = Path(out)
+    if fmt not in ("csv", "coco"):
+        raise InputError(f"unknown output format {fmt!r} (csv or coco)")
+    model = load_model(model_path)
+    if out.exists() and not (force or resume):
+        raise InputError("output exists; add --force to replace it or --resume to continue it",
+                         path=out)
+    if out.is_dir():
+        raise InputError("output must be a file, but this is a folder", path=out)
+    if not (out.parent if str(out.parent) else Path(".")).is_dir():
+        raise InputError("folder for the output does not exist", path=out.parent)
+    if draw_dir is not None:
+        check_draw_dir(draw_dir, paths)
+    for p in paths:
+        if not Path(p).exists():
+            raise InputError("no such file or folder", path=p)
+    listed, skipped = list_images(paths)
+    summary = RunSummary(skipped_files=skipped, out=str(out))
+    done: list[ImageResult] = []
+    if resume and out.exists():
+        if fmt == "coco":
+            raise InputError("--resume continues CSV output only", path=out)
+        for d in read_detections(out):
+            done.append(ImageResult(d.image, d.boxes, d.scores))
+        summary.resumed = len(done)
+    seen = {r.image for r in done}
+    todo = [(p, name) for p, name in listed if name not in seen]
+    total = len(todo)
+    start = time.perf_counter()
+    last_write = start
+    pending = 0
+    results = list(done)
+
+    def handle(r: ImageResult):
+        nonlocal pending, last_write
+        results.append(r)
+        summary.images += 1
+        if r.error is not None:
+            summary.failures.append((r.image, r.error))
+        else:
+            summary.detections += len(r.scores)
+            summary.windows += r.windows
+            summary.trees += r.trees
+            if draw_dir is not None:
+                src = dict(todo_map)[r.image]
+                try:
+                    gray = read_gray(src)
+                    dst = _draw_path(draw_dir, r.image)
+                    dst.parent.mkdir(parents=True, exist_ok=True)
+                    ok, buf = cv2.imencode(".png", draw_detections(gray, r.boxes, r.scores))
+                    if ok:
+                        buf.tofile(str(dst))
+                        summary.drawn += 1
+                except (InputError, OSError):
+                    pass
+        pending += 1
+        now = time.perf_counter()
+        if pending >= batch_images or now - last_write >= batch_seconds:
+            _write(out, fmt, [x for x in results if x.error is None])
+            pending = 0
+            last_write = now
+        if on_image is not None:
+            on_image(r)
+        if progress is not None:
+            progress(summary.images, total)
+
+    todo_map = [(name, p) for p, name in todo]
+    settings_dict = dict(settings.__dict__)
+    if cluster:
+        _run_on_cluster(model_path, settings_dict, todo, cluster, handle)
+    elif jobs > 1 and len(todo) > 1:
+        import multiprocessing as mp
+
+        ctx = mp.get_context("fork") if hasattr(os, "fork") else mp.get_context("spawn")
+        with ctx.Pool(jobs, initializer=_init_worker, initargs=(str(model_path), settings_dict)) as pool:
+            for r in pool.imap(_scan_in_worker, todo, chunksize=2):
+                handle(r)
+    else:
+        engine = Engine(model, settings)
+        for p, name in todo:
+            handle(scan_one(engine, p, name))
+    _write(out, fmt, [x for x in results if x.error is None])
+    summary.seconds = time.perf_counter() - start
+    fp = failures_path(out)
+    if summary.failures:
+        import csv
+
+        tmp = fp.with_name(fp.name + ".tmp")
+        with open(tmp, "w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh, lineterminator="\n")
+            w.writerow(["image", "reason"])
+            w.writerows(summary.failures)
+        os.replace(tmp, fp)
+        summary.failures_file = str(fp)
+    return summary
+
+
+def _run_on_cluster(model_path, settings: dict, todo, address: str, handle):
+    """Send every image (as bytes) to a Dask distributed cluster; results come back in order."""
+    try:
+        from distributed import Client
+    except ImportError:  # pragma: no cover - dask[distributed] is a dependency
+        raise InputError("--cluster needs dask[distributed]") from None
+    model_bytes = Path(model_path).read_bytes()
+    try:
+        client = Client(address, timeout="20s", set_as_default=False)
+    except (OSError, TimeoutError) as err:
+        raise InputError(f"cannot reach the Dask scheduler at {address}: {err}") from None
+    try:
+        model_future = client.scatter(model_bytes, broadcast=True)
+        window = max(4, 4 * len(client.scheduler_info().get("workers", {})) or 4)
+        futures = []
+        it = iter(todo)
+
+        def submit_next():
+            try:
+                p, name = next(it)
+            except StopIteration:
+                return
+            try:
+                data = Path(p).read_bytes()
+            except OSError as err:
+                futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0),
+                                           error=f"cannot read: {err.strerror or err}"))
+                return
+            futures.append(client.submit(scan_bytes_task, model_future, settings, name, data,
+                                         pure=False))
+
+        for _ in range(window):
+            submit_next()
+        i = 0
+        while i < len(futures):
+            f = futures[i]
+            r = f if isinstance(f, ImageResult) else f.result()
+            handle(r)
+            i += 1
+            submit_next()
+    finally:
+        client.close()

@@ -1,0 +1,516 @@
+"""Harvest the patch bank: object patches cut from labelled boxes (with augmentation) and background
+patches cut from everywhere else.
+
+The object crop is the box grown by a context margin on every side (``margin``, a fraction of the
+box size) and resized to the window with area averaging (``cv2.INTER_AREA``), which is what the
+scanning engine's rectangle sums on integral images amount to at larger scales. The margin is
+recorded in the bank and carried into the model, so the scan can report the inner box rather than
+the whole window.
+
+Background windows are drawn at random positions and log-uniform random scales from every image
+(object-free images included); a window is kept only when the box it would report has IoU below
+``max_background_iou`` with every labelled box.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from dataclasses import dataclass, field
+
+import cv2
+import numpy as np
+
+from detector import npzfile
+from detector.boxes import iou
+from detector.errors import InputError
+from detector.images import read_gray
+from detector.labels import ImageLabels
+
+BANK_FORMAT_VERSION = 1
+SHORT_SIDE = 24  # inferred windows have this shorter side, in pixels (common practice: 24x24)
+
+KIND_OBJECT = 0  # a labelled box as labelled
+KIND_AUGMENTED = 1  # an augmented copy of a labelled box
+KIND_BACKGROUND = 2  # a random background window
+KIND_MINED = 3  # a false alarm added by a mining round
+KIND_NAMES = ("object", "augmented", "background", "mined")
+
+# augmentation columns: shift x and y (fractions of the box), scale, rotation (degrees),
+# mirrored (0/1), gain, bias (grey levels)
+AUGMENTATION_COLUMNS = ("shift_x", "shift_y", "scale", "rotate", "mirror", "gain", "bias")
+
+
+@dataclass
+class PatchBank:
+    """Harvested patches with their provenance.
+
+    Attributes
+    ----------
+    window : tuple of int
+        ``(width, height)`` of every patch.
+    patches : ndarray of uint8, shape (N, height, width)
+    labels : ndarray of uint8, shape (N,)
+        1 for object patches, 0 for background.
+    kinds : ndarray of uint8, shape (N,)
+        ``KIND_OBJECT``, ``KIND_AUGMENTED``, ``KIND_BACKGROUND`` or ``KIND_MINED``.
+    image_index : ndarray of int32, shape (N,)
+        Index into ``images`` of the image each patch was cut from.
+    images : list of str
+        Image names as the labels file writes them.
+    boxes : ndarray of float32, shape (N, 4)
+        The box each patch stands for, in image pixels (``x, y, width, height``): the labelled box for
+        object patches, the box the scan would report for background windows.
+    augmentation : ndarray of float32, shape (N, 7)
+        See ``AUGMENTATION_COLUMNS``; identity for unaugmented patches.
+    metadata : dict
+        Parameters, counts, margin, labels hash.
+    """
+
+    window: tuple[int, int]
+    patches: np.ndarray
+    labels: np.ndarray
+    kinds: np.ndarray
+    image_index: np.ndarray
+    images: list[str]
+    boxes: np.ndarray
+    augmentation: np.ndarray
+    metadata: dict = field(default_factory=dict)
+
+    @property
+    def margin(self) -> float:
+        return float(self.metadata.get("margin", 0.0))
+
+    def __len__(self) -> int:
+        return len(self.labels)
+
+    def counts(self) -> dict:
+        """Number of patches of each kind, and the totals."""
+        out = {name: int(np.sum(self.kinds == k)) for k, name in enumerate(KIND_NAMES)}
+        out["objects"] = int(np.sum(self.labels == 1))
+        out["background"] = int(np.sum(self.labels == 0))
+        return out
+
+    def extend(self, patches, boxes, image_index, kind, images=None) -> "PatchBank":
+        """A new bank with extra background (``label 0``) patches appended."""
+        n = len(patches)
+        names = list(self.images)
+        if images is not None:
+            remap = []
+            for name in images:
+                if name not in names:
+                    names.append(name)
+                remap.append(names.index(name))
+            image_index = np.asarray(remap, dtype=np.int32)[np.asarray(image_index, dtype=np.int64)]
+        ident = np.tile(_IDENTITY, (n, 1))
+        return PatchBank(
+            window=self.window,
+            patches=np.concatenate([self.patches, np.asarray(patches, np.uint8)]),
+            labels=np.concatenate([self.labels, np.zeros(n, np.uint8)]),
+            kinds=np.concatenate([self.kinds, np.full(n, kind, np.uint8)]),
+            image_index=np.concatenate([self.image_index, np.asarray(image_index, np.int32)]),
+            images=names,
+            boxes=np.concatenate([self.boxes, np.asarray(boxes, np.float32).reshape(-1, 4)]),
+            augmentation=np.concatenate([self.augmentation, ident]),
+            metadata=dict(self.metadata),
+        )
+
+
+_IDENTITY = np.array([0, 0, 1, 0, 0, 1, 0], dtype=np.float32)
+
+
+def parse_window(text: str) -> tuple[int, int]:
+    """Parse ``"WxH"`` into ``(W, H)``.
+
+    >>> parse_window("24x24")
+    (24, 24)
+    """
+    parts = str(text).lower().replace(" ", "").split("x")
+    if len(parts) != 2 or not all(p.isdigit() for p in parts):
+        raise ValueError(f"window must look like 24x24, got {text!r}")
+    w, h = int(parts[0]), int(parts[1])
+    if not (4 <= w <= 512 and 4 <= h <= 512):
+        raise ValueError(f"window sides must be 4..512 pixels, got {text!r}")
+    return w, h
+
+
+def infer_window(boxes: np.ndarray, short_side: int = SHORT_SIDE) -> tuple[int, int]:
+    """Window with the median box aspect ratio and the shorter side ``short_side``.
+
+    >>> infer_window(np.array([[0, 0, 40, 20], [0, 0, 60, 30], [0, 0, 10, 10]]))
+    (48, 24)
+    """
+    boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+    aspect = float(np.median(boxes[:, 2] / boxes[:, 3]))
+    if aspect >= 1:
+        return int(round(short_side * aspect)), short_side
+    return short_side, int(round(short_side / aspect))
+
+
+def crop_region(image: np.ndarray, center, size, window, angle: float = 0.0,
+                mirror: bool = False) -> np.ndarray:
+    """Cut a (possibly rotated) region of ``size=(width, height)`` around ``center`` and resize it
+    to ``window=(W, H)`` with area averaging. Pixels outside the image repeat the border.
+
+    The region is first warped at its own resolution (bilinear, only when rotated or at sub-pixel
+    position), then shrunk with ``cv2.INTER_AREA``.
+
+    >>> img = np.arange(100, dtype=np.uint8).reshape(10, 10)
+    >>> crop_region(img, (5.0, 5.0), (4, 4), (4, 4)).tolist()[0]
+    [33, 34, 35, 36]
+    """
+    W, H = window
+    rw = max(1, int(round(size[0])))
+    rh = max(1, int(round(size[1])))
+    cx, cy = float(center[0]), float(center[1])
+    # affine map from region pixel centres to image coordinates: rotate about the centre
+    a = math.radians(angle)
+    ca, sa = math.cos(a), math.sin(a)
+    sx, sy = size[0] / rw, size[1] / rh
+    # region pixel (u, v) centre -> offset from region centre
+    m = np.array(
+        [
+            [ca * sx, -sa * sy, 0.0],
+            [sa * sx, ca * sy, 0.0],
+        ]
+    )
+    ou, ov = (rw - 1) / 2.0, (rh - 1) / 2.0
+    m[0, 2] = cx - 0.5 - (m[0, 0] * ou + m[0, 1] * ov)
+    m[1, 2] = cy - 0.5 - (m[1, 0] * ou + m[1, 1] * ov)
+    region = cv2.warpAffine(
+        image,
+        m,
+        (rw, rh),
+        flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP,
+        borderMode=cv2.BORDER_REPLICATE,
+    )
+    if mirror:
+        region = region[:, ::-1]
+    if (rw, rh) != (W, H):
+        interp = cv2.INTER_AREA if rw >= W and rh >= H else cv2.INTER_LINEAR
+        region = cv2.resize(np.ascontiguousarray(region), (W, H), interpolation=interp)
+    return np.ascontiguousarray(region, dtype=np.uint8)
+
+
+def window_box_to_object_box(x, y, w, h, margin: float):
+    """The object box a window stands for: the window shrunk by the context margin.
+
+    >>> window_box_to_object_box(0.0, 0.0, 12.0, 12.0, 0.25)
+    (2.0, 2.0, 8.0, 8.0)
+    """
+    k = 1.0 + 2.0 * margin
+    bw, bh = w / k, h / k
+    return x + (w - bw) / 2.0, y + (h - bh) / 2.0, bw, bh
+
+
+def object_box_to_window_box(x, y, w, h, margin: float):
+    """The window that stands for an object box: the box grown by the context margin."""
+    ww, wh = w * (1.0 + 2.0 * margin), h * (1.0 + 2.0 * margin)
+    return x - (ww - w) / 2.0, y - (wh - h) / 2.0, ww, wh
+
+
+def _adjust(patch: np.ndarray, gain: float, bias: float) -> np.ndarray:
+    if gain == 1.0 and bias == 0.0:
+        return patch
+    return np.clip(patch.astype(np.float32) * gain + bias, 0, 255).round().astype(np.uint8)
+
+
+def sample_background(gray, gt_boxes, window, margin, count, rng, max_iou=0.3,
+                      max_tries_factor=20):
+    """Random background windows from one image whose reported box overlaps no labelled box.
+
+    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)`` with ``n <= count``.
+    """
+    W, H = window
+    ih, iw = gray.shape
+    max_scale = min(iw / W, ih / H)
+    if max_scale < 1 or count <= 0:
+        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
+    patches, boxes = [], []
+    gt = np.asarray(gt_boxes, dtype=np.float64).reshape(-1, 4)
+    tries = 0
+    while len(patches) < count and tries < count * max_tries_factor:
+        tries += 1
+        s = math.exp(rng.uniform(0.0, math.log(max_scale))) if max_scale > 1 else 1.0
+        ww, wh = W * s, H * s
+        x = rng.uniform(0.0, iw - ww)
+        y = rng.uniform(0.0, ih - wh)
+        obj = window_box_to_object_box(x, y, ww, wh, margin)
+        if len(gt) and np.max(iou(np.array([obj]), gt)) >= max_iou:
+            continue
+        patches.append(crop_region(gray, (x + ww / 2, y + wh / 2), (ww, wh), window))
+        boxes.append(obj)
+    if not patches:
+        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
+    return np.stack(patches), np.asarray(boxes, np.float32)
+
+
+def sample_near_background(gray, gt_boxes, window, margin, per_box, rng, max_iou=0.3):
+    """Background windows close to the labelled boxes, where a detector goes wrong most: windows
+    much smaller than a box inside it (a hole or a corner of the object) and windows much larger
+    than it (the object with too much around it). Kept only when the reported box has IoU below
+    ``max_iou`` with every labelled box.
+
+    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)``.
+    """
+    W, H = window
+    ih, iw = gray.shape
+    gt = np.asarray(gt_boxes, dtype=np.float64).reshape(-1, 4)
+    patches, boxes = [], []
+    for x, y, bw, bh in gt:
+        for k in range(per_box):
+            # alternate: smaller inside, larger around
+            f = rng.uniform(0.3, 0.6) if k % 2 == 0 else rng.uniform(1.8, 3.0)
+            ow, oh = bw * f, bh * f
+            cx = x + bw / 2 + rng.uniform(-0.4, 0.4) * bw
+            cy = y + bh / 2 + rng.uniform(-0.4, 0.4) * bh
+            obj = (cx - ow / 2, cy - oh / 2, ow, oh)
+            wx, wy, ww, wh = object_box_to_window_box(*obj, margin)
+            if ww < W or wh < H or ww > iw or wh > ih:
+                continue
+            if np.max(iou(np.array([obj]), gt)) >= max_iou:
+                continue
+            patches.append(crop_region(gray, (cx, cy), (ww, wh), window))
+            boxes.append(obj)
+    if not patches:
+        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
+    return np.stack(patches), np.asarray(boxes, np.float32)
+
+
+def harvest(
+    images_dir,
+    items: list[ImageLabels],
+    *,
+    window=None,
+    margin: float = 0.1,
+    copies: int = 4,
+    jitter: float = 0.05,
+    mirror: bool = True,
+    rotate: float = 10.0,
+    brightness: float = 20.0,
+    contrast: float = 0.2,
+    negatives_per_image: int = 50,
+    near_negatives: int = 4,
+    max_background_iou: float = 0.3,
+    seed: int = 0,
+    labels_path=None,
+    progress=None,
+) -> PatchBank:
+    """Cut object and background patches from labelled images.
+
+    Parameters
+    ----------
+    images_dir : path
+        Folder the labels' image paths are relative to.
+    items : list of ImageLabels
+        From :func:`detector.labels.read_labels`.
+    window : (int, int) or None
+        Patch size; None infers it from the median box aspect ratio (shorter side 24).
+    margin : float
+        Context added on every side of a box, as a fraction of its width and height.
+    copies : int
+        Augmented copies per box, besides the box itself.
+    jitter : float
+        Largest random shift (fraction of the box) and scale change (fraction) of a copy.
+    mirror : bool
+        Mirror half of the copies left to right.
+    rotate : float
+        Largest random in-plane rotation of a copy, degrees.
+    brightness, contrast : float
+        Largest random bias (grey levels) and relative gain change of a copy.
+    negatives_per_image : int
+        Background windows drawn from each image.
+    near_negatives : int
+        Background windows per box drawn close to it (see :func:`sample_near_background`).
+    max_background_iou : float
+        A background window's reported box must have IoU below this with every labelled box.
+    seed : int
+        Makes the harvest reproducible.
+
+    Returns
+    -------
+    PatchBank
+    """
+    all_boxes = [b for it in items for b in it.boxes]
+    if not all_boxes:
+        raise InputError("no labelled boxes to learn from (every image is object-free)",
+                         path=labels_path)
+    all_boxes = np.asarray(all_boxes, dtype=np.float64)
+    valid = (all_boxes[:, 2] >= 2) & (all_boxes[:, 3] >= 2)
+    if not valid.any():
+        raise InputError("every labelled box is smaller than 2 pixels", path=labels_path)
+    chosen = tuple(window) if window is not None else infer_window(all_boxes[valid])
+    W, H = chosen
+    rng = np.random.default_rng(seed)
+    patches, labels, kinds, index, boxes, aug = [], [], [], [], [], []
+    names = [it.image for it in items]
+    too_small = 0
+    for i, it in enumerate(items):
+        gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
+        ih, iw = gray.shape
+        if iw < W or ih < H:
+            too_small += 1
+        for box in it.boxes:
+            x, y, bw, bh = (float(v) for v in box)
+            if bw < 2 or bh < 2:
+                continue
+            cx, cy = x + bw / 2, y + bh / 2
+            size = (bw * (1 + 2 * margin), bh * (1 + 2 * margin))
+            patches.append(crop_region(gray, (cx, cy), size, chosen))
+            labels.append(1)
+            kinds.append(KIND_OBJECT)
+            index.append(i)
+            boxes.append(box)
+            aug.append(_IDENTITY)
+            for c in range(copies):
+                dx, dy = rng.uniform(-jitter, jitter, 2)
+                sc = 1.0 + rng.uniform(-jitter, jitter)
+                ang = rng.uniform(-rotate, rotate) if rotate > 0 else 0.0
+                mir = bool(mirror and c % 2 == 1)
+                gain = 1.0 + rng.uniform(-contrast, contrast)
+                bias = rng.uniform(-brightness, brightness)
+                p = crop_region(gray, (cx + dx * bw, cy + dy * bh), (size[0] * sc, size[1] * sc),
+                                chosen, angle=ang, mirror=mir)
+                patches.append(_adjust(p, gain, bias))
+                labels.append(1)
+                kinds.append(KIND_AUGMENTED)
+                index.append(i)
+                boxes.append(box)
+                aug.append(np.array([dx, dy, sc, ang, float(mir), gain, bias], np.float32))
+        neg, negboxes = sample_background(gray, it.boxes, chosen, margin, negatives_per_image, rng,
+                                          max_background_iou)
+        if near_negatives and len(it.boxes):
+            near, nearboxes = sample_near_background(gray, it.boxes, chosen, margin,
+                                                     near_negatives, rng, max_background_iou)
+            neg = np.concatenate([neg, near])
+            negboxes = np.concatenate([negboxes, nearboxes])
+        patches.extend(neg)
+        labels.extend([0] * len(neg))
+        kinds.extend([KIND_BACKGROUND] * len(neg))
+        index.extend([i] * len(neg))
+        boxes.extend(negboxes)
+        aug.extend([_IDENTITY] * len(neg))
+        if progress is not None:
+            progress(i + 1, len(items))
+    if too_small == len(items):
+        raise InputError(f"window {W}x{H} is larger than every image", path=labels_path)
+    if not any(labels):
+        raise InputError("no object patches could be cut", path=labels_path)
+    labels_hash = None
+    if labels_path is not None and os.path.isfile(labels_path):
+        labels_hash = npzfile.file_sha256(labels_path)
+    metadata = {
+        "window": [W, H],
+        "window_inferred": window is None,
+        "margin": margin,
+        "copies": copies,
+        "jitter": jitter,
+        "mirror": mirror,
+        "rotate": rotate,
+        "brightness": brightness,
+        "contrast": contrast,
+        "negatives_per_image": negatives_per_image,
+        "near_negatives": near_negatives,
+        "max_background_iou": max_background_iou,
+        "seed": seed,
+        "labels_sha256": labels_hash,
+        "images_too_small": too_small,
+    }
+    bank = PatchBank(
+        window=chosen,
+        patches=np.stack(patches).astype(np.uint8),
+        labels=np.asarray(labels, np.uint8),
+        kinds=np.asarray(kinds, np.uint8),
+        image_index=np.asarray(index, np.int32),
+        images=names,
+        boxes=np.asarray(boxes, np.float32).reshape(-1, 4),
+        augmentation=np.asarray(aug, np.float32).reshape(-1, len(AUGMENTATION_COLUMNS)),
+        metadata=metadata,
+    )
+    bank.metadata["counts"] = bank.counts()
+    return bank
+
+
+def _bank_spec():
+    A = npzfile.ArraySpec
+    return {
+        "format_version": A("integer", ()),
+        "kind": A("str", ()),
+        "window": A("int32", (2,)),
+        "patches": A("uint8", ("N", None, None)),
+        "labels": A("uint8", ("N",)),
+        "kinds": A("uint8", ("N",)),
+        "image_index": A("int32", ("N",)),
+        "images": A("str", (None,)),
+        "boxes": A("float32", ("N", 4)),
+        "augmentation": A("float32", ("N", len(AUGMENTATION_COLUMNS))),
+        "metadata": A("str", ()),
+    }
+
+
+def save_bank(path, bank: PatchBank) -> None:
+    """Write the bank as one compressed ``.npz`` (no pickle), atomically."""
+    images = np.array(bank.images if bank.images else [""], dtype=np.str_)
+    npzfile.save_npz(
+        path,
+        {
+            "format_version": np.array(BANK_FORMAT_VERSION, dtype=np.int64),
+            "kind": np.array("patch-bank"),
+            "window": np.array(bank.window, dtype=np.int32),
+            "patches": bank.patches,
+            "labels": bank.labels,
+            "kinds": bank.kinds,
+            "image_index": bank.image_index,
+            "images": images,
+            "boxes": bank.boxes,
+            "augmentation": bank.augmentation,
+            "metadata": np.array(json.dumps(bank.metadata, sort_keys=True)),
+        },
+    )
+
+
+def load_bank(path) -> PatchBank:
+    """Read and validate a patch bank written by :func:`save_bank` (never unpickles)."""
+    a = npzfile.read_npz(path, kind="patch bank")
+    kind = a.get("kind")
+    if kind is None or kind.dtype.kind != "U" or kind.ndim != 0 or str(kind) != "patch-bank":
+        what = f"a {kind}" if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 else "no bank"
+        raise InputError(f"not a patch bank (this file holds {what})", path=path)
+    version = a.get("format_version")
+    if version is None or version.ndim != 0 or version.dtype.kind not in "iu":
+        raise InputError("not a patch bank: no format version", path=path)
+    if int(version) != BANK_FORMAT_VERSION:
+        raise InputError(
+            f"unsupported patch bank format version {int(version)} "
+            f"(this patchwood reads {BANK_FORMAT_VERSION})", path=path)
+    npzfile.check_arrays(a, _bank_spec(), path, kind="patch bank")
+    W, H = (int(v) for v in a["window"])
+    p = a["patches"]
+    n = len(p)
+    if W < 1 or H < 1 or p.shape[1:] != (H, W):
+        raise InputError(f"patches of shape {p.shape[1:]} do not fit the window {W}x{H}", path=path)
+    if n and (a["labels"].max() > 1 or a["kinds"].max() >= len(KIND_NAMES)):
+        raise InputError("labels or kinds out of range", path=path)
+    images = [str(s) for s in a["images"]]
+    if n and (a["image_index"].min() < 0 or a["image_index"].max() >= len(images)):
+        raise InputError("image index out of range", path=path)
+    if not np.all(np.isfinite(a["boxes"])) or not np.all(np.isfinite(a["augmentation"])):
+        raise InputError("boxes or augmentation hold non-finite values", path=path)
+    try:
+        metadata = json.loads(str(a["metadata"]))
+    except json.JSONDecodeError:
+        raise InputError("metadata is not valid JSON", path=path) from None
+    if not isinstance(metadata, dict):
+        raise InputError("metadata is not a JSON object", path=path)
+    return PatchBank(
+        window=(W, H),
+        patches=p,
+        labels=a["labels"],
+        kinds=a["kinds"],
+        image_index=a["image_index"],
+        images=images,
+        boxes=a["boxes"],
+        augmentation=a["augmentation"],
+        metadata=metadata,
+    )

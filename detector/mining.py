@@ -1,0 +1,106 @@
+"""Hard-negative mining: scan images with the current model and turn its false alarms into new
+background patches (common practice since Sung and Poggio, 1998, "bootstrapping"; Felzenszwalb et
+al., PAMI 2010 call them hard negatives).
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import numpy as np
+
+from detector.boxes import iou
+from detector.evaluate import evaluate
+from detector.harvest import crop_region, object_box_to_window_box
+from detector.images import read_gray
+from detector.scan import Engine, ScanSettings
+
+
+@dataclass
+class MiningRound:
+    """What one mining round found.
+
+    Attributes
+    ----------
+    patches : ndarray of uint8 (n, H, W)
+        New background patches (the false alarms, cut as the scan saw them).
+    boxes : ndarray of float32 (n, 4)
+        The false alarms' object boxes.
+    images : list of str
+        Image name of each patch.
+    scores : ndarray of float64 (n,)
+    false_alarms_per_image : float
+        At the scan threshold, after non-maximum suppression, before adding anything.
+    recall : float
+        Share of labelled objects found at the scan threshold (IoU >= 0.5).
+    images_scanned : int
+    """
+
+    patches: np.ndarray
+    boxes: np.ndarray
+    images: list
+    scores: np.ndarray
+    false_alarms_per_image: float
+    recall: float
+    images_scanned: int
+
+
+def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_image: int = 20,
+         per_round: int = 4000, max_iou: float = 0.3, mining_threshold: float = 0.3,
+         progress=None) -> MiningRound:
+    """Scan labelled images and collect the highest-scoring windows that overlap no labelled box.
+
+    Parameters
+    ----------
+    model : detector.model.Model
+    images_dir : path
+        Folder the image names are relative to.
+    items : list of ImageLabels
+    settings : ScanSettings
+        Scan settings (their ``threshold`` is where recall and false alarms are counted).
+    per_image, per_round : int
+        Caps on the new patches from one image and from the whole round (the highest-scoring
+        ones are kept).
+    max_iou : float
+        A false alarm must have IoU below this with every labelled box.
+    mining_threshold : float
+        Windows scoring at least this are mining candidates (below the detection threshold, so a
+        round also hardens the model against near misses).
+    """
+    settings = settings or ScanSettings()
+    low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
+    engine = Engine(model, low)
+    W, H = engine.window
+    patches, boxes, names, scores = [], [], [], []
+    dets, gts = {}, {}
+    for i, it in enumerate(items):
+        gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
+        wboxes, raw, _, _ = engine.candidates(gray)
+        found, found_scores = engine.detections(wboxes, raw, threshold=settings.threshold)
+        dets[it.image] = (found, found_scores)
+        gts[it.image] = it.boxes
+        # diverse candidates: looser suppression than detection, then away from every object
+        cand, cand_scores = engine.detections(wboxes, raw, nms_iou=0.5)
+        if len(cand) and len(it.boxes):
+            far = iou(cand, it.boxes).max(axis=1) < max_iou
+            cand, cand_scores = cand[far], cand_scores[far]
+        for box, score in zip(cand[:per_image], cand_scores[:per_image]):
+            wx, wy, ww, wh = object_box_to_window_box(*box, engine.margin)
+            patches.append(crop_region(gray, (wx + ww / 2, wy + wh / 2), (ww, wh), (W, H)))
+            boxes.append(box)
+            names.append(it.image)
+            scores.append(score)
+        if progress is not None:
+            progress(i + 1, len(items))
+    ev = evaluate(dets, gts)
+    order = np.argsort(-np.asarray(scores), kind="stable")[:per_round]
+    return MiningRound(
+        patches=np.stack([patches[k] for k in order]) if len(order) else np.zeros((0, H, W), np.uint8),
+        boxes=np.asarray([boxes[k] for k in order], np.float32).reshape(-1, 4),
+        images=[names[k] for k in order],
+        scores=np.asarray([scores[k] for k in order], np.float64),
+        false_alarms_per_image=ev.false_alarms / max(ev.images, 1),
+        recall=(ev.true_detections / ev.objects) if ev.objects else float("nan"),
+        images_scanned=len(items),
+    )

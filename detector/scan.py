@@ -1,0 +1,344 @@
+"""The sliding-window engine: one frame in, scored boxes out.
+
+Per frame: one integral image and one squared-integral image; per window: the mean and standard
+deviation from them (the same contrast normalisation as training, see
+:func:`detector.features.evaluate_features`); then the trees, evaluating only the features they use,
+dropping the window as soon as its running score falls below the tree's early-exit threshold (soft
+cascade; Bourdev and Brandt, CVPR 2005).
+
+Multi-scale by scaling the feature rectangles, not by resampling the image: the integral images are
+built once per frame and each scale only needs a new table of rectangle corner offsets (see
+:func:`scale_plan`). A feature's value at scale ``s`` uses each rectangle's *mean* (its sum divided
+by its own scaled pixel count), so rounding of scaled rectangles does not bias it, and equals the
+training value exactly at ``s = 1``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from detector import _kernels
+from detector.boxes import nms
+from detector.features import SIGMA_FLOOR
+from detector.harvest import window_box_to_object_box
+from detector.integral import integral_image, squared_integral_image
+
+
+def _round(v):
+    """Round half up (``floor(v + 0.5)``), so that rounded adjacent rectangles stay adjacent."""
+    return np.floor(np.asarray(v, dtype=np.float64) + 0.5).astype(np.int64)
+
+
+@dataclass
+class ScalePlan:
+    """What the kernel needs for one scale (see :mod:`detector._kernels`)."""
+
+    scale: float
+    window: tuple[int, int]  # scaled window width, height in pixels
+    corners: np.ndarray  # int64 (F, 4, 4)
+    coefs: np.ndarray  # float64 (F, 4)
+    consts: np.ndarray  # float64 (F,)
+    win: np.ndarray  # int64 (4,)
+    inv_area: float
+
+
+def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
+               normalize: bool = True) -> ScalePlan:
+    """Rectangle corner offsets and weights of ``features`` at ``scale`` in an integral image whose
+    rows are ``row_stride`` long.
+
+    Rectangle corners are scaled and rounded (half up) separately, so rectangles that touch in the
+    window still touch after scaling.
+
+    Examples
+    --------
+    >>> f = np.zeros((1, 4, 5), np.int32); f[0, 0] = [0, 0, 2, 2, 1]
+    >>> p = scale_plan(f, (4, 4), 2.0, row_stride=9)
+    >>> p.window, p.corners[0, 0].tolist()
+    ((8, 8), [0, 4, 36, 40])
+    """
+    W, H = window
+    feats = np.asarray(features, dtype=np.int64)
+    x0 = _round(feats[..., 0] * scale)
+    y0 = _round(feats[..., 1] * scale)
+    x1 = _round((feats[..., 0] + feats[..., 2]) * scale)
+    y1 = _round((feats[..., 1] + feats[..., 3]) * scale)
+    Ws, Hs = int(_round(W * scale)), int(_round(H * scale))
+    corners = np.stack([y0 * row_stride + x0, y0 * row_stride + x1,
+                        y1 * row_stride + x0, y1 * row_stride + x1], axis=-1)
+    weight = feats[..., 4].astype(np.float64)
+    base_area = (feats[..., 2] * feats[..., 3]).astype(np.float64)
+    scaled_area = ((x1 - x0) * (y1 - y0)).astype(np.float64)
+    used = weight != 0
+    safe = np.where(scaled_area > 0, scaled_area, 1.0)
+    if normalize:
+        coefs = np.where(used, weight * base_area / (W * H * safe), 0.0)
+        consts = np.sum(weight * base_area, axis=1) / (W * H)
+    else:
+        coefs = np.where(used, weight * base_area / safe, 0.0)
+        consts = np.zeros(len(feats))
+    corners = np.where(used[..., None], corners, 0)
+    win = np.array([0, Ws, Hs * row_stride, Hs * row_stride + Ws], dtype=np.int64)
+    return ScalePlan(scale, (Ws, Hs), np.ascontiguousarray(corners, np.int64),
+                     np.ascontiguousarray(coefs), np.ascontiguousarray(consts), win,
+                     1.0 / (Ws * Hs))
+
+
+def scales_for(image_size, window, scale_step=1.2, min_scale=1.0, max_scale=None):
+    """The scales to scan: ``min_scale * scale_step**k`` while the window fits the image.
+
+    >>> [round(s, 3) for s in scales_for((100, 60), (24, 24), 1.5)]
+    [1.0, 1.5]
+    """
+    if scale_step <= 1.0:
+        raise ValueError("scale step must be greater than 1")
+    iw, ih = image_size
+    W, H = window
+    fit = min(iw / W, ih / H)
+    top = fit if max_scale is None else min(fit, max_scale)
+    out = []
+    s = min_scale
+    while s <= top + 1e-9 and int(_round(W * s)) <= iw and int(_round(H * s)) <= ih:
+        out.append(s)
+        s *= scale_step
+    return out
+
+
+@dataclass
+class ScanSettings:
+    """How to scan. Sizes are in image pixels.
+
+    Attributes
+    ----------
+    scale_step : float
+        Ratio between neighbouring scales.
+    stride : float
+        Step between windows at the window's own size; it grows with the scale.
+    min_object, max_object : float or None
+        Shorter side of the smallest and largest object box to look for; None = the model's
+        window and the whole image.
+    threshold : float
+        Keep detections scoring at least this (0..1).
+    nms_iou : float
+        Non-maximum suppression: drop a box whose IoU with a better one exceeds this.
+    early_exit : bool
+        Use the model's early-exit thresholds.
+    """
+
+    scale_step: float = 1.2
+    stride: float = 2.0
+    min_object: float | None = None
+    max_object: float | None = None
+    threshold: float = 0.5
+    nms_iou: float = 0.3
+    early_exit: bool = True
+
+
+@dataclass
+class FrameResult:
+    """Detections in one frame with the work it took."""
+
+    boxes: np.ndarray  # float64 (K, 4) x, y, width, height
+    scores: np.ndarray  # float64 (K,) in 0..1, descending
+    windows: int
+    trees: int
+
+    @property
+    def mean_trees(self) -> float:
+        return self.trees / self.windows if self.windows else 0.0
+
+
+def raw_cutoff(model, threshold: float) -> float:
+    """The running-score value a window needs for a final score of ``threshold``."""
+    T = model.leaf_values.shape[0]
+    if model.mode == "boosted":
+        t = min(max(threshold, 1e-12), 1 - 1e-12)
+        return 0.5 * math.log(t / (1 - t))
+    return threshold * T
+
+
+def final_scores(model, raw):
+    """Running score after the last tree -> score in 0..1."""
+    raw = np.asarray(raw, dtype=np.float64)
+    if model.mode == "boosted":
+        return 1.0 / (1.0 + np.exp(-2.0 * raw))
+    return raw / model.leaf_values.shape[0]
+
+
+def _remaining_bound(leaf_values):
+    top = leaf_values.max(axis=1).astype(np.float64)
+    return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]])
+
+
+class Engine:
+    """A model made ready for scanning: arrays in the kernel's dtypes, per-size plans cached.
+
+    Parameters
+    ----------
+    model : detector.model.Model
+    settings : ScanSettings
+    """
+
+    def __init__(self, model, settings: ScanSettings | None = None):
+        self.model = model
+        self.settings = settings or ScanSettings()
+        self.window = tuple(int(v) for v in model.window)
+        self.margin = float(model.metadata.get("margin", 0.0))
+        self.node_features = np.ascontiguousarray(model.node_features, np.int64)
+        self.node_thresholds = np.ascontiguousarray(model.node_thresholds, np.float32)
+        self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
+        T = self.leaf_values.shape[0]
+        if self.settings.early_exit:
+            self.exits = np.ascontiguousarray(model.exit_thresholds, np.float64)
+        else:
+            self.exits = np.full(T, -np.inf)
+        self.bound = _remaining_bound(self.leaf_values)
+        self.cutoff = raw_cutoff(model, self.settings.threshold)
+        self.normalize = bool(model.normalize)
+        self._plans: dict = {}
+
+    def object_scale_range(self):
+        """(smallest, largest) scale from min_object / max_object."""
+        W, H = self.window
+        k = 1.0 + 2.0 * self.margin
+        short = min(W, H) / k  # object box shorter side at scale 1
+        st = self.settings
+        lo = 1.0 if st.min_object is None else st.min_object / short
+        hi = None if st.max_object is None else st.max_object / short
+        return lo, hi
+
+    def plans(self, image_size):
+        """Scale plans for an image of ``(width, height)``, cached by size."""
+        key = tuple(image_size)
+        if key not in self._plans:
+            lo, hi = self.object_scale_range()
+            start = max(lo, 1.0)
+            scales = scales_for(image_size, self.window, self.settings.scale_step, start, hi)
+            self._plans[key] = [scale_plan(self.model.features, self.window, s, image_size[0] + 1,
+                                           self.normalize) for s in scales]
+            if len(self._plans) > 16:
+                self._plans.pop(next(iter(self._plans)))
+        return self._plans[key]
+
+    def candidates(self, gray: np.ndarray, use_numpy: bool = False):
+        """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
+        trees)``, before the margin and non-maximum suppression."""
+        lo, _ = self.object_scale_range()
+        up = 1.0
+        if lo < 1.0:
+            import cv2
+
+            up = 1.0 / lo
+            gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
+        ih, iw = gray.shape
+        ii = integral_image(gray).ravel()
+        sq = squared_integral_image(gray).ravel()
+        boxes, raws = [], []
+        windows = trees = 0
+        for plan in self.plans((iw, ih)):
+            Ws, Hs = plan.window
+            step = max(1, int(_round(self.settings.stride * plan.scale)))
+            xs = np.arange(0, iw - Ws + 1, step, dtype=np.int64)
+            ys = np.arange(0, ih - Hs + 1, step, dtype=np.int64)
+            if len(xs) == 0 or len(ys) == 0:
+                continue
+            n = len(xs) * len(ys)
+            fn = scan_scale_numpy if use_numpy else _kernels.scan_scale
+            out_x = np.empty(n, np.int64)
+            out_y = np.empty(n, np.int64)
+            out_s = np.empty(n, np.float64)
+            kept, used = fn(ii, sq, iw + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
+                            self.normalize, plan.corners, plan.coefs, plan.consts,
+                            self.node_features, self.node_thresholds, self.leaf_values,
+                            self.exits, self.cutoff, self.bound, out_x, out_y, out_s)
+            windows += n
+            trees += int(used)
+            if kept:
+                b = np.empty((kept, 4))
+                b[:, 0] = out_x[:kept] / up
+                b[:, 1] = out_y[:kept] / up
+                b[:, 2] = Ws / up
+                b[:, 3] = Hs / up
+                boxes.append(b)
+                raws.append(out_s[:kept].copy())
+        if boxes:
+            return np.concatenate(boxes), np.concatenate(raws), windows, trees
+        return np.zeros((0, 4)), np.zeros(0), windows, trees
+
+    def scan(self, gray: np.ndarray, use_numpy: bool = False) -> FrameResult:
+        """Detections in one grayscale frame: object boxes, scores in 0..1 (descending), after
+        non-maximum suppression."""
+        wboxes, raw, windows, trees = self.candidates(gray, use_numpy=use_numpy)
+        boxes, scores = self.detections(wboxes, raw)
+        return FrameResult(boxes, scores, windows, trees)
+
+    def detections(self, window_boxes, raw, nms_iou=None, threshold=None):
+        """Candidates -> object boxes and 0..1 scores, descending, after non-maximum suppression
+        (at ``nms_iou``, default the settings'), keeping scores >= ``threshold`` (default: all)."""
+        scores = final_scores(self.model, raw)
+        if threshold is not None:
+            keep = scores >= threshold
+            window_boxes, scores = window_boxes[keep], scores[keep]
+        if not len(window_boxes):
+            return np.zeros((0, 4)), np.zeros(0)
+        x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
+                                              window_boxes[:, 2], window_boxes[:, 3], self.margin)
+        obj = np.stack([x, y, w, h], axis=1)
+        keep = nms(obj, scores, self.settings.nms_iou if nms_iou is None else nms_iou)
+        order = keep[np.argsort(-scores[keep], kind="stable")]
+        return obj[order], scores[order]
+
+
+def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize,
+                     corners, coefs, consts, node_features, node_thresholds, leaf_values,
+                     exit_thresholds, cutoff, bound, out_x, out_y, out_score):
+    """Plain-numpy twin of :func:`detector._kernels.scan_scale` (same arguments, same results),
+    vectorised over all windows of the scale. For tests and as a readable reference."""
+    gx, gy = np.meshgrid(xs, ys)  # row-major: y outer, x inner, as in the kernel
+    gx, gy = gx.ravel(), gy.ravel()
+    base = gy * row_stride + gx
+
+    def rect(table, off):
+        return table[base + off[3]] - table[base + off[1]] - table[base + off[2]] + table[base + off[0]]
+
+    mean = rect(ii, win).astype(np.float64) * inv_area
+    if normalize:
+        var = rect(sq, win).astype(np.float64) * inv_area - mean * mean
+        sigma = np.sqrt(np.maximum(var, 0.0))
+        inv_sigma = 1.0 / np.maximum(sigma, sigma_floor)
+    else:
+        inv_sigma = np.ones_like(mean)
+    used = np.unique(node_features)
+    values = {}
+    for f in used:
+        acc = np.zeros(len(base))
+        for r in range(4):
+            if coefs[f, r] != 0.0:
+                acc += coefs[f, r] * rect(ii, corners[f, r]).astype(np.float64)
+        values[f] = ((acc - consts[f] * mean) * inv_sigma).astype(np.float32)
+    n_trees, n_nodes = node_features.shape
+    depth = int(round(math.log2(n_nodes + 1)))
+    score = np.zeros(len(base))
+    alive = np.ones(len(base), dtype=bool)
+    trees = 0
+    for t in range(n_trees):
+        trees += int(alive.sum())
+        node = np.zeros(len(base), dtype=np.int64)
+        for _ in range(depth):
+            f = node_features[t, node]
+            v = np.empty(len(base), np.float32)
+            for fu in np.unique(f):
+                m = f == fu
+                v[m] = values[fu][m]
+            node = 2 * node + np.where(v <= node_thresholds[t, node], 1, 2)
+        score = np.where(alive, score + leaf_values[t, node - n_nodes], score)
+        alive &= ~((score < exit_thresholds[t]) | (score + bound[t] < cutoff))
+    keep = alive & (score >= cutoff)
+    k = int(keep.sum())
+    out_x[:k] = gx[keep]
+    out_y[:k] = gy[keep]
+    out_score[:k] = score[keep]
+    return k, trees
