@@ -3,12 +3,12 @@
 
 Layout the kernels read (built once per scale by :func:`detector.scan.scale_plan`):
 
-- ``corners`` int64 ``(F, 4, 4)``: for every used feature and each of its rectangle slots, the flat
-  offsets of the rectangle's four corners (top-left, top-right, bottom-left, bottom-right) in the
-  flattened integral image, relative to the window's top-left corner.
-- ``coefs`` float64 ``(F, 4)``: the weight of each rectangle's pixel sum (zero for unused slots).
-- ``consts`` float64 ``(F,)``: the weight of the window mean, so that
-  ``value = (sum_i coefs[f, i] * S_i - consts[f] * mean) / sigma``.
+- ``offsets`` int64 ``(F, K)``: for every used feature, the flat offsets (relative to the window's
+  top-left corner) of the integral-image corners its rectangles need, corners shared by touching
+  rectangles merged; ``counts[f]`` of them are used.
+- ``weights`` float64 ``(F, K)``: the weight of each corner's integral value, so that
+  ``value = (sum_k weights[f, k] * ii[base + offsets[f, k]] - consts[f] * mean) / sigma``.
+- ``consts`` float64 ``(F,)``: the weight of the window mean.
 - ``win`` int64 ``(4,)``: the window's four corner offsets; ``inv_area`` its 1 / pixel count.
 """
 
@@ -19,20 +19,16 @@ import numpy as np
 
 
 @numba.njit(cache=True, nogil=True)
-def _feature_value(ii, base, corners, coefs, consts, f, mean, inv_sigma):
+def _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigma):
     acc = 0.0
-    for r in range(4):
-        c = coefs[f, r]
-        if c != 0.0:
-            s = (ii[base + corners[f, r, 3]] - ii[base + corners[f, r, 1]]
-                 - ii[base + corners[f, r, 2]] + ii[base + corners[f, r, 0]])
-            acc += c * s
+    for k in range(counts[f]):
+        acc += weights[f, k] * ii[base + offsets[f, k]]
     return (acc - consts[f] * mean) * inv_sigma
 
 
 @numba.njit(cache=True, nogil=True)
 def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize,
-               corners, coefs, consts, node_features, node_thresholds, leaf_values,
+               offsets, weights, counts, consts, node_features, node_thresholds, leaf_values,
                exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Score every window of one scale; keep those whose running score reaches ``cutoff``.
 
@@ -89,7 +85,7 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize
                 node = 0
                 for _ in range(depth):
                     f = node_features[t, node]
-                    v = _feature_value(ii, base, corners, coefs, consts, f, mean, inv_sigma)
+                    v = _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigma)
                     # compare in float32, as training did on its float32 feature matrix
                     node = 2 * node + (1 if np.float32(v) <= node_thresholds[t, node] else 2)
                 score += leaf_values[t, node - n_nodes]

@@ -25,6 +25,7 @@ from detector.forest import (
     MODES,
     bin_columns,
     calibrate_exit,
+    order_for_early_exit,
     final_score,
     grow_forest,
     quantile_cuts,
@@ -40,6 +41,8 @@ __all__ = ["PatchClassifier", "calibration_count", "check_patches"]
 CALIBRATION_FRACTION = 0.1
 #: ... but at least this many when there are four times as many object patches.
 CALIBRATION_MINIMUM = 20
+#: Background patches (at most) the tree ordering for early exit looks at.
+MAX_ORDERING_BACKGROUND = 5000
 
 
 def calibration_count(n_objects: int) -> int:
@@ -258,13 +261,23 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             exit_thresholds=np.full(small.n_trees, -np.inf, np.float32), mode=self.mode,
             normalize=bool(self.normalize), feature_importances=small.importances,
         )
+        bg_running = model.running_scores(grow_patches[grow_y == 0])
         if len(held):
             running = model.running_scores(patches[held])
+            # reorder the trees so that background drops out early (same final scores)
+            step = max(1, int(np.ceil(len(bg_running) / MAX_ORDERING_BACKGROUND)))
+            order = order_for_early_exit(np.diff(running, axis=1, prepend=0.0),
+                                         np.diff(bg_running[::step], axis=1, prepend=0.0),
+                                         float(self.exit_recall))
+            model.node_features = model.node_features[order]
+            model.node_thresholds = model.node_thresholds[order]
+            model.leaf_values = model.leaf_values[order]
+            running = model.running_scores(patches[held])
+            bg_running = model.running_scores(grow_patches[grow_y == 0])
             model.exit_thresholds = calibrate_exit(running, float(self.exit_recall))
             mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
         else:
             mean_objects = None
-        bg_running = model.running_scores(grow_patches[grow_y == 0])
         mean_background = float(trees_evaluated(bg_running, model.exit_thresholds).mean())
 
         model.metadata = {

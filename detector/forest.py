@@ -460,6 +460,65 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     return float32_thresholds(kept.min(axis=0))
 
 
+def order_for_early_exit(object_leaves, background_leaves, exit_recall: float = 0.995) -> np.ndarray:
+    """A tree order that drops background windows as early as the exit rule allows.
+
+    The final score is a sum over trees, so any order gives the same scores; only the early exit
+    depends on it. Greedy, as in the soft cascade (Bourdev and Brandt, CVPR 2005, order their weak
+    classifiers by how much they reject): at every step take the remaining tree that, with the exit
+    threshold :func:`calibrate_exit` would give it (the lowest running score of the kept objects),
+    drops the most background windows still alive; ties go to the lower index.
+
+    Parameters
+    ----------
+    object_leaves : ndarray, shape (N_o, T)
+        Leaf value each held-out object patch gets from each tree.
+    background_leaves : ndarray, shape (N_b, T)
+        The same for background patches.
+    exit_recall : float in (0, 1]
+
+    Returns
+    -------
+    ndarray of int64, shape (T,)
+        The new order (a permutation of ``range(T)``).
+
+    Examples
+    --------
+    >>> obj = np.array([[1.0, 1.0, 1.0], [1.0, 1.0, 1.0]])
+    >>> bg = np.array([[1.0, 1.0, 0.0], [1.0, 0.0, 1.0], [1.0, 0.0, 0.0]])
+    >>> order_for_early_exit(obj, bg, exit_recall=1.0).tolist()   # tree 1 drops 2, then tree 2 drops 1
+    [1, 2, 0]
+    """
+    o = np.asarray(object_leaves, dtype=np.float64)
+    b = np.asarray(background_leaves, dtype=np.float64)
+    T = o.shape[1]
+    if len(o) == 0 or len(b) == 0:
+        return np.arange(T)
+    n_drop = min(int(np.floor((1.0 - exit_recall) * len(o) + 1e-9)), len(o) - 1)
+    o = o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]]
+    o_sum = np.zeros(len(o))
+    b_sum = np.zeros(len(b))
+    alive = np.ones(len(b), bool)
+    remaining = list(range(T))
+    order = []
+    for _ in range(T):
+        rem = np.asarray(remaining)
+        thr = (o_sum[:, None] + o[:, rem]).min(axis=0)  # exit threshold each candidate would get
+        live = np.flatnonzero(alive)
+        if len(live):
+            dropped = ((b_sum[live, None] + b[np.ix_(live, rem)]) < thr[None, :]).sum(axis=0)
+        else:
+            dropped = np.zeros(len(rem), np.int64)
+        k = int(np.argmax(dropped))
+        t = int(rem[k])
+        order.append(t)
+        remaining.remove(t)
+        o_sum += o[:, t]
+        b_sum += b[:, t]
+        alive &= ~(b_sum < thr[k])
+    return np.asarray(order, dtype=np.int64)
+
+
 def trees_evaluated(running_scores, exit_thresholds) -> np.ndarray:
     """How many trees each window evaluates before it exits (T when it never exits).
 
