@@ -52,6 +52,9 @@ def harvest(
     c = bank.counts()
     echo(f"patches: {c['objects']} object ({c['object']} boxes + {c['augmented']} augmented copies), "
          f"{c['background']} background")
+    if c["background"] == 0:
+        echo("note: no background patches were cut; training needs some (raise "
+             "--negatives-per-image or --near-negatives)")
     if bank.metadata.get("images_too_small"):
         echo(f"note: {bank.metadata['images_too_small']} images are smaller than the window; "
              "they gave no background patches")

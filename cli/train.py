@@ -15,8 +15,6 @@ from detector.scan import ScanSettings
 from detector.training import train_with_mining
 
 
-
-
 def train(
     bank: Path = typer.Argument(..., help="Patch bank from `patchwood harvest`."),
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
@@ -42,13 +40,13 @@ def train(
     """Grow a forest of shallow trees on the bank's patches and write the model file."""
     if mode not in ("bagged", "boosted"):
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
+    if mine_rounds and (mine_images is None or mine_labels is None):
+        raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels")
     check_output_file(out, force, "model")
     if save_bank_to is not None:
         check_output_file(save_bank_to, force, "patch bank")
     items = None
     if mine_rounds:
-        if mine_images is None or mine_labels is None:
-            raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels")
         items = read_labels(mine_labels, images_dir=mine_images).items
     b = load_bank(bank)
     c = b.counts()

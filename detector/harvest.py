@@ -17,6 +17,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 from dataclasses import dataclass, field
 
 import cv2
@@ -25,7 +26,7 @@ import numpy as np
 from detector import npzfile
 from detector.boxes import iou
 from detector.errors import InputError
-from detector.images import read_gray
+from detector.images import image_size, read_gray
 from detector.labels import ImageLabels
 
 BANK_FORMAT_VERSION = 1
@@ -126,10 +127,10 @@ def parse_window(text: str) -> tuple[int, int]:
     >>> parse_window("24x24")
     (24, 24)
     """
-    parts = str(text).lower().replace(" ", "").split("x")
-    if len(parts) != 2 or not all(p.isdigit() for p in parts):
+    match = re.fullmatch(r"([0-9]+)x([0-9]+)", str(text).lower().replace(" ", ""))
+    if match is None:
         raise ValueError(f"window must look like 24x24, got {text!r}")
-    w, h = int(parts[0]), int(parts[1])
+    w, h = int(match.group(1)), int(match.group(2))
     if not (4 <= w <= 512 and 4 <= h <= 512):
         raise ValueError(f"window sides must be 4..512 pixels, got {text!r}")
     return w, h
@@ -236,8 +237,8 @@ def sample_background(gray, gt_boxes, window, margin, count, rng, max_iou=0.3,
         ww, wh = W * s, H * s
         x = rng.uniform(0.0, iw - ww)
         y = rng.uniform(0.0, ih - wh)
-        obj = window_box_to_object_box(x, y, ww, wh, margin)
-        if len(gt) and np.max(iou(np.array([obj]), gt)) >= max_iou:
+        obj = np.asarray(window_box_to_object_box(x, y, ww, wh, margin), np.float32)
+        if len(gt) and np.max(iou(obj[None], gt)) >= max_iou:  # the box as the bank stores it
             continue
         patches.append(crop_region(gray, (x + ww / 2, y + wh / 2), (ww, wh), window))
         boxes.append(obj)
@@ -265,11 +266,11 @@ def sample_near_background(gray, gt_boxes, window, margin, per_box, rng, max_iou
             ow, oh = bw * f, bh * f
             cx = x + bw / 2 + rng.uniform(-0.4, 0.4) * bw
             cy = y + bh / 2 + rng.uniform(-0.4, 0.4) * bh
-            obj = (cx - ow / 2, cy - oh / 2, ow, oh)
-            wx, wy, ww, wh = object_box_to_window_box(*obj, margin)
+            obj = np.array([cx - ow / 2, cy - oh / 2, ow, oh], np.float32)
+            wx, wy, ww, wh = object_box_to_window_box(*(float(v) for v in obj), margin)
             if ww < W or wh < H or ww > iw or wh > ih:
                 continue
-            if np.max(iou(np.array([obj]), gt)) >= max_iou:
+            if np.max(iou(obj[None], gt)) >= max_iou:  # the box as the bank stores it
                 continue
             patches.append(crop_region(gray, (cx, cy), (ww, wh), window))
             boxes.append(obj)
@@ -331,6 +332,13 @@ def harvest(
     Returns
     -------
     PatchBank
+
+    Raises
+    ------
+    InputError
+        Naming ``labels_path``: no labelled boxes at all, every box narrower or lower than 2
+        pixels, or a window larger than every image (found from the image headers, before any
+        patch is cut).
     """
     all_boxes = [b for it in items for b in it.boxes]
     if not all_boxes:
@@ -342,15 +350,18 @@ def harvest(
         raise InputError("every labelled box is smaller than 2 pixels", path=labels_path)
     chosen = tuple(window) if window is not None else infer_window(all_boxes[valid])
     W, H = chosen
+    # image sizes from the file headers first, so a window that fits no image fails before any work
+    sizes = [image_size(os.path.join(os.fspath(images_dir), it.image)) for it in items]
+    too_small = sum(1 for iw, ih in sizes if iw < W or ih < H)
+    if sizes and too_small == len(sizes):
+        big_w, big_h = max(sizes, key=lambda s: s[0] * s[1])
+        raise InputError(f"window {W}x{H} is larger than every image (the largest is "
+                         f"{big_w}x{big_h})", path=labels_path)
     rng = np.random.default_rng(seed)
     patches, labels, kinds, index, boxes, aug = [], [], [], [], [], []
     names = [it.image for it in items]
-    too_small = 0
     for i, it in enumerate(items):
         gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
-        ih, iw = gray.shape
-        if iw < W or ih < H:
-            too_small += 1
         for box in it.boxes:
             x, y, bw, bh = (float(v) for v in box)
             if bw < 2 or bh < 2:
@@ -393,8 +404,6 @@ def harvest(
         aug.extend([_IDENTITY] * len(neg))
         if progress is not None:
             progress(i + 1, len(items))
-    if too_small == len(items):
-        raise InputError(f"window {W}x{H} is larger than every image", path=labels_path)
     if not any(labels):
         raise InputError("no object patches could be cut", path=labels_path)
     labels_hash = None
@@ -492,6 +501,9 @@ def load_bank(path) -> PatchBank:
         raise InputError(f"patches of shape {p.shape[1:]} do not fit the window {W}x{H}", path=path)
     if n and (a["labels"].max() > 1 or a["kinds"].max() >= len(KIND_NAMES)):
         raise InputError("labels or kinds out of range", path=path)
+    if np.any(a["labels"] != (a["kinds"] <= KIND_AUGMENTED)):
+        raise InputError("labels disagree with kinds (object kinds must have label 1, "
+                         "background kinds label 0)", path=path)
     images = [str(s) for s in a["images"]]
     if n and (a["image_index"].min() < 0 or a["image_index"].max() >= len(images)):
         raise InputError("image index out of range", path=path)
@@ -499,10 +511,14 @@ def load_bank(path) -> PatchBank:
         raise InputError("boxes or augmentation hold non-finite values", path=path)
     try:
         metadata = json.loads(str(a["metadata"]))
-    except json.JSONDecodeError:
+    except (ValueError, RecursionError):
         raise InputError("metadata is not valid JSON", path=path) from None
     if not isinstance(metadata, dict):
         raise InputError("metadata is not a JSON object", path=path)
+    margin = metadata.get("margin", 0.0)
+    if (isinstance(margin, bool) or not isinstance(margin, (int, float))
+            or not math.isfinite(margin) or margin < 0):
+        raise InputError(f"metadata margin must be a number >= 0, got {margin!r}", path=path)
     return PatchBank(
         window=(W, H),
         patches=p,

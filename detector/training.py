@@ -7,6 +7,7 @@ import numpy as np
 
 from detector import npzfile
 from detector.classifier import PatchClassifier
+from detector.errors import InputError
 from detector.harvest import PatchBank
 
 
@@ -15,7 +16,20 @@ def train_model(bank: PatchBank, params: dict, bank_path=None, progress=None):
 
     The model's metadata gains the bank's context margin (the scan reports the box inside the
     window), its SHA-256, its harvest parameters and its patch counts.
+
+    Raises
+    ------
+    InputError
+        The bank lacks object or background patches (the message names ``bank_path``).
     """
+    counts = bank.counts()
+    if counts["objects"] == 0:
+        raise InputError("the bank holds no object patches; training needs both object and "
+                         "background patches", path=bank_path)
+    if counts["background"] == 0:
+        raise InputError("the bank holds no background patches; training needs both (harvest "
+                         "again with --negatives-per-image or --near-negatives above 0)",
+                         path=bank_path)
     clf = PatchClassifier(**params)
     clf.fit(bank.patches, bank.labels, progress=progress)
     model = clf.model_

@@ -1,0 +1,194 @@
+"""`patchwood train` end to end on a tiny demo scenario (12 training frames, 4 mining frames).
+
+Outside references: the mining figures are recounted with ``detector.evaluate.evaluate`` (COCO-style
+matching at IoU 0.5, held equal to pycocotools in tests/test_evaluate.py) on detections made by
+``detector.scan.Engine`` with the first-round model; SHA-256 (FIPS 180-4) via ``hashlib`` for the
+bank hash; ``SOURCE_DATE_EPOCH`` (reproducible-builds.org) for byte-identical model files. The model
+itself is compared with the library route (``detector.training.train_model``) on the same bank.
+"""
+
+import hashlib
+import os
+import re
+import sys
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+import cli.main
+from cli.common import human_path
+from detector.evaluate import evaluate
+from detector.harvest import KIND_MINED, load_bank
+from detector.images import read_gray
+from detector.labels import read_labels
+from detector.model import load_model
+from detector.scan import Engine, ScanSettings
+from detector.training import train_model
+from synthetic_images import render_scenario
+
+TRAIN = ["--trees", "10", "--pool", "500"]
+
+
+@pytest.fixture(scope="module")
+def scenario(tmp_path_factory):
+    root = tmp_path_factory.mktemp("train_cli")
+    render_scenario(root / "scenario", train_images=12, test_images=4, seed=0)
+    train = root / "scenario" / "train"
+    bank = root / "bank.npz"
+    result = CliRunner().invoke(cli.main.app, ["harvest", str(train / "images"), str(train / "labels.csv"),
+                                               "--out", str(bank), "--seed", "0"])
+    assert result.exit_code == 0, result.output
+    return root
+
+
+@pytest.fixture
+def cli_env(monkeypatch, capsys):
+    """Runs `patchwood ARGS` in this process through the console entry point, with a fixed
+    SOURCE_DATE_EPOCH; returns (exit code, stdout, stderr)."""
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "86400")  # 1970-01-02
+
+    def run(*args):
+        monkeypatch.setattr(sys, "argv", ["patchwood", *map(str, args)])
+        with pytest.raises(SystemExit) as stop:
+            cli.main.run()
+        captured = capsys.readouterr()
+        return stop.value.code, captured.out, captured.err
+
+    return run
+
+
+def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
+    bank, out = scenario / "bank.npz", tmp_path / "model.npz"
+    code, text, err = cli_env("train", bank, "--out", out, *TRAIN, "--seed", 3)
+    assert code == 0, err
+    model = load_model(out)
+    assert model.window == (24, 24) and model.n_trees == 10 and model.depth == 2
+    assert model.mode == "bagged"
+    # the printed summary is the model's own, line for line, and it names window, trees, OOB error
+    for line in model.summary():
+        assert line in text.splitlines()
+    assert "window: 24 x 24 pixels (width x height)" in text
+    assert "trees: 10 of depth 2, random forest (bagged)" in text
+    oob = re.search(r"^out-of-bag error: (\d+\.\d\d) %$", text, re.M)
+    assert oob and float(oob.group(1)) == round(100 * model.metadata["oob_error"], 2)
+    assert text.splitlines()[-1] == f"wrote {human_path(out)}"
+    assert "growing trees: 10/10 trees" in err  # the progress bar's closing line off a terminal
+    # metadata: the bank's hash (hashlib), its margin and the fixed date
+    assert model.metadata["bank"]["sha256"] == hashlib.sha256(bank.read_bytes()).hexdigest()
+    assert model.metadata["margin"] == load_bank(bank).margin == 0.1
+    assert model.metadata["date"] == "1970-01-02"
+    # the command trains what the library trains with the same parameters
+    params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=None,
+                  sample_fraction=1.0, exit_recall=0.995, normalize=True, random_state=3, n_jobs=1)
+    lib, _ = train_model(load_bank(bank), params, bank_path=bank)
+    for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
+        np.testing.assert_array_equal(getattr(model, name), getattr(lib, name))
+    # and it has learned something: objects score above background on the training bank
+    b = load_bank(bank)
+    scores = model.score(b.patches)
+    assert scores[b.labels == 1].mean() > scores[b.labels == 0].mean() + 0.3
+
+
+def test_train_options_reach_the_model(scenario, cli_env, tmp_path):
+    out = tmp_path / "boosted.npz"
+    code, text, err = cli_env("train", scenario / "bank.npz", "--out", out, "--trees", 6, "--pool", 300,
+                              "--depth", 3, "--mode", "boosted", "--features-per-node", 40,
+                              "--sample-fraction", 0.5, "--exit-recall", 0.9, "--no-normalize")
+    assert code == 0, err
+    model = load_model(out)
+    assert (model.n_trees, model.depth, model.mode, model.normalize) == (6, 3, "boosted", False)
+    assert "trees: 6 of depth 3, Gentle AdaBoost (boosted)" in text
+    p = model.metadata["parameters"]
+    assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_recall"]) == (300, 40, 0.5, 0.9)
+
+
+def test_same_seed_same_bytes_and_existing_output_refused(scenario, cli_env, tmp_path):
+    bank = scenario / "bank.npz"
+    one, two, other = tmp_path / "one.npz", tmp_path / "two.npz", tmp_path / "other.npz"
+    for path, seed in ((one, 0), (two, 0), (other, 1)):
+        code, _, err = cli_env("train", bank, "--out", path, *TRAIN, "--seed", seed)
+        assert code == 0, err
+    assert one.read_bytes() == two.read_bytes()
+    assert one.read_bytes() != other.read_bytes()
+    # an existing model is refused, in one line, and left untouched
+    before, stamp = one.read_bytes(), os.stat(one).st_mtime_ns
+    code, text, err = cli_env("train", bank, "--out", one, *TRAIN, "--seed", 1)
+    assert code == 1 and err == f"error: {one}: model exists; add --force to replace it\n"
+    assert one.read_bytes() == before and os.stat(one).st_mtime_ns == stamp
+    code, _, _ = cli_env("train", bank, "--out", one, *TRAIN, "--seed", 1, "--force")
+    assert code == 0 and one.read_bytes() == other.read_bytes()
+
+
+def test_mining_round(scenario, cli_env, tmp_path):
+    test = scenario / "scenario" / "test"
+    bank, out, mined = scenario / "bank.npz", tmp_path / "mined.npz", tmp_path / "bank_mined.npz"
+    code, text, err = cli_env("train", bank, "--out", out, *TRAIN, "--mine-rounds", 1,
+                              "--mine-images", test / "images", "--mine-labels", test / "labels.csv",
+                              "--save-bank", mined)
+    assert code == 0, err
+    lines = re.findall(r"^mining images, (first model|after round 1): (\d+\.\d\d) false alarms per "
+                       r"image, recall (\d\.\d{3}|nan) at score 0\.5(?:; adding (\d+) false alarms as "
+                       r"background)?$", text, re.M)
+    assert [w for w, *_ in lines] == ["first model", "after round 1"]
+    history = load_model(out).metadata["mining"]
+    assert [h["round"] for h in history] == [0, 1]
+    for (_, fa, recall, _), h in zip(lines, history):
+        assert float(fa) == round(h["false_alarms_per_image"], 2)
+        assert float(recall) == round(h["recall"], 3)
+    added = int(lines[0][3])
+    assert added == history[0]["added"] > 0 and history[1]["added"] == 0
+    # the bank written beside the model holds exactly the mined patches, labelled background
+    b = load_bank(mined)
+    assert np.sum(b.kinds == KIND_MINED) == added and (b.labels[b.kinds == KIND_MINED] == 0).all()
+    assert np.array_equal(b.patches[: len(load_bank(bank))], load_bank(bank).patches)
+    assert {b.images[i] for i in b.image_index[b.kinds == KIND_MINED]} <= {
+        it.image for it in read_labels(test / "labels.csv")}
+    assert "checking final model: 4/4 images" in err
+    # recount the first round: the first model is the plain model with the same seed; scan the
+    # mining frames at threshold 0.5 and match with detector.evaluate (IoU 0.5)
+    first, _ = train_model(load_bank(bank), dict(n_trees=10, depth=2, mode="bagged", pool=500,
+                                                 features_per_node=None, sample_fraction=1.0,
+                                                 exit_recall=0.995, normalize=True, random_state=0,
+                                                 n_jobs=1), bank_path=bank)
+    engine = Engine(first, ScanSettings(threshold=0.5))
+    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    dets = {}
+    for it in items:
+        found = engine.scan(read_gray(test / "images" / it.image))
+        dets[it.image] = (found.boxes, found.scores)
+    ev = evaluate(dets, {it.image: it.boxes for it in items})
+    assert round(ev.false_alarms / ev.images, 2) == float(lines[0][1])
+    assert round(ev.true_detections / ev.objects, 3) == float(lines[0][2])
+
+
+def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
+    bank, out = scenario / "bank.npz", tmp_path / "model.npz"
+    test = scenario / "scenario" / "test"
+    # mining without its images is a usage error (exit 2), checked before the output file
+    out.write_bytes(b"keep me")
+    for extra in ([], ["--mine-labels", test / "labels.csv"], ["--mine-images", test / "images"]):
+        code, _, err = cli_env("train", bank, "--out", out, "--mine-rounds", 1, *extra)
+        assert code == 2 and err.count("\n") == 1
+        assert "--mine-rounds needs --mine-images and --mine-labels" in err
+    code, _, err = cli_env("train", bank, "--out", out, "--mode", "stacked")
+    assert code == 2 and "--mode must be bagged or boosted" in err
+    assert out.read_bytes() == b"keep me"
+    out.unlink()
+    # input errors: one line naming the file, exit 1, no model written
+    code, _, err = cli_env("train", tmp_path / "nothing.npz", "--out", out)
+    assert (code, err) == (1, f"error: {tmp_path / 'nothing.npz'}: no such patch bank file\n")
+    model = tmp_path / "a_model.npz"
+    assert cli_env("train", bank, "--out", model, "--trees", 2, "--pool", 100)[0] == 0
+    code, _, err = cli_env("train", model, "--out", out)
+    assert (code, err) == (1, f"error: {model}: not a patch bank (this file holds a model)\n")
+    # a bank with no background patches (harvested with none asked for) names the bank
+    train = scenario / "scenario" / "train"
+    only = tmp_path / "objects_only.npz"
+    code, text, _ = cli_env("harvest", train / "images", train / "labels.csv", "--out", only,
+                            "--negatives-per-image", 0, "--near-negatives", 0, "--copies", 0)
+    assert code == 0 and "note: no background patches were cut" in text
+    code, _, err = cli_env("train", only, "--out", out, *TRAIN)
+    assert code == 1 and err.startswith(f"error: {only}: the bank holds no background patches")
+    assert err.count("\n") == 1
+    assert not out.exists()
