@@ -2,23 +2,107 @@
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import typer
 
+from cli.common import echo, human_path, progress_bar
+from detector.batch import scan_paths
+from detector.errors import InputError
+from detector.harvest import harvest, save_bank
+from detector.labels import read_labels
+from detector.model import save_model
+from detector.report import score_files, summary_table
+from detector.scan import ScanSettings
+from detector.training import train_with_mining
 from synthetic_images import render_scenario
+
+#: What the demo writes inside its folder (and may replace with --force).
+DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detections.failures.csv",
+                "drawn", "report")
 
 
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
-    seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario and for training."),
-    force: bool = typer.Option(False, "--force", help="Reuse an existing demo folder, replacing what the demo wrote there."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
+    trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
+    mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
+    pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
+    mine_rounds: int = typer.Option(1, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images."),
+    jobs: int = typer.Option(2, "--jobs", min=1, max=64, help="Threads for growing and processes for scanning."),
+    force: bool = typer.Option(False, "--force", help="Replace what an earlier demo wrote in --out (other files there are left alone)."),
 ) -> None:
-    """Run the workflow on the demo scenario (hex nuts on a conveyor belt): render the frames and
-    print what was written."""
-    typer.echo(f"[1] rendering the demo scenario into {out}")
-    summary = render_scenario(out / "scenario", seed=seed, force=force)
+    """Run the whole workflow on the demo scenario (hex nuts on a conveyor belt): render frames,
+    harvest patches, train with a mining round, scan the test frames, score them and write the
+    report."""
+    if mode not in ("bagged", "boosted"):
+        raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
+    started = time.perf_counter()
+    if out.exists() and not out.is_dir():
+        raise InputError("demo output must be a folder", path=out)
+    if out.is_dir() and not force and any((out / e).exists() for e in DEMO_ENTRIES):
+        raise InputError("holds an earlier demo; add --force to replace it", path=out)
+    out.mkdir(parents=True, exist_ok=True)
+    scenario = out / "scenario"
+    train_dir, test_dir = scenario / "train", scenario / "test"
+
+    echo(f"[1/5] rendering the demo scenario into {human_path(scenario)}")
+    summary = render_scenario(scenario, seed=seed, force=force)
     for split in ("train", "test"):
         s = summary[split]
-        typer.echo(f"    {split:5s} {s['frames']} frames ({s['frames_without_nuts']} without nuts), "
-                   f"{s['nuts']} nuts labelled -> {s['labels']}")
+        echo(f"      {split:5s} {s['frames']} frames ({s['frames_without_nuts']} without nuts), "
+             f"{s['nuts']} nuts labelled")
+
+    echo("[2/5] harvesting patches from the training frames")
+    train_labels = read_labels(train_dir / "labels.csv", images_dir=train_dir / "images")
+    with progress_bar("      harvesting", len(train_labels), "images") as update:
+        bank = harvest(train_dir / "images", train_labels.items, seed=seed,
+                       labels_path=train_dir / "labels.csv", progress=update)
+    bank_path = out / "bank.npz"
+    save_bank(bank_path, bank)
+    c = bank.counts()
+    echo(f"      window {bank.window[0]}x{bank.window[1]}; {c['objects']} object and "
+         f"{c['background']} background patches -> {human_path(bank_path)}")
+
+    echo(f"[3/5] training {trees} {mode} trees with {mine_rounds} mining round(s)")
+    params = dict(n_trees=trees, depth=2, mode=mode, pool=pool, random_state=seed, n_jobs=jobs)
+
+    def report(r, found, counts):
+        what = "first model" if r == 0 else f"after round {r}"
+        added = "" if r == mine_rounds else f"; {len(found.patches)} false alarms added as background"
+        echo(f"      training frames, {what}: {found.false_alarms_per_image:.2f} false alarms per "
+             f"image, recall {found.recall:.3f}{added}")
+
+    model, clf, _ = train_with_mining(
+        bank, params, rounds=mine_rounds, images_dir=train_dir / "images", items=train_labels.items,
+        settings=ScanSettings(), bank_path=bank_path,
+        progress_factory=lambda d, n: progress_bar("      " + d, n, "trees" if d.startswith("growing") else "images"),
+        report=report)
+    model_path = out / "model.npz"
+    save_model(model_path, model)
+    cal = model.metadata.get("calibration", {})
+    echo(f"      {model.features.shape[0]} features used; mean trees per background patch "
+         f"{cal.get('mean_trees_background', float('nan')):.1f} -> {human_path(model_path)}")
+
+    echo("[4/5] scanning the test frames")
+    detections = out / "detections.csv"
+    drawn = out / "drawn"
+    with progress_bar("      scanning", None, "images") as update:
+        run = scan_paths(model_path, [test_dir / "images"], detections,
+                         settings=ScanSettings(threshold=0.05), jobs=jobs, force=True,
+                         draw_dir=drawn, progress=update)
+    per_frame = 1000.0 * run.seconds * max(jobs, 1) / max(run.images, 1)
+    echo(f"      {run.images} frames, {run.detections} detections at score >= 0.05, "
+         f"{run.mean_trees:.2f} trees per window, about {per_frame:.0f} ms of CPU per frame")
+    echo(f"      annotated frames in {human_path(drawn)}")
+
+    echo("[5/5] scoring against the test labels")
+    result = score_files(detections, test_dir / "labels.csv", out / "report",
+                         images_dir=test_dir / "images", force=True)
+    width = max(len(k) for k, _ in summary_table(result.summary))
+    for key, value in summary_table(result.summary):
+        echo(f"      {key:<{width}}  {value}")
+    echo("")
+    echo(f"demo finished in {time.perf_counter() - started:.0f} s")
+    echo(f"report: {human_path(result.report)}")

@@ -27,13 +27,14 @@ app = typer.Typer(
 
 
 def _register() -> None:
-    from cli import demo, harvest, scan, score, synth, train
+    from cli import demo, harvest, scan, score, synth, train, tune
 
     app.command("synth")(synth.synth)
     app.command("harvest")(harvest.harvest)
     app.command("train")(train.train)
     app.command("scan")(scan.scan)
     app.command("score")(score.score)
+    app.command("tune")(tune.tune)
     app.command("demo")(demo.demo)
 
 
