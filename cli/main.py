@@ -27,7 +27,7 @@ app = typer.Typer(
 
 
 def _register() -> None:
-    from cli import demo, harvest, scan, score, synth, train, tune
+    from cli import audit, demo, harvest, inspect_model, scan, score, synth, train, tune
 
     app.command("synth")(synth.synth)
     app.command("harvest")(harvest.harvest)
@@ -35,6 +35,8 @@ def _register() -> None:
     app.command("scan")(scan.scan)
     app.command("score")(score.score)
     app.command("tune")(tune.tune)
+    app.command("audit")(audit.audit)
+    app.command("inspect")(inspect_model.inspect)
     app.command("demo")(demo.demo)
 
 
