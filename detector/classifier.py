@@ -61,6 +61,36 @@ def calibration_count(n_objects: int) -> int:
     return int(n_cal)
 
 
+def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1) -> np.ndarray:
+    """Every patch as a scan may see it: shifted by ``-shift, 0, +shift`` pixels along x and y and
+    scaled by ``1/scale, 1, scale`` (27 copies each, the patch itself first; pixels outside the
+    patch repeat its border).
+
+    Examples
+    --------
+    >>> p = np.arange(16, dtype=np.uint8).reshape(1, 4, 4)
+    >>> c = misaligned_copies(p, 1.0, 1.0)
+    >>> c.shape, bool((c[0] == p[0]).all())
+    ((27, 4, 4), True)
+    >>> c[1].tolist()[0]                            # shifted 1 pixel left (x - 1): border repeats
+    [0, 0, 1, 2]
+    """
+    from detector.harvest import crop_region
+
+    patches = np.asarray(patches, dtype=np.uint8)
+    n, h, w = patches.shape
+    steps = [(dx, dy, k) for k in (1.0, scale, 1.0 / scale)
+             for dy in (0.0, -shift, shift) for dx in (0.0, -shift, shift)]  # the patch itself first
+    out = np.empty((n, len(steps), h, w), np.uint8)
+    for i in range(n):
+        for j, (dx, dy, k) in enumerate(steps):
+            if j == 0:
+                out[i, j] = patches[i]
+            else:
+                out[i, j] = crop_region(patches[i], (w / 2 + dx, h / 2 + dy), (w * k, h * k), (w, h))
+    return out.reshape(n * len(steps), h, w)
+
+
 def check_patches(patches, window=None) -> np.ndarray:
     """Validate grey patches: a (N, height, width) array of grey levels 0..255 -> uint8.
 
@@ -108,6 +138,13 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         Contrast-normalise feature values per patch.
     exit_recall : float in (0, 1], default=0.995
         Fraction of held-out object patches that must pass every early exit.
+    exit_shift : float >= 0, default=1.0
+        The early exit is calibrated on every held-out object patch seen also shifted by this many
+        pixels (at the window's size) along x and y, ...
+    exit_scale : float >= 1, default=1.1
+        ... and scaled by this factor up and down: the worst alignment of the best window a scan
+        finds for an object, at the scan's default stride (2, so at most 1 pixel off) and scale
+        step (1.2, so at most its square root, about 1.1, off).
     max_bins : int in 2..256 or None, default=256
         Grow on quantile-bin indices of every pool feature (at most ``max_bins`` distinct values per
         feature; see :mod:`detector.forest`, "Binned growing"), then map the thresholds back to
@@ -154,6 +191,8 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         sample_fraction=1.0,
         normalize=True,
         exit_recall=0.995,
+        exit_shift=1.0,
+        exit_scale=1.1,
         max_bins=256,
         random_state=None,
         n_jobs=None,
@@ -166,6 +205,8 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         self.sample_fraction = sample_fraction
         self.normalize = normalize
         self.exit_recall = exit_recall
+        self.exit_shift = exit_shift
+        self.exit_scale = exit_scale
         self.max_bins = max_bins
         self.random_state = random_state
         self.n_jobs = n_jobs
@@ -186,6 +227,12 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             integer("max_bins", 2, 256)
         if self.mode not in MODES:
             raise InputError(f"mode must be one of {', '.join(MODES)}, got {self.mode!r}")
+        shift = self.exit_shift
+        if isinstance(shift, bool) or not isinstance(shift, numbers.Real) or not 0.0 <= shift <= 8.0:
+            raise InputError(f"exit_shift must be a number in [0, 8], got {shift!r}")
+        scale = self.exit_scale
+        if isinstance(scale, bool) or not isinstance(scale, numbers.Real) or not 1.0 <= scale <= 2.0:
+            raise InputError(f"exit_scale must be a number in [1, 2], got {scale!r}")
         for name in ("sample_fraction", "exit_recall"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
@@ -263,7 +310,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         )
         bg_running = model.running_scores(grow_patches[grow_y == 0])
         if len(held):
-            running = model.running_scores(patches[held])
+            calibration = misaligned_copies(patches[held], float(self.exit_shift),
+                                            float(self.exit_scale))
+            running = model.running_scores(calibration)
             # reorder the trees so that background drops out early (same final scores)
             step = max(1, int(np.ceil(len(bg_running) / MAX_ORDERING_BACKGROUND)))
             order = order_for_early_exit(np.diff(running, axis=1, prepend=0.0),
@@ -272,7 +321,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             model.node_features = model.node_features[order]
             model.node_thresholds = model.node_thresholds[order]
             model.leaf_values = model.leaf_values[order]
-            running = model.running_scores(patches[held])
+            running = model.running_scores(calibration)
             bg_running = model.running_scores(grow_patches[grow_y == 0])
             model.exit_thresholds = calibrate_exit(running, float(self.exit_recall))
             mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
@@ -293,6 +342,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             "calibration": {
                 "exit_recall": float(self.exit_recall),
                 "objects": int(len(held)),
+                "copies_per_object": int(len(calibration) // len(held)) if len(held) else 0,
+                "shift": float(self.exit_shift),
+                "scale": float(self.exit_scale),
                 "mean_trees_objects": mean_objects,
                 "mean_trees_background": mean_background,
                 "background_source": "training background patches",
