@@ -1,0 +1,240 @@
+"""The sliding-window engine (detector.scan): compiled loop against its numpy twin, scan scores
+against the classifier's scores on patches cut by hand, the scale property, early exit.
+
+References: scikit-learn-style estimator scores (``PatchClassifier.predict_proba``, which evaluates
+the features with ``detector.features.evaluate_features`` on each patch) are the slow reference the
+scan must reproduce window by window; the scale property is exact arithmetic (a rectangle mean on
+an image whose pixels are repeated 2x2 with ``np.kron`` equals the mean on the small image); a
+hand-built one-tree model is worked through by hand. Greedy NMS is checked against cv2.dnn.NMSBoxes
+in tests/test_boxes.py and not repeated here.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings, strategies as st
+
+from detector.classifier import PatchClassifier
+from detector.harvest import harvest, window_box_to_object_box
+from detector.labels import read_labels
+from detector.model import Model
+from detector.scan import Engine, ScanSettings, final_scores
+from synthetic_images import render_frame, render_scenario
+
+WINDOW = (24, 24)
+
+
+@pytest.fixture(scope="session")
+def bank(tmp_path_factory):
+    """A small harvested bank of a 12-frame scenario (about 900 patches of 24 x 24)."""
+    root = tmp_path_factory.mktemp("scan-scenario")
+    render_scenario(root, train_images=12, test_images=2, seed=11)
+    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
+    return harvest(root / "train" / "images", items, window=WINDOW, negatives_per_image=60, seed=0)
+
+
+def _fit(bank, mode):
+    clf = PatchClassifier(n_trees=20, pool=2000, mode=mode, random_state=0)
+    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    return clf.model_
+
+
+@pytest.fixture(scope="session")
+def bagged(bank):
+    return _fit(bank, "bagged")
+
+
+@pytest.fixture(scope="session")
+def boosted(bank):
+    return _fit(bank, "boosted")
+
+
+@pytest.fixture(params=["bagged", "boosted"])
+def model(request):
+    return request.getfixturevalue(request.param)
+
+
+def frame(seed=3, width=160, height=160):
+    """A scenario frame, the smallest size the renderer makes (160 x 160)."""
+    return render_frame(seed, width, height).image
+
+
+def every_window(model, **kw):
+    """Settings that keep every window: threshold 0, no early exit (unless asked)."""
+    kw.setdefault("threshold", 0.0)
+    kw.setdefault("early_exit", False)
+    return Engine(model, ScanSettings(**kw))
+
+
+def as_dict(boxes, raw):
+    return {tuple(b): r for b, r in zip(boxes.tolist(), raw.tolist())}
+
+
+# ------------------------------------------------------------------ compiled loop vs numpy twin
+
+@pytest.mark.parametrize("early_exit", [False, True])
+def test_compiled_scan_equals_numpy_twin(model, early_exit):
+    rng = np.random.default_rng(5)
+    images = [rng.integers(0, 256, (61, 83), dtype=np.uint8),  # noise, odd sizes
+              np.repeat(rng.integers(0, 256, (1, 90), dtype=np.uint8), 50, axis=0),  # stripes
+              frame(3)]
+    for gray in images:
+        engine = every_window(model, early_exit=early_exit, threshold=0.3, scale_step=1.25)
+        b1, r1, w1, t1 = engine.candidates(gray)
+        b2, r2, w2, t2 = engine.candidates(gray, use_numpy=True)
+        assert (w1, t1) == (w2, t2)
+        np.testing.assert_array_equal(b1, b2)
+        np.testing.assert_allclose(r1, r2, rtol=0, atol=1e-9)
+
+
+# ------------------------------------------------------------------ against patches cut by hand
+
+def test_scan_scores_equal_classifier_scores_at_scale_one(model):
+    """Every scale-1 window: the scan's score == predict_proba of the patch gray[y:y+24, x:x+24]."""
+    gray = frame(4)  # holds a nut of 20.5 x 18 pixels, about the window's object size
+    engine = every_window(model, stride=3)
+    boxes, raw, windows, trees = engine.candidates(gray)
+    at1 = (boxes[:, 2] == WINDOW[0]) & (boxes[:, 3] == WINDOW[1])
+    xs, ys = boxes[at1, 0].astype(int), boxes[at1, 1].astype(int)
+    # all windows at stride 3 on 160 x 160: 1 + (160 - 24) // 3 = 46 per row and column
+    expected = 46 * 46
+    if model.mode == "bagged":  # cutoff 0: a bagged score is never below it, nothing is dropped
+        assert at1.sum() == expected
+    else:  # threshold 0 is the raw cutoff 0.5 * log(1e-12) = -13.8 for boosted
+        assert at1.sum() <= expected
+    patches = np.stack([gray[y:y + 24, x:x + 24] for x, y in zip(xs, ys)])
+    reference = PatchClassifier.from_model(model).predict_proba(patches)[:, 1]
+    np.testing.assert_allclose(final_scores(model, raw[at1]), reference, rtol=0, atol=1e-9)
+    assert reference.max() - reference.min() > 0.5  # object-like and background windows alike
+
+
+def test_scan_objects_are_window_boxes_shrunk_by_margin(bagged):
+    """scan() = candidates -> object boxes (window shrunk by the bank's margin 0.1) -> NMS."""
+    gray = frame(7)
+    engine = Engine(bagged, ScanSettings(threshold=0.6))
+    result = engine.scan(gray)
+    wboxes, raw, windows, trees = engine.candidates(gray)
+    assert (result.windows, result.trees) == (windows, trees)
+    assert len(result.scores) > 0
+    assert np.all(result.scores >= 0.6) and np.all(np.diff(result.scores) <= 0)
+    # a 24 x 24 window with margin 0.1 stands for a box of 24 / 1.2 = 20 pixels, 2 inside
+    assert window_box_to_object_box(0.0, 0.0, 24.0, 24.0, 0.1) == (2.0, 2.0, 20.0, 20.0)
+    obj = np.stack(window_box_to_object_box(*wboxes.T, 0.1), axis=1)
+    found = as_dict(obj, final_scores(bagged, raw))
+    for box, score in zip(result.boxes.tolist(), result.scores.tolist()):
+        assert found[tuple(box)] == pytest.approx(score, abs=1e-12)
+
+
+# ------------------------------------------------------------------ the scale property
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(seed=st.integers(0, 2**32 - 1), width=st.integers(24, 40), height=st.integers(24, 36),
+       smooth=st.booleans())
+def test_scale_two_on_repeated_pixels_equals_scale_one(bagged, seed, width, height, smooth):
+    """Scan a small image at scale 1 (stride 1) and np.kron(small, ones(2, 2)) at scale 2 (stride
+    1 * 2): window (x, y) of the small image and window (2x, 2y) of the big one see the same
+    rectangle means (each scaled rectangle holds every small pixel 4 times, and is divided by its
+    4 times larger pixel count), the same window mean and variance, so the same raw scores."""
+    rng = np.random.default_rng(seed)
+    small = rng.integers(0, 256, (height, width)).astype(np.uint8)
+    if smooth:  # object-like blobs as well as noise
+        yy, xx = np.mgrid[:height, :width]
+        small = (128 + 100 * np.sin(xx / 3.0 + seed % 7) * np.cos(yy / 4.0)).astype(np.uint8)
+    big = np.kron(small, np.ones((2, 2), np.uint8))
+    # scale step 2: the scales are 1, 2, 4, ... so scale 2 is scanned exactly
+    b1, r1, _, _ = every_window(bagged, stride=1, scale_step=2.0).candidates(small)
+    b2, r2, _, _ = every_window(bagged, stride=1, scale_step=2.0).candidates(big)
+    one = as_dict(b1[b1[:, 2] == 24], r1[b1[:, 2] == 24])
+    two = {(x / 2, y / 2): r for (x, y, w, h), r in as_dict(b2, r2).items() if w == 48}
+    assert len(one) == (width - 23) * (height - 23)
+    assert {k[:2] for k in one} == set(two)
+    for (x, y, w, h), r in one.items():
+        assert two[(x, y)] == pytest.approx(r, abs=1e-9)
+
+
+def test_hand_worked_one_tree_model():
+    """One feature, bottom row minus top row of a 2 x 2 window (raw values), one tree of depth 1:
+    value <= 0 -> leaf 0.0, value > 0 -> leaf 1.0; margin 0, so object box = window."""
+    model = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+                  [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False)
+    gray = np.array([[0, 0, 9],
+                     [5, 5, 0],
+                     [1, 1, 1]], np.uint8)
+    # windows at stride 1 (row-major), bottom sum - top sum:
+    # (0,0): (5+5) - (0+0) = 10 -> 1;  (1,0): (5+0) - (0+9) = -4 -> 0
+    # (0,1): (1+1) - (5+5) = -8 -> 0;  (1,1): (1+1) - (5+0) = -3 -> 0
+    engine = every_window(model, stride=1, scale_step=2.0)
+    boxes, raw, windows, trees = engine.candidates(gray)
+    assert windows == 4 and trees == 4  # the 3 x 3 image fits no 4 x 4 window at scale 2
+    assert as_dict(boxes, raw) == {(0, 0, 2, 2): 1.0, (1, 0, 2, 2): 0.0,
+                                   (0, 1, 2, 2): 0.0, (1, 1, 2, 2): 0.0}
+    # threshold 0.5 keeps only the bright-bottom window
+    result = Engine(model, ScanSettings(stride=1, scale_step=2.0, threshold=0.5)).scan(gray)
+    assert result.boxes.tolist() == [[0.0, 0.0, 2.0, 2.0]] and result.scores.tolist() == [1.0]
+    # at scale 2 on the pixels repeated 2 x 2, windows (0,0) and (2,0) of 4 x 4 (stride 1 * 2)
+    # see row means, the same values: window (0,0) is the small (0,0) -> 1, (2,0) the small (1,0) -> 0
+    big = np.kron(gray, np.ones((2, 2), np.uint8))
+    boxes, raw, _, _ = every_window(model, stride=1, scale_step=2.0).candidates(big)
+    at2 = as_dict(boxes[boxes[:, 2] == 4], raw[boxes[:, 2] == 4])
+    assert at2 == {(0, 0, 4, 4): 1.0, (2, 0, 4, 4): 0.0, (0, 2, 4, 4): 0.0, (2, 2, 4, 4): 0.0}
+
+
+# ------------------------------------------------------------------ early exit
+
+def test_early_exit_keeps_exact_scores_and_saves_trees(model):
+    gray = frame(9)
+    full = every_window(model, threshold=0.5)
+    b_off, r_off, windows, trees_off = full.candidates(gray)
+    b_on, r_on, windows_on, trees_on = every_window(model, threshold=0.5,
+                                                    early_exit=True).candidates(gray)
+    assert windows_on == windows
+    kept_off = as_dict(b_off, r_off)
+    assert len(r_on) > 0
+    for box, r in as_dict(b_on, r_on).items():  # every window it keeps: the same running score
+        assert kept_off[box] == pytest.approx(r, abs=1e-12)
+    n_trees = model.leaf_values.shape[0]
+    assert trees_on / windows <= trees_off / windows <= n_trees
+    assert trees_on < trees_off  # the calibrated exits do drop background
+
+
+def test_cutoff_bound_is_exact_without_early_exit(model):
+    """With early exit off, windows are still dropped once they can no longer reach the threshold
+    (the running score plus the most the remaining trees can add); that must change nothing: the
+    kept set equals "score every window with every tree, keep score >= 0.5"."""
+    gray = frame(9)
+    b_all, r_all, windows, trees_all = every_window(model, threshold=0.0).candidates(gray)
+    b, r, _, trees = every_window(model, threshold=0.5).candidates(gray)
+    scores = final_scores(model, r_all)
+    if model.mode == "bagged":
+        assert trees_all == windows * model.leaf_values.shape[0]  # nothing dropped at threshold 0
+    expected = as_dict(b_all[scores >= 0.5], r_all[scores >= 0.5])
+    assert as_dict(b, r).keys() == expected.keys()
+    assert trees < trees_all
+
+
+def test_small_objects_enlarge_the_image(bagged):
+    """--min-object below the window's object size (24 / 1.2 = 20 px) scans an enlarged image;
+    the boxes come back in the frame's own pixels."""
+    gray = frame(4)
+    boxes, raw, windows, trees = every_window(bagged, min_object=10.0).candidates(gray)
+    # scale 10 / 20 = 0.5: the image is enlarged 2x and scanned from a 24-pixel window up, which
+    # is a 12-pixel window (a 10-pixel object) in the frame
+    assert boxes[:, 2].min() == 12.0 and boxes[:, 3].min() == 12.0
+    assert boxes[:, 0].min() == 0 and boxes[:, 1].min() == 0
+    assert np.all(boxes[:, 0] + boxes[:, 2] <= 160) and np.all(boxes[:, 1] + boxes[:, 3] <= 160)
+    # 2x enlarged frame 320 x 320 at scale 1, stride 2: 1 + (320 - 24) // 2 = 149 per side
+    assert np.sum(boxes[:, 2] == 12.0) == 149 * 149
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "detector/scan.py Engine.plans: when --min-object is below the window's object size the frame "
+    "is enlarged by 1 / lo, but the largest scale (max_object / 20 here) is not multiplied by it, "
+    "so objects of 20..40 px are never looked for (and min 10, max 12 scans nothing at all)"))
+def test_max_object_applies_when_the_image_is_enlarged(bagged):
+    gray = frame(4)
+    boxes, _, _, _ = every_window(bagged, min_object=10.0, max_object=40.0).candidates(gray)
+    objects = boxes[:, 2] / 1.2  # the object box a window stands for (margin 0.1)
+    assert objects.min() == pytest.approx(10.0)
+    # the scales grow by 1.2, so the largest object looked for is within a step of max_object
+    assert 40.0 / 1.2 < objects.max() <= 40.0 + 1e-6
