@@ -2,15 +2,16 @@
 
 A run never dies on one bad file: a file that cannot be read is recorded as a failure (listed at the
 end and in a side file) and the run goes on. The output file is rewritten atomically after every
-batch of images, so an interrupted run leaves a valid detections file that ``resume=True``
-continues.
+batch of images (and once more when the run is interrupted), so an interrupted run leaves a valid
+detections file of complete images that ``resume=True`` continues.
 """
 
 from __future__ import annotations
 
+import csv
 import hashlib
-import io
 import os
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -71,23 +72,27 @@ class RunSummary:
 # ---------------------------------------------------------------- workers
 
 _ENGINES: dict = {}
+_ENGINES_LOCK = threading.Lock()  # Dask workers run several tasks at once in threads
 
 
 def _engine_from_bytes(model_bytes: bytes, settings: dict) -> Engine:
     key = (hashlib.sha256(model_bytes).hexdigest(), tuple(sorted(settings.items())))
-    if key not in _ENGINES:
-        import tempfile
+    with _ENGINES_LOCK:
+        engine = _ENGINES.get(key)
+        if engine is None:
+            import tempfile
 
-        with tempfile.NamedTemporaryFile(suffix=".npz", delete=False) as fh:
-            fh.write(model_bytes)
-            name = fh.name
-        try:
-            model = load_model(name)
-        finally:
-            os.unlink(name)
-        _ENGINES.clear()
-        _ENGINES[key] = Engine(model, ScanSettings(**settings))
-    return _ENGINES[key]
+            with tempfile.NamedTemporaryFile(suffix=".npz", delete=False) as fh:
+                fh.write(model_bytes)
+                name = fh.name
+            try:
+                model = load_model(name)
+            finally:
+                os.unlink(name)
+            engine = Engine(model, ScanSettings(**settings))
+            _ENGINES.clear()
+            _ENGINES[key] = engine
+    return engine
 
 
 def decode_gray(data: bytes, name: str) -> np.ndarray:
@@ -171,8 +176,13 @@ def draw_detections(gray: np.ndarray, boxes, scores, title: str | None = None) -
 
 
 def _draw_path(draw_dir: Path, name: str) -> Path:
-    rel = Path(*[p for p in Path(name.replace("\\", "/")).parts if p not in ("..", "/", "")])
-    return Path(draw_dir) / rel.with_suffix(".png")
+    """Where the annotated copy of image ``name`` goes: ``DIR/<name>`` as PNG (``a/x.png``), or
+    with ``.png`` added to other names (``a/x.jpg.png``), so two images never share a drawing."""
+    rel = Path(*[p for p in Path(name.replace("\\", "/")).parts
+                 if p not in ("..", "/", "") and not p.endswith(":")])
+    if rel.suffix.lower() != ".png":
+        rel = rel.with_name(rel.name + ".png")
+    return Path(draw_dir) / rel
 
 
 # ---------------------------------------------------------------- the run
@@ -185,14 +195,32 @@ def _inside(child: Path, parent: Path) -> bool:
         return False
 
 
+def _input_folders(inputs) -> list[Path]:
+    """The folders given, and the folder of every file given by itself."""
+    return [Path(p) if Path(p).is_dir() else Path(p).parent for p in inputs]
+
+
 def check_draw_dir(draw_dir, inputs) -> None:
     """Refuse a drawing folder inside an input folder (drawings never go among the inputs)."""
-    for p in inputs:
-        p = Path(p)
-        folder = p if p.is_dir() else p.parent
+    for folder in _input_folders(inputs):
         if _inside(Path(draw_dir), folder):
             raise InputError("--draw folder lies inside an input folder; choose a folder outside "
                              "the images", path=draw_dir)
+
+
+def _check_draw_targets(draw_dir, inputs, names, replace: bool) -> None:
+    """Refuse drawings that would land inside an input folder (a file given as ``sub/x.png`` with
+    ``--draw .``), or replace existing files unless ``replace``."""
+    folders = [f.resolve() for f in _input_folders(inputs)]
+    for name in names:
+        target = _draw_path(draw_dir, name)
+        parent = target.parent.resolve()
+        if any(parent == f or f in parent.parents for f in folders):
+            raise InputError(f"--draw would write {name} into an input folder; choose a folder "
+                             "outside the images", path=target)
+        if not replace and target.exists():
+            raise InputError("--draw folder already holds this file; add --force to replace the "
+                             "drawings", path=target)
 
 
 def _write(out, fmt, results: list[ImageResult]):
@@ -210,11 +238,51 @@ def failures_path(out) -> Path:
     return out.with_name(out.stem + ".failures.csv")
 
 
+_FAILURES_HEADER = ["image", "reason"]
+
+
+def _write_failures(out, failures) -> str | None:
+    """Write the side file (atomically); without failures, remove an earlier run's side file."""
+    fp = failures_path(out)
+    if not failures:
+        try:
+            with open(fp, encoding="utf-8") as fh:
+                ours = fh.readline().rstrip("\r\n") == ",".join(_FAILURES_HEADER)
+            if ours:
+                fp.unlink()
+        except (OSError, UnicodeDecodeError):
+            pass
+        return None
+    tmp = fp.with_name(f".{fp.name}.{os.getpid()}.part")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(_FAILURES_HEADER)
+        w.writerows(failures)
+    os.replace(tmp, fp)
+    return str(fp)
+
+
+def _check_unique_names(listed) -> None:
+    """Two inputs that give the same image name would be one image in the detections file."""
+    first: dict[str, str] = {}
+    for path, name in listed:
+        if name in first:
+            raise InputError(f"two inputs give the same image name {name!r} ({first[name]} and "
+                             f"{path}); scan them into separate output files", path=path)
+        first[name] = path
+
+
 def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
                cluster: str | None = None, resume: bool = False, force: bool = False,
                draw_dir=None, fmt: str = "csv", batch_images: int = 16, batch_seconds: float = 2.0,
                progress=None, on_image=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
+
+    Image names in the output follow :func:`detector.images.list_images`: relative to the folder
+    given (forward slashes), or the path as given for a file given by itself. The output is
+    rewritten atomically after every batch of ``batch_images`` images or ``batch_seconds`` seconds
+    (whichever comes first, and never so often that rewriting takes more than about a tenth of the
+    run), and once more if the run is interrupted, so it always holds complete images only.
 
     Parameters
     ----------
@@ -232,11 +300,16 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     resume : bool
         Keep the images already in ``out`` and scan only the rest.
     force : bool
-        Replace an existing ``out``.
+        Replace an existing ``out`` (and existing drawings in ``draw_dir``).
     draw_dir : path, optional
-        Write annotated copies here (never inside an input folder).
+        Write annotated copies here (never inside an input folder; existing files are replaced
+        only with ``force`` or ``resume``).
+    fmt : {"csv", "coco"}
+    batch_images, batch_seconds : int, float
+        How often the output is rewritten (see above).
     progress : callable(done, total), optional
     on_image : callable(ImageResult), optional
+        Called after each image's result is recorded.
 
     Returns
     -------
@@ -247,11 +320,11 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     if fmt not in ("csv", "coco"):
         raise InputError(f"unknown output format {fmt!r} (csv or coco)")
     model = load_model(model_path)
+    if out.is_dir():
+        raise InputError("output must be a file, but this is a folder", path=out)
     if out.exists() and not (force or resume):
         raise InputError("output exists; add --force to replace it or --resume to continue it",
                          path=out)
-    if out.is_dir():
-        raise InputError("output must be a file, but this is a folder", path=out)
     if not (out.parent if str(out.parent) else Path(".")).is_dir():
         raise InputError("folder for the output does not exist", path=out.parent)
     if draw_dir is not None:
@@ -260,6 +333,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         if not Path(p).exists():
             raise InputError("no such file or folder", path=p)
     listed, skipped = list_images(paths)
+    _check_unique_names(listed)
     summary = RunSummary(skipped_files=skipped, out=str(out))
     done: list[ImageResult] = []
     if resume and out.exists():
@@ -270,26 +344,32 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         summary.resumed = len(done)
     seen = {r.image for r in done}
     todo = [(p, name) for p, name in listed if name not in seen]
+    if draw_dir is not None:
+        _check_draw_targets(draw_dir, paths, [name for _, name in todo], replace=force or resume)
+    source = {name: p for p, name in todo}
     total = len(todo)
     start = time.perf_counter()
-    last_write = start
-    pending = 0
-    results = list(done)
+    results = [r for r in done if r.error is None]
+    state = {"pending": 0, "last_write": start, "write_cost": 0.0}
+
+    def write_now():
+        t0 = time.perf_counter()
+        _write(out, fmt, results)
+        now = time.perf_counter()
+        state.update(pending=0, last_write=now, write_cost=now - t0)
 
     def handle(r: ImageResult):
-        nonlocal pending, last_write
-        results.append(r)
         summary.images += 1
         if r.error is not None:
             summary.failures.append((r.image, r.error))
         else:
+            results.append(r)
             summary.detections += len(r.scores)
             summary.windows += r.windows
             summary.trees += r.trees
             if draw_dir is not None:
-                src = dict(todo_map)[r.image]
                 try:
-                    gray = read_gray(src)
+                    gray = read_gray(source[r.image])
                     dst = _draw_path(draw_dir, r.image)
                     dst.parent.mkdir(parents=True, exist_ok=True)
                     ok, buf = cv2.imencode(".png", draw_detections(gray, r.boxes, r.scores))
@@ -298,46 +378,56 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
                         summary.drawn += 1
                 except (InputError, OSError):
                     pass
-        pending += 1
-        now = time.perf_counter()
-        if pending >= batch_images or now - last_write >= batch_seconds:
-            _write(out, fmt, [x for x in results if x.error is None])
-            pending = 0
-            last_write = now
+        state["pending"] += 1
+        since = time.perf_counter() - state["last_write"]
+        # rewriting the whole file costs more as it grows: keep it under a tenth of the run
+        if ((state["pending"] >= batch_images or since >= batch_seconds)
+                and since >= 9.0 * state["write_cost"]):
+            write_now()
         if on_image is not None:
             on_image(r)
         if progress is not None:
             progress(summary.images, total)
 
-    todo_map = [(name, p) for p, name in todo]
     settings_dict = dict(settings.__dict__)
-    if cluster:
-        _run_on_cluster(model_path, settings_dict, todo, cluster, handle)
-    elif jobs > 1 and len(todo) > 1:
-        import multiprocessing as mp
+    try:
+        if cluster:
+            _run_on_cluster(model_path, settings_dict, todo, cluster, handle)
+        elif jobs > 1 and len(todo) > 1:
+            import multiprocessing as mp
 
-        ctx = mp.get_context("fork") if hasattr(os, "fork") else mp.get_context("spawn")
-        with ctx.Pool(jobs, initializer=_init_worker, initargs=(str(model_path), settings_dict)) as pool:
-            for r in pool.imap(_scan_in_worker, todo, chunksize=2):
-                handle(r)
-    else:
-        engine = Engine(model, settings)
-        for p, name in todo:
-            handle(scan_one(engine, p, name))
-    _write(out, fmt, [x for x in results if x.error is None])
+            ctx = mp.get_context("fork") if hasattr(os, "fork") else mp.get_context("spawn")
+            with ctx.Pool(jobs, initializer=_init_worker,
+                          initargs=(str(model_path), settings_dict)) as pool:
+                for r in pool.imap(_scan_in_worker, todo, chunksize=2):
+                    handle(r)
+        else:
+            engine = Engine(model, settings)
+            for p, name in todo:
+                handle(scan_one(engine, p, name))
+    except BaseException:
+        # interrupted (Ctrl-C, a lost cluster, ...): keep every complete image for --resume
+        if state["pending"]:
+            try:
+                write_now()
+                _write_failures(out, summary.failures)
+            except Exception:
+                pass
+        raise
+    write_now()
     summary.seconds = time.perf_counter() - start
-    fp = failures_path(out)
-    if summary.failures:
-        import csv
-
-        tmp = fp.with_name(fp.name + ".tmp")
-        with open(tmp, "w", newline="", encoding="utf-8") as fh:
-            w = csv.writer(fh, lineterminator="\n")
-            w.writerow(["image", "reason"])
-            w.writerows(summary.failures)
-        os.replace(tmp, fp)
-        summary.failures_file = str(fp)
+    summary.failures_file = _write_failures(out, summary.failures)
     return summary
+
+
+def _read_failure(path, err: OSError) -> str:
+    """The reason :func:`detector.images.read_gray` gives for a file that cannot be opened, so a
+    cluster run lists failures in the same words as a local one."""
+    try:
+        read_gray(path)
+    except InputError as e:
+        return e.message
+    return f"cannot read image: {err.strerror or err}"
 
 
 def _run_on_cluster(model_path, settings: dict, todo, address: str, handle):
@@ -366,7 +456,7 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle):
                 data = Path(p).read_bytes()
             except OSError as err:
                 futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0),
-                                           error=f"cannot read: {err.strerror or err}"))
+                                           error=_read_failure(p, err)))
                 return
             futures.append(client.submit(scan_bytes_task, model_future, settings, name, data,
                                          pure=False))

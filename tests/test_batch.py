@@ -1,0 +1,372 @@
+"""Folder runs: `patchwood scan` and detector.batch.scan_paths.
+
+What is checked, and against what:
+- the detections file holds, for every image, exactly what ``detector.scan.Engine.scan`` returns
+  for that image read on its own (the file keeps 1/100 pixel and 6 digits of score), and every
+  scanned image appears (one empty row when nothing was found), named as the labels CSV names it;
+- COCO JSON output (the COCO detection results format, Lin et al., 2014) reads back to the same
+  detections as the CSV;
+- bad files (truncated, not an image, empty, a dangling link) are listed and the run goes on;
+- an interrupted run leaves a valid file of complete images that --resume finishes into the very
+  file an uninterrupted run writes; --jobs 2 and a dask.distributed cluster write the same bytes;
+- the annotated copies, and the refusals: --draw inside an input folder, an existing --out
+  without --force.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+import cli.main
+from detector.batch import DETECTION_COLOUR, failures_path, scan_paths
+from detector.errors import InputError
+from detector.harvest import harvest
+from detector.images import read_gray
+from detector.labels import read_detections, read_labels
+from detector.model import load_model, save_model
+from detector.scan import Engine, ScanSettings
+from detector.training import train_model
+from synthetic_images import render_scenario
+
+# the display names of the scan folder below, sorted as list_images gives them
+NAMES = ["blank.png", "day 2/frame_0003.png", "day 2/frame_0004.png", "frame_0001.png",
+         "frame_0002.png", "frame_0003.png", "frame_0004.png"]
+
+
+@pytest.fixture(scope="session")
+def trained(tmp_path_factory):
+    """A 20-tree model trained on a small bank of a 12-frame scenario, saved to model.npz."""
+    root = tmp_path_factory.mktemp("batch-scenario")
+    render_scenario(root, train_images=12, test_images=4, seed=2)
+    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
+    bank = harvest(root / "train" / "images", items, window=(24, 24), negatives_per_image=60,
+                   seed=0)
+    model, _ = train_model(bank, dict(n_trees=20, pool=2000, random_state=0))
+    save_model(root / "model.npz", model)
+    return root
+
+
+@pytest.fixture(scope="session")
+def folder(trained, tmp_path_factory):
+    """images/: the 4 test frames, two of them again in "day 2/", a uniform blank frame (nothing
+    to find) and a notes file (skipped)."""
+    images = tmp_path_factory.mktemp("scan-input") / "images"
+    (images / "day 2").mkdir(parents=True)
+    for p in sorted((trained / "test" / "images").glob("*.png")):
+        shutil.copy(p, images / p.name)
+    for name in ("frame_0003.png", "frame_0004.png"):
+        shutil.copy(images / name, images / "day 2" / name)
+    cv2.imwrite(str(images / "blank.png"), np.full((240, 320), 128, np.uint8))
+    (images / "notes.txt").write_text("camera 2, shift B\n")
+    return images
+
+
+@pytest.fixture(scope="session")
+def reference(trained, folder):
+    """What the engine finds in each image of the folder, scanned one by one."""
+    engine = Engine(load_model(trained / "model.npz"), ScanSettings())
+    out = {}
+    for name in NAMES:
+        out[name] = engine.scan(read_gray(folder / name))
+    return out
+
+
+def invoke(*args):
+    return CliRunner().invoke(cli.main.app, ["scan", *[str(a) for a in args]])
+
+
+def run_main(monkeypatch, capsys, *args):
+    """`patchwood scan ...` through the console entry point: (exit code, stdout, stderr)."""
+    monkeypatch.setattr(sys, "argv", ["patchwood", "scan", *[str(a) for a in args]])
+    with pytest.raises(SystemExit) as exit_info:
+        cli.main.run()
+    captured = capsys.readouterr()
+    return exit_info.value.code, captured.out, captured.err
+
+
+def assert_matches_engine(detections, reference, names=NAMES):
+    assert [d.image for d in detections] == list(names)
+    for d in detections:
+        ref = reference[d.image]
+        assert len(d.scores) == len(ref.scores), d.image
+        np.testing.assert_allclose(d.boxes, ref.boxes.reshape(-1, 4), rtol=0, atol=0.005 + 1e-9)
+        np.testing.assert_allclose(d.scores, ref.scores, rtol=0, atol=5e-7 + 1e-12)
+
+
+def make_bad_files(folder: Path) -> list[str]:
+    good = (folder / "frame_0001.png").read_bytes()
+    (folder / "broken.png").write_bytes(good[: len(good) // 2])  # truncated PNG
+    (folder / "fake.jpg").write_text("this is a shopping list, not a picture\n")
+    (folder / "empty.bmp").write_bytes(b"")
+    os.symlink(folder / "moved-away.png", folder / "gone.png")  # a link to nothing
+    return ["broken.png", "empty.bmp", "fake.jpg", "gone.png"]
+
+
+# ------------------------------------------------------------------ the detections file
+
+def test_folder_scan_writes_every_image_as_the_engine_finds_it(trained, folder, reference, tmp_path):
+    out = tmp_path / "detections.csv"
+    result = invoke(trained / "model.npz", folder, "--out", out)
+    assert result.exit_code == 0, result.output
+    detections = read_detections(out)
+    assert_matches_engine(detections, reference)
+    found = sum(len(r.scores) for r in reference.values())
+    assert found > 0
+    text = out.read_text()
+    assert "\nblank.png,,,,,\n" in text  # nothing found: still recorded, one empty row
+    assert "\nday 2/frame_0003.png," in text  # relative to the scanned folder, forward slashes
+    # the summary: images, detections, failures, seconds, mean trees per window
+    windows = sum(r.windows for r in reference.values())
+    trees = sum(r.trees for r in reference.values())
+    assert "images scanned: 7\n" in result.stdout
+    assert f"detections: {found} at score >= 0.5\n" in result.stdout
+    assert "failures: 0\n" in result.stdout
+    assert "other files skipped: 1\n" in result.stdout  # notes.txt
+    assert f"mean trees per window: {trees / windows:.2f}\n" in result.stdout
+    assert " s (" in result.stdout and "images/s)" in result.stdout
+
+
+def test_scan_options_reach_the_engine_and_single_files_keep_their_path(trained, folder, tmp_path,
+                                                                        monkeypatch):
+    settings = ScanSettings(scale_step=1.3, stride=3.0, min_object=24.0, max_object=60.0,
+                            threshold=0.3, nms_iou=0.5)
+    engine = Engine(load_model(trained / "model.npz"), settings)
+    expected = {name: engine.scan(read_gray(folder / name)) for name in ("frame_0002.png",
+                                                                        "frame_0003.png")}
+    monkeypatch.chdir(folder.parent)
+    out = tmp_path / "detections.csv"
+    absolute = folder / "frame_0003.png"
+    result = invoke(trained / "model.npz", "images/frame_0002.png", absolute, "--out", out,
+                    "--scale-step", 1.3, "--stride", 3, "--min-object", 24, "--max-object", 60,
+                    "--threshold", 0.3, "--nms-iou", 0.5)
+    assert result.exit_code == 0, result.output
+    names = ["images/frame_0002.png", str(absolute)]  # files given by themselves: as given
+    expected = {names[0]: expected["frame_0002.png"], names[1]: expected["frame_0003.png"]}
+    assert_matches_engine(read_detections(out), expected, names)
+    # the options changed the outcome: the default settings find something else
+    default = Engine(load_model(trained / "model.npz"), ScanSettings()).scan(read_gray(absolute))
+    assert (len(default.scores), default.windows) != (len(expected[names[1]].scores),
+                                                      expected[names[1]].windows)
+
+
+def test_coco_output_holds_the_same_detections(trained, folder, tmp_path):
+    csv_out, coco_out = tmp_path / "d.csv", tmp_path / "d.json"
+    assert invoke(trained / "model.npz", folder, "--out", csv_out).exit_code == 0
+    result = invoke(trained / "model.npz", folder, "--out", coco_out, "--format", "coco")
+    assert result.exit_code == 0, result.output
+    a, b = read_detections(csv_out), read_detections(coco_out)
+    assert [d.image for d in b] == [d.image for d in a] == NAMES  # blank.png listed, no boxes
+    for x, y in zip(a, b):
+        np.testing.assert_allclose(y.boxes.reshape(-1, 4), x.boxes.reshape(-1, 4))
+        np.testing.assert_allclose(y.scores, x.scores)
+    pytest.importorskip("pycocotools")
+    import json
+
+    from pycocotools.coco import COCO
+
+    doc = json.loads(coco_out.read_text())
+    gt = COCO()
+    gt.dataset = {"images": doc["images"], "annotations": [], "categories": doc["categories"]}
+    gt.createIndex()
+    res = gt.loadRes(doc["annotations"])  # a valid results list for pycocotools
+    assert len(res.anns) == sum(len(d.scores) for d in a)
+
+
+# ------------------------------------------------------------------ refusals
+
+def test_existing_output_is_refused_without_force(trained, folder, tmp_path, monkeypatch, capsys):
+    out = tmp_path / "detections.csv"
+    out.write_text("my own notes\n")
+    code, stdout, stderr = run_main(monkeypatch, capsys, trained / "model.npz", folder, "--out", out)
+    assert code == 1
+    assert stderr == f"error: {out}: output exists; add --force to replace it or --resume to continue it\n"
+    assert out.read_text() == "my own notes\n"
+    code, stdout, stderr = run_main(monkeypatch, capsys, trained / "model.npz", folder, "--out", out,
+                                    "--force")
+    assert code == 0, stderr
+    assert [d.image for d in read_detections(out)] == NAMES
+
+
+def test_draw_writes_annotated_copies_and_never_into_the_inputs(trained, folder, reference, tmp_path):
+    before = sorted(p.relative_to(folder) for p in folder.rglob("*"))
+    inside = folder / "drawn"
+    result = invoke(trained / "model.npz", folder, "--out", tmp_path / "refused.csv",
+                    "--draw", inside)
+    assert result.exit_code == 1
+    assert isinstance(result.exception, InputError)
+    assert "--draw folder lies inside an input folder" in str(result.exception)
+    assert not inside.exists() and not (tmp_path / "refused.csv").exists()
+    assert sorted(p.relative_to(folder) for p in folder.rglob("*")) == before
+
+    drawn = tmp_path / "drawn"
+    result = invoke(trained / "model.npz", folder, "--out", tmp_path / "d.csv", "--draw", drawn)
+    assert result.exit_code == 0, result.output
+    assert sorted(str(p.relative_to(drawn)) for p in drawn.rglob("*.png")) == NAMES
+    assert "annotated images: 7" in result.stdout
+    for name in NAMES:
+        im = cv2.imread(str(drawn / name), cv2.IMREAD_UNCHANGED)
+        assert im.shape == (240, 320, 3)
+        boxes = reference[name].boxes
+        for x, y, w, h in boxes:  # the box's top-left corner is drawn in the detection colour
+            corner = im[int(round(y)) - 1:int(round(y)) + 2, int(round(x)) - 1:int(round(x)) + 2]
+            assert np.any(np.all(corner == DETECTION_COLOUR, axis=-1)), name
+        # the legend strip at the bottom left carries the colour even when nothing was found
+        assert np.any(np.all(im[-20:, :20] == DETECTION_COLOUR, axis=-1)), name
+    assert sorted(p.relative_to(folder) for p in folder.rglob("*")) == before
+
+
+def test_existing_drawings_are_not_replaced_without_force(trained, folder, tmp_path):
+    drawn = tmp_path / "drawn"
+    (drawn / "day 2").mkdir(parents=True)
+    (drawn / "day 2" / "frame_0003.png").write_bytes(b"someone's picture")
+    result = invoke(trained / "model.npz", folder, "--out", tmp_path / "d.csv", "--draw", drawn)
+    assert result.exit_code == 1
+    assert isinstance(result.exception, InputError)
+    assert "--force" in str(result.exception)
+    assert (drawn / "day 2" / "frame_0003.png").read_bytes() == b"someone's picture"
+    assert not (tmp_path / "d.csv").exists()
+
+
+def test_draw_refuses_a_target_inside_the_folder_of_a_single_file(trained, folder, tmp_path,
+                                                                  monkeypatch):
+    """``images/frame_0001.png`` drawn into ``.`` would be ``./images/frame_0001.png``: the input."""
+    monkeypatch.chdir(folder.parent)
+    original = (folder / "frame_0001.png").read_bytes()
+    with pytest.raises(InputError, match="would write images/frame_0001.png into an input folder"):
+        scan_paths(trained / "model.npz", ["images/frame_0001.png"], tmp_path / "d.csv",
+                   draw_dir=".", force=True)
+    assert (folder / "frame_0001.png").read_bytes() == original
+
+
+def test_drawings_of_same_named_images_stay_apart(trained, folder, tmp_path):
+    two = tmp_path / "two"
+    two.mkdir()
+    gray = read_gray(folder / "frame_0001.png")
+    cv2.imwrite(str(two / "x.png"), gray)
+    cv2.imwrite(str(two / "x.jpg"), gray)
+    summary = scan_paths(trained / "model.npz", [two], tmp_path / "d.csv", draw_dir=tmp_path / "drawn")
+    assert summary.drawn == 2
+    assert sorted(p.name for p in (tmp_path / "drawn").iterdir()) == ["x.jpg.png", "x.png"]
+
+
+def test_two_inputs_giving_the_same_image_name_are_refused(trained, folder, tmp_path):
+    other = tmp_path / "other"
+    other.mkdir()
+    shutil.copy(folder / "frame_0001.png", other / "frame_0001.png")
+    with pytest.raises(InputError, match="frame_0001.png"):
+        scan_paths(trained / "model.npz", [folder, other], tmp_path / "d.csv")
+    assert not (tmp_path / "d.csv").exists()
+
+
+# ------------------------------------------------------------------ bad files
+
+def test_bad_files_are_listed_and_the_run_goes_on(trained, folder, reference, tmp_path,
+                                                   monkeypatch, capsys):
+    mixed = tmp_path / "mixed"
+    shutil.copytree(folder, mixed)
+    bad = make_bad_files(mixed)
+    out = tmp_path / "detections.csv"
+    code, stdout, stderr = run_main(monkeypatch, capsys, trained / "model.npz", mixed, "--out", out)
+    assert code == 0, stderr
+    assert "images scanned: 11\n" in stdout
+    assert "failures: 4 (listed in " in stdout
+    for name in bad:
+        assert f"  {name}: cannot read image: " in stdout
+    assert_matches_engine(read_detections(out), reference)  # the good images, all of them
+    side = failures_path(out)
+    assert side == tmp_path / "detections.failures.csv"
+    lines = side.read_text().splitlines()
+    assert lines[0] == "image,reason"
+    assert [line.split(",")[0] for line in lines[1:]] == bad
+    reasons = dict(line.split(",", 1) for line in lines[1:])
+    assert "truncated" in reasons["broken.png"]
+    assert "empty" in reasons["empty.bmp"]
+    assert "not a PNG, JPEG, BMP or TIFF" in reasons["fake.jpg"]
+    assert "no such file" in reasons["gone.png"]
+
+
+def test_a_run_where_every_image_fails_exits_non_zero(trained, tmp_path, monkeypatch, capsys):
+    only_bad = tmp_path / "only-bad"
+    only_bad.mkdir()
+    (only_bad / "frame_0001.png").write_bytes(b"\x89PNG\r\n\x1a\n" + b"\x00" * 10)
+    (only_bad / "b.png").write_bytes(b"")
+    code, stdout, stderr = run_main(monkeypatch, capsys, trained / "model.npz", only_bad,
+                                    "--out", tmp_path / "d.csv")
+    assert code == 1
+    assert "failures: 2" in stdout
+
+
+def test_a_stale_failures_file_goes_when_a_forced_rerun_has_none(trained, folder, tmp_path):
+    mixed = tmp_path / "mixed"
+    shutil.copytree(folder, mixed)
+    make_bad_files(mixed)
+    out = tmp_path / "d.csv"
+    assert len(scan_paths(trained / "model.npz", [mixed], out).failures) == 4
+    assert failures_path(out).exists()
+    summary = scan_paths(trained / "model.npz", [folder], out, force=True)
+    assert summary.failures == [] and summary.failures_file is None
+    assert not failures_path(out).exists()
+
+
+# ------------------------------------------------------------------ interrupted runs, workers
+
+class Stop(KeyboardInterrupt):
+    pass
+
+
+def test_interrupted_run_resumes_into_the_uninterrupted_file(trained, folder, reference, tmp_path):
+    model = trained / "model.npz"
+    whole = tmp_path / "whole.csv"
+    scan_paths(model, [folder], whole)
+    out = tmp_path / "d.csv"
+    seen = []
+
+    def interrupt_after_five(result):
+        seen.append(result.image)
+        if len(seen) == 5:
+            raise Stop()
+
+    with pytest.raises(Stop):
+        scan_paths(model, [folder], out, batch_images=2, on_image=interrupt_after_five)
+    partial = read_detections(out)  # parses: a valid detections file
+    assert_matches_engine(partial, reference, NAMES[:5])  # the images handled, each complete
+    summary = scan_paths(model, [folder], out, resume=True)
+    assert (summary.resumed, summary.images) == (5, 2)
+    assert out.read_bytes() == whole.read_bytes()
+    # the command line says what it kept
+    result = invoke(model, folder, "--out", out, "--resume")
+    assert result.exit_code == 0, result.output
+    assert "images scanned: 0 (+7 kept from the earlier run)" in result.stdout
+    assert out.read_bytes() == whole.read_bytes()
+
+
+def test_jobs_and_cluster_write_the_same_bytes(trained, folder, tmp_path):
+    mixed = tmp_path / "mixed"
+    shutil.copytree(folder, mixed)
+    make_bad_files(mixed)
+    model = trained / "model.npz"
+    outs = {}
+    for label, options in (("one", []), ("jobs", ["--jobs", 2])):
+        outs[label] = tmp_path / f"{label}.csv"
+        result = invoke(model, mixed, "--out", outs[label], *options)
+        assert result.exit_code == 0, result.output
+    distributed = pytest.importorskip("distributed")
+    # threads, not processes, in the test: quick to start and reliable under pytest-xdist; the
+    # model and images still travel to the workers as bytes
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  dashboard_address=None) as cluster:
+        outs["cluster"] = tmp_path / "cluster.csv"
+        result = invoke(model, mixed, "--out", outs["cluster"], "--cluster", cluster.scheduler_address)
+        assert result.exit_code == 0, result.output
+    assert len(read_detections(outs["one"])) == 7
+    for label in ("jobs", "cluster"):
+        assert outs[label].read_bytes() == outs["one"].read_bytes(), label
+        assert failures_path(outs[label]).read_bytes() == failures_path(outs["one"]).read_bytes()
