@@ -18,7 +18,7 @@ import numba
 import numpy as np
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigma):
     acc = 0.0
     for k in range(counts[f]):

@@ -16,6 +16,7 @@ training value exactly at ``s = 1``.
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -234,6 +235,7 @@ class Engine:
         self.cutoff = raw_cutoff(model, self.settings.threshold)
         self.normalize = bool(model.normalize)
         self._plans: dict = {}
+        self._lock = threading.Lock()
 
     def object_scale_range(self):
         """(smallest, largest) scale from min_object / max_object."""
@@ -245,18 +247,24 @@ class Engine:
         hi = None if st.max_object is None else st.max_object / short
         return lo, hi
 
-    def plans(self, image_size):
-        """Scale plans for an image of ``(width, height)``, cached by size."""
-        key = tuple(image_size)
-        if key not in self._plans:
+    def plans(self, image_size, enlarged: float = 1.0):
+        """Scale plans for an image of ``(width, height)`` (already enlarged by ``enlarged`` when
+        the smallest object is smaller than the window), cached by size. Thread-safe."""
+        key = (tuple(image_size), enlarged)
+        with self._lock:
+            plans = self._plans.get(key)
+        if plans is None:
             lo, hi = self.object_scale_range()
-            start = max(lo, 1.0)
-            scales = scales_for(image_size, self.window, self.settings.scale_step, start, hi)
-            self._plans[key] = [scale_plan(self.model.features, self.window, s, image_size[0] + 1,
-                                           self.normalize) for s in scales]
-            if len(self._plans) > 16:
-                self._plans.pop(next(iter(self._plans)))
-        return self._plans[key]
+            start = max(lo * enlarged, 1.0)
+            top = None if hi is None else hi * enlarged
+            scales = scales_for(image_size, self.window, self.settings.scale_step, start, top)
+            plans = [scale_plan(self.model.features, self.window, s, image_size[0] + 1,
+                                self.normalize) for s in scales]
+            with self._lock:
+                self._plans[key] = plans
+                while len(self._plans) > 16:
+                    self._plans.pop(next(iter(self._plans)))
+        return plans
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
         """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
@@ -273,7 +281,7 @@ class Engine:
         sq = squared_integral_image(gray).ravel()
         boxes, raws = [], []
         windows = trees = 0
-        for plan in self.plans((iw, ih)):
+        for plan in self.plans((iw, ih), up):
             Ws, Hs = plan.window
             step = max(1, int(_round(self.settings.stride * plan.scale)))
             xs = np.arange(0, iw - Ws + 1, step, dtype=np.int64)

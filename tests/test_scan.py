@@ -227,10 +227,6 @@ def test_small_objects_enlarge_the_image(bagged):
     assert np.sum(boxes[:, 2] == 12.0) == 149 * 149
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "detector/scan.py Engine.plans: when --min-object is below the window's object size the frame "
-    "is enlarged by 1 / lo, but the largest scale (max_object / 20 here) is not multiplied by it, "
-    "so objects of 20..40 px are never looked for (and min 10, max 12 scans nothing at all)"))
 def test_max_object_applies_when_the_image_is_enlarged(bagged):
     gray = frame(4)
     boxes, _, _, _ = every_window(bagged, min_object=10.0, max_object=40.0).candidates(gray)
