@@ -61,34 +61,36 @@ def calibration_count(n_objects: int) -> int:
     return int(n_cal)
 
 
-def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1) -> np.ndarray:
-    """Every patch as a scan may see it: shifted by ``-shift, 0, +shift`` pixels along x and y and
-    scaled by ``1/scale, 1, scale`` (27 copies each, the patch itself first; pixels outside the
-    patch repeat its border).
+def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: int = 8,
+                      random_state=None) -> np.ndarray:
+    """Every patch as the scan's nearest window may see it: the patch itself, then ``copies``
+    copies shifted by up to ``shift`` pixels along x and y and scaled by up to ``scale`` either way
+    (uniform shifts, log-uniform scales: where an object falls between the scan's grid points and
+    scales). Pixels outside the patch repeat its border. Returns ``(N * (copies + 1), h, w)``,
+    the copies of each patch together, the patch first.
 
     Examples
     --------
     >>> p = np.arange(16, dtype=np.uint8).reshape(1, 4, 4)
-    >>> c = misaligned_copies(p, 1.0, 1.0)
+    >>> c = misaligned_copies(p, 1.0, 1.0, copies=3, random_state=0)
     >>> c.shape, bool((c[0] == p[0]).all())
-    ((27, 4, 4), True)
-    >>> c[1].tolist()[0]                            # shifted 1 pixel left (x - 1): border repeats
-    [0, 0, 1, 2]
+    ((4, 4, 4), True)
     """
     from detector.harvest import crop_region
 
     patches = np.asarray(patches, dtype=np.uint8)
     n, h, w = patches.shape
-    steps = [(dx, dy, k) for k in (1.0, scale, 1.0 / scale)
-             for dy in (0.0, -shift, shift) for dx in (0.0, -shift, shift)]  # the patch itself first
-    out = np.empty((n, len(steps), h, w), np.uint8)
+    rng = np.random.default_rng(random_state)
+    out = np.empty((n, copies + 1, h, w), np.uint8)
+    out[:, 0] = patches
     for i in range(n):
-        for j, (dx, dy, k) in enumerate(steps):
-            if j == 0:
-                out[i, j] = patches[i]
-            else:
-                out[i, j] = crop_region(patches[i], (w / 2 + dx, h / 2 + dy), (w * k, h * k), (w, h))
-    return out.reshape(n * len(steps), h, w)
+        dx = rng.uniform(-shift, shift, copies)
+        dy = rng.uniform(-shift, shift, copies)
+        k = np.exp(rng.uniform(-np.log(scale), np.log(scale), copies))
+        for j in range(copies):
+            out[i, j + 1] = crop_region(patches[i], (w / 2 + dx[j], h / 2 + dy[j]),
+                                        (w * k[j], h * k[j]), (w, h))
+    return out.reshape(n * (copies + 1), h, w)
 
 
 def check_patches(patches, window=None) -> np.ndarray:
@@ -139,12 +141,12 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
     exit_recall : float in (0, 1], default=0.995
         Fraction of held-out object patches that must pass every early exit.
     exit_shift : float >= 0, default=1.0
-        The early exit is calibrated on every held-out object patch seen also shifted by this many
-        pixels (at the window's size) along x and y, ...
+        The early exit is calibrated on every held-out object patch and on 8 copies of it shifted
+        by up to this many pixels (at the window's size) along x and y, ...
     exit_scale : float >= 1, default=1.1
-        ... and scaled by this factor up and down: the worst alignment of the best window a scan
-        finds for an object, at the scan's default stride (2, so at most 1 pixel off) and scale
-        step (1.2, so at most its square root, about 1.1, off).
+        ... and scaled by up to this factor up or down: how far the scan's nearest window can be
+        from an object at the scan's default stride (2, so at most 1 pixel off) and scale step
+        (1.2, so at most its square root, about 1.1, off).
     max_bins : int in 2..256 or None, default=256
         Grow on quantile-bin indices of every pool feature (at most ``max_bins`` distinct values per
         feature; see :mod:`detector.forest`, "Binned growing"), then map the thresholds back to
@@ -269,7 +271,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             raise InputError("training needs both object (1) and background (0) patches")
         height, width = patches.shape[1:]
 
-        pool_ss, split_ss, forest_ss, bin_ss = seed_sequence(self.random_state).spawn(4)
+        pool_ss, split_ss, forest_ss, bin_ss, exit_ss = seed_sequence(self.random_state).spawn(5)
         pool_size = min(int(self.pool), _features.count_features(width, height))
         pool = _features.random_pool(width, height, pool_size,
                                      random_state=int(pool_ss.generate_state(1)[0]))
@@ -311,7 +313,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         bg_running = model.running_scores(grow_patches[grow_y == 0])
         if len(held):
             calibration = misaligned_copies(patches[held], float(self.exit_shift),
-                                            float(self.exit_scale))
+                                            float(self.exit_scale), random_state=exit_ss)
             running = model.running_scores(calibration)
             # reorder the trees so that background drops out early (same final scores)
             step = max(1, int(np.ceil(len(bg_running) / MAX_ORDERING_BACKGROUND)))

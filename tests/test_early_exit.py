@@ -49,18 +49,22 @@ def test_hand_worked_order():
     assert order_for_early_exit(obj, bg, exit_recall=1.0).tolist() == [1, 2, 0]
 
 
-def test_misaligned_copies_shift_equals_edge_padded_slice():
+def test_misaligned_copies_follow_crop_region():
+    from detector.harvest import crop_region
+
     rng = np.random.default_rng(3)
     p = rng.integers(0, 256, (2, 10, 12), dtype=np.uint8)
-    copies = misaligned_copies(p, shift=1.0, scale=1.1).reshape(2, 27, 10, 12)
-    # copy order: scale 1 first, dy in (0, -1, +1), dx in (0, -1, +1)
-    padded = np.pad(p, ((0, 0), (1, 1), (1, 1)), mode="edge")  # reference: numpy edge padding
-    for k, (dy, dx) in enumerate([(dy, dx) for dy in (0, -1, 1) for dx in (0, -1, 1)]):
-        want = padded[:, 1 + dy:11 + dy, 1 + dx:13 + dx]
-        np.testing.assert_array_equal(copies[:, k], want)
-    # scaled copies differ from the patch but keep its mean roughly (area sampling)
-    assert not np.array_equal(copies[:, 9], p)
-    assert abs(copies[:, 9].mean() - p.mean()) < 10
+    copies = misaligned_copies(p, shift=1.0, scale=1.0, copies=5, random_state=7).reshape(2, 6, 10, 12)
+    np.testing.assert_array_equal(copies[:, 0], p)  # the patch itself first
+    # scale 1 and a whole-pixel shift reduce to an edge-padded slice (reference: numpy edge padding)
+    padded = np.pad(p[0], 1, mode="edge")
+    np.testing.assert_array_equal(crop_region(p[0], (6.0 + 1, 5.0 - 1), (12, 10), (12, 10)),
+                                  padded[0:10, 2:14])
+    # every copy is some shift of at most 1 pixel: its mean stays within the border's reach
+    assert np.all(np.abs(copies.reshape(12, -1).mean(axis=1) - np.repeat(p.reshape(2, -1).mean(axis=1), 6)) < 30)
+    # seeded: the same copies again
+    np.testing.assert_array_equal(misaligned_copies(p, 1.0, 1.1, 5, random_state=7),
+                                  misaligned_copies(p, 1.0, 1.1, 5, random_state=7))
 
 
 def test_fitted_exit_keeps_every_kept_calibration_copy():
@@ -72,8 +76,11 @@ def test_fitted_exit_keeps_every_kept_calibration_copy():
     y = np.r_[np.ones(60), np.zeros(120)]
     clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
     m = clf.model_
-    cal = misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1)
+    from detector.forest import seed_sequence
+
+    exit_ss = seed_sequence(0).spawn(5)[4]
+    cal = misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
     run = m.running_scores(cal)
     # exit_recall 1.0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
-    assert m.metadata["calibration"]["copies_per_object"] == 27
+    assert m.metadata["calibration"]["copies_per_object"] == 9
