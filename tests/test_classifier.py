@@ -79,9 +79,14 @@ def test_early_exit_keeps_the_calibration_objects():
     clf = PatchClassifier(n_trees=30, pool=300, exit_recall=0.98, random_state=0).fit(patches, y)
     held = clf.calibration_indices_
     assert len(held) == calibration_count(300) == 30 and (y[held] == 1).all()
-    running = clf.model_.running_scores(patches[held])
+    # the calibration set: every held-out object and 8 misaligned copies of it (seeded stream 5)
+    from detector.classifier import misaligned_copies
+    from detector.forest import seed_sequence
+
+    copies = misaligned_copies(patches[held], 1.0, 1.1, random_state=seed_sequence(0).spawn(5)[4])
+    running = clf.model_.running_scores(copies)
     dropped = (running < clf.model_.exit_thresholds.astype(np.float64)).any(axis=1)
-    assert dropped.sum() <= np.floor(0.02 * 30)  # floor((1 - 0.98) * 30) = 0 may be dropped
+    assert dropped.sum() <= np.floor(0.02 * 270)  # floor((1 - 0.98) * 30 * 9) = 5 may be dropped
     cal = clf.model_.metadata["calibration"]
     assert cal["objects"] == 30
     assert cal["mean_trees_objects"] == pytest.approx(trees_evaluated(running, clf.model_.exit_thresholds).mean())
