@@ -27,6 +27,7 @@ from detector.forest import (
     calibrate_exit,
     order_for_early_exit,
     final_score,
+    fit_temperature,
     grow_forest,
     quantile_cuts,
     seed_sequence,
@@ -330,6 +331,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         else:
             mean_objects = None
         mean_background = float(trees_evaluated(bg_running, model.exit_thresholds).mean())
+        temperature = 1.0
+        if self.mode == "boosted" and len(held):
+            temperature = fit_temperature(running[:, -1], bg_running[:, -1])
 
         model.metadata = {
             "kind": "model",
@@ -351,6 +355,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
                 "mean_trees_background": mean_background,
                 "background_source": "training background patches",
             },
+            "score_temperature": temperature,
             "date": training_date(),
             "versions": library_versions(),
         }
@@ -389,7 +394,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         """Scores as ``[[1 - s, s], ...]`` for classes ``[0, 1]``; ``s`` is the forest's score in 0..1
         (no early exit)."""
         raw = self._raw(patches)
-        s = final_score(self.model_.mode, raw, self.model_.n_trees)
+        s = final_score(self.model_.mode, raw, self.model_.n_trees, self.model_.temperature)
         return np.column_stack([1.0 - s, s])
 
     def predict(self, patches) -> np.ndarray:

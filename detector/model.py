@@ -214,7 +214,13 @@ class Model:
 
     def score(self, patches) -> np.ndarray:
         """Scores in 0..1 of patches (N, h, w), without early exit: float64 (N,)."""
-        return final_score(self.mode, self.running_scores(patches)[:, -1], self.n_trees)
+        return final_score(self.mode, self.running_scores(patches)[:, -1], self.n_trees,
+                           self.temperature)
+
+    @property
+    def temperature(self) -> float:
+        """Temperature of the boosted score (1.0 when the file has none)."""
+        return float(self.metadata.get("score_temperature", 1.0))
 
     def summary(self) -> list[str]:
         """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.

@@ -192,16 +192,15 @@ def raw_cutoff(model, threshold: float) -> float:
     T = model.leaf_values.shape[0]
     if model.mode == "boosted":
         t = min(max(threshold, 1e-12), 1 - 1e-12)
-        return 0.5 * math.log(t / (1 - t))
+        return 0.5 * model.temperature * math.log(t / (1 - t))
     return threshold * T
 
 
 def final_scores(model, raw):
     """Running score after the last tree -> score in 0..1."""
-    raw = np.asarray(raw, dtype=np.float64)
-    if model.mode == "boosted":
-        return 1.0 / (1.0 + np.exp(-2.0 * raw))
-    return raw / model.leaf_values.shape[0]
+    from detector.forest import final_score
+
+    return final_score(model.mode, raw, model.leaf_values.shape[0], model.temperature)
 
 
 def _remaining_bound(leaf_values):
