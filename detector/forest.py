@@ -377,6 +377,10 @@ def forest_running_scores(flat, X) -> np.ndarray:
     return np.cumsum(vals, axis=1, dtype=np.float64)
 
 
+#: Smallest boosting weight, relative to the mean weight 1.
+BOOST_WEIGHT_FLOOR = 1e-10
+
+
 def final_score(mode: str, total, n_trees: int, temperature: float = 1.0) -> np.ndarray:
     """Running score after the last tree -> score in 0..1 (float64).
 
@@ -1010,6 +1014,10 @@ def grow_forest(
             f_t = leaf_values[t][one_tree_leaves(t)].astype(np.float64)
             weights = weights * np.exp(-signed * f_t)
             weights /= weights.mean()
+            # keep every weight above a floor: after hundreds of stages the easy patches' weights
+            # would underflow to 0, and a leaf holding only such patches has no defined value
+            # (weight trimming; Friedman, Hastie and Tibshirani 2000, section 9)
+            np.maximum(weights, BOOST_WEIGHT_FLOOR, out=weights)
             if progress is not None:
                 progress(t + 1, n_trees)
 
