@@ -27,6 +27,8 @@ test: $(VENV)/.installed-test
 
 bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/features.py
+	$(BIN)/python benchmarks/train.py
+	$(BIN)/python benchmarks/scan.py
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .pytest_cache

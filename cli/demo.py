@@ -57,8 +57,9 @@ def demo(
     echo("[2/5] harvesting patches from the training frames")
     train_labels = read_labels(train_dir / "labels.csv", images_dir=train_dir / "images")
     with progress_bar("      harvesting", len(train_labels), "images") as update:
-        bank = harvest(train_dir / "images", train_labels.items, seed=seed,
-                       labels_path=train_dir / "labels.csv", progress=update)
+        # hex nuts look the same every 60 degrees: copies turned by up to 30 degrees cover them
+        bank = harvest(train_dir / "images", train_labels.items, seed=seed, rotate=30.0, copies=8,
+                       jitter=0.08, labels_path=train_dir / "labels.csv", progress=update)
     bank_path = out / "bank.npz"
     save_bank(bank_path, bank)
     c = bank.counts()
