@@ -26,7 +26,7 @@ DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detectio
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
-    trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
+    trees: int = typer.Option(300, "--trees", min=1, max=2000, help="Trees in the forest."),
     mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
     pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
     mine_rounds: int = typer.Option(1, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images."),
@@ -59,7 +59,7 @@ def demo(
     with progress_bar("      harvesting", len(train_labels), "images") as update:
         # hex nuts look the same every 60 degrees: copies turned by up to 30 degrees cover them
         bank = harvest(train_dir / "images", train_labels.items, seed=seed, rotate=30.0, copies=8,
-                       jitter=0.08, labels_path=train_dir / "labels.csv", progress=update)
+                       jitter=0.08, negatives_per_image=100, labels_path=train_dir / "labels.csv", progress=update)
     bank_path = out / "bank.npz"
     save_bank(bank_path, bank)
     c = bank.counts()
