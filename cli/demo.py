@@ -26,7 +26,7 @@ DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detectio
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
-    trees: int = typer.Option(300, "--trees", min=1, max=2000, help="Trees in the forest."),
+    trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
     mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
     pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
     mine_rounds: int = typer.Option(1, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images."),
