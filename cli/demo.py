@@ -26,6 +26,7 @@ DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detectio
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
+    images: int = typer.Option(200, "--images", min=4, max=5000, help="Frames to render, split 80/20 into training and test frames."),
     trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
     mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
     pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
@@ -48,7 +49,10 @@ def demo(
     train_dir, test_dir = scenario / "train", scenario / "test"
 
     echo(f"[1/5] rendering the demo scenario into {human_path(scenario)}")
-    summary = render_scenario(scenario, seed=seed, force=force)
+    from synthetic_images import split_counts
+
+    train_n, test_n = split_counts(images)
+    summary = render_scenario(scenario, train_n, test_n, seed=seed, force=force)
     for split in ("train", "test"):
         s = summary[split]
         echo(f"      {split:5s} {s['frames']} frames ({s['frames_without_nuts']} without nuts), "
@@ -82,9 +86,9 @@ def demo(
         report=report)
     model_path = out / "model.npz"
     save_model(model_path, model)
-    cal = model.metadata.get("calibration", {})
-    echo(f"      {model.features.shape[0]} features used; mean trees per background patch "
-         f"{cal.get('mean_trees_background', float('nan')):.1f} -> {human_path(model_path)}")
+    for line in model.summary():
+        echo(f"      {line}")
+    echo(f"      -> {human_path(model_path)}")
 
     echo("[4/5] scanning the test frames")
     detections = out / "detections.csv"
