@@ -51,22 +51,7 @@ from detector.features import (  # noqa: E402
     random_pool,
 )
 
-# our shape -> skimage feature type; rectangle order and weights match (see tests/test_features.py)
-_SKIMAGE_TYPE = {(2, True): "type-2-x", (2, False): "type-2-y", (3, True): "type-3-x",
-                 (3, False): "type-3-y", (4, True): "type-4", (4, False): "type-4"}
-
-
-def skimage_coordinates(features):
-    """Our (F, 4, 5) features as skimage's ``feature_coord`` and ``feature_type`` arrays."""
-    coords = np.empty(len(features), dtype=object)
-    types = np.empty(len(features), dtype=object)
-    for i, feature in enumerate(features):
-        used = feature[feature[:, 4] != 0]
-        coords[i] = [[(int(y), int(x)), (int(y + h - 1), int(x + w - 1))]
-                     for x, y, w, h, _ in used]
-        side_by_side = len(used) > 1 and used[1, 1] == used[0, 1]
-        types[i] = _SKIMAGE_TYPE[(len(used), bool(side_by_side))]
-    return coords, types
+from detector.features import skimage_coordinates  # noqa: E402
 
 
 def timed(call, repeats):

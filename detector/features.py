@@ -597,3 +597,31 @@ def evaluate_features_numpy(features, patches=None, *, integrals=None, squared=N
     out = _check_out(out, result.shape)
     out[...] = result
     return out
+
+
+# our shape -> skimage feature type; skimage lists the rectangles in our order with our weights
+# (left/top -1, right/bottom +1; middle +1; four: -TL +TR -BR +BL; see tests/test_features.py)
+_SKIMAGE_TYPE = {(2, True): "type-2-x", (2, False): "type-2-y", (3, True): "type-3-x",
+                 (3, False): "type-3-y", (4, True): "type-4", (4, False): "type-4"}
+
+
+def skimage_coordinates(features):
+    """Our ``(F, 4, 5)`` features as ``skimage.feature.haar_like_feature``'s ``feature_coord`` and
+    ``feature_type`` arrays (object arrays, as skimage takes them), for reference checks.
+
+    Examples
+    --------
+    >>> coords, types = skimage_coordinates(enumerate_features(2, 1, ["two-side-by-side"]))
+    >>> coords[0], types[0]
+    ([[(0, 0), (0, 0)], [(0, 1), (0, 1)]], 'type-2-x')
+    """
+    features = np.asarray(features)
+    coords = np.empty(len(features), dtype=object)
+    types = np.empty(len(features), dtype=object)
+    for i, feature in enumerate(features):
+        used = feature[feature[:, 4] != 0]
+        coords[i] = [[(int(y), int(x)), (int(y + h - 1), int(x + w - 1))]
+                     for x, y, w, h, _ in used]
+        side_by_side = len(used) > 1 and used[1, 1] == used[0, 1]
+        types[i] = _SKIMAGE_TYPE[(len(used), bool(side_by_side))]
+    return coords, types
