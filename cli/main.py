@@ -1,6 +1,7 @@
 """The `patchwood` command: thin Typer commands that parse, call the library and print.
 
-Each command lives in its own module under ``cli/`` and is registered here. Library errors of
+Each command lives in its own module under ``cli/`` and is listed in ``COMMANDS``; its module is
+imported only when the command is used. Library errors of
 type :class:`detector.errors.InputError` become one line on stderr and exit status 1; usage errors
 (bad options) are Typer's, exit status 2.
 """
@@ -13,8 +14,52 @@ import typer
 
 from detector.errors import InputError
 
+#: Every command: (module under cli/, function, one-line summary for `patchwood --help`). The
+#: module is imported only when its command runs or shows its own help, so `patchwood --help`
+#: stays quick (the library pulls in scikit-learn, numba and scipy).
+COMMANDS = {
+    "synth": ("synth", "synth", "Render the demo scenario: hex nuts on a conveyor belt, split into train/ and test/."),
+    "harvest": ("harvest", "harvest", "Cut object patches (with augmented copies) and background patches into a patch bank."),
+    "train": ("train", "train", "Grow a forest of shallow trees on a patch bank; optional mining rounds."),
+    "scan": ("scan", "scan", "Find objects in image files and folders with a model: multi-scale, early exit, NMS."),
+    "score": ("score", "score", "Score detections against labels: PR curve, AP, miss rate, an HTML report."),
+    "tune": ("tune", "tune", "Search the training settings by cross-validation, scored by held-out detection AP."),
+    "audit": ("audit", "audit", "List labels the forest finds suspicious: likely mislabelled or missing boxes."),
+    "inspect": ("inspect_model", "inspect", "Summarise a model and draw where its features look."),
+    "demo": ("demo", "demo", "Run the whole workflow on the demo scenario, ending in a report."),
+}
+
+
+class LazyCommands(typer.core.TyperGroup):
+    """A command group that imports a command's module only when that command is used."""
+
+    def list_commands(self, ctx):
+        return list(COMMANDS) + [n for n in super().list_commands(ctx) if n not in COMMANDS]
+
+    def get_command(self, ctx, name):
+        if name in self.commands or name not in COMMANDS:
+            return super().get_command(ctx, name)
+        import importlib
+
+        module, function = COMMANDS[name][:2]
+        single = typer.Typer(add_completion=False, pretty_exceptions_enable=False,
+                             rich_markup_mode=None)
+        single.command(name)(getattr(importlib.import_module(f"cli.{module}"), function))
+        command = typer.main.get_command(single)
+        self.commands[name] = command
+        return command
+
+    def format_commands(self, ctx, formatter):
+        rows = [(name, COMMANDS[name][2]) for name in COMMANDS]
+        rows += [(name, self.commands[name].get_short_help_str(70))
+                 for name in self.list_commands(ctx) if name not in COMMANDS]
+        with formatter.section("Commands"):
+            formatter.write_dl(rows)
+
+
 app = typer.Typer(
     name="patchwood",
+    cls=LazyCommands,
     help=(
         "Train fast single-class object detectors on the CPU, scan folders of images with them, "
         "and score what they find. Start with `patchwood demo`."
@@ -26,21 +71,10 @@ app = typer.Typer(
 )
 
 
-def _register() -> None:
-    from cli import audit, demo, harvest, inspect_model, scan, score, synth, train, tune
-
-    app.command("synth")(synth.synth)
-    app.command("harvest")(harvest.harvest)
-    app.command("train")(train.train)
-    app.command("scan")(scan.scan)
-    app.command("score")(score.score)
-    app.command("tune")(tune.tune)
-    app.command("audit")(audit.audit)
-    app.command("inspect")(inspect_model.inspect)
-    app.command("demo")(demo.demo)
-
-
-_register()
+@app.callback()
+def _group() -> None:
+    """Train fast single-class object detectors on the CPU, scan folders of images with them, and
+    score what they find. Start with `patchwood demo`."""
 
 
 # Typer ships its own copy of click; reach its exception classes through Typer's public names.
