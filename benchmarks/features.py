@@ -52,6 +52,7 @@ from detector.features import (  # noqa: E402
 )
 
 from detector.features import skimage_coordinates  # noqa: E402
+from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
 
 def timed(call, repeats):
@@ -63,23 +64,6 @@ def timed(call, repeats):
         seconds.append(time.perf_counter() - start)
         cpu.append(time.process_time() - start_cpu)
     return statistics.median(seconds), min(seconds), max(seconds), statistics.median(cpu)
-
-
-def cpu_name():
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
-
-
-def load():
-    try:
-        return " ".join(f"{v:.2f}" for v in os.getloadavg())
-    except OSError:
-        return "unknown"
 
 
 def main(argv=None):

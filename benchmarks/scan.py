@@ -67,6 +67,7 @@ FRAME_MS_GOAL = 15.0
 RATIO_GOAL = 1000.0
 
 from detector.features import skimage_coordinates  # noqa: E402
+from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
 
 def reference_scores(model, gray, positions):
@@ -109,23 +110,6 @@ def timed(call, repeats, cpu=None):
     if cpu is not None:
         cpu.append(statistics.median(cpu_seconds))
     return statistics.median(seconds), min(seconds), max(seconds), result
-
-
-def cpu_name():
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
-
-
-def load():
-    try:
-        return " ".join(f"{v:.2f}" for v in os.getloadavg())
-    except OSError:
-        return "unknown"
 
 
 def default_model(work: Path, seed: int):
