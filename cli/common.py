@@ -96,6 +96,15 @@ def progress_bar(description: str, total: int | None = None, unit: str = "items"
             console.print(f"{description}: {done}{of} {unit} in {seconds:.1f} s ({rate:.1f} {unit}/s)")
 
 
+def count(n: int, noun: str, plural: str | None = None) -> str:
+    """``"1 image"``, ``"3 images"``: a number with its noun in the right form.
+
+    >>> count(1, "box", "boxes"), count(0, "box", "boxes"), count(2, "image")
+    ('1 box', '0 boxes', '2 images')
+    """
+    return f"{n} {noun if n == 1 else (plural or noun + 's')}"
+
+
 def echo(text: str = "") -> None:
     """Print a line of results to stdout."""
     typer.echo(text)

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, echo, human_path, parse_window_option, progress_bar
+from cli.common import check_output_file, count, echo, human_path, parse_window_option, progress_bar
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.labels import read_labels
 
@@ -37,8 +37,10 @@ def harvest(
     check_output_file(out, force, "patch bank")
     lf = read_labels(labels, images_dir=images_dir, label=label)
     n_boxes = sum(len(it.boxes) for it in lf)
-    echo(f"labels: {len(lf)} images, {n_boxes} boxes from {human_path(labels)}"
-         + (f" ({lf.clipped} clipped to their image, {lf.duplicates} duplicate rows dropped)" if lf.warnings else ""))
+    echo(f"labels: {count(len(lf), 'image')}, {count(n_boxes, 'box', 'boxes')} from "
+         f"{human_path(labels)}"
+         + (f" ({count(lf.clipped, 'box', 'boxes')} clipped to their image, "
+            f"{count(lf.duplicates, 'duplicate row')} dropped)" if lf.warnings else ""))
     with progress_bar("harvesting", len(lf), "images") as update:
         bank = harvest_bank(images_dir, lf.items, window=size, margin=margin, copies=copies,
                             jitter=jitter, mirror=mirror, rotate=rotate, brightness=brightness,
@@ -56,7 +58,8 @@ def harvest(
         echo("note: no background patches were cut; training needs some (raise "
              "--negatives-per-image or --near-negatives)")
     if bank.metadata.get("images_too_small"):
-        echo(f"note: {bank.metadata['images_too_small']} images are smaller than the window; "
-             "they gave no background patches")
+        small = bank.metadata["images_too_small"]
+        echo(f"note: {count(small, 'image is', 'images are')} smaller than the window; "
+             f"{'it gave' if small == 1 else 'they gave'} no background patches")
     save_bank(out, bank)
     echo(f"wrote {human_path(out)}")

@@ -32,7 +32,12 @@ def scan(
     force: bool = typer.Option(False, "--force", help="Replace an existing --out."),
 ) -> None:
     """Find objects in images: a multi-scale sliding-window scan with early exit and non-maximum
-    suppression. Files that cannot be read are listed at the end and the run goes on."""
+    suppression. Files that cannot be read (damaged, not an image, above the size limit set by
+    PATCHWOOD_MAX_MEGAPIXELS, default 100) are counted, listed at the end and in
+    DETECTIONS.failures.csv, and the run goes on.
+
+    Exit status: 0 when the run finished, even with some files listed as failures; 1 when no
+    image could be read, or for bad input (model, paths, --out); 2 for a usage error."""
     if format not in ("csv", "coco"):
         raise typer.BadParameter(f"--format must be csv or coco, got {format!r}")
     if min_object and max_object and min_object > max_object:

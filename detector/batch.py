@@ -20,7 +20,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.images import list_images, read_gray
+from detector.images import header_size, list_images, max_pixels_limit, read_gray
 from detector.labels import (ImageDetections, read_detections, write_detections_coco,
                              write_detections_csv)
 from detector.model import Model, load_model
@@ -314,11 +314,21 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     Returns
     -------
     RunSummary
+        Files that could not be read are in ``failures`` (image, reason) and in the side file
+        :func:`failures_path`; they do not stop the run.
+
+    Raises
+    ------
+    InputError
+        Before any image is scanned: a bad model file, an existing ``out`` without ``force`` or
+        ``resume``, a missing input path, no image files among the inputs, two inputs with the
+        same image name, a drawing folder among the inputs, or a bad ``PATCHWOOD_MAX_MEGAPIXELS``.
     """
     settings = settings or ScanSettings()
     out = Path(out)
     if fmt not in ("csv", "coco"):
         raise InputError(f"unknown output format {fmt!r} (csv or coco)")
+    limit = max_pixels_limit()  # a bad PATCHWOOD_MAX_MEGAPIXELS stops the run, not every image
     model = load_model(model_path)
     if out.is_dir():
         raise InputError("output must be a file, but this is a folder", path=out)
@@ -333,6 +343,11 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         if not Path(p).exists():
             raise InputError("no such file or folder", path=p)
     listed, skipped = list_images(paths)
+    if not listed and not (resume and out.exists()):
+        others = f"; {skipped} other file{'s' if skipped != 1 else ''} skipped" if skipped else ""
+        where = paths[0] if len(paths) == 1 else None
+        raise InputError("no image files to scan (png, jpg, jpeg, bmp, tif, tiff)" + others,
+                         path=where)
     _check_unique_names(listed)
     summary = RunSummary(skipped_files=skipped, out=str(out))
     done: list[ImageResult] = []
@@ -392,7 +407,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     settings_dict = dict(settings.__dict__)
     try:
         if cluster:
-            _run_on_cluster(model_path, settings_dict, todo, cluster, handle)
+            _run_on_cluster(model_path, settings_dict, todo, cluster, handle, limit)
         elif jobs > 1 and len(todo) > 1:
             import multiprocessing as mp
 
@@ -430,8 +445,27 @@ def _read_failure(path, err: OSError) -> str:
     return f"cannot read image: {err.strerror or err}"
 
 
-def _run_on_cluster(model_path, settings: dict, todo, address: str, handle):
-    """Send every image (as bytes) to a Dask distributed cluster; results come back in order."""
+def _too_large(path, limit: int) -> str | None:
+    """The reason :func:`detector.images.read_gray` gives for an image above ``limit`` pixels
+    (known from its header), or None: such an image is refused here and never sent to a worker."""
+    try:
+        size = header_size(path)
+    except InputError:
+        return None  # the worker reports what is wrong with it
+    if size is None or size[0] * size[1] <= limit:
+        return None
+    try:
+        read_gray(path)  # refuses from the header, in the words a local run uses
+    except InputError as e:
+        return e.message
+    return None
+
+
+def _run_on_cluster(model_path, settings: dict, todo, address: str, handle, limit: int):
+    """Send every image (as bytes) to a Dask distributed cluster; results come back in order.
+
+    Images above the size limit of this machine (``limit`` pixels) are refused here, in the
+    same words as a local run, before their bytes travel."""
     try:
         from distributed import Client
     except ImportError:  # pragma: no cover - dask[distributed] is a dependency
@@ -451,6 +485,10 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle):
             try:
                 p, name = next(it)
             except StopIteration:
+                return
+            reason = _too_large(p, limit)
+            if reason is not None:
+                futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=reason))
                 return
             try:
                 data = Path(p).read_bytes()

@@ -519,6 +519,9 @@ def load_bank(path) -> PatchBank:
     if (isinstance(margin, bool) or not isinstance(margin, (int, float))
             or not math.isfinite(margin) or margin < 0):
         raise InputError(f"metadata margin must be a number >= 0, got {margin!r}", path=path)
+    if min(W, H) / (1.0 + 2.0 * margin) < 1.0:
+        raise InputError(f"metadata margin {margin:g} leaves less than one pixel of the object in "
+                         f"the {W}x{H} window", path=path)
     return PatchBank(
         window=(W, H),
         patches=p,

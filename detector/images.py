@@ -7,13 +7,17 @@ and stop.
 Decoding is done by OpenCV (``cv2.imdecode``) on the file's bytes, which works for any path the
 operating system accepts (spaces, non-ASCII characters) because Python opens the file, not OpenCV.
 The flags ``IMREAD_ANYDEPTH | IMREAD_ANYCOLOR`` keep 16-bit samples, drop an alpha channel, expand
-palettes, and apply the EXIF orientation tag (JPEG APP1 or PNG ``eXIf``), so the array is the
-picture the way a viewer shows it, and label boxes refer to that picture.
+palettes, and apply the orientation tag (JPEG APP1 or PNG ``eXIf`` EXIF, TIFF tag 274), so the
+array is the picture the way a viewer shows it, and label boxes refer to that picture.
+
+Images above a size limit (100 megapixels, or ``PATCHWOOD_MAX_MEGAPIXELS``) are refused from their
+header, before any pixel is decoded; a folder scan counts them among the files it could not read.
 """
 
 from __future__ import annotations
 
 import io
+import math
 import os
 import struct
 import threading
@@ -27,6 +31,8 @@ from detector.errors import InputError
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 DEFAULT_MAX_PIXELS = 100_000_000
+#: Environment variable that sets the default size limit of :func:`read_gray`, in megapixels.
+MAX_MEGAPIXELS_VARIABLE = "PATCHWOOD_MAX_MEGAPIXELS"
 
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 # JPEG start-of-frame markers that carry the frame size (ITU-T T.81, table B.1): all SOFn except
@@ -205,11 +211,47 @@ def _probe_bmp(fh) -> _Probe:
     return probe
 
 
+# TIFF 6.0 field types that hold an integer (BYTE, SHORT, LONG, SBYTE, SSHORT, SLONG): struct
+# code and size; the decoder (libtiff) accepts any of them for the fields read here
+_TIFF_INTEGER = {1: ("B", 1), 3: ("H", 2), 4: ("I", 4), 6: ("b", 1), 8: ("h", 2), 9: ("i", 4)}
+_TIFF_MAX_ENTRIES = 4096
+
+
+def _probe_tiff(fh, total: int) -> _Probe:
+    """Size (and orientation) of the first image of a classic TIFF file (TIFF 6.0, section 2:
+    ImageWidth 256, ImageLength 257, Orientation 274 in the first IFD); what ``cv2.imdecode``
+    decodes is that first image, turned by its orientation."""
+    probe = _Probe("tiff")
+    head = fh.read(8)
+    order = "<" if head[:2] == b"II" else ">"
+    try:
+        (ifd,) = struct.unpack(order + "I", head[4:8])
+        if not 8 <= ifd <= total - 2:
+            return probe
+        fh.seek(ifd)
+        (count,) = struct.unpack(order + "H", fh.read(2))
+        entries = fh.read(12 * min(count, _TIFF_MAX_ENTRIES))
+        fields = {}
+        for k in range(len(entries) // 12):
+            tag, kind, n = struct.unpack(order + "HHI", entries[12 * k:12 * k + 8])
+            if tag in (256, 257, 274) and kind in _TIFF_INTEGER and n == 1:
+                code, size = _TIFF_INTEGER[kind]
+                at = 12 * k + 8  # a value that fits in 4 bytes sits in the entry itself
+                (fields[tag],) = struct.unpack(order + code, entries[at:at + size])
+    except struct.error:
+        return probe
+    if fields.get(256, -1) >= 0 and fields.get(257, -1) >= 0:
+        orientation = fields.get(274, 1)
+        probe.width, probe.height = _oriented(fields[256], fields[257],
+                                              orientation if 1 <= orientation <= 8 else 1)
+    return probe
+
+
 def _probe(fh) -> _Probe:
     """Identify the format and read the displayed size from the header, without decoding pixels.
 
-    Sizes are known for PNG, JPEG and BMP (the EXIF orientation of PNG and JPEG is taken into
-    account); for other formats ``width`` and ``height`` stay None.
+    Sizes are known for PNG, JPEG, BMP and classic TIFF (the orientation tag of PNG, JPEG and TIFF
+    is taken into account); for other files ``width`` and ``height`` stay None.
     """
     start = fh.read(8)
     total = fh.seek(0, io.SEEK_END)
@@ -223,14 +265,50 @@ def _probe(fh) -> _Probe:
     if start.startswith(b"BM"):
         return _probe_bmp(fh)
     if start[:4] in (b"II*\x00", b"MM\x00*"):
-        return _Probe("tiff")
+        return _probe_tiff(fh, total)
     return _Probe("unknown")
 
 
-def _check_pixels(width: int, height: int, max_pixels: int | None, path) -> None:
+def max_pixels_limit() -> int:
+    """The largest image :func:`read_gray` reads by default, in pixels.
+
+    ``PATCHWOOD_MAX_MEGAPIXELS`` (a number of megapixels, decimals allowed) when set, else
+    ``DEFAULT_MAX_PIXELS`` (100 megapixels: a 10000 x 10000 frame, 100 MB as 8-bit gray).
+
+    Raises
+    ------
+    InputError
+        The variable is set to something other than a number > 0.
+
+    Examples
+    --------
+    >>> os.environ["PATCHWOOD_MAX_MEGAPIXELS"] = "2.5"; max_pixels_limit()
+    2500000
+    >>> del os.environ["PATCHWOOD_MAX_MEGAPIXELS"]; max_pixels_limit()
+    100000000
+    """
+    text = os.environ.get(MAX_MEGAPIXELS_VARIABLE, "").strip()
+    if not text:
+        return DEFAULT_MAX_PIXELS
+    try:
+        megapixels = float(text)
+    except ValueError:
+        megapixels = math.nan
+    if not (math.isfinite(megapixels) and megapixels > 0):
+        raise InputError(f"the environment variable {MAX_MEGAPIXELS_VARIABLE} must be a number of "
+                         f"megapixels > 0, got {text[:40]!r}")
+    return max(1, int(round(megapixels * 1e6)))
+
+
+def _check_pixels(width: int, height: int, max_pixels: int | None, from_environment: bool,
+                  path) -> None:
     if max_pixels is not None and width * height > max_pixels:
-        raise _fail(f"{width} x {height} pixels is more than the limit of {max_pixels:,} pixels",
-                    path)
+        hint = ""
+        if from_environment:
+            hint = (f" ({max_pixels / 1e6:g} megapixels; set {MAX_MEGAPIXELS_VARIABLE} to raise "
+                    "it)")
+        raise _fail(f"{width} x {height} pixels is more than the limit of {max_pixels:,} pixels"
+                    + hint, path)
 
 
 def _to_gray(img: np.ndarray) -> np.ndarray:
@@ -272,17 +350,33 @@ def _to_uint8(img: np.ndarray, depth_scaling: str) -> np.ndarray:
     return _stretch(img)
 
 
-def read_gray(path: str | os.PathLike, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
               depth_scaling: str = "shift") -> np.ndarray:
     """Read an image file as an 8-bit grayscale array, the way a viewer would show it.
+
+    The rules, so that label boxes, harvested patches and scans all refer to the same pixels:
+
+    - orientation: the EXIF orientation tag (JPEG APP1, PNG ``eXIf``, TIFF tag 274) is applied,
+      as ``cv2.imdecode`` does by default; a phone picture stored sideways with orientation 6
+      comes out upright, and :func:`image_size` reports that upright size, so boxes are drawn
+      (and checked) on the picture a viewer shows;
+    - colour: converted with ``cv2.cvtColor`` (ITU-R BT.601 luma weights 0.299 R + 0.587 G +
+      0.114 B); an alpha channel is dropped (the colour under it is kept, not blended); palette
+      images are expanded through their palette first;
+    - depth: 16-bit samples keep their high byte (``depth_scaling="shift"``, 65535 -> 255,
+      256 -> 1, 255 -> 0), floating-point samples map 0..1 to 0..255 (see ``depth_scaling``);
+    - size: images above ``max_pixels`` are refused before their pixels are decoded (PNG, JPEG,
+      BMP and TIFF headers are read first).
 
     Parameters
     ----------
     path : str or os.PathLike
-        A PNG, JPEG, BMP or TIFF file. Spaces and non-ASCII characters in the path are fine.
-    max_pixels : int or None, optional
-        Refuse images with more pixels than this (default 100 megapixels); None for no limit.
-        PNG, JPEG and BMP are checked from the header, before any pixel is decoded.
+        A PNG, JPEG, BMP or TIFF file. Spaces and non-ASCII characters in the path are fine:
+        Python opens the file and OpenCV decodes its bytes.
+    max_pixels : int, None or "auto", optional
+        Refuse images with more pixels than this; None for no limit. ``"auto"`` (default) takes
+        the limit from the environment variable ``PATCHWOOD_MAX_MEGAPIXELS`` (in megapixels),
+        or 100 megapixels when it is not set (see :func:`max_pixels_limit`).
     depth_scaling : {"shift", "range"}, optional
         How samples wider than 8 bits become 8 bits. ``"shift"`` (default) keeps the high byte of
         16-bit samples (``value >> 8``, what ``cv2.imread`` does by default) and maps floating-point
@@ -293,8 +387,6 @@ def read_gray(path: str | os.PathLike, max_pixels: int | None = DEFAULT_MAX_PIXE
     Returns
     -------
     ndarray of uint8, shape (H, W)
-        Color is converted with ``cv2.cvtColor`` (ITU-R BT.601 weights); alpha is dropped;
-        palettes are expanded; the EXIF orientation is applied.
 
     Raises
     ------
@@ -314,8 +406,20 @@ def read_gray(path: str | os.PathLike, max_pixels: int | None = DEFAULT_MAX_PIXE
     """
     if depth_scaling not in ("shift", "range"):
         raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
+    from_environment = isinstance(max_pixels, str)
+    if from_environment:
+        if max_pixels != "auto":
+            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
+        max_pixels = max_pixels_limit()
     try:
         with open(path, "rb") as fh:
+            probe = _probe(fh)  # the header only: a huge image is refused before it is read
+            if probe.width is not None:
+                if probe.width == 0 or probe.height == 0:
+                    raise _fail(f"the header gives a size of {probe.width} x {probe.height} "
+                                "pixels", path)
+                _check_pixels(probe.width, probe.height, max_pixels, from_environment, path)
+            fh.seek(0)
             data = fh.read()
     except OSError as err:
         raise _fail(_os_reason(err), path) from None
@@ -323,11 +427,6 @@ def read_gray(path: str | os.PathLike, max_pixels: int | None = DEFAULT_MAX_PIXE
         raise _fail("not enough memory to read it", path) from None
     if not data:
         raise _fail("the file is empty (0 bytes)", path)
-    probe = _probe(io.BytesIO(data))
-    if probe.width is not None:
-        if probe.width == 0 or probe.height == 0:
-            raise _fail(f"the header gives a size of {probe.width} x {probe.height} pixels", path)
-        _check_pixels(probe.width, probe.height, max_pixels, path)
     if probe.truncated:
         raise _fail("the PNG data ends early (truncated file)", path)
     if probe.kind == "jpeg" and data.rfind(b"\xff\xd9") < data.rfind(b"\xff\xda"):
@@ -350,15 +449,15 @@ def read_gray(path: str | os.PathLike, max_pixels: int | None = DEFAULT_MAX_PIXE
         raise _fail(reason, path)
     if img.size == 0:
         raise _fail("the image has no pixels", path)
-    _check_pixels(img.shape[1], img.shape[0], max_pixels, path)
+    _check_pixels(img.shape[1], img.shape[0], max_pixels, from_environment, path)
     return np.ascontiguousarray(_to_uint8(_to_gray(img), depth_scaling))
 
 
 def image_size(path: str | os.PathLike) -> tuple[int, int]:
     """Width and height of an image as :func:`read_gray` would return it, read cheaply.
 
-    PNG, JPEG and BMP sizes come from the file header (with the EXIF orientation applied, so a
-    JPEG turned by a quarter turn reports its displayed size); other formats are decoded.
+    PNG, JPEG, BMP and TIFF sizes come from the file header (with the orientation tag applied, so
+    a JPEG turned by a quarter turn reports its displayed size); other files are decoded.
 
     Parameters
     ----------
@@ -382,6 +481,42 @@ def image_size(path: str | os.PathLike) -> tuple[int, int]:
     >>> image_size(path)
     (64, 48)
     """
+    size = header_size(path)
+    if size is not None:
+        return size
+    img = read_gray(path, max_pixels=None)
+    return int(img.shape[1]), int(img.shape[0])
+
+
+def header_size(path: str | os.PathLike) -> tuple[int, int] | None:
+    """Width and height as :func:`read_gray` would return them, from the file header alone.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The image file.
+
+    Returns
+    -------
+    (width, height) : tuple of int, or None
+        None when the header does not tell (not a PNG, JPEG, BMP or classic TIFF file, a damaged
+        header, or a size of zero).
+
+    Raises
+    ------
+    InputError
+        ``"<path>: cannot read image: <reason>"`` when the file cannot be opened or read.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, cv2, numpy as np
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "frame.bmp"
+    >>> _ = cv2.imwrite(str(path), np.zeros((48, 64), np.uint8))
+    >>> header_size(path)
+    (64, 48)
+    >>> _ = path.write_text("not a picture"); header_size(path) is None
+    True
+    """
     try:
         with open(path, "rb") as fh:
             probe = _probe(fh)
@@ -389,8 +524,7 @@ def image_size(path: str | os.PathLike) -> tuple[int, int]:
         raise _fail(_os_reason(err), path) from None
     if probe.width is not None and probe.width > 0 and probe.height > 0:
         return int(probe.width), int(probe.height)
-    img = read_gray(path, max_pixels=None)
-    return int(img.shape[1]), int(img.shape[0])
+    return None
 
 
 def _is_image_name(name: str) -> bool:

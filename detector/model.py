@@ -344,7 +344,35 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
         raise InputError("model metadata is not valid JSON", path=path) from None
     if not isinstance(metadata, dict):
         raise InputError("model metadata is not a JSON object", path=path)
+    if mode == "bagged":
+        leaves = a["leaf_values"]
+        if leaves.min() < 0 or leaves.max() > 1:
+            raise InputError("bagged model leaf values must be object fractions in 0..1", path=path)
+    # the two metadata values the scan computes with (the rest is only reported)
+    margin = metadata.get("margin", 0.0)
+    if not _is_real(margin) or margin < 0:
+        raise InputError(f"model metadata 'margin' must be a number >= 0, got {_shown(margin)}",
+                         path=path)
+    if min(width, height) / (1.0 + 2.0 * margin) < 1.0:
+        raise InputError(f"model metadata 'margin' {margin:g} leaves less than one pixel of the "
+                         f"object in the {width}x{height} window", path=path)
+    temperature = metadata.get("score_temperature", 1.0)
+    if not _is_real(temperature) or temperature <= 0:
+        raise InputError("model metadata 'score_temperature' must be a number > 0, got "
+                         f"{_shown(temperature)}", path=path)
     return metadata
+
+
+def _is_real(value) -> bool:
+    """A finite JSON number (not a boolean)."""
+    return (isinstance(value, (int, float)) and not isinstance(value, bool)
+            and math.isfinite(value))
+
+
+def _shown(value) -> str:
+    """A metadata value, shortened for a one-line message."""
+    text = json.dumps(value)
+    return text if len(text) <= 40 else text[:37] + "..."
 
 
 def load_model(path: str | os.PathLike) -> Model:

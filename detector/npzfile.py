@@ -21,6 +21,7 @@ import io
 import os
 import struct
 import tempfile
+import warnings
 import zipfile
 import zlib
 from dataclasses import dataclass
@@ -158,12 +159,16 @@ def _read_header(buf: bytearray) -> tuple[tuple, bool, np.dtype, int]:
     """Parse the ``.npy`` header at the start of ``buf`` (no data is touched)."""
     head = io.BytesIO(bytes(buf[: 1 << 17]))
     version = np.lib.format.read_magic(head)
-    if version == (1, 0):
-        shape, fortran, dtype = np.lib.format.read_array_header_1_0(head)
-    elif version == (2, 0):
-        shape, fortran, dtype = np.lib.format.read_array_header_2_0(head)
-    else:
-        raise ValueError(f"unknown .npy version {version}")
+    # numpy parses the header with ast.literal_eval: damaged text can make Python warn (an invalid
+    # escape sequence, say) on stderr; the damage is reported as an InputError instead
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(head)
+        elif version == (2, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(head)
+        else:
+            raise ValueError(f"unknown .npy version {version}")
     return shape, fortran, dtype, head.tell()
 
 
@@ -243,6 +248,8 @@ def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarr
         raise InputError(f"is a folder, not a {kind} file", path=path)
     try:
         size = os.path.getsize(path)
+        if size == 0:
+            raise InputError(f"not a {kind} file: the file is empty (0 bytes)", path=path)
         if not zipfile.is_zipfile(path):
             raise InputError(f"not a {kind} file (not an .npz archive, or truncated)", path=path)
         out: dict[str, np.ndarray] = {}

@@ -1,8 +1,9 @@
 """Reading images: grayscale conversion, bit depths, EXIF orientation, bad files, finding files.
 
 References: OpenCV (cv2.imencode / cv2.imdecode / cv2.cvtColor) for pixels and sizes; the PNG
-specification (ISO/IEC 15948) for the hand-built PNG files; EXIF 2.3 (tag 0x0112) for the
-orientation table; ITU-R BT.601 luma weights (0.299, 0.587, 0.114) for hand-worked gray values.
+specification (ISO/IEC 15948) for the hand-built PNG files, TIFF 6.0 for the hand-built TIFF
+headers; EXIF 2.3 (tag 0x0112) and TIFF 6.0 (tag 274) for the orientation table; ITU-R BT.601
+luma weights (0.299, 0.587, 0.114) for hand-worked gray values.
 """
 
 from __future__ import annotations
@@ -17,7 +18,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.images import IMAGE_SUFFIXES, image_size, list_images, read_gray
+from detector.images import (IMAGE_SUFFIXES, header_size, image_size, list_images,
+                             max_pixels_limit, read_gray)
 
 
 def _write(path, img, ext=".png", params=()):
@@ -243,8 +245,62 @@ def test_size_cap(tmp_path):
     assert _message(path, max_pixels=959) == (f"{path}: cannot read image: 40 x 24 pixels is more "
                                               "than the limit of 959 pixels")
     assert read_gray(path, max_pixels=960).shape == (24, 40)
-    tif = _write(tmp_path / "big.tif", _scene(), ".tif")  # checked after decoding
+    tif = _write(tmp_path / "big.tif", _scene(), ".tif")  # from the TIFF header too
     assert "40 x 24 pixels is more than the limit" in _message(tif, max_pixels=100)
+
+
+def test_size_cap_from_the_environment(tmp_path, monkeypatch):
+    path = _write(tmp_path / "big.png", _scene())  # 40 x 24 = 960 pixels
+    monkeypatch.setenv("PATCHWOOD_MAX_MEGAPIXELS", "0.0009")  # 900 pixels
+    assert max_pixels_limit() == 900
+    assert _message(path) == (f"{path}: cannot read image: 40 x 24 pixels is more than the limit "
+                              "of 900 pixels (0.0009 megapixels; set PATCHWOOD_MAX_MEGAPIXELS to "
+                              "raise it)")
+    assert read_gray(path, max_pixels=None).shape == (24, 40)  # an explicit limit wins
+    monkeypatch.setenv("PATCHWOOD_MAX_MEGAPIXELS", " 0.00096 ")  # 960 pixels: just fits
+    assert read_gray(path).shape == (24, 40)
+    monkeypatch.delenv("PATCHWOOD_MAX_MEGAPIXELS")
+    assert max_pixels_limit() == 100_000_000
+    for bad in ("many", "0", "-2", "inf", "nan", "1e400"):
+        monkeypatch.setenv("PATCHWOOD_MAX_MEGAPIXELS", bad)
+        with pytest.raises(InputError) as info:
+            read_gray(path)
+        assert str(info.value) == ("the environment variable PATCHWOOD_MAX_MEGAPIXELS must be a "
+                                   f"number of megapixels > 0, got {bad!r}")
+
+
+def _tiff_claiming(width: int, height: int, orientation: int = 1) -> bytes:
+    """A little-endian TIFF (TIFF 6.0) whose first IFD claims a size (LONG) and an orientation
+    (SHORT), with no usable strips."""
+    entries = [(256, 4, width), (257, 4, height), (274, 3, orientation)]
+    ifd = struct.pack("<H", len(entries)) + b"".join(
+        struct.pack("<HHI", tag, kind, 1) + (struct.pack("<I", v) if kind == 4
+                                             else struct.pack("<HH", v, 0))
+        for tag, kind, v in entries) + struct.pack("<I", 0)
+    return b"II*\x00" + struct.pack("<I", 8) + ifd
+
+
+def test_tiff_header_size_claim_is_checked_before_decoding(tmp_path):
+    path = tmp_path / "bomb.tif"
+    path.write_bytes(_tiff_claiming(30000, 20000))
+    assert "30000 x 20000 pixels is more than the limit of 100,000,000" in _message(path)
+    assert header_size(path) == (30000, 20000)
+    path.write_bytes(_tiff_claiming(300, 200, orientation=6))  # a quarter turn: sides swap
+    assert header_size(path) == (200, 300)
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_tiff_orientation(tmp_path, orientation):
+    from PIL import Image, TiffImagePlugin
+
+    img = _scene(seed=10)[:, :, 0]
+    info = TiffImagePlugin.ImageFileDirectory_v2()
+    info[274] = orientation  # TIFF 6.0 Orientation: the same table as EXIF 2.3 tag 0x0112
+    path = tmp_path / "turned.tif"
+    Image.fromarray(img).save(path, tiffinfo=info)  # Pillow only writes the file here
+    shown = read_gray(path)
+    np.testing.assert_array_equal(shown, ORIENT[orientation](img))  # the table above
+    assert image_size(path) == header_size(path) == (shown.shape[1], shown.shape[0])
 
 
 def test_header_size_claim_is_checked_before_decoding(tmp_path):
@@ -270,7 +326,7 @@ def test_random_bytes_raise_only_input_error(tmp_path, data, suffix):
 
 @settings(max_examples=40, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(ext=st.sampled_from([".png", ".jpg", ".bmp"]), cut=st.integers(0, 2000),
+@given(ext=st.sampled_from([".png", ".jpg", ".bmp", ".tif"]), cut=st.integers(0, 2000),
        flips=st.lists(st.tuples(st.integers(0, 2000), st.integers(0, 255)), max_size=4))
 def test_damaged_images_raise_only_input_error(tmp_path, ext, cut, flips):
     data = bytearray(cv2.imencode(ext, _scene(16, 16, seed=9))[1].tobytes())
