@@ -27,7 +27,7 @@ def _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigm
 
 
 @numba.njit(cache=True, nogil=True)
-def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize,
+def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
                offsets, weights, counts, consts, node_features, node_thresholds, leaf_values,
                exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Score every window of one scale; keep those whose running score reaches ``cutoff``.
@@ -40,6 +40,9 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize
         Width of the integral image (image width + 1).
     xs, ys : int64 1-d
         Window top-left positions along x and y.
+    min_var : float
+        Contrast gate (used only with ``normalize``): a window whose grey-level variance is below
+        this is dropped before any tree (``-inf`` disables).
     exit_thresholds : float64 (T,)
         Drop a window when its running score after tree t is below ``exit_thresholds[t]``
         (``-inf`` disables).
@@ -75,6 +78,8 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize
                 q = (sq[base + win[3]] - sq[base + win[1]] - sq[base + win[2]]
                      + sq[base + win[0]])
                 var = q * inv_area - mean * mean
+                if var < min_var:
+                    continue
                 sigma = np.sqrt(var) if var > 0.0 else 0.0
                 if sigma < sigma_floor:
                     sigma = sigma_floor

@@ -24,6 +24,7 @@ from detector.forest import (
     MAX_DEPTH,
     MODES,
     bin_columns,
+    calibrate_contrast_gate,
     calibrate_exit,
     order_for_early_exit,
     final_score,
@@ -92,6 +93,23 @@ def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: i
             out[i, j + 1] = crop_region(patches[i], (w / 2 + dx[j], h / 2 + dy[j]),
                                         (w * k[j], h * k[j]), (w, h))
     return out.reshape(n * (copies + 1), h, w)
+
+
+def window_sigma(patches) -> np.ndarray:
+    """Grey-level standard deviation of each patch, as the scan computes it for a window
+    (population variance from the exact integer sums of the pixels and of their squares).
+
+    Examples
+    --------
+    >>> window_sigma(np.array([[[0, 2], [0, 2]], [[5, 5], [5, 5]]], np.uint8)).tolist()
+    [1.0, 0.0]
+    """
+    p = np.asarray(patches)
+    flat = p.reshape(len(p), -1).astype(np.int64)
+    area = float(flat.shape[1])
+    mean = flat.sum(axis=1) / area
+    var = (flat * flat).sum(axis=1) / area - mean * mean
+    return np.sqrt(np.maximum(var, 0.0))
 
 
 def check_patches(patches, window=None) -> np.ndarray:
@@ -328,9 +346,15 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             bg_running = model.running_scores(grow_patches[grow_y == 0])
             model.exit_thresholds = calibrate_exit(running, float(self.exit_recall))
             mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
+            gate = (calibrate_contrast_gate(window_sigma(calibration), running[:, -1],
+                                            float(self.exit_recall))
+                    if self.normalize else 0.0)
         else:
             mean_objects = None
-        mean_background = float(trees_evaluated(bg_running, model.exit_thresholds).mean())
+            gate = 0.0
+        bg_gated = window_sigma(grow_patches[grow_y == 0]) < gate
+        mean_background = float(np.where(bg_gated, 0,
+                                         trees_evaluated(bg_running, model.exit_thresholds)).mean())
         temperature = 1.0
         if self.mode == "boosted" and len(held):
             temperature = fit_temperature(running[:, -1], bg_running[:, -1])
@@ -353,9 +377,12 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
                 "scale": float(self.exit_scale),
                 "mean_trees_objects": mean_objects,
                 "mean_trees_background": mean_background,
+                "contrast_gate_min_sigma": gate,
+                "background_dropped_by_contrast_gate": float(bg_gated.mean()) if len(bg_gated) else 0.0,
                 "background_source": "training background patches",
             },
             "score_temperature": temperature,
+            "exit_min_sigma": gate,
             "date": training_date(),
             "versions": library_versions(),
         }

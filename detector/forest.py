@@ -46,6 +46,7 @@ Early exit (soft cascade; Bourdev and Brandt, CVPR 2005)
 
 from __future__ import annotations
 
+import math
 import numbers
 import os
 from concurrent.futures import ThreadPoolExecutor
@@ -66,6 +67,8 @@ __all__ = [
     "final_score",
     "fit_temperature",
     "calibrate_exit",
+    "calibrate_contrast_gate",
+    "kept_objects",
     "trees_evaluated",
     "seed_sequence",
     "quantile_cuts",
@@ -499,11 +502,68 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     n, t = r.shape
     if n == 0:
         return np.full(t, -np.inf, np.float32)
-    n_drop = int(np.floor((1.0 - exit_recall) * n + 1e-9))
-    n_drop = min(n_drop, n - 1)
-    order = np.argsort(r[:, -1], kind="stable")
-    kept = r[order[n_drop:]]
-    return float32_thresholds(kept.min(axis=0))
+    return float32_thresholds(r[kept_objects(r[:, -1], exit_recall)].min(axis=0))
+
+
+def kept_objects(final_scores, exit_recall: float = 0.995) -> np.ndarray:
+    """Indices of the calibration objects the early exit promises to keep: all but the
+    ``floor((1 - exit_recall) * N)`` with the lowest final score (at least one is kept).
+
+    Examples
+    --------
+    >>> # floor(0.5 * 4) = 2 given up: the final scores 0.5 and 1.0; the rest in rising order
+    >>> kept_objects(np.array([2.0, 3.0, 1.0, 0.5]), exit_recall=0.5).tolist()
+    [0, 1]
+    """
+    final = np.asarray(final_scores, dtype=np.float64)
+    n = len(final)
+    n_drop = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))
+    return np.argsort(final, kind="stable")[n_drop:]
+
+
+#: The contrast gate keeps windows whose grey-level variance is at least this fraction of the lowest
+#: variance among the kept calibration objects: half, as the variance filter of Kalal, Mikolajczyk and
+#: Matas (TLD, IEEE TPAMI 2012) does, which leaves room for objects seen at lower contrast than in
+#: training.
+CONTRAST_GATE_VARIANCE_FRACTION = 0.5
+
+
+def calibrate_contrast_gate(sigmas, final_scores, exit_recall: float = 0.995,
+                            variance_fraction: float = CONTRAST_GATE_VARIANCE_FRACTION) -> float:
+    """The lowest grey-level standard deviation a window may have and still be scored.
+
+    A window of nearly flat grey (empty belt, shadow) cannot hold the object; the scan drops it
+    before any tree when its standard deviation is below the value returned here: the lowest
+    standard deviation among the calibration objects the early exit keeps (:func:`kept_objects`),
+    times ``sqrt(variance_fraction)``.
+
+    Parameters
+    ----------
+    sigmas : array_like, shape (N,)
+        Grey-level standard deviation of each calibration object patch (as the scan computes it
+        per window: population standard deviation of the pixels).
+    final_scores : array_like, shape (N,)
+        Their running score after the last tree.
+    exit_recall : float in (0, 1]
+    variance_fraction : float in [0, 1]
+
+    Returns
+    -------
+    float
+        0.0 (no gate) when there are no calibration objects.
+
+    Examples
+    --------
+    >>> # kept: sigmas 20 and 30 (the lowest final score, sigma 4, is given up); 20 * sqrt(0.25) = 10
+    >>> calibrate_contrast_gate([20.0, 4.0, 30.0], [1.0, -2.0, 3.0], 0.6, variance_fraction=0.25)
+    10.0
+    """
+    sig = np.asarray(sigmas, dtype=np.float64)
+    if len(sig) == 0:
+        return 0.0
+    if not 0.0 <= variance_fraction <= 1.0:
+        raise ValueError(f"variance_fraction must be in [0, 1], got {variance_fraction}")
+    return float(sig[kept_objects(final_scores, exit_recall)].min() * math.sqrt(variance_fraction))
 
 
 def order_for_early_exit(object_leaves, background_leaves, exit_recall: float = 0.995) -> np.ndarray:

@@ -203,6 +203,18 @@ def final_scores(model, raw):
     return final_score(model.mode, raw, model.leaf_values.shape[0], model.temperature)
 
 
+def exit_min_sigma(model) -> float:
+    """The model's contrast gate: windows whose grey-level standard deviation is below it are
+    dropped before any tree (0 = no gate; models trained before the gate have none)."""
+    value = model.metadata.get("exit_min_sigma", 0.0)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) \
+            or value < 0:
+        from detector.errors import InputError
+
+        raise InputError(f"model metadata 'exit_min_sigma' must be a number >= 0, got {value!r}")
+    return float(value) if model.normalize else 0.0
+
+
 def _remaining_bound(leaf_values):
     top = leaf_values.max(axis=1).astype(np.float64)
     return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]])
@@ -231,6 +243,9 @@ class Engine:
         else:
             self.exits = np.full(T, -np.inf)
         self.bound = _remaining_bound(self.leaf_values)
+        # the contrast gate is part of the early exit (off with it)
+        gate = exit_min_sigma(model) if self.settings.early_exit else 0.0
+        self.min_var = gate * gate if gate > 0 else -np.inf
         self.cutoff = raw_cutoff(model, self.settings.threshold)
         self.normalize = bool(model.normalize)
         self._plans: dict = {}
@@ -293,7 +308,7 @@ class Engine:
             out_y = np.empty(n, np.int64)
             out_s = np.empty(n, np.float64)
             kept, used = fn(ii, sq, iw + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
-                            self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
+                            self.min_var, self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
                             self.node_features, self.node_thresholds, self.leaf_values,
                             self.exits, self.cutoff, self.bound, out_x, out_y, out_s)
             windows += n
@@ -334,7 +349,7 @@ class Engine:
         return obj[order], scores[order]
 
 
-def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, normalize,
+def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
                      offsets, weights, counts, consts, node_features, node_thresholds, leaf_values,
                      exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Plain-numpy twin of :func:`detector._kernels.scan_scale` (same arguments, same results),
@@ -349,6 +364,8 @@ def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, nor
     mean = rect(ii, win).astype(np.float64) * inv_area
     if normalize:
         var = rect(sq, win).astype(np.float64) * inv_area - mean * mean
+        gated = var >= min_var
+        gx, gy, base, mean, var = gx[gated], gy[gated], base[gated], mean[gated], var[gated]
         sigma = np.sqrt(np.maximum(var, 0.0))
         inv_sigma = 1.0 / np.maximum(sigma, sigma_floor)
     else:

@@ -1,10 +1,12 @@
 """Early exit: the greedy tree order and the misaligned calibration copies."""
 
 import numpy as np
+import pytest
 from hypothesis import given, settings, strategies as st
 
 from detector.classifier import PatchClassifier, misaligned_copies
-from detector.forest import calibrate_exit, order_for_early_exit, trees_evaluated
+from detector.forest import (calibrate_contrast_gate, calibrate_exit, kept_objects,
+                             order_for_early_exit, trees_evaluated)
 
 
 def _dropped_after_first(o, b, t, exit_recall=1.0):
@@ -84,3 +86,24 @@ def test_fitted_exit_keeps_every_kept_calibration_copy():
     # exit_recall 1.0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
     assert m.metadata["calibration"]["copies_per_object"] == 9
+    # ... nor by the contrast gate: every copy's standard deviation (numpy's population std of its
+    # pixels) is at least the gate, and the gate is sqrt(0.5) of the lowest one (all are kept)
+    sig = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1)
+    gate = m.metadata["exit_min_sigma"]
+    assert gate == pytest.approx(np.sqrt(0.5) * sig.min(), rel=1e-12)
+    assert (sig >= gate).all()
+
+
+@given(st.lists(st.tuples(st.floats(0, 100), st.floats(-10, 10)), min_size=1, max_size=40),
+       st.floats(0.5, 1.0), st.floats(0.0, 1.0))
+@settings(max_examples=60, deadline=None)
+def test_contrast_gate_never_drops_a_kept_object(pairs, exit_recall, fraction):
+    sig, fin = (np.array(v) for v in zip(*pairs))
+    gate = calibrate_contrast_gate(sig, fin, exit_recall, variance_fraction=fraction)
+    kept = kept_objects(fin, exit_recall)
+    # the same objects calibrate_exit keeps: none of them falls below the gate ...
+    assert (sig[kept] >= gate).all()
+    # ... and the gate is the stated fraction of the lowest of them (variance fraction -> sqrt)
+    assert gate == pytest.approx(np.sqrt(fraction) * sig[kept].min())
+    n_drop = int(np.floor((1 - exit_recall) * len(fin) + 1e-9))
+    assert len(kept) == len(fin) - min(n_drop, len(fin) - 1)

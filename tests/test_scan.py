@@ -234,3 +234,32 @@ def test_max_object_applies_when_the_image_is_enlarged(bagged):
     assert objects.min() == pytest.approx(10.0)
     # the scales grow by 1.2, so the largest object looked for is within a step of max_object
     assert 40.0 / 1.2 < objects.max() <= 40.0 + 1e-6
+
+
+def test_contrast_gate_drops_exactly_the_flat_windows(model):
+    """With the gate the scan keeps exactly the windows it keeps without it whose grey-level
+    variance (numpy's population variance of the window's pixels) reaches the gate squared."""
+    import copy
+
+    gray = frame(9)
+    gated = copy.deepcopy(model)
+    gated.exit_thresholds[:] = -np.inf  # early exit on, but the gate is its only exit
+    gated.metadata["exit_min_sigma"] = 30.0  # well inside the frame's range of window contrasts
+    plain = copy.deepcopy(gated)
+    plain.metadata["exit_min_sigma"] = 0.0
+    b0, r0, w0, t0 = every_window(plain, threshold=0.0, early_exit=True).candidates(gray)
+    b1, r1, w1, t1 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray)
+    b2, r2, _, t2 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray, use_numpy=True)
+    at1 = (b0[:, 2] == WINDOW[0]) & (b0[:, 3] == WINDOW[1])
+    var = np.array([gray[y:y + 24, x:x + 24].astype(np.float64).var()
+                    for x, y in b0[at1, :2].astype(int)])
+    expected = as_dict(b0[at1][var >= 900.0], r0[at1][var >= 900.0])
+    at1_gated = (b1[:, 2] == WINDOW[0]) & (b1[:, 3] == WINDOW[1])
+    assert as_dict(b1[at1_gated], r1[at1_gated]) == pytest.approx(expected, abs=1e-12)
+    assert 0 < len(expected) < at1.sum()  # the gate drops some windows and keeps some
+    assert w1 == w0 and t1 < t0  # every window is counted; dropped ones cost no tree
+    np.testing.assert_array_equal(b1, b2)  # the numpy twin gates the same windows
+    assert t1 == t2
+    # early exit off switches the gate off too
+    assert every_window(gated, threshold=0.0).candidates(gray)[3] == \
+        every_window(plain, threshold=0.0).candidates(gray)[3]
