@@ -10,6 +10,15 @@ Layout the kernels read (built once per scale by :func:`detector.scan.scale_plan
   ``value = (sum_k weights[f, k] * ii[base + offsets[f, k]] - consts[f] * mean) / sigma``.
 - ``consts`` float64 ``(F,)``: the weight of the window mean.
 - ``win`` int64 ``(4,)``: the window's four corner offsets; ``inv_area`` its 1 / pixel count.
+
+The loop runs breadth-first along each row of windows: first the mean, standard deviation and
+contrast gate of every window in the row, then tree after tree over the windows still alive,
+packing the survivors after each tree. Windows are independent, so the processor overlaps their
+work; a tree of depth 2 is evaluated without branches (all three of its features, then the leaf is
+picked arithmetically), which leaves no unpredictable jump in the inner loop.
+
+Split tests compare float64 values against ``split_bounds`` (see :func:`detector.scan.split_bounds`):
+``v > bound`` is exactly ``float32(v) > threshold``, the test training used on its float32 features.
 """
 
 from __future__ import annotations
@@ -19,23 +28,23 @@ import numpy as np
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigma):
+def _corner_sum(ii, base, offsets, weights, count, f):
     acc = 0.0
-    for k in range(counts[f]):
+    for k in range(count):
         acc += weights[f, k] * ii[base + offsets[f, k]]
-    return (acc - consts[f] * mean) * inv_sigma
+    return acc
 
 
 @numba.njit(cache=True, nogil=True)
 def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
-               offsets, weights, counts, consts, node_features, node_thresholds, leaf_values,
+               offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
                exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Score every window of one scale; keep those whose running score reaches ``cutoff``.
 
     Parameters
     ----------
-    ii, sq : int64 1-d
-        Flattened integral and squared-integral images.
+    ii, sq : float64 1-d
+        Flattened integral and squared-integral images (exact integers held in float64).
     row_stride : int
         Width of the integral image (image width + 1).
     xs, ys : int64 1-d
@@ -43,6 +52,8 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     min_var : float
         Contrast gate (used only with ``normalize``): a window whose grey-level variance is below
         this is dropped before any tree (``-inf`` disables).
+    split_bounds : float64 (T, nodes)
+        A window goes right at a node when its feature value is above the node's bound.
     exit_thresholds : float64 (T,)
         Drop a window when its running score after tree t is below ``exit_thresholds[t]``
         (``-inf`` disables).
@@ -57,7 +68,7 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     Returns
     -------
     kept : int
-        Number of windows written to the outputs.
+        Number of windows written to the outputs (row by row, x rising within a row).
     trees : int
         Trees evaluated over all windows (for the mean per window).
     """
@@ -65,42 +76,92 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     depth = 0
     while (1 << depth) - 1 < n_nodes:
         depth += 1
+    nx = xs.shape[0]
+    base = np.empty(nx, np.int64)
+    mean = np.empty(nx)
+    inv_sigma = np.empty(nx)
+    score = np.empty(nx)
+    xpos = np.empty(nx, np.int64)
+    w0 = win[0]
+    w1 = win[1]
+    w2 = win[2]
+    w3 = win[3]
     kept = 0
     trees = 0
     for yi in range(ys.shape[0]):
         y = ys[yi]
-        for xi in range(xs.shape[0]):
-            base = y * row_stride + xs[xi]
-            s = (ii[base + win[3]] - ii[base + win[1]] - ii[base + win[2]] + ii[base + win[0]])
-            mean = s * inv_area
-            inv_sigma = 1.0
+        row = y * row_stride
+        n = 0
+        for i in range(nx):
+            b = row + xs[i]
+            m = (ii[b + w3] - ii[b + w1] - ii[b + w2] + ii[b + w0]) * inv_area
+            inv = 1.0
             if normalize:
-                q = (sq[base + win[3]] - sq[base + win[1]] - sq[base + win[2]]
-                     + sq[base + win[0]])
-                var = q * inv_area - mean * mean
+                var = (sq[b + w3] - sq[b + w1] - sq[b + w2] + sq[b + w0]) * inv_area - m * m
                 if var < min_var:
                     continue
                 sigma = np.sqrt(var) if var > 0.0 else 0.0
                 if sigma < sigma_floor:
                     sigma = sigma_floor
-                inv_sigma = 1.0 / sigma
-            score = 0.0
-            alive = True
-            for t in range(n_trees):
-                node = 0
-                for _ in range(depth):
-                    f = node_features[t, node]
-                    v = _feature_value(ii, base, offsets, weights, counts, consts, f, mean, inv_sigma)
-                    # compare in float32, as training did on its float32 feature matrix
-                    node = 2 * node + (1 if np.float32(v) <= node_thresholds[t, node] else 2)
-                score += leaf_values[t, node - n_nodes]
-                trees += 1
-                if score < exit_thresholds[t] or score + bound[t] < cutoff:
-                    alive = False
-                    break
-            if alive and score >= cutoff:
-                out_x[kept] = xs[xi]
+                inv = 1.0 / sigma
+            base[n] = b
+            mean[n] = m
+            inv_sigma[n] = inv
+            score[n] = 0.0
+            xpos[n] = xs[i]
+            n += 1
+        for t in range(n_trees):
+            if n == 0:
+                break
+            trees += n
+            if depth == 2:
+                f0 = node_features[t, 0]
+                f1 = node_features[t, 1]
+                f2 = node_features[t, 2]
+                c0 = counts[f0]
+                c1 = counts[f1]
+                c2 = counts[f2]
+                k0 = consts[f0]
+                k1 = consts[f1]
+                k2 = consts[f2]
+                s0 = split_bounds[t, 0]
+                s1 = split_bounds[t, 1]
+                s2 = split_bounds[t, 2]
+                for j in range(n):
+                    b = base[j]
+                    mj = mean[j]
+                    sj = inv_sigma[j]
+                    right = np.int64((_corner_sum(ii, b, offsets, weights, c0, f0) - k0 * mj) * sj > s0)
+                    r1 = np.int64((_corner_sum(ii, b, offsets, weights, c1, f1) - k1 * mj) * sj > s1)
+                    r2 = np.int64((_corner_sum(ii, b, offsets, weights, c2, f2) - k2 * mj) * sj > s2)
+                    score[j] += leaf_values[t, right * (2 + r2) + (1 - right) * r1]
+            else:
+                for j in range(n):
+                    b = base[j]
+                    node = 0
+                    for _ in range(depth):
+                        f = node_features[t, node]
+                        v = (_corner_sum(ii, b, offsets, weights, counts[f], f)
+                             - consts[f] * mean[j]) * inv_sigma[j]
+                        node = 2 * node + 1 + np.int64(v > split_bounds[t, node])
+                    score[j] += leaf_values[t, node - n_nodes]
+            low = exit_thresholds[t]
+            rest = bound[t]
+            k = 0
+            for j in range(n):
+                s = score[j]
+                if s >= low and s + rest >= cutoff:
+                    base[k] = base[j]
+                    mean[k] = mean[j]
+                    inv_sigma[k] = inv_sigma[j]
+                    score[k] = s
+                    xpos[k] = xpos[j]
+                    k += 1
+            n = k
+        for j in range(n):
+            if score[j] >= cutoff:
+                out_x[kept] = xpos[j]
                 out_y[kept] = y
-                out_score[kept] = score
+                out_score[kept] = score[j]
                 kept += 1
     return kept, trees

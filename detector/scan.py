@@ -203,6 +203,33 @@ def final_scores(model, raw):
     return final_score(model.mode, raw, model.leaf_values.shape[0], model.temperature)
 
 
+def split_bounds(thresholds) -> np.ndarray:
+    """float64 bounds that make ``v > bound`` exactly ``float32(v) > threshold`` for every float64
+    ``v`` (training compared float32 feature values; the scan computes in float64 and so skips the
+    rounding to float32 in its inner loop).
+
+    ``float32(v)`` rounds to nearest, ties to even (IEEE 754). The values that round to at most
+    ``t`` are those up to the midpoint between ``t`` and the next float32 above it, the midpoint
+    itself included when ``t`` is the even one of the pair; the midpoint is exact in float64.
+
+    Examples
+    --------
+    >>> t = np.float32(0.1)
+    >>> b = split_bounds(np.array([t]))[0]
+    >>> v = np.nextafter(b, 1.0)                      # the first float64 above the bound ...
+    >>> bool(np.float32(v) > t), bool(np.float32(b) > t)   # ... rounds above t; the bound does not
+    (True, False)
+    """
+    t32 = np.asarray(thresholds, dtype=np.float32)
+    t = t32.astype(np.float64)
+    up = np.nextafter(t32, np.float32(np.inf)).astype(np.float64)
+    down = np.nextafter(t32, np.float32(-np.inf)).astype(np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        mid = np.where(np.isinf(up) & np.isfinite(t), t + (t - down) / 2, (t + up) / 2)
+    even = (t32.view(np.uint32) & 1) == 0
+    return np.where(np.isfinite(t), np.where(even, mid, np.nextafter(mid, -np.inf)), t)
+
+
 def exit_min_sigma(model) -> float:
     """The model's contrast gate: windows whose grey-level standard deviation is below it are
     dropped before any tree (0 = no gate; models trained before the gate have none)."""
@@ -236,6 +263,7 @@ class Engine:
         self.margin = float(model.metadata.get("margin", 0.0))
         self.node_features = np.ascontiguousarray(model.node_features, np.int64)
         self.node_thresholds = np.ascontiguousarray(model.node_thresholds, np.float32)
+        self.split_bounds = split_bounds(self.node_thresholds)
         self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
         T = self.leaf_values.shape[0]
         if self.settings.early_exit:
@@ -291,8 +319,10 @@ class Engine:
             up = 1.0 / lo
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
-        ii = integral_image(gray).ravel()
-        sq = squared_integral_image(gray).ravel()
+        # exact integers held in float64 (below 2**53 for any image the readers accept): the
+        # kernel then multiplies without converting
+        ii = integral_image(gray).ravel().astype(np.float64)
+        sq = squared_integral_image(gray).ravel().astype(np.float64)
         boxes, raws = [], []
         windows = trees = 0
         for plan in self.plans((iw, ih), up):
@@ -309,7 +339,7 @@ class Engine:
             out_s = np.empty(n, np.float64)
             kept, used = fn(ii, sq, iw + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
                             self.min_var, self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
-                            self.node_features, self.node_thresholds, self.leaf_values,
+                            self.node_features, self.split_bounds, self.leaf_values,
                             self.exits, self.cutoff, self.bound, out_x, out_y, out_s)
             windows += n
             trees += int(used)
@@ -350,7 +380,7 @@ class Engine:
 
 
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
-                     offsets, weights, counts, consts, node_features, node_thresholds, leaf_values,
+                     offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
                      exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Plain-numpy twin of :func:`detector._kernels.scan_scale` (same arguments, same results),
     vectorised over all windows of the scale. For tests and as a readable reference."""
@@ -376,7 +406,7 @@ def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min
         acc = np.zeros(len(base))
         for k in range(counts[f]):
             acc += weights[f, k] * ii[base + offsets[f, k]].astype(np.float64)
-        values[f] = ((acc - consts[f] * mean) * inv_sigma).astype(np.float32)
+        values[f] = (acc - consts[f] * mean) * inv_sigma
     n_trees, n_nodes = node_features.shape
     depth = int(round(math.log2(n_nodes + 1)))
     score = np.zeros(len(base))
@@ -387,11 +417,11 @@ def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min
         node = np.zeros(len(base), dtype=np.int64)
         for _ in range(depth):
             f = node_features[t, node]
-            v = np.empty(len(base), np.float32)
+            v = np.empty(len(base))
             for fu in np.unique(f):
                 m = f == fu
                 v[m] = values[fu][m]
-            node = 2 * node + np.where(v <= node_thresholds[t, node], 1, 2)
+            node = 2 * node + np.where(v > split_bounds[t, node], 2, 1)
         score = np.where(alive, score + leaf_values[t, node - n_nodes], score)
         alive &= ~((score < exit_thresholds[t]) | (score + bound[t] < cutoff))
     keep = alive & (score >= cutoff)

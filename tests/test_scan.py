@@ -263,3 +263,28 @@ def test_contrast_gate_drops_exactly_the_flat_windows(model):
     # early exit off switches the gate off too
     assert every_window(gated, threshold=0.0).candidates(gray)[3] == \
         every_window(plain, threshold=0.0).candidates(gray)[3]
+
+
+@given(st.floats(width=32, allow_nan=False), st.lists(st.floats(allow_nan=False), max_size=20),
+       st.integers(-3, 3))
+@settings(max_examples=200, deadline=None)
+def test_split_bounds_reproduce_float32_comparison(t, others, steps):
+    """``v > split_bounds(t)`` equals numpy's ``np.float32(v) > t`` (IEEE 754 rounding to nearest,
+    ties to even) on random values and on the float64 values right around the bound."""
+    from detector.scan import split_bounds
+
+    t32 = np.float32(t)
+    b = split_bounds(np.array([t32]))[0]
+    near = [b]
+    for direction in (np.inf, -np.inf):
+        v = b
+        for _ in range(abs(steps) + 1):
+            v = np.nextafter(v, direction)
+            near.append(v)
+    for v in [*near, *others, float(t32), float(np.nextafter(t32, np.float32(np.inf)))]:
+        v = np.float64(v)
+        if not np.isfinite(v):
+            continue
+        with np.errstate(over="ignore"):
+            expected = bool(np.float32(v) > t32)
+        assert bool(v > b) == expected, (t32, v, b)
