@@ -232,33 +232,52 @@ class Model:
         >>> m.summary()[0]
         'window: 24 x 24 pixels (width x height)'
         """
-        md = self.metadata
+        md = _mapping(self.metadata)  # a hand-edited file may hold anything: show what makes sense
         kind = "random forest (bagged)" if self.mode == "bagged" else "Gentle AdaBoost (boosted)"
         lines = [
             f"window: {self.window[0]} x {self.window[1]} pixels (width x height)",
             f"trees: {self.n_trees} of depth {self.depth}, {kind}",
         ]
-        pool = md.get("pool_drawn") or md.get("parameters", {}).get("pool")
+        pool = _real(md.get("pool_drawn")) or _real(_mapping(md.get("parameters")).get("pool"))
         used = f"features used: {len(self.features)}"
-        lines.append(used + (f" of a pool of {pool}" if pool else "") +
+        lines.append(used + (f" of a pool of {_plain(pool)}" if pool else "") +
                      f" ({'contrast-normalised' if self.normalize else 'raw'} values)")
-        oob = md.get("oob_error")
+        oob = _real(md.get("oob_error"))
         lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
         active = np.isfinite(self.exit_thresholds).sum()
-        cal = md.get("calibration", {})
+        cal = _mapping(md.get("calibration"))
         text = f"early exit: {active} of {self.n_trees} trees have an exit threshold"
-        if cal.get("exit_recall") is not None:
-            text += f", calibrated for recall {cal['exit_recall']} on {cal.get('objects', 0)} held-out objects"
+        recall = _real(cal.get("exit_recall"))
+        if recall is not None:
+            text += (f", calibrated for recall {_plain(recall)} on "
+                     f"{_plain(_real(cal.get('objects')) or 0)} held-out objects")
         lines.append(text)
-        if cal.get("mean_trees_objects") is not None:
+        objects = _real(cal.get("mean_trees_objects"))
+        if objects is not None:
+            background = _real(cal.get("mean_trees_background"))
             lines.append(
-                f"mean trees evaluated per window: objects {cal['mean_trees_objects']:.1f}, "
-                f"background {cal.get('mean_trees_background', float('nan')):.1f}"
+                f"mean trees evaluated per window: objects {objects:.1f}, "
+                f"background {math.nan if background is None else background:.1f}"
             )
-        bank = md.get("bank_sha256") or (md.get("bank") or {}).get("sha256")
-        lines.append(f"trained: {md.get('date', 'unknown date')}"
-                     + (f", bank sha256 {bank[:12]}" if bank else ""))
+        bank = md.get("bank_sha256") or _mapping(md.get("bank")).get("sha256")
+        date = md.get("date")
+        lines.append(f"trained: {date if isinstance(date, str) and date else 'unknown date'}"
+                     + (f", bank sha256 {bank[:12]}" if isinstance(bank, str) and bank else ""))
         return lines
+
+
+def _mapping(value) -> dict:
+    return value if isinstance(value, dict) else {}
+
+
+def _real(value) -> float | None:
+    """A finite number from the metadata, else None."""
+    return value if _is_real(value) else None
+
+
+def _plain(value: float) -> str:
+    """A count as a whole number (20000), anything else as Python writes it (0.995)."""
+    return str(int(value)) if float(value).is_integer() and abs(value) < 2**53 else str(value)
 
 
 def model_arrays(model: Model) -> dict[str, np.ndarray]:

@@ -14,16 +14,19 @@ test_model.py, test_harvest.py, test_batch.py):
 images      truncated, zero-byte and non-image files with image suffixes; 16-bit PNG and TIFF,
             RGBA, palette and EXIF-rotated images; an image above the size limit (and the
             PATCHWOOD_MAX_MEGAPIXELS variable); an image smaller than the window; folders and
-            files with spaces and non-ASCII characters (harvest, train, scan, --draw, score)
+            files with spaces and non-ASCII characters (harvest, train, scan, --draw, score);
+            an unreadable image met in a mining round, after work has begun
 labels      a byte order mark, CRLF line ends, NaN, duplicate rows
 model/bank  truncated, empty, not an archive, unknown format version, wrong dtype, an index out
             of range, object arrays (refused without unpickling), a bank given as a model and
-            the other way round, impossible metadata
+            the other way round, impossible metadata; a damaged detections file to --resume
 outputs     an existing --out (or report/audit/inspect/tune/synth folder files) without --force,
             for every command that writes
 options     bad option values exit 2
-fuzzing     hypothesis: the label reader on arbitrary bytes and on CSV-like text, the model
-            loader on damaged copies of a real model file (loads and scans, or one InputError)
+fuzzing     hypothesis: the label reader on arbitrary bytes, CSV-like text and COCO-like JSON;
+            the model loader on damaged copies of a real model file, on replaced arrays and on
+            hand-edited metadata (it loads, and the model scans a frame and summarises itself,
+            or it gives one InputError naming the file)
 
 References: OpenCV (``cv2.imdecode`` with ``IMREAD_GRAYSCALE``, ``cv2.cvtColor``) for how 16-bit
 and RGBA pixels become 8-bit gray; Pillow (scikit-image's imaging dependency:
@@ -464,6 +467,34 @@ def test_whole_workflow_in_folders_with_spaces_and_non_ascii_names(awkward, tmp_
     assert summary["average_precision"] == pytest.approx(direct.to_dict()["average_precision"])
 
 
+def test_mining_stops_at_an_image_it_cannot_read(trained, tmp_path, monkeypatch, capsys):
+    """An unreadable image met after work has begun (a mining round): the progress already
+    shown stays, then one error line; no model file."""
+    images = tmp_path / "mining images"
+    shutil.copytree(trained.train / "images", images)
+    data = (images / "frame_0003.png").read_bytes()
+    (images / "frame_0003.png").write_bytes(data[: len(data) // 2])
+    code, out, err = patchwood(monkeypatch, capsys, "train", trained.bank, "--out",
+                               tmp_path / "model.npz", "--trees", "3", "--pool", "100",
+                               "--mine-rounds", "1", "--mine-images", images,
+                               "--mine-labels", trained.train / "labels.csv")
+    assert code == 1 and "Traceback" not in err
+    lines = err.splitlines()
+    assert [line for line in lines if line.startswith("error: ")] == [lines[-1]]
+    assert lines[-1] == (f"error: {images / 'frame_0003.png'}: cannot read image: the PNG data "
+                         "ends early (truncated file)")
+    assert not (tmp_path / "model.npz").exists()
+
+
+def test_resuming_from_a_damaged_detections_file(trained, tmp_path, monkeypatch, capsys):
+    out = tmp_path / "detections.csv"
+    out.write_text("image,x,y,width,height,score\nframe_0001.png,1,2,3\n")
+    line = fails(monkeypatch, capsys, 1, "scan", trained.model, trained.test / "images",
+                 "--out", out, "--resume")
+    assert line == f"error: {out}:2: 4 fields, but the header on line 1 has 6"
+    assert out.read_text() == "image,x,y,width,height,score\nframe_0001.png,1,2,3\n"
+
+
 # ---------------------------------------------------------------------------------------------
 # labels
 
@@ -628,9 +659,9 @@ def test_console_script_in_a_real_process(trained, tmp_path):
                           [("frame_0001.png", 1, 1, 20, 20), ("frame_0002.png", "NaN", 1, 20, 20)],
                           bom=True, newline="\r\n")
     env = dict(os.environ, LC_ALL="C")
-    done = subprocess.run([sys.executable, "-m", "cli.main", "harvest", str(trained.train / "images"),
-                           str(labels), "--out", str(folder / "bank.npz")],
-                          cwd=REPO, capture_output=True, timeout=120, env=env)
+    command = [sys.executable, "-m", "cli.main", "harvest", str(trained.train / "images"),
+               str(labels), "--out", str(folder / "bank.npz")]
+    done = subprocess.run(command, cwd=REPO, capture_output=True, timeout=120, env=env)
     assert done.returncode == 1
     assert done.stderr.decode("utf-8") == (f"error: {labels}:3: x must be a finite number, "
                                            "found 'NaN'\n")
@@ -642,7 +673,7 @@ def test_console_script_in_a_real_process(trained, tmp_path):
 # outputs that exist already
 
 
-def _existing_output_cases(trained, awkward, tmp_path):
+def _existing_output_cases(trained, tmp_path):
     """(command line, file that exists already) for every command that writes."""
     t, imgs, labels = trained.train, trained.train / "images", trained.train / "labels.csv"
     folder = tmp_path / "out folder"
@@ -677,9 +708,9 @@ EXISTING = ["harvest", "train", "train --save-bank", "scan", "scan --format coco
 
 
 @pytest.mark.parametrize("command", EXISTING)
-def test_an_existing_output_is_never_replaced_without_force(trained, awkward, tmp_path,
-                                                            monkeypatch, capsys, command):
-    args, existing = _existing_output_cases(trained, awkward, tmp_path)[command]
+def test_an_existing_output_is_never_replaced_without_force(trained, tmp_path, monkeypatch,
+                                                            capsys, command):
+    args, existing = _existing_output_cases(trained, tmp_path)[command]
     existing.parent.mkdir(parents=True, exist_ok=True)
     existing.write_bytes(b"results of last week, keep them\n")
     before = sorted(p.relative_to(tmp_path) for p in tmp_path.rglob("*"))
@@ -691,11 +722,11 @@ def test_an_existing_output_is_never_replaced_without_force(trained, awkward, tm
 
 @pytest.mark.parametrize("command", ["harvest", "train", "scan", "score", "synth", "tune",
                                      "audit", "inspect"])
-def test_an_output_that_is_in_the_way_is_a_one_line_error(trained, awkward, tmp_path,
-                                                          monkeypatch, capsys, command):
+def test_an_output_that_is_in_the_way_is_a_one_line_error(trained, tmp_path, monkeypatch,
+                                                          capsys, command):
     """A file where a folder goes (score, synth, tune, audit, inspect) or a folder where a file
     goes (harvest, train, scan)."""
-    args = _existing_output_cases(trained, awkward, tmp_path)[command][0]
+    args = _existing_output_cases(trained, tmp_path)[command][0]
     wants_folder = command in ("score", "synth", "tune", "audit", "inspect")
     in_the_way = tmp_path / ("a file" if wants_folder else "a folder")
     if wants_folder:
@@ -954,3 +985,40 @@ def test_fuzz_model_loader_on_replaced_arrays(tmp_path, model_members, name, val
     path = tmp_path / "replaced.npz"
     npzfile.save_npz(path, arrays)
     _load_and_scan(path)
+
+
+METADATA_KEYS = ["margin", "score_temperature", "calibration", "parameters", "bank", "oob_error",
+                 "date", "pool_drawn", "mining", "versions", "bank_sha256", "features_per_node"]
+JSON_VALUES = st.recursive(
+    st.none() | st.booleans() | st.integers(-10**20, 10**20)
+    | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=5),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(
+        st.sampled_from(METADATA_KEYS + ["sha256", "counts", "exit_recall", "objects",
+                                         "mean_trees_objects", "mean_trees_background", "pool"]),
+        inner, max_size=3),
+    max_leaves=8)
+
+
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(changes=st.dictionaries(st.sampled_from(METADATA_KEYS), JSON_VALUES, min_size=1,
+                               max_size=3))
+def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
+    """A hand-edited metadata record: the two values the scan computes with are checked, the
+    rest is only shown, by the summary and by `patchwood inspect`, whatever its type."""
+    from detector.inspection import model_report, report_lines
+
+    whole, _ = model_members
+    src = tmp_path / "valid.npz"
+    src.write_bytes(whole)
+    arrays = npzfile.read_npz(src)
+    metadata = json.loads(str(arrays["metadata"]))
+    metadata.update(changes)
+    arrays["metadata"] = np.array(json.dumps(metadata))
+    path = tmp_path / "edited.npz"
+    npzfile.save_npz(path, arrays)
+    model = _load_and_scan(path)
+    if model is not None:
+        assert report_lines(model_report(model))
+    else:  # refused: only for the values the scan uses
+        assert {"margin", "score_temperature"} & set(changes)
