@@ -281,10 +281,30 @@ def test_split_bounds_reproduce_float32_comparison(t, others, steps):
         for _ in range(abs(steps) + 1):
             v = np.nextafter(v, direction)
             near.append(v)
-    for v in [*near, *others, float(t32), float(np.nextafter(t32, np.float32(np.inf)))]:
+    with np.errstate(over="ignore"):
+        above = float(np.nextafter(t32, np.float32(np.inf)))
+    for v in [*near, *others, float(t32), above]:
         v = np.float64(v)
         if not np.isfinite(v):
             continue
         with np.errstate(over="ignore"):
             expected = bool(np.float32(v) > t32)
         assert bool(v > b) == expected, (t32, v, b)
+
+
+@given(st.integers(1, 40), st.integers(1, 40), st.integers(0, 2**32 - 1))
+@settings(max_examples=40, deadline=None)
+def test_frame_integrals_equal_the_project_integrals(h, w, seed):
+    """cv2.integral2 (the scan's fast path for 8-bit frames) == detector.integral, exactly."""
+    from detector.integral import integral_image, squared_integral_image
+    from detector.scan import frame_integrals
+
+    gray = np.random.default_rng(seed).integers(0, 256, (h, w), dtype=np.uint8)
+    ii, sq = frame_integrals(gray)
+    assert ii.dtype == sq.dtype == np.float64
+    np.testing.assert_array_equal(ii, integral_image(gray).ravel())
+    np.testing.assert_array_equal(sq, squared_integral_image(gray).ravel())
+    # the general path (any other dtype: here the same pixels as uint16) gives the same numbers
+    ii2, sq2 = frame_integrals(gray.astype(np.uint16))
+    np.testing.assert_array_equal(ii2, ii)
+    np.testing.assert_array_equal(sq2, sq)
