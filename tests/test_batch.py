@@ -6,7 +6,8 @@ What is checked, and against what:
   scanned image appears (one empty row when nothing was found), named as the labels CSV names it;
 - COCO JSON output (the COCO detection results format, Lin et al., 2014) reads back to the same
   detections as the CSV;
-- bad files (truncated, not an image, empty, a dangling link) are listed and the run goes on;
+- bad files (truncated, not an image, empty, a dangling link, above the size limit) are listed
+  and the run goes on;
 - an interrupted run leaves a valid file of complete images that --resume finishes into the very
   file an uninterrupted run writes; --jobs 2 and a dask.distributed cluster write the same bytes;
 - the annotated copies, and the refusals: --draw inside an input folder, an existing --out
@@ -15,9 +16,12 @@ What is checked, and against what:
 
 from __future__ import annotations
 
+import csv
 import os
 import shutil
+import struct
 import sys
+import zlib
 from pathlib import Path
 
 import cv2
@@ -107,7 +111,12 @@ def make_bad_files(folder: Path) -> list[str]:
     (folder / "fake.jpg").write_text("this is a shopping list, not a picture\n")
     (folder / "empty.bmp").write_bytes(b"")
     os.symlink(folder / "moved-away.png", folder / "gone.png")  # a link to nothing
-    return ["broken.png", "empty.bmp", "fake.jpg", "gone.png"]
+    # a PNG header (ISO/IEC 15948) claiming 20000 x 20000 pixels, above the 100-megapixel limit;
+    # a cluster run refuses it before its bytes travel, in the same words
+    ihdr = b"IHDR" + struct.pack(">IIBBBBB", 20000, 20000, 8, 0, 0, 0, 0)
+    (folder / "huge.png").write_bytes(b"\x89PNG\r\n\x1a\n" + struct.pack(">I", 13) + ihdr
+                                      + struct.pack(">I", zlib.crc32(ihdr)))
+    return ["broken.png", "empty.bmp", "fake.jpg", "gone.png", "huge.png"]
 
 
 # ------------------------------------------------------------------ the detections file
@@ -276,8 +285,8 @@ def test_bad_files_are_listed_and_the_run_goes_on(trained, folder, reference, tm
     out = tmp_path / "detections.csv"
     code, stdout, stderr = run_main(monkeypatch, capsys, trained / "model.npz", mixed, "--out", out)
     assert code == 0, stderr
-    assert "images scanned: 11\n" in stdout
-    assert "failures: 4 (listed in " in stdout
+    assert "images scanned: 12\n" in stdout
+    assert "failures: 5 (listed in " in stdout
     for name in bad:
         assert f"  {name}: cannot read image: " in stdout
     assert_matches_engine(read_detections(out), reference)  # the good images, all of them
@@ -286,11 +295,14 @@ def test_bad_files_are_listed_and_the_run_goes_on(trained, folder, reference, tm
     lines = side.read_text().splitlines()
     assert lines[0] == "image,reason"
     assert [line.split(",")[0] for line in lines[1:]] == bad
-    reasons = dict(line.split(",", 1) for line in lines[1:])
+    reasons = dict(csv.reader(lines[1:]))
     assert "truncated" in reasons["broken.png"]
     assert "empty" in reasons["empty.bmp"]
     assert "not a PNG, JPEG, BMP or TIFF" in reasons["fake.jpg"]
     assert "no such file" in reasons["gone.png"]
+    assert reasons["huge.png"] == ("cannot read image: 20000 x 20000 pixels is more than the limit "
+                                   "of 100,000,000 pixels (100 megapixels; set "
+                                   "PATCHWOOD_MAX_MEGAPIXELS to raise it)")
 
 
 def test_a_run_where_every_image_fails_exits_non_zero(trained, tmp_path, monkeypatch, capsys):
@@ -309,7 +321,7 @@ def test_a_stale_failures_file_goes_when_a_forced_rerun_has_none(trained, folder
     shutil.copytree(folder, mixed)
     make_bad_files(mixed)
     out = tmp_path / "d.csv"
-    assert len(scan_paths(trained / "model.npz", [mixed], out).failures) == 4
+    assert len(scan_paths(trained / "model.npz", [mixed], out).failures) == 5
     assert failures_path(out).exists()
     summary = scan_paths(trained / "model.npz", [folder], out, force=True)
     assert summary.failures == [] and summary.failures_file is None
