@@ -26,6 +26,7 @@ from detector.forest import (
     bin_columns,
     calibrate_contrast_gate,
     calibrate_exit,
+    calibrate_exit_table,
     order_for_early_exit,
     final_score,
     fit_temperature,
@@ -358,6 +359,10 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         temperature = 1.0
         if self.mode == "boosted" and len(held):
             temperature = fit_temperature(running[:, -1], bg_running[:, -1])
+        if len(held):
+            model.exit_levels, model.exit_table = calibrate_exit_table(
+                running, final_score(self.mode, running[:, -1], model.n_trees, temperature),
+                float(self.exit_recall))
 
         model.metadata = {
             "kind": "model",

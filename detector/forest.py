@@ -68,6 +68,8 @@ __all__ = [
     "fit_temperature",
     "calibrate_exit",
     "calibrate_contrast_gate",
+    "calibrate_exit_table",
+    "EXIT_LEVELS",
     "kept_objects",
     "trees_evaluated",
     "seed_sequence",
@@ -503,6 +505,53 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     if n == 0:
         return np.full(t, -np.inf, np.float32)
     return float32_thresholds(r[kept_objects(r[:, -1], exit_recall)].min(axis=0))
+
+
+#: Score thresholds that get exit thresholds of their own (see :func:`calibrate_exit_table`).
+EXIT_LEVELS = (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95)
+
+
+def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.995,
+                         levels=EXIT_LEVELS):
+    """Exit thresholds for scans at given score thresholds (direct backward pruning).
+
+    A scan at score threshold ``c`` reports only windows that end at ``c`` or above, so its exits
+    need to keep only the calibration objects that do (Zhang and Viola, "Multiple-instance pruning
+    for learning efficient cascade detectors", NIPS 2007, call this direct backward pruning): row
+    ``l`` is :func:`calibrate_exit` on the objects whose final score reaches ``levels[l]``.
+    Levels above every object's score are left out.
+
+    Parameters
+    ----------
+    running_scores : ndarray, shape (N, T)
+    final_scores : ndarray, shape (N,)
+        The objects' final scores in 0..1 (:func:`final_score` of the last running score).
+    exit_recall : float in (0, 1]
+    levels : sequence of float in 0..1, rising
+
+    Returns
+    -------
+    (levels float32 (L,), table float32 (L, T))
+
+    Examples
+    --------
+    >>> r = np.array([[1, 2], [0, 3], [2, 1]], np.float64)      # final scores 0.9, 0.95, 0.2
+    >>> lv, tab = calibrate_exit_table(r, np.array([0.9, 0.95, 0.2]), 1.0, levels=(0.5, 0.99))
+    >>> lv.tolist(), tab.tolist()        # level 0.5 keeps rows 1 and 2: minima 0 and 2
+    ([0.5], [[0.0, 2.0]])
+    """
+    r = np.asarray(running_scores, dtype=np.float64)
+    fin = np.asarray(final_scores, dtype=np.float64)
+    out_levels, rows = [], []
+    for level in levels:
+        sel = fin >= np.float32(level)
+        if not sel.any():
+            break
+        out_levels.append(level)
+        rows.append(calibrate_exit(r[sel], exit_recall))
+    t = r.shape[1]
+    return (np.asarray(out_levels, np.float32),
+            np.asarray(rows, np.float32).reshape(len(rows), t))
 
 
 def kept_objects(final_scores, exit_recall: float = 0.995) -> np.ndarray:

@@ -17,6 +17,10 @@ array                  dtype, shape       meaning
 ``leaf_values``        float32, (T, 2**D)    added to the running score
 ``exit_thresholds``    float32, (T,)      drop a window after tree t when ``s_t < exit[t]``
                                           (``-inf``: never)
+``exit_levels``        float32, (L,)      score thresholds (0..1, rising) that have exit
+                                          thresholds of their own (optional)
+``exit_table``         float32, (L, T)    row l: the exit thresholds for a scan whose threshold is
+                                          at least ``exit_levels[l]`` (optional)
 ``feature_importances``  float64, (F,)    summed impurity decrease per feature (optional)
 ``mode``               str, ()            ``"bagged"`` or ``"boosted"``
 ``normalize``          bool, ()           per-window contrast normalisation of the features
@@ -55,6 +59,8 @@ MODEL_SPEC = {
     "node_thresholds": npzfile.ArraySpec("float32", ("T", "nodes")),
     "leaf_values": npzfile.ArraySpec("float32", ("T", "leaves")),
     "exit_thresholds": npzfile.ArraySpec("float32", ("T",)),
+    "exit_levels": npzfile.ArraySpec("float32", ("L",), required=False),
+    "exit_table": npzfile.ArraySpec("float32", ("L", "T"), required=False),
     "feature_importances": npzfile.ArraySpec("float64", ("F",), required=False),
     "mode": npzfile.ArraySpec("str", ()),
     "normalize": npzfile.ArraySpec("bool", ()),
@@ -123,10 +129,14 @@ class Model:
     node_features, node_thresholds, leaf_values : ndarray
         The flat trees (see :mod:`detector.forest`); ``node_features`` index ``features``.
     exit_thresholds : ndarray of float32, shape (T,)
+        The exits that keep the calibration objects at any score.
     mode : {"bagged", "boosted"}
     normalize : bool
     metadata : dict
     feature_importances : ndarray of float64, shape (F,), optional
+    exit_levels : ndarray of float32, shape (L,), optional
+    exit_table : ndarray of float32, shape (L, T), optional
+        Exits for scans at a given score threshold or above (see :meth:`exits_for`).
 
     Examples
     --------
@@ -146,6 +156,8 @@ class Model:
     normalize: bool = True
     metadata: dict = field(default_factory=dict)
     feature_importances: np.ndarray | None = None
+    exit_levels: np.ndarray | None = None
+    exit_table: np.ndarray | None = None
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -157,6 +169,12 @@ class Model:
         self.normalize = bool(self.normalize)
         if self.feature_importances is not None:
             self.feature_importances = np.ascontiguousarray(self.feature_importances, dtype=np.float64)
+        if (self.exit_levels is None) != (self.exit_table is None):
+            raise ValueError("exit_levels and exit_table go together")
+        if self.exit_levels is not None:
+            self.exit_levels = np.ascontiguousarray(self.exit_levels, dtype=np.float32).reshape(-1)
+            self.exit_table = np.ascontiguousarray(self.exit_table, dtype=np.float32).reshape(
+                len(self.exit_levels), -1)
         if self.mode not in MODES:
             raise ValueError(f"mode must be one of {MODES}, got {self.mode!r}")
 
@@ -181,6 +199,27 @@ class Model:
         return cls(window, np.asarray(pool)[used], small.node_features, small.node_thresholds,
                    small.leaf_values, exits, small.mode, normalize, dict(metadata or {}),
                    small.importances)
+
+    def exits_for(self, threshold: float) -> np.ndarray:
+        """The exit thresholds for a scan that keeps scores of at least ``threshold``.
+
+        A window the scan reports must end at or above the threshold, so the exits need only keep
+        the calibration objects that do (direct backward pruning; Zhang and Viola, NIPS 2007): the
+        row of ``exit_table`` with the highest level not above ``threshold``, or
+        ``exit_thresholds`` (every calibration object) when there is none.
+
+        Examples
+        --------
+        >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+        ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False,
+        ...           exit_levels=[0.5], exit_table=[[1.0]])
+        >>> m.exits_for(0.3).tolist(), m.exits_for(0.5).tolist()
+        ([-inf], [1.0])
+        """
+        if self.exit_levels is None:
+            return self.exit_thresholds
+        row = int(np.searchsorted(self.exit_levels, np.float32(threshold), side="right")) - 1
+        return self.exit_thresholds if row < 0 else self.exit_table[row]
 
     @property
     def n_trees(self) -> int:
@@ -251,7 +290,14 @@ class Model:
         if recall is not None:
             text += (f", calibrated for recall {_plain(recall)} on "
                      f"{_plain(_real(cal.get('objects')) or 0)} held-out objects")
+        if self.exit_levels is not None and len(self.exit_levels):
+            text += (f"; tighter exits for scan thresholds from {float(self.exit_levels[0]):g} "
+                     f"to {float(self.exit_levels[-1]):g}")
         lines.append(text)
+        gate = _real(md.get("exit_min_sigma"))
+        if gate:
+            lines.append(f"contrast gate: windows with a grey-level standard deviation below "
+                         f"{gate:.1f} are dropped before any tree")
         objects = _real(cal.get("mean_trees_objects"))
         if objects is not None:
             background = _real(cal.get("mean_trees_background"))
@@ -297,6 +343,9 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
     }
     if model.feature_importances is not None:
         arrays["feature_importances"] = model.feature_importances
+    if model.exit_levels is not None:
+        arrays["exit_levels"] = model.exit_levels
+        arrays["exit_table"] = model.exit_table
     return arrays
 
 
@@ -352,6 +401,15 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
     if ((r[:, 0] < 0) | (r[:, 1] < 0) | (r[:, 2] < 1) | (r[:, 3] < 1)
             | (r[:, 0] + r[:, 2] > width) | (r[:, 1] + r[:, 3] > height)).any():
         raise InputError(f"model feature rectangle lies outside the {width}x{height} window", path=path)
+    if ("exit_levels" in a) != ("exit_table" in a):
+        raise InputError("model arrays 'exit_levels' and 'exit_table' must come together", path=path)
+    if "exit_levels" in a:
+        levels, table = a["exit_levels"], a["exit_table"]
+        if not np.isfinite(levels).all() or (levels < 0).any() or (levels > 1).any() \
+                or (np.diff(levels) <= 0).any():
+            raise InputError("model exit levels must be scores in 0..1, rising", path=path)
+        if np.isnan(table).any() or np.isposinf(table).any():
+            raise InputError("model exit table must be finite or -inf", path=path)
     if "feature_importances" in a and not np.isfinite(a["feature_importances"]).all():
         raise InputError("model feature importances must be finite", path=path)
     mode = str(a["mode"])
@@ -379,6 +437,10 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
     if not _is_real(temperature) or temperature <= 0:
         raise InputError("model metadata 'score_temperature' must be a number > 0, got "
                          f"{_shown(temperature)}", path=path)
+    gate = metadata.get("exit_min_sigma", 0.0)
+    if not _is_real(gate) or gate < 0:
+        raise InputError("model metadata 'exit_min_sigma' must be a number >= 0, got "
+                         f"{_shown(gate)}", path=path)
     return metadata
 
 
@@ -438,4 +500,6 @@ def load_model(path: str | os.PathLike) -> Model:
         normalize=bool(a["normalize"]),
         metadata=metadata,
         feature_importances=a.get("feature_importances"),
+        exit_levels=a.get("exit_levels"),
+        exit_table=a.get("exit_table"),
     )

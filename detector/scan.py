@@ -246,7 +246,11 @@ def split_bounds(thresholds) -> np.ndarray:
         down = np.nextafter(t32, np.float32(-np.inf)).astype(np.float64)
         mid = np.where(np.isinf(up) & np.isfinite(t), t + (t - down) / 2, (t + up) / 2)
     even = (t32.view(np.uint32) & 1) == 0
-    return np.where(np.isfinite(t), np.where(even, mid, np.nextafter(mid, -np.inf)), t)
+    bounds = np.where(np.isfinite(t), np.where(even, mid, np.nextafter(mid, -np.inf)), t)
+    # float32(v) is -inf only from -(largest float32 + half its step) down (that tie goes to -inf)
+    top = float(np.finfo(np.float32).max)
+    step = top - float(np.nextafter(np.float32(top), np.float32(0)))
+    return np.where(np.isneginf(t), -(top + step / 2), bounds)
 
 
 def exit_min_sigma(model) -> float:
@@ -286,7 +290,7 @@ class Engine:
         self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
         T = self.leaf_values.shape[0]
         if self.settings.early_exit:
-            self.exits = np.ascontiguousarray(model.exit_thresholds, np.float64)
+            self.exits = np.ascontiguousarray(model.exits_for(self.settings.threshold), np.float64)
         else:
             self.exits = np.full(T, -np.inf)
         self.bound = _remaining_bound(self.leaf_values)

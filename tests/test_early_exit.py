@@ -5,7 +5,8 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from detector.classifier import PatchClassifier, misaligned_copies
-from detector.forest import (calibrate_contrast_gate, calibrate_exit, kept_objects,
+from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
+                             kept_objects,
                              order_for_early_exit, trees_evaluated)
 
 
@@ -107,3 +108,25 @@ def test_contrast_gate_never_drops_a_kept_object(pairs, exit_recall, fraction):
     assert gate == pytest.approx(np.sqrt(fraction) * sig[kept].min())
     n_drop = int(np.floor((1 - exit_recall) * len(fin) + 1e-9))
     assert len(kept) == len(fin) - min(n_drop, len(fin) - 1)
+
+
+@given(st.integers(1, 40), st.integers(1, 8), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+@settings(max_examples=100, deadline=None)
+def test_exit_table_keeps_every_object_that_reaches_its_level(n, t, exit_recall, seed):
+    """Direct backward pruning (Zhang and Viola, NIPS 2007): at score level c, every calibration
+    object that ends at or above c and that calibrate_exit keeps among those is never dropped."""
+    rng = np.random.default_rng(seed)
+    r = np.cumsum(rng.normal(size=(n, t)), axis=1)
+    fin = 1 / (1 + np.exp(-r[:, -1]))
+    levels, table = calibrate_exit_table(r, fin, exit_recall)
+    assert table.shape == (len(levels), t)
+    assert (np.diff(levels) > 0).all()
+    for level, row in zip(levels, table):
+        sel = fin >= np.float32(level)
+        assert sel.any()  # a level is stored only while some object reaches it
+        kept = r[sel][kept_objects(fin[sel], exit_recall)]
+        assert (trees_evaluated(kept, row) == t).all()
+        np.testing.assert_array_equal(row, calibrate_exit(r[sel], exit_recall))
+    # levels no object reaches are left out
+    assert len(levels) == sum(bool((fin >= np.float32(v)).any()) for v in
+                              (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95))

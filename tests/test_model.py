@@ -136,6 +136,7 @@ def test_round_trip_keeps_every_array(fitted, model_file):
     assert back.metadata == json.loads(json.dumps(model.metadata))
     assert back.window == (12, 12) and back.mode == "bagged" and back.normalize is True
     assert back.depth == 2 and back.n_trees == 12
+    assert len(back.exit_levels) >= 2 and back.exit_table.shape == (len(back.exit_levels), 12)
     # numpy's own reader opens it without pickle
     with np.load(model_file, allow_pickle=False) as npz:
         assert int(npz["format_version"]) == FORMAT_VERSION and str(npz["kind"]) == "model"
@@ -213,6 +214,12 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
         (dict(mode=np.array("stacked")), "model mode 'stacked' is not one of bagged, boosted"),
         (dict(metadata=np.array("{not json")), "model metadata is not valid JSON"),
         (dict(node_features="depth-mismatch"), "a tree of depth D has 2**D - 1 nodes"),
+        (dict(exit_levels=None), "'exit_levels' and 'exit_table' must come together"),
+        (dict(exit_levels="falling"), "model exit levels must be scores in 0..1, rising"),
+        (dict(exit_levels="above-one"), "model exit levels must be scores in 0..1, rising"),
+        (dict(exit_table="nan"), "model exit table must be finite or -inf"),
+        (dict(exit_table="one-short"), "model array 'exit_table' has size"),
+        (dict(metadata=np.array('{"exit_min_sigma": -1}')), "'exit_min_sigma' must be a number >= 0"),
     ],
 )
 def test_load_refuses_each_bad_case(model_file, tmp_path, change, message):
@@ -233,6 +240,10 @@ def test_load_refuses_each_bad_case(model_file, tmp_path, change, message):
         elif value == "outside":
             v[0, 0, 0] = 11  # x = 11 with a width of at least 1 reaches past column 11
             v[0, 0, 2] = max(v[0, 0, 2], 2)
+        elif value == "falling":
+            v = v[::-1].copy()
+        elif value == "above-one":
+            v[-1] = 1.5
         elif value == "stray-slot":
             v[0, 3] = [1, 1, 1, 1, 0]
         elif value == "depth-mismatch":  # 4 nodes per tree (and matching thresholds) is no depth
