@@ -13,6 +13,7 @@ import hashlib
 import os
 import threading
 import time
+from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -478,7 +479,9 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle, limi
     try:
         model_future = client.scatter(model_bytes, broadcast=True)
         window = max(4, 4 * len(client.scheduler_info().get("workers", {})) or 4)
-        futures = []
+        # at most `window` images in flight; a handled future is dropped at once, so the cluster
+        # forgets its result and memory stays flat however long the run
+        futures = deque()
         it = iter(todo)
 
         def submit_next():
@@ -501,12 +504,11 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle, limi
 
         for _ in range(window):
             submit_next()
-        i = 0
-        while i < len(futures):
-            f = futures[i]
+        while futures:
+            f = futures.popleft()
             r = f if isinstance(f, ImageResult) else f.result()
+            del f
             handle(r)
-            i += 1
             submit_next()
     finally:
         client.close()
