@@ -277,9 +277,12 @@ class Engine:
     ----------
     model : detector.model.Model
     settings : ScanSettings
+    exit_level : float, optional
+        Use the early exits for this score threshold instead of the settings' threshold (a lower
+        level exits later; 0 keeps every calibration object).
     """
 
-    def __init__(self, model, settings: ScanSettings | None = None):
+    def __init__(self, model, settings: ScanSettings | None = None, exit_level: float | None = None):
         self.model = model
         self.settings = settings or ScanSettings()
         self.window = tuple(int(v) for v in model.window)
@@ -290,7 +293,8 @@ class Engine:
         self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
         T = self.leaf_values.shape[0]
         if self.settings.early_exit:
-            self.exits = np.ascontiguousarray(model.exits_for(self.settings.threshold), np.float64)
+            level = self.settings.threshold if exit_level is None else exit_level
+            self.exits = np.ascontiguousarray(model.exits_for(level), np.float64)
         else:
             self.exits = np.full(T, -np.inf)
         self.bound = _remaining_bound(self.leaf_values)
