@@ -36,6 +36,12 @@ def main(argv=None) -> int:
     ap.add_argument("--scenario", help="folder with train/ and test/ (default: render seed 0)")
     ap.add_argument("--rounds", type=int, default=2)
     ap.add_argument("--trees", type=int, default=300)
+    ap.add_argument("--depth", type=int, default=2)
+    ap.add_argument("--window", type=int, default=None,
+                    help="square window side (default: inferred by harvest, 24 here)")
+    ap.add_argument("--pool", type=int, default=10000)
+    ap.add_argument("--min-object", type=float, default=None,
+                    help="smallest object to look for, pixels (default: the window's object size)")
     args = ap.parse_args(argv)
     print("command: python benchmarks/accuracy.py " + " ".join(argv or sys.argv[1:]))
     root = args.scenario
@@ -47,15 +53,18 @@ def main(argv=None) -> int:
                         images_dir=os.path.join(root, "train", "images"))
     test = read_labels(os.path.join(root, "test", "labels.csv"))
     test_images = {it.image: read_gray(os.path.join(root, "test", "images", it.image)) for it in test}
+    window = None if args.window is None else (args.window, args.window)
     bank = harvest(os.path.join(root, "train", "images"), train.items, seed=0, rotate=30.0,
-                   copies=8, jitter=0.08, negatives_per_image=100)
-    params = dict(n_trees=args.trees, depth=2, mode="boosted", pool=10000, random_state=0, n_jobs=2)
+                   copies=8, jitter=0.08, negatives_per_image=100, window=window)
+    params = dict(n_trees=args.trees, depth=args.depth, mode="boosted", pool=args.pool,
+                  random_state=0, n_jobs=2)
     print(f"bank: {int(bank.labels.sum())} object and {int((bank.labels == 0).sum())} background "
-          f"patches; {args.trees} boosted trees of depth 2, pool 10,000")
+          f"patches of {bank.window[0]}x{bank.window[1]}; {args.trees} boosted trees of depth "
+          f"{args.depth}, pool {args.pool:,}")
     for r in range(args.rounds + 1):
         started = time.perf_counter()
         model, _ = train_model(bank, params)
-        engine = Engine(model, ScanSettings(threshold=0.05))
+        engine = Engine(model, ScanSettings(threshold=0.05, min_object=args.min_object))
         dets, gt, trees = {}, {}, []
         for it in test:
             res = engine.scan(test_images[it.image])
@@ -71,7 +80,7 @@ def main(argv=None) -> int:
               f"{time.perf_counter() - started:.0f} s")
         if r < args.rounds:
             found = mine(model, os.path.join(root, "train", "images"), train.items,
-                         settings=ScanSettings())
+                         settings=ScanSettings(min_object=args.min_object))
             bank = bank.extend(found.patches, found.boxes, np.arange(len(found.patches)),
                                KIND_MINED, images=found.images)
     print("goal (scan issue): AP50 >= 0.95 on the test split")

@@ -85,7 +85,7 @@ _ClickError = _UsageError.__bases__[0]
 def run() -> None:
     """Console entry point: one-line errors for bad input, never a traceback."""
     try:
-        code = app(standalone_mode=False)
+        code = app(standalone_mode=False, prog_name="patchwood")
     except _UsageError as err:
         if type(err).__name__ == "NoArgsIsHelpError":  # bare `patchwood`: show the help
             typer.echo(err.format_message())
