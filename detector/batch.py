@@ -499,8 +499,13 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle, limi
                 futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0),
                                            error=_read_failure(p, err)))
                 return
-            futures.append(client.submit(scan_bytes_task, model_future, settings, name, data,
+            # the bytes travel by scatter, the task message carries only their key: Dask keeps a
+            # debugging log of recent task messages (distributed.admin.low-level-log-length),
+            # which would otherwise hold up to a thousand images in the client and the scheduler
+            data_future = client.scatter(data, hash=False)
+            futures.append(client.submit(scan_bytes_task, model_future, settings, name, data_future,
                                          pure=False))
+            del data_future
 
         for _ in range(window):
             submit_next()
