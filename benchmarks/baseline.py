@@ -72,7 +72,7 @@ its own 0.05 scan, as ``patchwood score`` recommends), where the early exits for
 apply; the baseline's linear SVM costs the same at any threshold. The 0.05 scan's speed is printed
 too.
 
-Measured here (the default scenario, 2 cores, load average 2.7 before and 1.1 after; numpy 2.4,
+Measured here (the default scenario, 2 cores, load average 0.9 before and 1.1 after; numpy 2.4,
 scikit-image 0.26, scikit-learn 1.9; commit after the contrast gate and per-threshold exits):
 
 ====================  ===========  ================
