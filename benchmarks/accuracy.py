@@ -40,6 +40,8 @@ def main(argv=None) -> int:
     ap.add_argument("--window", type=int, default=None,
                     help="square window side (default: inferred by harvest, 24 here)")
     ap.add_argument("--pool", type=int, default=10000)
+    ap.add_argument("--negatives", type=int, default=100,
+                    help="background windows harvested per training image")
     ap.add_argument("--min-object", type=float, default=None,
                     help="smallest object to look for, pixels (default: the window's object size)")
     args = ap.parse_args(argv)
@@ -55,7 +57,7 @@ def main(argv=None) -> int:
     test_images = {it.image: read_gray(os.path.join(root, "test", "images", it.image)) for it in test}
     window = None if args.window is None else (args.window, args.window)
     bank = harvest(os.path.join(root, "train", "images"), train.items, seed=0, rotate=30.0,
-                   copies=8, jitter=0.08, negatives_per_image=100, window=window)
+                   copies=8, jitter=0.08, negatives_per_image=args.negatives, window=window)
     params = dict(n_trees=args.trees, depth=args.depth, mode="boosted", pool=args.pool,
                   random_state=0, n_jobs=2)
     print(f"bank: {int(bank.labels.sum())} object and {int((bank.labels == 0).sum())} background "
