@@ -430,7 +430,9 @@ def report_lines(report: dict) -> list[str]:
         known = {"exit_recall", "objects", "mean_trees_objects", "mean_trees_background",
                  "background_source"}
         for key in sorted(set(cal) - known):
-            lines.append(f"  {key.replace('_', ' ')}: {cal[key]}")
+            value = cal[key]
+            shown = f"{value:.4g}" if isinstance(value, float) else value
+            lines.append(f"  {key.replace('_', ' ')}: {shown}")
     else:
         lines.append("  no calibration figures in the model file")
 
