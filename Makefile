@@ -29,6 +29,9 @@ bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/features.py
 	$(BIN)/python benchmarks/train.py
 	$(BIN)/python benchmarks/scan.py
+	$(BIN)/python benchmarks/load.py
+	$(BIN)/python benchmarks/baseline.py
+	$(BIN)/python benchmarks/accuracy.py
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .pytest_cache
