@@ -40,6 +40,8 @@ def main(argv=None) -> int:
     ap.add_argument("--window", type=int, default=None,
                     help="square window side (default: inferred by harvest, 24 here)")
     ap.add_argument("--pool", type=int, default=10000)
+    ap.add_argument("--features-per-node", type=int, default=None,
+                    help="pool features tried per split (default: the square root of the pool)")
     ap.add_argument("--negatives", type=int, default=100,
                     help="background windows harvested per training image")
     ap.add_argument("--min-object", type=float, default=None,
@@ -59,7 +61,7 @@ def main(argv=None) -> int:
     bank = harvest(os.path.join(root, "train", "images"), train.items, seed=0, rotate=30.0,
                    copies=8, jitter=0.08, negatives_per_image=args.negatives, window=window)
     params = dict(n_trees=args.trees, depth=args.depth, mode="boosted", pool=args.pool,
-                  random_state=0, n_jobs=2)
+                  features_per_node=args.features_per_node, random_state=0, n_jobs=2)
     print(f"bank: {int(bank.labels.sum())} object and {int((bank.labels == 0).sum())} background "
           f"patches of {bank.window[0]}x{bank.window[1]}; {args.trees} boosted trees of depth "
           f"{args.depth}, pool {args.pool:,}")
