@@ -35,12 +35,11 @@ would cost (frames x width x height bytes). Sums over processes count pages shar
 once per process. Then whether the three detection files are byte for byte identical.
 
 On a cluster, distributed itself keeps, for debugging, the last ``low-level-log-length`` message
-batches (default 1000) of every batched connection whose batch is under 1 MB, image bytes
-included (``distributed.batched.BatchedSend.recent_message_log``, read in its source): with the
-default configuration the command (the client) and the scheduler grow by up to about that many
-images' bytes and then stay there. ``--dask-log-length N`` sets it (through the
+batches (default 1000) of every batched connection (``distributed.batched.BatchedSend.
+recent_message_log``, read in its source). patchwood sends each image's bytes by ``scatter`` and
+only their key in the task, so that log holds no images; ``--dask-log-length N`` (through the
 ``DASK_DISTRIBUTED__ADMIN__LOW_LEVEL_LOG_LENGTH`` environment variable of the command and the
-cluster) to tell that bounded cost from a growth of patchwood's own.
+cluster) is there to check that a growth is not that log's.
 
 Goals: the three files identical, covering every frame with no failures; memory flat, here read as
 a growth from 10 % done to the end below a quarter of the cost of keeping every frame, in every
@@ -77,6 +76,7 @@ from detector.model import load_model, save_model  # noqa: E402
 from synthetic_images import render_frame  # noqa: E402
 
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
+from scan import default_model  # noqa: E402  (the same default model as benchmarks/scan.py)
 
 SHOWN_SAMPLES = 10
 FLAT_SHARE = 0.25  # of the bytes of every frame kept: the most a flat run may grow after 10 %
@@ -251,24 +251,6 @@ def stop_cluster(proc):
     except subprocess.TimeoutExpired:
         proc.kill()
         proc.wait()
-
-
-def default_model(work: Path, seed: int):
-    """As benchmarks/scan.py: the default scenario, harvested and trained with the defaults."""
-    from detector.harvest import harvest
-    from detector.labels import read_labels
-    from detector.training import train_model
-    from synthetic_images import render_scenario
-
-    start = time.perf_counter()
-    render_scenario(work / "scenario", seed=seed)
-    train = work / "scenario" / "train"
-    items = list(read_labels(train / "labels.csv", train / "images"))
-    bank = harvest(train / "images", items, window=(24, 24), seed=seed)
-    model, _ = train_model(bank, dict(random_state=seed))
-    print(f"  trained the default model on {len(bank):,} patches in "
-          f"{time.perf_counter() - start:.1f} s")
-    return model
 
 
 def render_folder(folder: Path, n: int, width: int, height: int, seed: int) -> None:
