@@ -261,6 +261,12 @@ class Model:
         """Temperature of the boosted score (1.0 when the file has none)."""
         return float(self.metadata.get("score_temperature", 1.0))
 
+    @property
+    def exit_min_sigma(self) -> float:
+        """The contrast gate: windows whose grey-level standard deviation is below it are dropped
+        before any tree (0 = no gate: models without one, or without contrast normalisation)."""
+        return float(self.metadata.get("exit_min_sigma", 0.0)) if self.normalize else 0.0
+
     def summary(self) -> list[str]:
         """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.
 

@@ -253,18 +253,6 @@ def split_bounds(thresholds) -> np.ndarray:
     return np.where(np.isneginf(t), -(top + step / 2), bounds)
 
 
-def exit_min_sigma(model) -> float:
-    """The model's contrast gate: windows whose grey-level standard deviation is below it are
-    dropped before any tree (0 = no gate; models trained before the gate have none)."""
-    value = model.metadata.get("exit_min_sigma", 0.0)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) \
-            or value < 0:
-        from detector.errors import InputError
-
-        raise InputError(f"model metadata 'exit_min_sigma' must be a number >= 0, got {value!r}")
-    return float(value) if model.normalize else 0.0
-
-
 def _remaining_bound(leaf_values):
     top = leaf_values.max(axis=1).astype(np.float64)
     return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]])
@@ -299,7 +287,7 @@ class Engine:
             self.exits = np.full(T, -np.inf)
         self.bound = _remaining_bound(self.leaf_values)
         # the contrast gate is part of the early exit (off with it)
-        gate = exit_min_sigma(model) if self.settings.early_exit else 0.0
+        gate = model.exit_min_sigma if self.settings.early_exit else 0.0
         self.min_var = gate * gate if gate > 0 else -np.inf
         self.cutoff = raw_cutoff(model, self.settings.threshold)
         self.normalize = bool(model.normalize)
