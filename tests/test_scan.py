@@ -308,3 +308,36 @@ def test_frame_integrals_equal_the_project_integrals(h, w, seed):
     ii2, sq2 = frame_integrals(gray.astype(np.uint16))
     np.testing.assert_array_equal(ii2, ii)
     np.testing.assert_array_equal(sq2, sq)
+    # reused buffers (the scan's workspace) hold the same numbers, whatever they held before;
+    # buffers of another shape are not used
+    out = (np.full((h + 1, w + 1), np.nan), np.full((h + 1, w + 1), -7.0))
+    ii3, sq3 = frame_integrals(gray, out)
+    assert np.shares_memory(ii3, out[0]) and np.shares_memory(sq3, out[1])
+    np.testing.assert_array_equal(ii3, ii)
+    np.testing.assert_array_equal(sq3, sq)
+    wrong = (np.zeros((h + 2, w + 1)), np.zeros((h + 2, w + 1)))
+    ii4, _ = frame_integrals(gray, wrong)
+    assert not np.shares_memory(ii4, wrong[0])
+    np.testing.assert_array_equal(ii4, ii)
+
+
+def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
+    """The engine keeps its integral images and output arrays from frame to frame (per thread);
+    frames of other sizes in any order, and two threads at once, get what a fresh engine gives."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    settings_ = ScanSettings(threshold=0.05)
+    frames = [frame(seed=s, width=w, height=h)
+              for s, (w, h) in enumerate([(160, 160), (240, 160), (160, 160), (160, 200)] * 2)]
+    fresh = [Engine(bagged, settings_).scan(f) for f in frames]
+    shared = Engine(bagged, settings_)
+    for f, want in zip(frames, fresh):
+        got = shared.scan(f)
+        np.testing.assert_array_equal(got.boxes, want.boxes)
+        np.testing.assert_array_equal(got.scores, want.scores)
+        assert got.trees == want.trees
+    with ThreadPoolExecutor(2) as pool:
+        results = list(pool.map(shared.scan, frames * 3))
+    for got, want in zip(results, fresh * 3):
+        np.testing.assert_array_equal(got.boxes, want.boxes)
+        np.testing.assert_array_equal(got.scores, want.scores)
