@@ -70,6 +70,7 @@ __all__ = [
     "calibrate_contrast_gate",
     "calibrate_exit_table",
     "EXIT_LEVELS",
+    "exit_kept",
     "kept_objects",
     "trees_evaluated",
     "seed_sequence",
@@ -467,12 +468,14 @@ def forest_score(flat, X) -> np.ndarray:
     return final_score(flat.mode, running[:, -1], running.shape[1])
 
 
-def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
+def calibrate_exit(running_scores, exit_recall: float = 0.995, background=None,
+                   lost=None) -> np.ndarray:
     """Early-exit thresholds from the running scores of held-out object patches.
 
-    The ``floor((1 - exit_recall) * N)`` objects with the lowest final score are set aside; each
-    threshold is the minimum running score, after that tree, of the objects kept, rounded down to
-    float32 (the common
+    At most ``floor((1 - exit_recall) * N)`` objects are set aside (:func:`exit_kept`: the ones
+    with the lowest final score, or, given background windows, the ones that hold the exits down
+    most); each threshold is the minimum running score, after that tree, of the objects kept,
+    rounded down to float32 (the common
     approach for soft cascades; Bourdev and Brandt, CVPR 2005, calibrate a rejection trace on
     positives). A window is dropped after tree ``t`` when ``s_t < thresholds[t]``, so no kept object
     is ever dropped and at most ``1 - exit_recall`` of the calibration objects are dropped over the
@@ -484,6 +487,10 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
         From :func:`forest_running_scores` on object patches.
     exit_recall : float in (0, 1]
         Fraction of calibration objects that must survive every exit.
+    background : ndarray (M, T), optional
+        Running scores of background windows past the contrast gate (see :func:`exit_kept`).
+    lost : boolean ndarray (N,), optional
+        Objects the contrast gate drops; they count against the budget.
 
     Returns
     -------
@@ -504,7 +511,113 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995) -> np.ndarray:
     n, t = r.shape
     if n == 0:
         return np.full(t, -np.inf, np.float32)
-    return float32_thresholds(r[kept_objects(r[:, -1], exit_recall)].min(axis=0))
+    return float32_thresholds(r[exit_kept(r, background, exit_recall, lost)].min(axis=0))
+
+
+#: Trees at the front of the order whose exits :func:`exit_kept` tries to raise.
+EXIT_SEARCH_TREES = 64
+
+
+def exit_kept(running_scores, background_running=None, exit_recall: float = 0.995, lost=None,
+              search_trees: int = EXIT_SEARCH_TREES) -> np.ndarray:
+    """Which calibration objects the early exit keeps (a boolean mask): all but at most
+    ``floor((1 - exit_recall) * N)``, given up where that lets background windows exit soonest.
+
+    A soft cascade may spread the misses it is allowed over its stages (Bourdev and Brandt,
+    CVPR 2005, call the spread a rejection distribution vector). Here the objects are given up
+    greedily, in groups: the exit after tree ``t`` is the lowest running score of the kept objects,
+    so raising it means giving up the kept objects that sit exactly at that lowest score. Each step
+    takes, among the first ``search_trees`` trees, the raise that saves the most background tree
+    evaluations per object given up (counted exactly, with the contrast-gated background windows
+    given), while the budget lasts and a raise saves anything. Objects in ``lost`` (dropped before
+    any tree, by the contrast gate) count against the budget first.
+
+    The result is never worse on the given background than the plain rule (:func:`kept_objects`:
+    give up the objects with the lowest final score): the mask whose exits leave fewer background
+    tree evaluations is returned, the plain one on a tie. Without background windows the plain rule
+    is used.
+
+    Parameters
+    ----------
+    running_scores : ndarray, shape (N, T)
+        Running scores of the calibration objects.
+    background_running : ndarray, shape (M, T), optional
+        Running scores of background windows that pass the contrast gate.
+    exit_recall : float in (0, 1]
+    lost : boolean ndarray (N,), optional
+        Objects lost anyway; never kept.
+    search_trees : int
+
+    Examples
+    --------
+    >>> r = np.array([[0., 6.], [2., 4.], [2., 5.], [3., 6.]])    # final scores 6, 4, 5, 6
+    >>> bg = np.array([[1., 1.], [1., 1.], [1.5, 1.5], [5., 5.]])
+    >>> sorted(kept_objects(r[:, -1], 0.75).tolist())   # budget 1: the lowest final score goes
+    [0, 2, 3]
+    >>> # giving up row 0 instead lifts the first exit from 0 to 2: three background windows
+    >>> # leave after one tree (5 evaluations in all, against 8 with the plain rule's exits 0, 5)
+    >>> exit_kept(r, bg, 0.75).tolist()
+    [False, True, True, True]
+    """
+    r = np.asarray(running_scores, dtype=np.float64)
+    n, t = r.shape
+    lost = np.zeros(n, bool) if lost is None else np.asarray(lost, dtype=bool).copy()
+    budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))
+    if n and lost.all():
+        lost[:] = False  # nothing would be left to calibrate on: keep every object
+    # the plain rule: after the lost objects, the lowest final scores go while the budget lasts
+    plain = ~lost
+    alive = np.flatnonzero(plain)
+    spare = min(budget - int(lost.sum()), len(alive) - 1)
+    if spare > 0:
+        plain[alive[np.argsort(r[alive, -1], kind="stable")[:spare]]] = False
+    if background_running is None or len(background_running) == 0 or n == 0:
+        return plain
+    b = np.asarray(background_running, dtype=np.float64)
+
+    def evaluations(keep):
+        if not keep.any():
+            return 0.0
+        return float(trees_evaluated(b, float32_thresholds(r[keep].min(axis=0))).sum())
+
+    keep = ~lost
+    budget -= int(lost.sum())
+    front = min(t, int(search_trees))
+    exits = float32_thresholds(r[keep].min(axis=0)) if keep.any() else np.full(t, np.inf, np.float32)
+    below = b < exits.astype(np.float64)[None, :]
+    first = np.where(below.any(axis=1), np.argmax(below, axis=1), t)  # tree each window exits at
+    while budget > 0 and keep.sum() > 1:
+        best = None
+        idx = np.flatnonzero(keep)
+        col_min = r[idx].min(axis=0)
+        tried = set()
+        for k in range(front):
+            group = idx[r[idx, k] == col_min[k]]
+            if len(group) > budget or len(group) >= len(idx):
+                continue
+            key = tuple(group.tolist())
+            if key in tried:
+                continue
+            tried.add(key)
+            trial = keep.copy()
+            trial[group] = False
+            new = float32_thresholds(r[trial].min(axis=0))
+            changed = np.flatnonzero(new != exits)
+            if not len(changed):
+                continue
+            cond = b[:, changed] < new[changed].astype(np.float64)[None, :]
+            hit = cond.any(axis=1)
+            f_new = np.where(hit, changed[np.argmax(cond, axis=1)], t)
+            saved = float((first - np.minimum(first, f_new)).sum())
+            gain = saved / len(group)
+            if saved > 0 and (best is None or gain > best[0]):
+                best = (gain, group, new, np.minimum(first, f_new))
+        if best is None:
+            break
+        _, group, exits, first = best
+        keep[group] = False
+        budget -= len(group)
+    return keep if evaluations(keep) < evaluations(plain) else plain
 
 
 #: Score thresholds that get exit thresholds of their own (see :func:`calibrate_exit_table`).
@@ -512,7 +625,7 @@ EXIT_LEVELS = (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95)
 
 
 def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.995,
-                         levels=EXIT_LEVELS):
+                         levels=EXIT_LEVELS, background=None, lost=None):
     """Exit thresholds for scans at given score thresholds (direct backward pruning).
 
     A scan at score threshold ``c`` reports only windows that end at ``c`` or above, so its exits
@@ -528,6 +641,8 @@ def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.99
         The objects' final scores in 0..1 (:func:`final_score` of the last running score).
     exit_recall : float in (0, 1]
     levels : sequence of float in 0..1, rising
+    background, lost :
+        As for :func:`calibrate_exit` (``lost`` indexes all N objects).
 
     Returns
     -------
@@ -548,7 +663,8 @@ def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.99
         if not sel.any():
             break
         out_levels.append(level)
-        rows.append(calibrate_exit(r[sel], exit_recall))
+        rows.append(calibrate_exit(r[sel], exit_recall, background,
+                                   None if lost is None else np.asarray(lost, bool)[sel]))
     t = r.shape[1]
     return (np.asarray(out_levels, np.float32),
             np.asarray(rows, np.float32).reshape(len(rows), t))

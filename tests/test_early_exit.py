@@ -6,7 +6,7 @@ from hypothesis import given, settings, strategies as st
 
 from detector.classifier import PatchClassifier, misaligned_copies
 from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
-                             kept_objects,
+                             exit_kept, float32_thresholds, kept_objects,
                              order_for_early_exit, trees_evaluated)
 
 
@@ -130,3 +130,97 @@ def test_exit_table_keeps_every_object_that_reaches_its_level(n, t, exit_recall,
     # levels no object reaches are left out
     assert len(levels) == sum(bool((fin >= np.float32(v)).any()) for v in
                               (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95))
+
+
+def _leaf_sums(rng, n, t, levels=3):
+    """Running scores of ``n`` windows over ``t`` trees whose leaves take a few values (ties, as
+    real leaves give)."""
+    return np.cumsum(rng.integers(0, levels, (n, t)).astype(np.float64), axis=1)
+
+
+@given(st.integers(1, 60), st.integers(1, 8), st.integers(0, 40), st.floats(0.5, 1.0),
+       st.integers(0, 6), st.integers(0, 2**32 - 1))
+@settings(max_examples=150, deadline=None)
+def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit_recall, n_lost,
+                                                                seed):
+    rng = np.random.default_rng(seed)
+    r = _leaf_sums(rng, n, t)
+    bg = _leaf_sums(rng, n_bg, t) - 1.0
+    lost = np.zeros(n, bool)
+    lost[rng.choice(n, min(n_lost, n - 1), replace=False)] = True
+    keep = exit_kept(r, bg, exit_recall, lost)
+    plain = exit_kept(r, None, exit_recall, lost)
+    budget = int(np.floor((1 - exit_recall) * n + 1e-9))
+    for mask in (keep, plain):
+        assert mask.dtype == bool and mask.shape == (n,)
+        assert mask.any()
+        assert not (mask & lost).any()                     # a lost object is never counted kept
+        assert (~mask).sum() <= max(budget, lost.sum())    # the budget holds, lost ones first
+        exits = float32_thresholds(r[mask].min(axis=0))
+        assert (trees_evaluated(r[mask], exits) == t).all()   # no kept object is dropped
+    # the plain rule without lost objects is kept_objects' set
+    if not lost.any():
+        assert set(np.flatnonzero(plain)) == set(kept_objects(r[:, -1], exit_recall).tolist())
+    # on the background it was chosen for, never more tree evaluations than the plain rule
+    if n_bg:
+        spend = [trees_evaluated(bg, float32_thresholds(r[m].min(axis=0))).sum() for m in (keep, plain)]
+        assert spend[0] <= spend[1]
+
+
+def test_exit_kept_gives_up_a_tied_group_when_that_pays():
+    """Hand-worked: objects 0 and 1 tie at the lowest score after tree 0 (0), object 2 alone holds
+    tree 1's exit down. Budget 2 of 6 (exit_recall 2/3): giving up the pair lifts exit 0 from 0 to
+    1, which drops all three background windows (score 0.5) after one tree: 3 evaluations saved,
+    1.5 per object. Giving up object 2 lifts exit 1 from 1 to 2: the windows would leave one tree
+    later, nothing saved there."""
+    r = np.array([[0., 3.], [0., 3.], [1., 1.], [1., 3.], [2., 3.], [2., 4.]])
+    bg = np.array([[0.5, 0.5]] * 3)
+    keep = exit_kept(r, bg, 2 / 3)
+    assert keep.tolist() == [False, False, True, True, True, True]
+    assert calibrate_exit(r, 2 / 3, bg).tolist() == [1.0, 1.0]
+    # the plain rule gives up the two lowest final scores (object 2, then object 0 of the tied
+    # 3s): exits 0 (object 1) and 3
+    assert calibrate_exit(r, 2 / 3).tolist() == [0.0, 3.0]
+
+
+@given(st.integers(2, 40), st.integers(1, 6), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+@settings(max_examples=60, deadline=None)
+def test_exit_table_with_background_keeps_its_budget_at_every_level(n, t, exit_recall, seed):
+    rng = np.random.default_rng(seed)
+    r = _leaf_sums(rng, n, t) - t
+    fin = 1 / (1 + np.exp(-r[:, -1]))
+    bg = _leaf_sums(rng, 30, t) - t - 1
+    lost = rng.random(n) < 0.1
+    levels, table = calibrate_exit_table(r, fin, exit_recall, background=bg, lost=lost)
+    for level, row in zip(levels, table):
+        sel = fin >= np.float32(level)
+        dropped = (trees_evaluated(r[sel], row) < t) | lost[sel]
+        assert dropped.sum() <= max(int(np.floor((1 - exit_recall) * sel.sum() + 1e-9)),
+                                    lost[sel].sum())
+
+
+def test_fitted_exit_gives_up_at_most_its_budget():
+    """exit_recall 0.9: of the calibration copies (9 per held-out object), the contrast gate and
+    every exit together drop at most a tenth, at every score level."""
+    rng = np.random.default_rng(1)
+    bright = rng.integers(0, 90, (80, 12, 12))
+    bright[:, :6] += 120
+    dull = rng.integers(0, 210, (160, 12, 12))
+    patches = np.concatenate([bright, dull]).astype(np.uint8)
+    y = np.r_[np.ones(80), np.zeros(160)]
+    for mode in ("bagged", "boosted"):
+        clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
+                              random_state=0).fit(patches, y)
+        m = clf.model_
+        from detector.forest import final_score, seed_sequence
+
+        exit_ss = seed_sequence(0).spawn(5)[4]
+        cal = misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
+        run = m.running_scores(cal)
+        gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
+        rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
+        fin = final_score(m.mode, run[:, -1], m.n_trees, m.temperature)
+        for level, row in rows:
+            sel = fin >= np.float32(level)
+            dropped = (trees_evaluated(run[sel], row) < m.n_trees) | gated[sel]
+            assert dropped.sum() <= int(np.floor(0.1 * sel.sum() + 1e-9)), (mode, level)
