@@ -342,21 +342,34 @@ class Engine:
     def plans(self, image_size, enlarged: float = 1.0):
         """Scale plans for an image of ``(width, height)`` (already enlarged by ``enlarged`` when
         the smallest object is smaller than the window), cached by size. Thread-safe."""
+        return [plan for plan, _, _ in self._grid(image_size, enlarged)]
+
+    def _grid(self, image_size, enlarged: float = 1.0):
+        """``(plan, xs, ys)`` per scale that has windows: the plan and the windows' top-left
+        positions, cached by image size (a small frame spends a fifth of its scan on them
+        otherwise)."""
         key = (tuple(image_size), enlarged)
         with self._lock:
-            plans = self._plans.get(key)
-        if plans is None:
+            grid = self._plans.get(key)
+        if grid is None:
             lo, hi = self.object_scale_range()
             start = max(lo * enlarged, 1.0)
             top = None if hi is None else hi * enlarged
-            scales = scales_for(image_size, self.window, self.settings.scale_step, start, top)
-            plans = [scale_plan(self.model.features, self.window, s, image_size[0] + 1,
-                                self.normalize) for s in scales]
+            iw, ih = image_size
+            grid = []
+            for s in scales_for(image_size, self.window, self.settings.scale_step, start, top):
+                plan = scale_plan(self.model.features, self.window, s, iw + 1, self.normalize)
+                Ws, Hs = plan.window
+                step = max(1, int(_round(self.settings.stride * plan.scale)))
+                xs = np.arange(0, iw - Ws + 1, step, dtype=np.int64)
+                ys = np.arange(0, ih - Hs + 1, step, dtype=np.int64)
+                if len(xs) and len(ys):
+                    grid.append((plan, xs, ys))
             with self._lock:
-                self._plans[key] = plans
+                self._plans[key] = grid
                 while len(self._plans) > 16:
                     self._plans.pop(next(iter(self._plans)))
-        return plans
+        return grid
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
         """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
@@ -372,15 +385,10 @@ class Engine:
         ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
         boxes, raws = [], []
         windows = trees = 0
-        for plan in self.plans((iw, ih), up):
+        fn = scan_scale_numpy if use_numpy else _kernels.scan_scale
+        for plan, xs, ys in self._grid((iw, ih), up):
             Ws, Hs = plan.window
-            step = max(1, int(_round(self.settings.stride * plan.scale)))
-            xs = np.arange(0, iw - Ws + 1, step, dtype=np.int64)
-            ys = np.arange(0, ih - Hs + 1, step, dtype=np.int64)
-            if len(xs) == 0 or len(ys) == 0:
-                continue
             n = len(xs) * len(ys)
-            fn = scan_scale_numpy if use_numpy else _kernels.scan_scale
             out_x, out_y, out_s = self._work.out(n)
             kept, used = fn(ii, sq, iw + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
                             self.min_var, self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
