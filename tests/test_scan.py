@@ -88,6 +88,25 @@ def test_compiled_scan_equals_numpy_twin(model, early_exit):
         np.testing.assert_allclose(r1, r2, rtol=0, atol=1e-9)
 
 
+@pytest.mark.parametrize("depth", [1, 3])
+@pytest.mark.parametrize("early_exit", [False, True])
+def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit):
+    """Depths other than 2 take the kernel's general tree walk; a 160 x 160 frame at stride 2
+    spans several chunks of windows (more than the kernel's CHUNK of 1,024 at scale 1)."""
+    from detector import _kernels
+
+    clf = PatchClassifier(n_trees=12, pool=1500, depth=depth, mode="boosted", random_state=2)
+    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    engine = every_window(clf.model_, early_exit=early_exit, threshold=0.3)
+    gray = frame(4)
+    b1, r1, w1, t1 = engine.candidates(gray)
+    b2, r2, w2, t2 = engine.candidates(gray, use_numpy=True)
+    assert w1 > 4 * _kernels.CHUNK
+    assert (w1, t1) == (w2, t2)
+    np.testing.assert_array_equal(b1, b2)
+    np.testing.assert_allclose(r1, r2, rtol=0, atol=1e-9)
+
+
 # ------------------------------------------------------------------ against patches cut by hand
 
 def test_scan_scores_equal_classifier_scores_at_scale_one(model):
