@@ -83,8 +83,9 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
 
     Parameters
     ----------
-    ii, sq : float64 1-d
-        Flattened integral and squared-integral images (exact integers held in float64).
+    ii, sq : 1-d
+        Flattened integral image (int32 or float64; see :func:`detector.scan.integral_dtype`) and
+        squared-integral image (float64); exact integers either way.
     row_stride : int
         Width of the integral image (image width + 1).
     xs, ys : int64 1-d

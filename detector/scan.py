@@ -203,8 +203,24 @@ def final_scores(model, raw):
     return final_score(model.mode, raw, model.leaf_values.shape[0], model.temperature)
 
 
+#: An 8-bit frame's integral image is held as int32 while its sums fit (255 * pixels < 2**31, so
+#: up to 8.4 megapixels): exact, half the memory of float64, and the kernel reads it faster
+#: (1.065x on the demo's 320 x 240 frames, 1.04x at 640 x 480; ``benchmarks/scan.py`` frames).
+INT32_PIXELS = (2**31 - 1) // 255
+
+
+def integral_dtype(height: int, width: int):
+    """dtype of the integral image :func:`frame_integrals` gives an 8-bit frame of this size.
+
+    >>> integral_dtype(480, 640).__name__, integral_dtype(3000, 4000).__name__
+    ('int32', 'float64')
+    """
+    return np.int32 if height * width <= INT32_PIXELS else np.float64
+
+
 def frame_integrals(gray: np.ndarray, out=None):
-    """The frame's integral and squared-integral images, flattened, as float64.
+    """The frame's integral and squared-integral images, flattened: the squared one as float64,
+    the plain one as :func:`integral_dtype` for 8-bit frames (float64 for other dtypes).
 
     The sums are integers below 2**53 for any image the readers accept (255**2 * 2**24 pixels is
     about 2**40), so float64 holds them exactly and the kernel multiplies without converting.
@@ -212,22 +228,25 @@ def frame_integrals(gray: np.ndarray, out=None):
     cumulative sums); other dtypes go through :mod:`detector.integral`. Both give the same
     numbers (tests/test_scan.py).
 
-    ``out``, optional: two float64 arrays of shape ``(height + 1, width + 1)`` to write into.
-    Reusing them from frame to frame saves most of the time: fresh memory of this size comes from
-    the operating system page by page, and the page faults cost several times the sums themselves
-    (4.4 against 0.55 ms for a 640 x 480 frame on the benchmark machine, ``benchmarks/scan.py``).
+    ``out``, optional: two arrays of shape ``(height + 1, width + 1)`` and those dtypes to write
+    into. Reusing them from frame to frame saves most of the time: fresh memory of this size comes
+    from the operating system page by page, and the page faults cost several times the sums
+    themselves (4.4 against 0.55 ms for a 640 x 480 frame on the benchmark machine,
+    ``benchmarks/scan.py``).
     """
     gray = np.asarray(gray)
     if gray.dtype == np.uint8 and gray.ndim == 2:
         import cv2
 
         shape = (gray.shape[0] + 1, gray.shape[1] + 1)
-        if out is not None and out[0].shape == shape and out[1].shape == shape:
+        dtype = integral_dtype(*gray.shape)
+        depth = cv2.CV_32S if dtype == np.int32 else cv2.CV_64F
+        if (out is not None and out[0].shape == shape and out[0].dtype == dtype
+                and out[1].shape == shape and out[1].dtype == np.float64):
             ii, sq = cv2.integral2(np.ascontiguousarray(gray), sum=out[0], sqsum=out[1],
-                                   sdepth=cv2.CV_64F, sqdepth=cv2.CV_64F)
+                                   sdepth=depth, sqdepth=cv2.CV_64F)
         else:
-            ii, sq = cv2.integral2(np.ascontiguousarray(gray), sdepth=cv2.CV_64F,
-                                   sqdepth=cv2.CV_64F)
+            ii, sq = cv2.integral2(np.ascontiguousarray(gray), sdepth=depth, sqdepth=cv2.CV_64F)
         return ii.ravel(), sq.ravel()
     return (integral_image(gray).ravel().astype(np.float64),
             squared_integral_image(gray).ravel().astype(np.float64))
@@ -246,7 +265,7 @@ class _Workspace(threading.local):
         shape = (gray_shape[0] + 1, gray_shape[1] + 1)
         if self.shape != shape:
             self.shape = shape
-            self.integrals = (np.empty(shape), np.empty(shape))
+            self.integrals = (np.empty(shape, integral_dtype(*gray_shape)), np.empty(shape))
         return self.integrals
 
     def out(self, n):

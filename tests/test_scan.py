@@ -320,7 +320,7 @@ def test_frame_integrals_equal_the_project_integrals(h, w, seed):
 
     gray = np.random.default_rng(seed).integers(0, 256, (h, w), dtype=np.uint8)
     ii, sq = frame_integrals(gray)
-    assert ii.dtype == sq.dtype == np.float64
+    assert ii.dtype == np.int32 and sq.dtype == np.float64  # small frames: int32 sums
     np.testing.assert_array_equal(ii, integral_image(gray).ravel())
     np.testing.assert_array_equal(sq, squared_integral_image(gray).ravel())
     # the general path (any other dtype: here the same pixels as uint16) gives the same numbers
@@ -328,16 +328,33 @@ def test_frame_integrals_equal_the_project_integrals(h, w, seed):
     np.testing.assert_array_equal(ii2, ii)
     np.testing.assert_array_equal(sq2, sq)
     # reused buffers (the scan's workspace) hold the same numbers, whatever they held before;
-    # buffers of another shape are not used
-    out = (np.full((h + 1, w + 1), np.nan), np.full((h + 1, w + 1), -7.0))
+    # buffers of another shape or dtype are not used
+    out = (np.full((h + 1, w + 1), -9, np.int32), np.full((h + 1, w + 1), -7.0))
     ii3, sq3 = frame_integrals(gray, out)
     assert np.shares_memory(ii3, out[0]) and np.shares_memory(sq3, out[1])
     np.testing.assert_array_equal(ii3, ii)
     np.testing.assert_array_equal(sq3, sq)
-    wrong = (np.zeros((h + 2, w + 1)), np.zeros((h + 2, w + 1)))
-    ii4, _ = frame_integrals(gray, wrong)
-    assert not np.shares_memory(ii4, wrong[0])
-    np.testing.assert_array_equal(ii4, ii)
+    for wrong in [(np.zeros((h + 2, w + 1), np.int32), np.zeros((h + 2, w + 1))),
+                  (np.zeros((h + 1, w + 1)), np.zeros((h + 1, w + 1)))]:
+        ii4, _ = frame_integrals(gray, wrong)
+        assert not np.shares_memory(ii4, wrong[0])
+        np.testing.assert_array_equal(ii4, ii)
+
+
+def test_integral_image_switches_to_float64_where_int32_would_overflow(monkeypatch):
+    """An all-white frame one pixel above the int32 limit gets float64 sums; at the limit, int32.
+    (The limit is lowered here so that the frames stay small; the arithmetic is the same:
+    255 * pixels against 2**31 - 1.)"""
+    from detector import scan
+    from detector.integral import integral_image
+
+    assert scan.INT32_PIXELS * 255 <= 2**31 - 1 < (scan.INT32_PIXELS + 1) * 255
+    monkeypatch.setattr(scan, "INT32_PIXELS", 12 * 10)
+    for h, w, dtype in [(12, 10, np.int32), (11, 11, np.float64)]:
+        gray = np.full((h, w), 255, np.uint8)
+        ii, _ = scan.frame_integrals(gray)
+        assert ii.dtype == dtype
+        np.testing.assert_array_equal(ii, integral_image(gray).ravel())
 
 
 def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
@@ -360,3 +377,18 @@ def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
     for got, want in zip(results, fresh * 3):
         np.testing.assert_array_equal(got.boxes, want.boxes)
         np.testing.assert_array_equal(got.scores, want.scores)
+
+
+def test_scan_gives_the_same_with_float64_sums(bagged, monkeypatch):
+    """Frames above the int32 limit are scanned on float64 sums: the same windows and scores."""
+    from detector import scan
+
+    gray = frame(seed=6)
+    want = every_window(bagged, threshold=0.2).candidates(gray)
+    monkeypatch.setattr(scan, "INT32_PIXELS", 100)
+    engine = every_window(bagged, threshold=0.2)
+    assert engine._work.tables(gray.shape)[0].dtype == np.float64
+    got = engine.candidates(gray)
+    np.testing.assert_array_equal(got[0], want[0])
+    np.testing.assert_array_equal(got[1], want[1])
+    assert got[2:] == want[2:]
