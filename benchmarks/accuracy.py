@@ -42,6 +42,8 @@ def main(argv=None) -> int:
     ap.add_argument("--pool", type=int, default=10000)
     ap.add_argument("--features-per-node", type=int, default=None,
                     help="pool features tried per split (default: the square root of the pool)")
+    ap.add_argument("--margin", type=float, default=0.1,
+                    help="context around each box, as a fraction of its size (harvest's default 0.1)")
     ap.add_argument("--negatives", type=int, default=100,
                     help="background windows harvested per training image")
     ap.add_argument("--min-object", type=float, default=None,
@@ -59,11 +61,13 @@ def main(argv=None) -> int:
     test_images = {it.image: read_gray(os.path.join(root, "test", "images", it.image)) for it in test}
     window = None if args.window is None else (args.window, args.window)
     bank = harvest(os.path.join(root, "train", "images"), train.items, seed=0, rotate=30.0,
-                   copies=8, jitter=0.08, negatives_per_image=args.negatives, window=window)
+                   copies=8, jitter=0.08, negatives_per_image=args.negatives, window=window,
+                   margin=args.margin)
     params = dict(n_trees=args.trees, depth=args.depth, mode="boosted", pool=args.pool,
                   features_per_node=args.features_per_node, random_state=0, n_jobs=2)
     print(f"bank: {int(bank.labels.sum())} object and {int((bank.labels == 0).sum())} background "
-          f"patches of {bank.window[0]}x{bank.window[1]}; {args.trees} boosted trees of depth "
+          f"patches of {bank.window[0]}x{bank.window[1]} (margin {bank.margin:g}); {args.trees} "
+          f"boosted trees of depth "
           f"{args.depth}, pool {args.pool:,}")
     for r in range(args.rounds + 1):
         started = time.perf_counter()
