@@ -76,13 +76,24 @@ from detector.model import load_model, save_model  # noqa: E402
 from synthetic_images import render_frame  # noqa: E402
 
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
-from scan import default_model  # noqa: E402  (the same default model as benchmarks/scan.py)
 
 SHOWN_SAMPLES = 10
 FLAT_SHARE = 0.25  # of the bytes of every frame kept: the most a flat run may grow after 10 %
 
 # A LocalCluster in a process of its own: prints its scheduler address, serves until its standard
 # input closes.
+# The default model is trained in a child process: a process started from this one inherits its
+# peak resident set until it executes the command (Linux keeps the old address space's peak at
+# exec), so a fat benchmark process would be counted as the command's peak.
+TRAIN_PROGRAM = """
+import sys
+from pathlib import Path
+sys.path[:0] = [sys.argv[1], sys.argv[2]]
+from scan import default_model
+from detector.model import save_model
+save_model(sys.argv[4], default_model(Path(sys.argv[3]), int(sys.argv[5])))
+"""
+
 CLUSTER_PROGRAM = """
 import sys
 from distributed import LocalCluster
@@ -308,7 +319,11 @@ def main(argv=None):
             model = load_model(args.model)
             print(f"  loaded {args.model}")
         else:
-            model = default_model(work, args.seed)
+            trained = work / "trained.npz"
+            subprocess.run([sys.executable, "-c", TRAIN_PROGRAM, str(ROOT),
+                            str(Path(__file__).resolve().parent), str(work), str(trained),
+                            str(args.seed)], check=True, cwd=ROOT)
+            model = load_model(trained)
             if args.save_model is not None:
                 save_model(args.save_model, model)
                 print(f"  saved to {args.save_model}")
