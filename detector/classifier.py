@@ -338,18 +338,24 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             normalize=bool(self.normalize), feature_importances=small.importances,
         )
         background = grow_patches[grow_y == 0]
-        bg_running = model.running_scores(background)
+        # leaf values once; running scores in any tree order are their cumulative sums
+        bg_leaf = model.leaf_scores(background)
+        bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)
         bg_sigma = window_sigma(background)
         step = max(1, int(np.ceil(len(bg_running) / MAX_ORDERING_BACKGROUND)))
         if len(held):
             recall = float(self.exit_recall)
             calibration = misaligned_copies(patches[held], float(self.exit_shift),
                                             float(self.exit_scale), random_state=exit_ss)
-            running = model.running_scores(calibration)
+            cal_leaf = model.leaf_scores(calibration)
+            running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
             cal_sigma = window_sigma(calibration)
             gate = calibrate_contrast_gate(cal_sigma, running[:, -1], recall) if self.normalize else 0.0
             lost = cal_sigma < gate  # dropped by the gate: they count against the exit's budget
-            past_gate = bg_sigma[::step] >= gate
+            # the background windows the exit calibration counts trees on: those of the ordering
+            # sample that pass the gate
+            past_gate = np.flatnonzero(bg_sigma >= gate)
+            past_gate = past_gate[past_gate % step == 0]
             # reorder the trees so that background drops out early (same final scores), for the
             # objects that a scan at the default threshold keeps (direct backward pruning, see
             # calibrate_exit_table); which objects the exit gives up depends on the order, and
@@ -360,16 +366,17 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
                 at[:] = True
             keep = exit_kept(running[at], None, recall, lost[at])
             for _ in range(EXIT_ORDER_ROUNDS):
-                order = order_for_early_exit(np.diff(running[at][keep], axis=1, prepend=0.0),
-                                             np.diff(bg_running[::step], axis=1, prepend=0.0), 1.0)
+                order = order_for_early_exit(cal_leaf[at][keep].astype(np.float64),
+                                             bg_leaf[::step].astype(np.float64), 1.0)
                 model.node_features = model.node_features[order]
                 model.node_thresholds = model.node_thresholds[order]
                 model.leaf_values = model.leaf_values[order]
-                running = model.running_scores(calibration)
-                bg_running = model.running_scores(background)
-                keep = exit_kept(running[at], bg_running[::step][past_gate], recall, lost[at])
+                cal_leaf, bg_leaf = cal_leaf[:, order], bg_leaf[:, order]
+                running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
+                bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)
+                keep = exit_kept(running[at], bg_running[past_gate], recall, lost[at])
             model.exit_thresholds = float32_thresholds(
-                running[exit_kept(running, bg_running[::step][past_gate], recall, lost)].min(axis=0))
+                running[exit_kept(running, bg_running[past_gate], recall, lost)].min(axis=0))
             mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
         else:
             mean_objects = None
@@ -383,7 +390,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         if len(held):
             model.exit_levels, model.exit_table = calibrate_exit_table(
                 running, final_score(self.mode, running[:, -1], model.n_trees, temperature),
-                recall, background=bg_running[::step][past_gate], lost=lost)
+                recall, background=bg_running[past_gate], lost=lost)
 
         model.metadata = {
             "kind": "model",

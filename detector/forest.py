@@ -62,6 +62,7 @@ __all__ = [
     "flatten_tree",
     "float32_thresholds",
     "forest_leaves",
+    "forest_leaf_scores",
     "forest_running_scores",
     "forest_score",
     "final_score",
@@ -359,6 +360,20 @@ def forest_leaves(flat, X, chunk: int = 8192) -> np.ndarray:
     return out
 
 
+def forest_leaf_scores(flat, X) -> np.ndarray:
+    """The leaf value every row of ``X`` gets from every tree: float32 (N, T). Their cumulative
+    sum in float64, in any order of the trees, is :func:`forest_running_scores` of the forest
+    with its trees in that order.
+
+    >>> f = FlatForest("bagged", [[0], [0]], [[0.5], [0.0]], [[0, 1], [0.25, 0.75]])
+    >>> forest_leaf_scores(f, np.array([[0.2], [0.9]], np.float32)).tolist()
+    [[0.0, 0.75], [1.0, 0.75]]
+    """
+    leaves = forest_leaves(flat, X)
+    lv = np.asarray(flat.leaf_values, dtype=np.float32)
+    return lv[np.arange(lv.shape[0])[None, :], leaves]
+
+
 def forest_running_scores(flat, X) -> np.ndarray:
     """Running scores ``s_t`` after each tree: float32 leaf values summed in float64, tree order.
 
@@ -377,10 +392,7 @@ def forest_running_scores(flat, X) -> np.ndarray:
     >>> forest_running_scores(f, np.array([[0.2], [0.9]], np.float32)).tolist()
     [[0.0, 0.75], [1.0, 1.75]]
     """
-    leaves = forest_leaves(flat, X)
-    lv = np.asarray(flat.leaf_values, dtype=np.float32)
-    vals = lv[np.arange(lv.shape[0])[None, :], leaves]
-    return np.cumsum(vals, axis=1, dtype=np.float64)
+    return np.cumsum(forest_leaf_scores(flat, X), axis=1, dtype=np.float64)
 
 
 #: Smallest boosting weight, relative to the mean weight 1.
@@ -574,34 +586,43 @@ def exit_kept(running_scores, background_running=None, exit_recall: float = 0.99
     if background_running is None or len(background_running) == 0 or n == 0:
         return plain
     b = np.asarray(background_running, dtype=np.float64)
+    # every mask below drops at most removable = K - 1 objects, so each tree's lowest kept score is
+    # among its K lowest: keep those, sorted, and read minima from them (K x T, not N x T)
+    removable = max(budget, int(lost.sum()))
+    k_low = min(n, removable + 1)
+    low = np.argsort(r, axis=0, kind="stable")[:k_low] if k_low == n else \
+        np.argpartition(r, k_low - 1, axis=0)[:k_low]
+    low_vals = np.take_along_axis(r, low, axis=0)
+    o = np.argsort(low_vals, axis=0, kind="stable")
+    low, low_vals = np.take_along_axis(low, o, axis=0), np.take_along_axis(low_vals, o, axis=0)
+    cols = np.arange(t)
 
-    def evaluations(keep):
-        if not keep.any():
-            return 0.0
-        return float(trees_evaluated(b, float32_thresholds(r[keep].min(axis=0))).sum())
+    def minima(mask):
+        return low_vals[mask[low].argmax(axis=0), cols]
+
+    def evaluations(mask):
+        return float(trees_evaluated(b, float32_thresholds(minima(mask))).sum())
 
     keep = ~lost
     budget -= int(lost.sum())
     front = min(t, int(search_trees))
-    exits = float32_thresholds(r[keep].min(axis=0)) if keep.any() else np.full(t, np.inf, np.float32)
+    exits = float32_thresholds(minima(keep))
     below = b < exits.astype(np.float64)[None, :]
     first = np.where(below.any(axis=1), np.argmax(below, axis=1), t)  # tree each window exits at
     while budget > 0 and keep.sum() > 1:
         best = None
-        idx = np.flatnonzero(keep)
-        col_min = r[idx].min(axis=0)
+        at_min = (r[:, :front] == minima(keep)[None, :front]) & keep[:, None]  # who holds
+        sizes = at_min.sum(axis=0)                                              # each exit down
         tried = set()
-        for k in range(front):
-            group = idx[r[idx, k] == col_min[k]]
-            if len(group) > budget or len(group) >= len(idx):
-                continue
+        for k in np.flatnonzero((sizes <= budget) & (sizes < keep.sum())):
+            group = np.flatnonzero(at_min[:, k])
             key = tuple(group.tolist())
             if key in tried:
                 continue
             tried.add(key)
             trial = keep.copy()
             trial[group] = False
-            new = float32_thresholds(r[trial].min(axis=0))
+            new = float32_thresholds(minima(trial))
             changed = np.flatnonzero(new != exits)
             if not len(changed):
                 continue

@@ -43,7 +43,8 @@ import numpy as np
 
 from detector import npzfile
 from detector.errors import InputError
-from detector.forest import MODES, FlatForest, final_score, forest_running_scores
+from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
+                             forest_running_scores)
 
 __all__ = ["FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model", "load_model", "training_date",
            "library_versions", "model_arrays"]
@@ -250,6 +251,10 @@ class Model:
     def running_scores(self, patches) -> np.ndarray:
         """Running scores after each tree, float64 (N, T) (no early exit)."""
         return forest_running_scores(self, self.feature_values(patches))
+
+    def leaf_scores(self, patches) -> np.ndarray:
+        """The leaf value each patch gets from each tree, float32 (N, T)."""
+        return forest_leaf_scores(self, self.feature_values(patches))
 
     def score(self, patches) -> np.ndarray:
         """Scores in 0..1 of patches (N, h, w), without early exit: float64 (N,)."""
