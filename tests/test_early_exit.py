@@ -224,3 +224,18 @@ def test_fitted_exit_gives_up_at_most_its_budget():
             sel = fin >= np.float32(level)
             dropped = (trees_evaluated(run[sel], row) < m.n_trees) | gated[sel]
             assert dropped.sum() <= int(np.floor(0.1 * sel.sum() + 1e-9)), (mode, level)
+
+
+@given(st.integers(1, 12), st.integers(1, 30), st.integers(0, 40), st.floats(0.5, 1.0),
+       st.integers(0, 2**32 - 1))
+@settings(max_examples=80, deadline=None)
+def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed):
+    """The compiled greedy loop gives exactly the order of the plain-numpy one, ties included
+    (leaves take few values, so many trees drop as many windows)."""
+    from detector.forest import _order_for_early_exit_numpy
+
+    rng = np.random.default_rng(seed)
+    o = rng.integers(-2, 3, (n_obj, t)) * 0.25
+    b = rng.integers(-3, 2, (n_bg, t)) * 0.25
+    np.testing.assert_array_equal(order_for_early_exit(o, b, exit_recall),
+                                  _order_for_early_exit_numpy(o, b, exit_recall))
