@@ -138,15 +138,9 @@ def _init_worker(model_path: str, settings: dict):
     _WORKER["engine"] = Engine(load_model(model_path), ScanSettings(**settings))
 
 
-def scan_bytes_task(model_bytes: bytes, settings: dict, name: str, data: bytes) -> ImageResult:
-    """Task run on a Dask worker: the model and the image travel as bytes, so workers need no
-    shared file system."""
-    return scan_one(_engine_from_bytes(model_bytes, settings), None, name, data)
-
-
 def scan_bytes_batch(model_bytes: bytes, settings: dict, items) -> list[ImageResult]:
-    """Task run on a Dask worker: :func:`scan_bytes_task` for several ``(name, data)`` images, in
-    order."""
+    """Task run on a Dask worker: the model and several ``(name, data)`` images travel as bytes,
+    so workers need no shared file system; the results come back in order."""
     engine = _engine_from_bytes(model_bytes, settings)
     return [scan_one(engine, None, name, data) for name, data in items]
 
