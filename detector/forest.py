@@ -802,14 +802,21 @@ def order_for_early_exit(object_leaves, background_leaves, exit_recall: float = 
     >>> order_for_early_exit(obj, bg, exit_recall=1.0).tolist()   # tree 1 drops 2, then tree 2 drops 1
     [1, 2, 0]
     """
+    o, b = _ordering_inputs(object_leaves, background_leaves, exit_recall)
+    if o is None:
+        return np.arange(np.shape(object_leaves)[1])
+    return _greedy_order(np.ascontiguousarray(o), np.ascontiguousarray(b))
+
+
+def _ordering_inputs(object_leaves, background_leaves, exit_recall):
+    """float64 leaves of the objects the ordering keeps (all but the lowest sums the exit may give
+    up) and of the background; ``(None, None)`` when either is empty."""
     o = np.asarray(object_leaves, dtype=np.float64)
     b = np.asarray(background_leaves, dtype=np.float64)
-    T = o.shape[1]
     if len(o) == 0 or len(b) == 0:
-        return np.arange(T)
+        return None, None
     n_drop = min(int(np.floor((1.0 - exit_recall) * len(o) + 1e-9)), len(o) - 1)
-    o = o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]]
-    return _greedy_order(np.ascontiguousarray(o), np.ascontiguousarray(b))
+    return o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]], b
 
 
 @numba.njit(cache=True, nogil=True)
@@ -867,13 +874,10 @@ def _greedy_order(o, b):
 def _order_for_early_exit_numpy(object_leaves, background_leaves, exit_recall: float = 0.995):
     """Plain-numpy form of :func:`order_for_early_exit` (the tests hold the compiled loop equal to
     it)."""
-    o = np.asarray(object_leaves, dtype=np.float64)
-    b = np.asarray(background_leaves, dtype=np.float64)
-    T = o.shape[1]
-    if len(o) == 0 or len(b) == 0:
+    o, b = _ordering_inputs(object_leaves, background_leaves, exit_recall)
+    T = np.shape(object_leaves)[1]
+    if o is None:
         return np.arange(T)
-    n_drop = min(int(np.floor((1.0 - exit_recall) * len(o) + 1e-9)), len(o) - 1)
-    o = o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]]
     o_sum = np.zeros(len(o))
     b_sum = np.zeros(len(b))
     alive = np.ones(len(b), bool)

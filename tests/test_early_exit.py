@@ -70,19 +70,30 @@ def test_misaligned_copies_follow_crop_region():
                                   misaligned_copies(p, 1.0, 1.1, 5, random_state=7))
 
 
-def test_fitted_exit_keeps_every_kept_calibration_copy():
-    rng = np.random.default_rng(0)
-    bright = rng.integers(0, 60, (60, 12, 12))
-    bright[:, :6] += 150
-    dull = rng.integers(0, 210, (120, 12, 12))
-    patches = np.concatenate([bright, dull]).astype(np.uint8)
-    y = np.r_[np.ones(60), np.zeros(120)]
-    clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
-    m = clf.model_
+def _top_bright(seed, n_objects, n_background, spread, lift):
+    """12 x 12 object patches whose top half is ``lift`` brighter than noise of ``spread`` grey
+    levels, and plain noise patches as background: (patches, labels)."""
+    rng = np.random.default_rng(seed)
+    bright = rng.integers(0, spread, (n_objects, 12, 12))
+    bright[:, :6] += lift
+    dull = rng.integers(0, 210, (n_background, 12, 12))
+    return (np.concatenate([bright, dull]).astype(np.uint8),
+            np.r_[np.ones(n_objects), np.zeros(n_background)])
+
+
+def _calibration_copies(clf, patches, random_state=0):
+    """The calibration copies a fit made (as PatchClassifier.fit draws them from its seed)."""
     from detector.forest import seed_sequence
 
-    exit_ss = seed_sequence(0).spawn(5)[4]
-    cal = misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
+    exit_ss = seed_sequence(random_state).spawn(5)[4]
+    return misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
+
+
+def test_fitted_exit_keeps_every_kept_calibration_copy():
+    patches, y = _top_bright(0, 60, 120, spread=60, lift=150)
+    clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
+    m = clf.model_
+    cal = _calibration_copies(clf, patches)
     run = m.running_scores(cal)
     # exit_recall 1.0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
@@ -202,20 +213,14 @@ def test_exit_table_with_background_keeps_its_budget_at_every_level(n, t, exit_r
 def test_fitted_exit_gives_up_at_most_its_budget():
     """exit_recall 0.9: of the calibration copies (9 per held-out object), the contrast gate and
     every exit together drop at most a tenth, at every score level."""
-    rng = np.random.default_rng(1)
-    bright = rng.integers(0, 90, (80, 12, 12))
-    bright[:, :6] += 120
-    dull = rng.integers(0, 210, (160, 12, 12))
-    patches = np.concatenate([bright, dull]).astype(np.uint8)
-    y = np.r_[np.ones(80), np.zeros(160)]
+    from detector.forest import final_score
+
+    patches, y = _top_bright(1, 80, 160, spread=90, lift=120)
     for mode in ("bagged", "boosted"):
         clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
                               random_state=0).fit(patches, y)
         m = clf.model_
-        from detector.forest import final_score, seed_sequence
-
-        exit_ss = seed_sequence(0).spawn(5)[4]
-        cal = misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
+        cal = _calibration_copies(clf, patches)
         run = m.running_scores(cal)
         gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
         rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
