@@ -344,7 +344,7 @@ class Engine:
         self.min_var = gate * gate if gate > 0 else -np.inf
         self.cutoff = raw_cutoff(model, self.settings.threshold)
         self.normalize = bool(model.normalize)
-        self._plans: dict = {}
+        self._grids: dict = {}
         self._lock = threading.Lock()
         self._work = _Workspace()
 
@@ -369,7 +369,7 @@ class Engine:
         otherwise)."""
         key = (tuple(image_size), enlarged)
         with self._lock:
-            grid = self._plans.get(key)
+            grid = self._grids.get(key)
         if grid is None:
             lo, hi = self.object_scale_range()
             start = max(lo * enlarged, 1.0)
@@ -385,9 +385,9 @@ class Engine:
                 if len(xs) and len(ys):
                     grid.append((plan, xs, ys))
             with self._lock:
-                self._plans[key] = grid
-                while len(self._plans) > 16:
-                    self._plans.pop(next(iter(self._plans)))
+                self._grids[key] = grid
+                while len(self._grids) > 16:
+                    self._grids.pop(next(iter(self._grids)))
         return grid
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
