@@ -11,7 +11,6 @@ same feature values. Suspicion orderings are worked by hand in the comments.
 import csv
 import dataclasses
 import sys
-from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
@@ -33,6 +32,7 @@ from detector.forest import forest_oob_scores, grow_forest, oob_scores
 from detector.harvest import KIND_AUGMENTED, harvest, save_bank
 from detector.labels import read_labels
 from synthetic_images.scenario import render_scenario
+from shared import Links
 
 app = typer.Typer()
 app.command()(audit)
@@ -269,15 +269,6 @@ def test_check_audit_folder(tmp_path):
 
 # --------------------------------------------------------------------------------------------
 # the command
-
-
-class Links(HTMLParser):
-    def __init__(self):
-        super().__init__()
-        self.links = []
-
-    def handle_starttag(self, tag, attrs):
-        self.links += [v for k, v in attrs if k in ("src", "href") and v is not None]
 
 
 def _read_csv(path):

@@ -32,13 +32,11 @@ from typer.testing import CliRunner
 import cli.main
 from detector.batch import DETECTION_COLOUR, failures_path, scan_paths
 from detector.errors import InputError
-from detector.harvest import harvest
 from detector.images import read_gray
-from detector.labels import read_detections, read_labels
-from detector.model import load_model, save_model
+from detector.labels import read_detections
+from detector.model import load_model
 from detector.scan import Engine, ScanSettings
-from detector.training import train_model
-from synthetic_images import render_scenario
+from shared import small_model
 
 # the display names of the scan folder below, sorted as list_images gives them
 NAMES = ["blank.png", "day 2/frame_0003.png", "day 2/frame_0004.png", "frame_0001.png",
@@ -48,14 +46,8 @@ NAMES = ["blank.png", "day 2/frame_0003.png", "day 2/frame_0004.png", "frame_000
 @pytest.fixture(scope="session")
 def trained(tmp_path_factory):
     """A 20-tree model trained on a small bank of a 12-frame scenario, saved to model.npz."""
-    root = tmp_path_factory.mktemp("batch-scenario")
-    render_scenario(root, train_images=12, test_images=4, seed=2)
-    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
-    bank = harvest(root / "train" / "images", items, window=(24, 24), negatives_per_image=60,
-                   seed=0)
-    model, _ = train_model(bank, dict(n_trees=20, pool=2000, random_state=0))
-    save_model(root / "model.npz", model)
-    return root
+    return small_model(tmp_path_factory.mktemp("batch-scenario"), train_images=12, test_images=4,
+                       seed=2, negatives_per_image=60, n_trees=20, pool=2000).parent
 
 
 @pytest.fixture(scope="session")

@@ -28,13 +28,12 @@ import numpy as np
 import pytest
 
 from detector.batch import failures_path, scan_paths
-from detector.harvest import harvest
 from detector.images import read_gray
-from detector.labels import read_detections, read_labels
-from detector.model import load_model, save_model
+from detector.labels import read_detections
+from detector.model import load_model
 from detector.scan import Engine, ScanSettings
-from detector.training import train_model
-from synthetic_images import render_frame, render_scenario
+from synthetic_images import render_frame
+from shared import small_model
 
 SIDE = 160  # synthetic_images.FRAME_LIMITS[0]: the smallest frame it renders
 BASE_FRAMES = 200
@@ -71,14 +70,8 @@ def resident_bytes() -> int:
 @pytest.fixture(scope="module")
 def model_file(tmp_path_factory) -> Path:
     """A small model (10 trees, pool 500) trained on an 8-frame scenario: quick to scan."""
-    root = tmp_path_factory.mktemp("load-scenario")
-    render_scenario(root, train_images=8, test_images=1, seed=3)
-    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
-    bank = harvest(root / "train" / "images", items, window=(24, 24), negatives_per_image=40,
-                   seed=0)
-    model, _ = train_model(bank, dict(n_trees=10, pool=500, random_state=0))
-    save_model(root / "model.npz", model)
-    return root / "model.npz"
+    return small_model(tmp_path_factory.mktemp("load-scenario"), train_images=8, test_images=1,
+                       seed=3, negatives_per_image=40, n_trees=10, pool=500)
 
 
 def write_frames(folder: Path, base: int) -> Path:

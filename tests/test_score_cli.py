@@ -7,7 +7,6 @@ et al., 2010; COCO 101-point AP, Lin et al., 2014; log-average miss rate, Dollar
 
 import json
 import re
-from html.parser import HTMLParser
 from pathlib import Path
 
 import cv2
@@ -20,6 +19,7 @@ from cli.score import score
 from detector.errors import InputError
 from detector.evaluate import evaluate
 from detector.report import threshold_from_summary
+from shared import Links
 
 app = typer.Typer()
 app.command()(score)
@@ -63,15 +63,6 @@ def make_folder(root: Path) -> Path:
 
 def run(*args):
     return CliRunner().invoke(app, [str(a) for a in args])
-
-
-class Links(HTMLParser):
-    def __init__(self):
-        super().__init__()
-        self.links = []
-
-    def handle_starttag(self, tag, attrs):
-        self.links += [v for k, v in attrs if k in ("src", "href") and v is not None]
 
 
 @pytest.fixture(scope="module")

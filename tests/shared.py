@@ -1,0 +1,36 @@
+"""Helpers several test modules share (not a test module itself: pytest collects ``test_*.py``)."""
+
+from __future__ import annotations
+
+from html.parser import HTMLParser
+from pathlib import Path
+
+from detector.harvest import harvest
+from detector.labels import read_labels
+from detector.model import save_model
+from detector.training import train_model
+from synthetic_images import render_scenario
+
+
+class Links(HTMLParser):
+    """Every ``src`` and ``href`` of an HTML page, in order (to check a report's links resolve)."""
+
+    def __init__(self):
+        super().__init__()
+        self.links = []
+
+    def handle_starttag(self, tag, attrs):
+        self.links += [v for k, v in attrs if k in ("src", "href") and v is not None]
+
+
+def small_model(root: Path, *, train_images: int, test_images: int, seed: int,
+                negatives_per_image: int, n_trees: int, pool: int) -> Path:
+    """Render a small scenario into ``root``, harvest its training split (24 x 24 window, seed 0),
+    train a bagged model and save it as ``root / "model.npz"``; returns that path."""
+    render_scenario(root, train_images=train_images, test_images=test_images, seed=seed)
+    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
+    bank = harvest(root / "train" / "images", items, window=(24, 24),
+                   negatives_per_image=negatives_per_image, seed=0)
+    model, _ = train_model(bank, dict(n_trees=n_trees, pool=pool, random_state=0))
+    save_model(root / "model.npz", model)
+    return root / "model.npz"
