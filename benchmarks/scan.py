@@ -197,7 +197,7 @@ def main(argv=None):
         y0 = int(np.clip(by - 8, 0, 480 - c))
         positions = [(x0 + x, y0 + y) for y in range(0, c - 24 + 1, 2) for x in range(0, c - 24 + 1, 2)]
         checker = Engine(model, ScanSettings(stride=2.0, scale_step=2.0, threshold=0.0,
-                                             early_exit=False))
+                                             early_exit=False, overhang=0.0))
         boxes, raw, _, _ = checker.candidates(gray[y0:y0 + c, x0:x0 + c])
         at1 = boxes[:, 2] == 24
         ours = {(int(x) + x0, int(y) + y0): r for (x, y), r in zip(boxes[at1, :2], raw[at1])}

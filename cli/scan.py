@@ -25,6 +25,7 @@ def scan(
     threshold_from: Optional[Path] = typer.Option(None, "--threshold-from", help="Take the threshold from a summary.json written by `patchwood score` (its recommended operating point)."),
     nms_iou: float = typer.Option(0.3, "--nms-iou", min=0.0, max=1.0, help="Non-maximum suppression: drop a box overlapping a better one by more than this IoU."),
     early_exit: bool = typer.Option(True, "--early-exit/--no-early-exit", help="Drop windows early with the model's calibrated exit thresholds."),
+    overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window may reach past the image's edges, as a share of its size (border pixels repeated there), so that objects cut by the edge are found: 0.25 finds objects about four fifths inside, 0.5 those at least half inside; 0 keeps windows inside."),
     draw: Optional[Path] = typer.Option(None, "--draw", help="Also write annotated copies of the images into this folder (never into an input folder)."),
     jobs: int = typer.Option(1, "--jobs", min=1, max=256, help="Worker processes."),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
@@ -49,7 +50,7 @@ def scan(
         echo(f"threshold {threshold:.4f} from {human_path(threshold_from)}")
     settings = ScanSettings(scale_step=scale_step, stride=stride, min_object=min_object,
                             max_object=max_object, threshold=threshold, nms_iou=nms_iou,
-                            early_exit=early_exit)
+                            early_exit=early_exit, overhang=overhang)
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
                        resume=resume, force=force, draw_dir=draw, fmt=format, progress=update)

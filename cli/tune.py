@@ -85,6 +85,7 @@ def tune(
     stride: float = typer.Option(2.0, "--stride", min=1.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
     min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, in pixels."),
     max_object: Optional[float] = typer.Option(None, "--max-object", min=1.0, help="Shorter side of the largest object to look for, in pixels."),
+    overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window of the held-out scans may reach past the image's edges, as a share of its size (as `patchwood scan --overhang`)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the results do not depend on it)."),
     force: bool = typer.Option(False, "--force", help="Replace files an earlier tune wrote into --out."),
 ) -> None:
@@ -128,7 +129,7 @@ def tune(
         echo(f"fold {f.number}: train on {len(f.train_items)} images ({len(f.bank)} patches), "
              f"hold out {len(f.test_items)} images with {held_boxes} objects")
     settings = ScanSettings(scale_step=scale_step, stride=stride, min_object=min_object,
-                            max_object=max_object)
+                            max_object=max_object, overhang=overhang)
     limit = f"/{trials}" if trials else ""
 
     def report(record, result):

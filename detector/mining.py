@@ -12,7 +12,7 @@ import numpy as np
 
 from detector.boxes import iou
 from detector.evaluate import evaluate
-from detector.harvest import crop_region, object_box_to_window_box
+from detector.harvest import crop_region
 from detector.images import read_gray
 from detector.scan import Engine, ScanSettings
 
@@ -79,16 +79,20 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     for i, it in enumerate(items):
         gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
         wboxes, raw, _, _ = engine.candidates(gray)
-        found, found_scores = engine.detections(wboxes, raw, threshold=settings.threshold)
+        size = gray.shape[::-1]
+        found, found_scores = engine.detections(wboxes, raw, threshold=settings.threshold,
+                                                image_size=size)
         dets[it.image] = (found, found_scores)
         gts[it.image] = it.boxes
         # diverse candidates: looser suppression than detection, then away from every object
-        cand, cand_scores = engine.detections(wboxes, raw, nms_iou=0.5)
+        cand, cand_scores, cand_windows = engine.detections(wboxes, raw, nms_iou=0.5,
+                                                            image_size=size, windows=True)
         if len(cand) and len(it.boxes):
             far = iou(cand, it.boxes).max(axis=1) < max_iou
-            cand, cand_scores = cand[far], cand_scores[far]
-        for box, score in zip(cand[:per_image], cand_scores[:per_image]):
-            wx, wy, ww, wh = object_box_to_window_box(*box, engine.margin)
+            cand, cand_scores, cand_windows = cand[far], cand_scores[far], cand_windows[far]
+        for box, score, (wx, wy, ww, wh) in zip(cand[:per_image], cand_scores[:per_image],
+                                                cand_windows[:per_image]):
+            # the window as the scan saw it (border pixels repeated past the image's edges)
             patches.append(crop_region(gray, (wx + ww / 2, wy + wh / 2), (ww, wh), (W, H)))
             boxes.append(box)
             names.append(it.image)

@@ -11,6 +11,11 @@ built once per frame and each scale only needs a new table of rectangle corner o
 :func:`scale_plan`). A feature's value at scale ``s`` uses each rectangle's *mean* (its sum divided
 by its own scaled pixel count), so rounding of scaled rectangles does not bias it, and equals the
 training value exactly at ``s = 1``.
+
+Windows may reach past the image's edges by up to ``ScanSettings.overhang`` of their size, so that
+objects cut by the frame edge are found: the integral images are built on the frame with its border
+pixels repeated around it (as :func:`detector.harvest.crop_region` repeats them for patches cut
+near the edge), and the boxes reported are clipped to the image.
 """
 
 from __future__ import annotations
@@ -143,6 +148,26 @@ def scales_for(image_size, window, scale_step=1.2, min_scale=1.0, max_scale=None
     return out
 
 
+#: Largest :attr:`ScanSettings.overhang`: a window's centre stays inside the image.
+MAX_OVERHANG = 0.5
+
+
+def edge_positions(length: int, window: int, step: int, overhang: float) -> np.ndarray:
+    """Top-left positions of the windows along one axis: every ``step`` from 0 while the window
+    fits, extended on the same grid in both directions while the window reaches past the edge by
+    at most ``overhang`` of its size (``floor(overhang * window)`` pixels).
+
+    >>> edge_positions(100, 24, 2, 0.0).tolist()[-3:], len(edge_positions(100, 24, 2, 0.0))
+    ([72, 74, 76], 39)
+    >>> p = edge_positions(100, 24, 2, 0.5)      # up to 12 pixels out: -12 .. 88
+    >>> p[:2].tolist(), p[-1].item(), len(p)
+    ([-12, -10], 88, 51)
+    """
+    out = int(math.floor(overhang * window + 1e-9))
+    first = -(out // step) * step
+    return np.arange(first, length - window + out + 1, step, dtype=np.int64)
+
+
 @dataclass
 class ScanSettings:
     """How to scan. Sizes are in image pixels.
@@ -162,6 +187,14 @@ class ScanSettings:
         Non-maximum suppression: drop a box whose IoU with a better one exceeds this.
     early_exit : bool
         Use the model's early-exit thresholds.
+    overhang : float in [0, 0.5]
+        How far a window may reach past each edge of the image, as a share of its width (height);
+        the image's border pixels are repeated there, so objects cut by the frame's edge are found.
+        0.25 (the default) reaches objects with about four fifths of their width inside at the
+        default margin of 0.1 (the window is 1.2 object widths, a quarter of it is 0.3, of which
+        0.1 is margin); 0.5, the most, lets a window's centre reach the edge, so objects at least
+        half inside are looked for, whatever the margin; 0 keeps every window inside. Windows
+        inside the image are the same whatever the overhang (the grid only grows outward).
     """
 
     scale_step: float = 1.2
@@ -171,6 +204,11 @@ class ScanSettings:
     threshold: float = 0.5
     nms_iou: float = 0.3
     early_exit: bool = True
+    overhang: float = 0.25
+
+    def __post_init__(self):
+        if not 0.0 <= self.overhang <= MAX_OVERHANG:
+            raise ValueError(f"overhang must be in [0, {MAX_OVERHANG}], got {self.overhang!r}")
 
 
 @dataclass
@@ -260,6 +298,7 @@ class _Workspace(threading.local):
         self.integrals = None
         self.size = 0
         self.outputs = None
+        self.frame = None
 
     def tables(self, gray_shape):
         shape = (gray_shape[0] + 1, gray_shape[1] + 1)
@@ -267,6 +306,18 @@ class _Workspace(threading.local):
             self.shape = shape
             self.integrals = (np.empty(shape, integral_dtype(*gray_shape)), np.empty(shape))
         return self.integrals
+
+    def padded(self, gray, pad):
+        """``gray`` with ``pad`` pixels of its border repeated on every side, in a reused buffer."""
+        shape = (gray.shape[0] + 2 * pad, gray.shape[1] + 2 * pad)
+        if gray.dtype != np.uint8 or gray.ndim != 2:
+            return np.pad(gray, pad, mode="edge")
+        import cv2
+
+        if self.frame is None or self.frame.shape != shape:
+            self.frame = np.empty(shape, np.uint8)
+        return cv2.copyMakeBorder(np.ascontiguousarray(gray), pad, pad, pad, pad,
+                                  cv2.BORDER_REPLICATE, dst=self.frame)
 
     def out(self, n):
         if n > self.size:
@@ -360,13 +411,19 @@ class Engine:
 
     def plans(self, image_size, enlarged: float = 1.0):
         """Scale plans for an image of ``(width, height)`` (already enlarged by ``enlarged`` when
-        the smallest object is smaller than the window), cached by size. Thread-safe."""
-        return [plan for plan, _, _ in self._grid(image_size, enlarged)]
+        the smallest object is smaller than the window), cached by size. Thread-safe. Their corner
+        offsets are for the image padded by :meth:`padding` on every side."""
+        return [plan for plan, _, _ in self._grid(image_size, enlarged)[0]]
+
+    def padding(self, image_size, enlarged: float = 1.0) -> int:
+        """Pixels of repeated border the scan adds on every side of an image of this size (the
+        farthest any window reaches past an edge; 0 with ``overhang=0``)."""
+        return self._grid(image_size, enlarged)[1]
 
     def _grid(self, image_size, enlarged: float = 1.0):
-        """``(plan, xs, ys)`` per scale that has windows: the plan and the windows' top-left
-        positions, cached by image size (a small frame spends a fifth of its scan on them
-        otherwise)."""
+        """``([(plan, xs, ys) per scale that has windows], pad)``: the plan and the windows'
+        top-left positions in the image padded by ``pad`` pixels on every side, cached by image
+        size (a small frame spends a fifth of its scan on them otherwise)."""
         key = (tuple(image_size), enlarged)
         with self._lock:
             grid = self._grids.get(key)
@@ -375,15 +432,21 @@ class Engine:
             start = max(lo * enlarged, 1.0)
             top = None if hi is None else hi * enlarged
             iw, ih = image_size
-            grid = []
+            W, H = self.window
+            over = self.settings.overhang
+            axes, pad = [], 0
             for s in scales_for(image_size, self.window, self.settings.scale_step, start, top):
-                plan = scale_plan(self.model.features, self.window, s, iw + 1, self.normalize)
-                Ws, Hs = plan.window
-                step = max(1, int(_round(self.settings.stride * plan.scale)))
-                xs = np.arange(0, iw - Ws + 1, step, dtype=np.int64)
-                ys = np.arange(0, ih - Hs + 1, step, dtype=np.int64)
+                Ws, Hs = int(_round(W * s)), int(_round(H * s))
+                step = max(1, int(_round(self.settings.stride * s)))
+                xs = edge_positions(iw, Ws, step, over)
+                ys = edge_positions(ih, Hs, step, over)
                 if len(xs) and len(ys):
-                    grid.append((plan, xs, ys))
+                    axes.append((s, xs, ys))
+                    # the farthest this scale's windows reach past any edge
+                    pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
+                              int(ys[-1]) + Hs - ih)
+            grid = ([(scale_plan(self.model.features, self.window, s, iw + 2 * pad + 1,
+                                 self.normalize), xs + pad, ys + pad) for s, xs, ys in axes], pad)
             with self._lock:
                 self._grids[key] = grid
                 while len(self._grids) > 16:
@@ -392,7 +455,8 @@ class Engine:
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
         """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
-        trees)``, before the margin and non-maximum suppression."""
+        trees)``, before the margin and non-maximum suppression. Window boxes may reach past the
+        image's edges (see ``ScanSettings.overhang``)."""
         lo, _ = self.object_scale_range()
         up = 1.0
         if lo < 1.0:
@@ -401,15 +465,18 @@ class Engine:
             up = 1.0 / lo
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
+        grid, pad = self._grid((iw, ih), up)
+        if pad:
+            gray = self._work.padded(gray, pad)
         ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
         boxes, raws = [], []
         windows = trees = 0
         fn = scan_scale_numpy if use_numpy else _kernels.scan_scale
-        for plan, xs, ys in self._grid((iw, ih), up):
+        for plan, xs, ys in grid:
             Ws, Hs = plan.window
             n = len(xs) * len(ys)
             out_x, out_y, out_s = self._work.out(n)
-            kept, used = fn(ii, sq, iw + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
+            kept, used = fn(ii, sq, iw + 2 * pad + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
                             self.min_var, self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
                             self.node_features, self.split_bounds, self.leaf_values,
                             self.exits, self.cutoff, self.bound, out_x, out_y, out_s)
@@ -417,8 +484,8 @@ class Engine:
             trees += int(used)
             if kept:
                 b = np.empty((kept, 4))
-                b[:, 0] = out_x[:kept] / up
-                b[:, 1] = out_y[:kept] / up
+                b[:, 0] = (out_x[:kept] - pad) / up
+                b[:, 1] = (out_y[:kept] - pad) / up
                 b[:, 2] = Ws / up
                 b[:, 3] = Hs / up
                 boxes.append(b)
@@ -431,24 +498,50 @@ class Engine:
         """Detections in one grayscale frame: object boxes, scores in 0..1 (descending), after
         non-maximum suppression."""
         wboxes, raw, windows, trees = self.candidates(gray, use_numpy=use_numpy)
-        boxes, scores = self.detections(wboxes, raw)
+        boxes, scores = self.detections(wboxes, raw, image_size=gray.shape[::-1])
         return FrameResult(boxes, scores, windows, trees)
 
-    def detections(self, window_boxes, raw, nms_iou=None, threshold=None):
+    def detections(self, window_boxes, raw, nms_iou=None, threshold=None, image_size=None,
+                   windows: bool = False):
         """Candidates -> object boxes and 0..1 scores, descending, after non-maximum suppression
-        (at ``nms_iou``, default the settings'), keeping scores >= ``threshold`` (default: all)."""
+        (at ``nms_iou``, default the settings'), keeping scores >= ``threshold`` (default: all).
+
+        ``image_size=(width, height)``: clip the object boxes to the image first (a window that
+        reaches past the edge stands for the part of the object inside, as labels do).
+        ``windows=True``: also return the window box of each detection (what the scan scored).
+        """
         scores = final_scores(self.model, raw)
         if threshold is not None:
             keep = scores >= threshold
             window_boxes, scores = window_boxes[keep], scores[keep]
         if not len(window_boxes):
-            return np.zeros((0, 4)), np.zeros(0)
+            empty = (np.zeros((0, 4)), np.zeros(0))
+            return empty + (np.zeros((0, 4)),) if windows else empty
         x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
                                               window_boxes[:, 2], window_boxes[:, 3], self.margin)
         obj = np.stack([x, y, w, h], axis=1)
+        if image_size is not None:
+            obj = clip_boxes(obj, image_size)
         keep = nms(obj, scores, self.settings.nms_iou if nms_iou is None else nms_iou)
         order = keep[np.argsort(-scores[keep], kind="stable")]
+        if windows:
+            return obj[order], scores[order], window_boxes[order]
         return obj[order], scores[order]
+
+
+def clip_boxes(boxes, image_size) -> np.ndarray:
+    """``(x, y, width, height)`` boxes cut to the image ``(width, height)`` (pixel-edge coordinates).
+
+    >>> clip_boxes(np.array([[-4.0, 2.0, 10.0, 10.0], [95.0, 50.0, 10.0, 20.0]]), (100, 60)).tolist()
+    [[0.0, 2.0, 6.0, 10.0], [95.0, 50.0, 5.0, 10.0]]
+    """
+    b = np.asarray(boxes, dtype=np.float64)
+    iw, ih = image_size
+    x0 = np.clip(b[:, 0], 0.0, iw)
+    y0 = np.clip(b[:, 1], 0.0, ih)
+    x1 = np.clip(b[:, 0] + b[:, 2], 0.0, iw)
+    y1 = np.clip(b[:, 1] + b[:, 3], 0.0, ih)
+    return np.stack([x0, y0, x1 - x0, y1 - y0], axis=1)
 
 
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,

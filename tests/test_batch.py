@@ -138,7 +138,7 @@ def test_folder_scan_writes_every_image_as_the_engine_finds_it(trained, folder, 
 def test_scan_options_reach_the_engine_and_single_files_keep_their_path(trained, folder, tmp_path,
                                                                         monkeypatch):
     settings = ScanSettings(scale_step=1.3, stride=3.0, min_object=24.0, max_object=60.0,
-                            threshold=0.3, nms_iou=0.5)
+                            threshold=0.3, nms_iou=0.5, overhang=0.5)
     engine = Engine(load_model(trained / "model.npz"), settings)
     expected = {name: engine.scan(read_gray(folder / name)) for name in ("frame_0002.png",
                                                                         "frame_0003.png")}
@@ -147,7 +147,7 @@ def test_scan_options_reach_the_engine_and_single_files_keep_their_path(trained,
     absolute = folder / "frame_0003.png"
     result = invoke(trained / "model.npz", "images/frame_0002.png", absolute, "--out", out,
                     "--scale-step", 1.3, "--stride", 3, "--min-object", 24, "--max-object", 60,
-                    "--threshold", 0.3, "--nms-iou", 0.5)
+                    "--threshold", 0.3, "--nms-iou", 0.5, "--overhang", 0.5)
     assert result.exit_code == 0, result.output
     names = ["images/frame_0002.png", str(absolute)]  # files given by themselves: as given
     expected = {names[0]: expected["frame_0002.png"], names[1]: expected["frame_0003.png"]}
@@ -156,6 +156,12 @@ def test_scan_options_reach_the_engine_and_single_files_keep_their_path(trained,
     default = Engine(load_model(trained / "model.npz"), ScanSettings()).scan(read_gray(absolute))
     assert (len(default.scores), default.windows) != (len(expected[names[1]].scores),
                                                       expected[names[1]].windows)
+
+
+def test_overhang_out_of_range_is_a_usage_error(trained, folder, tmp_path):
+    result = invoke(trained / "model.npz", folder, "--out", tmp_path / "d.csv", "--overhang", 0.6)
+    assert result.exit_code == 2 and "--overhang" in result.output
+    assert not (tmp_path / "d.csv").exists()
 
 
 def test_coco_output_holds_the_same_detections(trained, folder, tmp_path):

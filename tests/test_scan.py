@@ -109,23 +109,66 @@ def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit
 
 # ------------------------------------------------------------------ against patches cut by hand
 
-def test_scan_scores_equal_classifier_scores_at_scale_one(model):
-    """Every scale-1 window: the scan's score == predict_proba of the patch gray[y:y+24, x:x+24]."""
+@pytest.mark.parametrize("overhang", [0.0, 0.5])
+def test_scan_scores_equal_classifier_scores_at_scale_one(model, overhang):
+    """Every scale-1 window: the scan's score == predict_proba of the patch gray[y:y+24, x:x+24]
+    cut by hand, with the border pixels repeated (np.pad, mode "edge") where the window reaches past
+    the image's edge."""
     gray = frame(4)  # holds a nut of 20.5 x 18 pixels, about the window's object size
-    engine = every_window(model, stride=3)
+    engine = every_window(model, stride=3, overhang=overhang)
     boxes, raw, windows, trees = engine.candidates(gray)
     at1 = (boxes[:, 2] == WINDOW[0]) & (boxes[:, 3] == WINDOW[1])
     xs, ys = boxes[at1, 0].astype(int), boxes[at1, 1].astype(int)
-    # all windows at stride 3 on 160 x 160: 1 + (160 - 24) // 3 = 46 per row and column
-    expected = 46 * 46
+    if overhang == 0:
+        # all windows at stride 3 on 160 x 160: 1 + (160 - 24) // 3 = 46 per row and column
+        expected = 46 * 46
+    else:
+        # up to floor(0.5 * 24) = 12 pixels past each edge, on the same grid: -12, -9, ..., 147
+        # (the last start with 147 + 24 <= 160 + 12): 1 + (147 - (-12)) // 3 = 54 per side
+        expected = 54 * 54
+        assert xs.min() == ys.min() == -12 and xs.max() == ys.max() == 147
     if model.mode == "bagged":  # cutoff 0: a bagged score is never below it, nothing is dropped
         assert at1.sum() == expected
     else:  # threshold 0 is the raw cutoff 0.5 * log(1e-12) = -13.8 for boosted
         assert at1.sum() <= expected
-    patches = np.stack([gray[y:y + 24, x:x + 24] for x, y in zip(xs, ys)])
+    padded = np.pad(gray, 12, mode="edge")
+    patches = np.stack([padded[y + 12:y + 36, x + 12:x + 36] for x, y in zip(xs, ys)])
     reference = PatchClassifier.from_model(model).predict_proba(patches)[:, 1]
     np.testing.assert_allclose(final_scores(model, raw[at1]), reference, rtol=0, atol=1e-9)
     assert reference.max() - reference.min() > 0.5  # object-like and background windows alike
+
+
+def test_windows_inside_the_image_do_not_depend_on_the_overhang(model):
+    """The overhang only adds windows at the edges: the windows inside the image and their scores
+    are those of a scan that keeps every window inside."""
+    gray = frame(6, 176, 164)
+    inside = every_window(model, overhang=0.0)
+    edges = every_window(model, overhang=0.5)
+    b0, r0, w0, _ = inside.candidates(gray)
+    b1, r1, w1, _ = edges.candidates(gray)
+    within = (b1[:, 0] >= 0) & (b1[:, 1] >= 0) & (b1[:, 0] + b1[:, 2] <= 176) & \
+             (b1[:, 1] + b1[:, 3] <= 164)
+    assert w1 > w0 and not within.all()
+    np.testing.assert_array_equal(b1[within], b0)
+    np.testing.assert_array_equal(r1[within], r0)
+    assert inside.padding((176, 164)) == 0 < edges.padding((176, 164))
+
+
+def test_detections_are_clipped_to_the_image(model):
+    gray = frame(6, 176, 164)
+    engine = every_window(model, overhang=0.5)
+    result = engine.scan(gray)
+    wboxes, raw, _, _ = engine.candidates(gray)
+    assert (wboxes[:, 0] < 0).any()  # some windows reach past the edge ...
+    b = result.boxes  # ... the boxes reported never do
+    assert len(b) and (b[:, :2] >= 0).all() and (b[:, 2:] > 0).all()
+    assert (b[:, 0] + b[:, 2] <= 176).all() and (b[:, 1] + b[:, 3] <= 164).all()
+
+
+def test_overhang_must_stay_within_half_a_window():
+    for bad in (-0.1, 0.51, float("nan")):
+        with pytest.raises(ValueError, match="overhang"):
+            ScanSettings(overhang=bad)
 
 
 def test_scan_objects_are_window_boxes_shrunk_by_margin(bagged):
@@ -162,11 +205,13 @@ def test_scale_two_on_repeated_pixels_equals_scale_one(bagged, seed, width, heig
         small = (128 + 100 * np.sin(xx / 3.0 + seed % 7) * np.cos(yy / 4.0)).astype(np.uint8)
     big = np.kron(small, np.ones((2, 2), np.uint8))
     # scale step 2: the scales are 1, 2, 4, ... so scale 2 is scanned exactly
-    b1, r1, _, _ = every_window(bagged, stride=1, scale_step=2.0).candidates(small)
-    b2, r2, _, _ = every_window(bagged, stride=1, scale_step=2.0).candidates(big)
+    b1, r1, _, _ = every_window(bagged, stride=1, scale_step=2.0, overhang=0.5).candidates(small)
+    b2, r2, _, _ = every_window(bagged, stride=1, scale_step=2.0, overhang=0.5).candidates(big)
     one = as_dict(b1[b1[:, 2] == 24], r1[b1[:, 2] == 24])
     two = {(x / 2, y / 2): r for (x, y, w, h), r in as_dict(b2, r2).items() if w == 48}
-    assert len(one) == (width - 23) * (height - 23)
+    # windows start up to floor(0.5 * 24) = 12 pixels outside: x = -12 .. width - 12, so
+    # width + 1 positions (and 2x = -24 .. 2 width - 24 at scale 2, in steps of 2)
+    assert len(one) == (width + 1) * (height + 1)
     assert {k[:2] for k in one} == set(two)
     for (x, y, w, h), r in one.items():
         assert two[(x, y)] == pytest.approx(r, abs=1e-9)
@@ -183,20 +228,32 @@ def test_hand_worked_one_tree_model():
     # windows at stride 1 (row-major), bottom sum - top sum:
     # (0,0): (5+5) - (0+0) = 10 -> 1;  (1,0): (5+0) - (0+9) = -4 -> 0
     # (0,1): (1+1) - (5+5) = -8 -> 0;  (1,1): (1+1) - (5+0) = -3 -> 0
-    engine = every_window(model, stride=1, scale_step=2.0)
+    engine = every_window(model, stride=1, scale_step=2.0, overhang=0.0)
     boxes, raw, windows, trees = engine.candidates(gray)
     assert windows == 4 and trees == 4  # the 3 x 3 image fits no 4 x 4 window at scale 2
     assert as_dict(boxes, raw) == {(0, 0, 2, 2): 1.0, (1, 0, 2, 2): 0.0,
                                    (0, 1, 2, 2): 0.0, (1, 1, 2, 2): 0.0}
     # threshold 0.5 keeps only the bright-bottom window
-    result = Engine(model, ScanSettings(stride=1, scale_step=2.0, threshold=0.5)).scan(gray)
+    result = Engine(model, ScanSettings(stride=1, scale_step=2.0, threshold=0.5,
+                                        overhang=0.0)).scan(gray)
     assert result.boxes.tolist() == [[0.0, 0.0, 2.0, 2.0]] and result.scores.tolist() == [1.0]
     # at scale 2 on the pixels repeated 2 x 2, windows (0,0) and (2,0) of 4 x 4 (stride 1 * 2)
     # see row means, the same values: window (0,0) is the small (0,0) -> 1, (2,0) the small (1,0) -> 0
     big = np.kron(gray, np.ones((2, 2), np.uint8))
-    boxes, raw, _, _ = every_window(model, stride=1, scale_step=2.0).candidates(big)
+    boxes, raw, _, _ = every_window(model, stride=1, scale_step=2.0, overhang=0.0).candidates(big)
     at2 = as_dict(boxes[boxes[:, 2] == 4], raw[boxes[:, 2] == 4])
     assert at2 == {(0, 0, 4, 4): 1.0, (2, 0, 4, 4): 0.0, (0, 2, 4, 4): 0.0, (2, 2, 4, 4): 0.0}
+    # overhang 0.5: windows may start floor(0.5 * 2) = 1 pixel outside, so x and y run -1 .. 2 and
+    # the image is seen with its border repeated (rows -1 .. 3, columns -1 .. 3):
+    #   row -1: 0 0 0 9 9 | row 0: 0 0 0 9 9 | row 1: 5 5 5 0 0 | rows 2 and 3: 1 1 1 1 1
+    # the windows whose bottom row outweighs the top row: (-1,0): (5+5)-(0+0) = 10, (0,0): 10,
+    # (2,1): (1+1)-(0+0) = 2; every other one is <= 0, e.g. (1,0): (5+0)-(0+9) = -4, (2,0):
+    # (0+0)-(9+9) = -18, (-1,1): (1+1)-(5+5) = -8, and rows -1/0 or 2/3 are equal: 0
+    boxes, raw, windows, _ = every_window(model, stride=1, scale_step=2.0,
+                                          overhang=0.5).candidates(gray)
+    assert windows == 16
+    assert {k for k, v in as_dict(boxes, raw).items() if v == 1.0} == \
+        {(-1, 0, 2, 2), (0, 0, 2, 2), (2, 1, 2, 2)}
 
 
 # ------------------------------------------------------------------ early exit
@@ -236,7 +293,7 @@ def test_small_objects_enlarge_the_image(bagged):
     """--min-object below the window's object size (24 / 1.2 = 20 px) scans an enlarged image;
     the boxes come back in the frame's own pixels."""
     gray = frame(4)
-    boxes, raw, windows, trees = every_window(bagged, min_object=10.0).candidates(gray)
+    boxes, raw, windows, trees = every_window(bagged, min_object=10.0, overhang=0.0).candidates(gray)
     # scale 10 / 20 = 0.5: the image is enlarged 2x and scanned from a 24-pixel window up, which
     # is a 12-pixel window (a 10-pixel object) in the frame
     assert boxes[:, 2].min() == 12.0 and boxes[:, 3].min() == 12.0
@@ -270,7 +327,8 @@ def test_contrast_gate_drops_exactly_the_flat_windows(model):
     b1, r1, w1, t1 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray)
     b2, r2, _, t2 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray, use_numpy=True)
     at1 = (b0[:, 2] == WINDOW[0]) & (b0[:, 3] == WINDOW[1])
-    var = np.array([gray[y:y + 24, x:x + 24].astype(np.float64).var()
+    padded = np.pad(gray, 12, mode="edge")  # windows reach up to 12 pixels past the edges
+    var = np.array([padded[y + 12:y + 36, x + 12:x + 36].astype(np.float64).var()
                     for x, y in b0[at1, :2].astype(int)])
     expected = as_dict(b0[at1][var >= 900.0], r0[at1][var >= 900.0])
     at1_gated = (b1[:, 2] == WINDOW[0]) & (b1[:, 3] == WINDOW[1])
