@@ -34,6 +34,7 @@ def train(
     mine_per_image: int = typer.Option(20, "--mine-per-image", min=1, help="Most new background patches from one image per round."),
     mine_per_round: int = typer.Option(4000, "--mine-per-round", min=1, help="Most new background patches per round (the highest-scoring are kept)."),
     threshold: float = typer.Option(0.5, "--threshold", min=0.0, max=1.0, help="Score at which mining counts recall and false alarms."),
+    mine_overhang: float = typer.Option(0.25, "--mine-overhang", min=0.0, max=0.5, help="How far the mining scan's windows may reach past the image's edges (as `patchwood scan --overhang`; mine at least as far as you will scan)."),
     save_bank_to: Optional[Path] = typer.Option(None, "--save-bank", help="Also write the bank with the mined patches added."),
     force: bool = typer.Option(False, "--force", help="Replace existing output files."),
 ) -> None:
@@ -65,7 +66,7 @@ def train(
 
     model, clf, final_bank = train_with_mining(
         b, params, rounds=mine_rounds, images_dir=mine_images, items=items,
-        settings=ScanSettings(threshold=threshold), per_image=mine_per_image,
+        settings=ScanSettings(threshold=threshold, overhang=mine_overhang), per_image=mine_per_image,
         per_round=mine_per_round, bank_path=bank,
         progress_factory=lambda d, n: progress_bar(d, n, "trees" if d.startswith("growing") else "images"),
         report=report)

@@ -145,22 +145,43 @@ def test_mining_round(scenario, cli_env, tmp_path):
     assert {b.images[i] for i in b.image_index[b.kinds == KIND_MINED]} <= {
         it.image for it in read_labels(test / "labels.csv")}
     assert "checking final model: 4/4 images" in err
-    # recount the first round: the first model is the plain model with the same seed; scan the
-    # mining frames at threshold 0.5 with the loosest exits (as mining scans) and match with
-    # detector.evaluate (IoU 0.5)
+    assert first_round_recount(bank, test, ScanSettings(threshold=0.5)) == \
+        (float(lines[0][1]), float(lines[0][2]))
+
+
+def first_round_recount(bank, test, settings):
+    """The first mining round's false alarms per image and recall, counted again: the first model
+    is the plain model with the same seed; scan the mining frames with the loosest exits (as
+    mining scans) and match with detector.evaluate (IoU 0.5)."""
     first, _ = train_model(load_bank(bank), dict(n_trees=10, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
                                                  n_jobs=1), bank_path=bank)
-    engine = Engine(first, ScanSettings(threshold=0.5), exit_level=0.0)
+    engine = Engine(first, settings, exit_level=0.0)
     items = read_labels(test / "labels.csv", images_dir=test / "images").items
     dets = {}
     for it in items:
         found = engine.scan(read_gray(test / "images" / it.image))
         dets[it.image] = (found.boxes, found.scores)
     ev = evaluate(dets, {it.image: it.boxes for it in items})
-    assert round(ev.false_alarms / ev.images, 2) == float(lines[0][1])
-    assert round(ev.true_detections / ev.objects, 3) == float(lines[0][2])
+    return round(ev.false_alarms / ev.images, 2), round(ev.true_detections / ev.objects, 3)
+
+
+def test_mining_scans_with_the_overhang_asked_for(scenario, cli_env, tmp_path):
+    test = scenario / "scenario" / "test"
+    bank = scenario / "bank.npz"
+    counts = {}
+    for overhang in (0.0, 0.5):
+        code, text, err = cli_env("train", bank, "--out", tmp_path / f"m{overhang}.npz", *TRAIN,
+                                  "--mine-rounds", 1, "--mine-images", test / "images",
+                                  "--mine-labels", test / "labels.csv", "--mine-overhang", overhang)
+        assert code == 0, err
+        fa, recall = re.search(r"^mining images, first model: (\d+\.\d\d) false alarms per image, "
+                               r"recall (\d\.\d{3}|nan)", text, re.M).groups()
+        counts[overhang] = (float(fa), float(recall))
+        assert first_round_recount(bank, test, ScanSettings(threshold=0.5, overhang=overhang)) == \
+            counts[overhang]
+    assert counts[0.0] != counts[0.5]  # the windows past the edges change what mining finds
 
 
 def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
