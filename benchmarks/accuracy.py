@@ -39,7 +39,7 @@ ACCURACY_GOAL = 0.95
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scenario", help="folder with train/ and test/ (default: render seed 0)")
-    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--rounds", type=int, default=4)
     ap.add_argument("--trees", type=int, default=300)
     ap.add_argument("--depth", type=int, default=2)
     ap.add_argument("--window", type=int, default=None,
