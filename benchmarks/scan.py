@@ -8,11 +8,13 @@ The model is the default one (200 trees of depth 2 over a 24 x 24 window, ``patc
 defaults, no mining rounds), trained here from a bank harvested from the default demo scenario
 (160 training frames of 320 x 240, seed 0), or loaded from ``--model``. The frame is
 ``synthetic_images.render_frame(seed, 640, 480)``. Scan settings: objects 24 to 240 pixels
-(``--min-object 24 --max-object 240``), scale step 1.2, stride 2, threshold 0.5, early exit on.
+(``--min-object 24 --max-object 240``), scale step 1.2, stride 2, threshold 0.5, early exit on,
+windows up to a quarter of their size past the frame's edges (the default ``overhang``).
 
 Printed: median wall milliseconds per frame over ``--repeats`` runs (after a warm-up that compiles
 or loads the numba kernels), windows per frame, mean trees per window, nanoseconds per
-tree-window; the same with early exit off, for scale; images per second over a folder of 200
+tree-window; the same with every window inside the frame (``overhang=0``, the two scans taking
+turns), and with early exit off, for scale; images per second over a folder of 200
 rendered frames through :func:`detector.batch.scan_paths` with ``jobs=1`` and ``jobs=2`` (PNG
 decoding and writing the detections file included).
 
@@ -176,6 +178,20 @@ def main(argv=None):
               f"{high * 1e3:.2f}), cpu {cpu[-1] * 1e3:.2f} ms; {windows:,} windows, "
               f"{mean_trees:.2f} trees per window on average, {ns_per:.1f} ns per tree-window; "
               f"{len(result.scores)} detections")
+        # what the windows past the frame's edges cost: the same scan with every window inside,
+        # the two taking turns (this machine's speed drifts within a minute)
+        inside = Engine(model, ScanSettings(**{**settings.__dict__, "overhang": 0.0}))
+        inside.scan(gray)
+        turns = {"default": [], "inside": []}
+        for _ in range(3 * args.repeats):
+            for name, eng in (("default", engine), ("inside", inside)):
+                start = time.perf_counter()
+                last = eng.scan(gray)
+                turns[name].append(time.perf_counter() - start)
+        print(f"  windows kept inside the frame (overhang 0): {last.windows:,} windows, "
+              f"{statistics.median(turns['inside']) * 1e3:.2f} ms against "
+              f"{statistics.median(turns['default']) * 1e3:.2f} ms with the default overhang "
+              f"{settings.overhang:g} (medians of {3 * args.repeats}, taking turns)")
         full = Engine(model, ScanSettings(**{**settings.__dict__, "early_exit": False}))
         full.scan(gray)
         med_full, low_full, high_full, result_full = timed(lambda: full.scan(gray), args.repeats,
