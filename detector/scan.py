@@ -212,6 +212,56 @@ class ScanSettings:
 
 
 @dataclass
+class FramePlan:
+    """Every scale's windows and plan for one image size: per scale for reading and for the numpy
+    twin, and stacked for :func:`detector._kernels.scan_frame`, which scans them all in one call.
+    Window positions are in the image padded by ``pad`` pixels on every side."""
+
+    scales: list  # [(ScalePlan, xs, ys)] of the scales that have windows
+    pad: int
+    windows: int  # windows over all scales
+    sizes: np.ndarray  # float64 (S, 2): each scale's window width, height
+    xs_all: np.ndarray  # int64: the scales' x positions one after another
+    x_start: np.ndarray  # int64 (S + 1,): where each scale's positions start in xs_all
+    ys_all: np.ndarray
+    y_start: np.ndarray
+    wins: np.ndarray  # int64 (S, 4)
+    inv_areas: np.ndarray  # float64 (S,)
+    offsets: np.ndarray  # int64 (S, F, K), K the largest corner count of any scale (zero-padded)
+    weights: np.ndarray  # float64 (S, F, K)
+    counts: np.ndarray  # int64 (S, F)
+    consts: np.ndarray  # float64 (S, F)
+
+    @classmethod
+    def stack(cls, scales, pad: int, n_features: int) -> "FramePlan":
+        S = len(scales)
+        K = max([plan.offsets.shape[1] for plan, _, _ in scales], default=1)
+        offsets = np.zeros((S, n_features, K), np.int64)
+        weights = np.zeros((S, n_features, K))
+        for i, (plan, _, _) in enumerate(scales):
+            offsets[i, :, :plan.offsets.shape[1]] = plan.offsets
+            weights[i, :, :plan.weights.shape[1]] = plan.weights
+
+        def joined(k):
+            parts = [axes[k] for axes in scales]
+            start = np.cumsum([0] + [len(v) for v in parts]).astype(np.int64)
+            return (np.concatenate(parts) if parts else np.zeros(0, np.int64)), start
+
+        xs_all, x_start = joined(1)
+        ys_all, y_start = joined(2)
+        return cls(
+            scales=scales, pad=pad, windows=int(sum(len(xs) * len(ys) for _, xs, ys in scales)),
+            sizes=np.array([plan.window for plan, _, _ in scales], np.float64).reshape(S, 2),
+            xs_all=xs_all, x_start=x_start, ys_all=ys_all, y_start=y_start,
+            wins=np.array([plan.win for plan, _, _ in scales], np.int64).reshape(S, 4),
+            inv_areas=np.array([plan.inv_area for plan, _, _ in scales], np.float64),
+            offsets=offsets, weights=weights,
+            counts=np.array([plan.counts for plan, _, _ in scales], np.int64).reshape(S, n_features),
+            consts=np.array([plan.consts for plan, _, _ in scales], np.float64).reshape(S, n_features),
+        )
+
+
+@dataclass
 class FrameResult:
     """Detections in one frame with the work it took."""
 
@@ -320,9 +370,11 @@ class _Workspace(threading.local):
                                   cv2.BORDER_REPLICATE, dst=self.frame)
 
     def out(self, n):
+        """Outputs for ``n`` windows: x, y, raw score and scale index of each window kept."""
         if n > self.size:
             self.size = n
-            self.outputs = (np.empty(n, np.int64), np.empty(n, np.int64), np.empty(n, np.float64))
+            self.outputs = (np.empty(n, np.int64), np.empty(n, np.int64), np.empty(n, np.float64),
+                            np.empty(n, np.int64))
         return self.outputs
 
 
@@ -413,15 +465,15 @@ class Engine:
         """Scale plans for an image of ``(width, height)`` (already enlarged by ``enlarged`` when
         the smallest object is smaller than the window), cached by size. Thread-safe. Their corner
         offsets are for the image padded by :meth:`padding` on every side."""
-        return [plan for plan, _, _ in self._grid(image_size, enlarged)[0]]
+        return [plan for plan, _, _ in self._grid(image_size, enlarged).scales]
 
     def padding(self, image_size, enlarged: float = 1.0) -> int:
         """Pixels of repeated border the scan adds on every side of an image of this size (the
         farthest any window reaches past an edge; 0 with ``overhang=0``)."""
-        return self._grid(image_size, enlarged)[1]
+        return self._grid(image_size, enlarged).pad
 
-    def _grid(self, image_size, enlarged: float = 1.0):
-        """``([(plan, xs, ys) per scale that has windows], pad)``: the plan and the windows'
+    def _grid(self, image_size, enlarged: float = 1.0) -> FramePlan:
+        """The :class:`FramePlan` of an image of this size: every scale's plan and the windows'
         top-left positions in the image padded by ``pad`` pixels on every side, cached by image
         size (a small frame spends a fifth of its scan on them otherwise)."""
         key = (tuple(image_size), enlarged)
@@ -445,8 +497,10 @@ class Engine:
                     # the farthest this scale's windows reach past any edge
                     pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
                               int(ys[-1]) + Hs - ih)
-            grid = ([(scale_plan(self.model.features, self.window, s, iw + 2 * pad + 1,
-                                 self.normalize), xs + pad, ys + pad) for s, xs, ys in axes], pad)
+            grid = FramePlan.stack([(scale_plan(self.model.features, self.window, s,
+                                                iw + 2 * pad + 1, self.normalize),
+                                     xs + pad, ys + pad) for s, xs, ys in axes], pad,
+                                   len(self.model.features))
             with self._lock:
                 self._grids[key] = grid
                 while len(self._grids) > 16:
@@ -465,34 +519,37 @@ class Engine:
             up = 1.0 / lo
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
-        grid, pad = self._grid((iw, ih), up)
+        grid = self._grid((iw, ih), up)
+        pad = grid.pad
+        if not grid.windows:
+            return np.zeros((0, 4)), np.zeros(0), 0, 0
         if pad:
             gray = self._work.padded(gray, pad)
         ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
-        boxes, raws = [], []
-        windows = trees = 0
-        fn = scan_scale_numpy if use_numpy else _kernels.scan_scale
-        for plan, xs, ys in grid:
-            Ws, Hs = plan.window
-            n = len(xs) * len(ys)
-            out_x, out_y, out_s = self._work.out(n)
-            kept, used = fn(ii, sq, iw + 2 * pad + 1, xs, ys, plan.win, plan.inv_area, SIGMA_FLOOR,
-                            self.min_var, self.normalize, plan.offsets, plan.weights, plan.counts, plan.consts,
-                            self.node_features, self.split_bounds, self.leaf_values,
-                            self.exits, self.cutoff, self.bound, out_x, out_y, out_s)
-            windows += n
-            trees += int(used)
-            if kept:
-                b = np.empty((kept, 4))
-                b[:, 0] = (out_x[:kept] - pad) / up
-                b[:, 1] = (out_y[:kept] - pad) / up
-                b[:, 2] = Ws / up
-                b[:, 3] = Hs / up
-                boxes.append(b)
-                raws.append(out_s[:kept].copy())
-        if boxes:
-            return np.concatenate(boxes), np.concatenate(raws), windows, trees
-        return np.zeros((0, 4)), np.zeros(0), windows, trees
+        out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
+        stride = iw + 2 * pad + 1
+        rules = (SIGMA_FLOOR, self.min_var, self.normalize)
+        trees_and_exits = (self.node_features, self.split_bounds, self.leaf_values, self.exits,
+                           self.cutoff, self.bound)
+        if use_numpy:
+            kept = trees = 0
+            for i, (plan, xs, ys) in enumerate(grid.scales):
+                k, t = scan_scale_numpy(ii, sq, stride, xs, ys, plan.win, plan.inv_area, *rules,
+                                        plan.offsets, plan.weights, plan.counts, plan.consts,
+                                        *trees_and_exits, out_x[kept:], out_y[kept:],
+                                        out_s[kept:])
+                out_scale[kept:kept + k] = i
+                kept, trees = kept + k, trees + t
+        else:
+            kept, trees = _kernels.scan_frame(
+                ii, sq, stride, grid.xs_all, grid.x_start, grid.ys_all, grid.y_start, grid.wins,
+                grid.inv_areas, *rules, grid.offsets, grid.weights, grid.counts, grid.consts,
+                *trees_and_exits, out_x, out_y, out_s, out_scale)
+        boxes = np.empty((kept, 4))
+        boxes[:, 0] = (out_x[:kept] - pad) / up
+        boxes[:, 1] = (out_y[:kept] - pad) / up
+        boxes[:, 2:] = grid.sizes[out_scale[:kept]] / up
+        return boxes, out_s[:kept].copy(), grid.windows, int(trees)
 
     def scan(self, gray: np.ndarray, use_numpy: bool = False) -> FrameResult:
         """Detections in one grayscale frame: object boxes, scores in 0..1 (descending), after
