@@ -27,7 +27,7 @@ from detector.harvest import KIND_MINED, harvest
 from detector.images import read_gray
 from detector.labels import read_labels
 from detector.mining import mine
-from detector.scan import Engine, ScanSettings
+from detector.scan import MAX_OVERHANG, Engine, ScanSettings
 from detector.training import train_model
 from synthetic_images import render_scenario
 
@@ -59,6 +59,8 @@ def main(argv=None) -> int:
                     help="how far windows may reach past the frame's edges, share of the window "
                          "(scan and mining; default the scan's, %(default)s)")
     args = ap.parse_args(argv)
+    if not 0.0 <= args.overhang <= MAX_OVERHANG:
+        ap.error(f"--overhang must be in [0, {MAX_OVERHANG}], got {args.overhang}")
     print("command: python benchmarks/accuracy.py " + " ".join(argv or sys.argv[1:]))
     root = args.scenario
     if root is None:
