@@ -409,6 +409,40 @@ def split_bounds(thresholds) -> np.ndarray:
     return np.where(np.isneginf(t), -(top + step / 2), bounds)
 
 
+def first_use_order(node_features, n_features: int):
+    """The features renumbered in the order the trees first use them: tree after tree, each tree's
+    nodes in heap order (root first); features no node uses go last, in their own order.
+
+    The scan reads a feature's corner offsets and weights from its scale plan, one row per
+    feature. A model's features are stored in the order of the pool they were drawn from, so the
+    rows the first trees need (which every window reaches) lay scattered over the whole table, and
+    the later trees' rows, which few windows reach, broke them apart in the cache. In first-use
+    order the rows each tree needs sit next to those of the trees before it. Same scores; 1.17 to
+    1.22 times faster on the demo test split at the baseline's stride (A/B in one process, three
+    runs; ``benchmarks/baseline.py``).
+
+    Returns
+    -------
+    order : int64 (n_features,)
+        ``order[i]`` is the model's index of the engine's feature ``i``.
+    node_features : int64, the shape of the input
+        The same trees indexing the renumbered features.
+
+    Examples
+    --------
+    >>> order, nf = first_use_order(np.array([[3, 1, 3], [0, 1, 2]]), 5)
+    >>> order.tolist(), nf.tolist()          # 3 first, then 1, 0, 2; 4 is never used
+    ([3, 1, 0, 2, 4], [[0, 1, 0], [2, 1, 3]])
+    """
+    flat = np.asarray(node_features, dtype=np.int64).ravel()
+    used, first = np.unique(flat, return_index=True)
+    order = used[np.argsort(first, kind="stable")]
+    order = np.concatenate([order, np.setdiff1d(np.arange(n_features), order)]).astype(np.int64)
+    rank = np.empty(n_features, np.int64)
+    rank[order] = np.arange(n_features)
+    return order, rank[flat].reshape(np.shape(node_features))
+
+
 def _remaining_bound(leaf_values):
     top = leaf_values.max(axis=1).astype(np.float64)
     return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]])
@@ -431,7 +465,10 @@ class Engine:
         self.settings = settings or ScanSettings()
         self.window = tuple(int(v) for v in model.window)
         self.margin = float(model.metadata.get("margin", 0.0))
-        self.node_features = np.ascontiguousarray(model.node_features, np.int64)
+        # the plans hold the features in the order the trees first use them (see first_use_order)
+        order, node_features = first_use_order(model.node_features, len(model.features))
+        self.features = np.asarray(model.features)[order]
+        self.node_features = np.ascontiguousarray(node_features, np.int64)
         self.node_thresholds = np.ascontiguousarray(model.node_thresholds, np.float32)
         self.split_bounds = split_bounds(self.node_thresholds)
         self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
@@ -464,7 +501,9 @@ class Engine:
     def plans(self, image_size, enlarged: float = 1.0):
         """Scale plans for an image of ``(width, height)`` (already enlarged by ``enlarged`` when
         the smallest object is smaller than the window), cached by size. Thread-safe. Their corner
-        offsets are for the image padded by :meth:`padding` on every side."""
+        offsets are for the image padded by :meth:`padding` on every side; their rows are the
+        engine's ``features`` (the model's, in the order :func:`first_use_order` gives), which
+        ``node_features`` index."""
         return [plan for plan, _, _ in self._grid(image_size, enlarged).scales]
 
     def padding(self, image_size, enlarged: float = 1.0) -> int:
@@ -497,10 +536,10 @@ class Engine:
                     # the farthest this scale's windows reach past any edge
                     pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
                               int(ys[-1]) + Hs - ih)
-            grid = FramePlan.stack([(scale_plan(self.model.features, self.window, s,
+            grid = FramePlan.stack([(scale_plan(self.features, self.window, s,
                                                 iw + 2 * pad + 1, self.normalize),
                                      xs + pad, ys + pad) for s, xs, ys in axes], pad,
-                                   len(self.model.features))
+                                   len(self.features))
             with self._lock:
                 self._grids[key] = grid
                 while len(self._grids) > 16:

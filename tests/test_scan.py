@@ -19,7 +19,7 @@ from detector.classifier import PatchClassifier
 from detector.harvest import harvest, window_box_to_object_box
 from detector.labels import read_labels
 from detector.model import Model
-from detector.scan import Engine, ScanSettings, final_scores
+from detector.scan import Engine, ScanSettings, final_scores, first_use_order
 from synthetic_images import render_frame, render_scenario
 
 WINDOW = (24, 24)
@@ -108,6 +108,24 @@ def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit
 
 
 # ------------------------------------------------------------------ against patches cut by hand
+
+@given(st.integers(1, 30), st.integers(0, 2**32 - 1), st.sampled_from([1, 3, 7]))
+@settings(max_examples=60, deadline=None)
+def test_first_use_order_renumbers_without_changing_the_trees(n_features, seed, nodes):
+    """The engine's feature order: every node still reads the same feature, the renumbered
+    features appear in the flattened trees as 0, 1, 2, ... at their first use, and every feature
+    keeps exactly one place."""
+    rng = np.random.default_rng(seed)
+    nf = rng.integers(0, n_features, (int(rng.integers(1, 6)), nodes))
+    order, renumbered = first_use_order(nf, n_features)
+    assert sorted(order.tolist()) == list(range(n_features))
+    np.testing.assert_array_equal(order[renumbered], nf)
+    flat = renumbered.ravel()
+    firsts = [v for i, v in enumerate(flat.tolist()) if v not in flat[:i]]
+    assert firsts == list(range(len(firsts)))
+    unused = np.setdiff1d(np.arange(n_features), nf)
+    np.testing.assert_array_equal(order[len(firsts):], unused)
+
 
 @pytest.mark.parametrize("overhang", [0.0, 0.5])
 def test_scan_scores_equal_classifier_scores_at_scale_one(model, overhang):
