@@ -34,6 +34,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 
+from detector.boxes import _nms_numba
+
 
 #: Windows (at least) gathered from successive rows before the trees run over them.
 CHUNK = 1024
@@ -240,3 +242,51 @@ def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_a
         trees += t
     return kept, trees
 
+
+
+@numba.njit(cache=True, nogil=True)
+def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, height, nms_iou):
+    """The windows a frame's scan kept -> its detections, in one call: what
+    :meth:`detector.scan.Engine.candidates` and :meth:`detector.scan.Engine.detections` do with
+    numpy, in the same arithmetic (the tests hold the two equal).
+
+    Window ``i`` (the first ``len(scores)`` entries of the kernel's outputs) is the box
+    ``((out_x[i] - pad) / up, (out_y[i] - pad) / up, sizes[out_scale[i]] / up)`` of the frame;
+    it is shrunk by the context ``margin`` to its object box
+    (:func:`detector.harvest.window_box_to_object_box`), cut to the ``width x height`` frame
+    (:func:`detector.scan.clip_boxes`) and thinned by greedy non-maximum suppression at ``nms_iou``
+    over the final ``scores``, visited in descending score, ties in window order
+    (:func:`detector.boxes.nms`).
+
+    Returns
+    -------
+    boxes : float64 (K, 4)
+        The object boxes kept, in descending score.
+    scores : float64 (K,)
+    """
+    n = scores.shape[0]
+    k = 1.0 + 2.0 * margin
+    boxes = np.empty((n, 4))
+    for i in range(n):
+        x = (out_x[i] - pad) / up
+        y = (out_y[i] - pad) / up
+        w = sizes[out_scale[i], 0] / up
+        h = sizes[out_scale[i], 1] / up
+        bw = w / k
+        bh = h / k
+        x = x + (w - bw) / 2.0
+        y = y + (h - bh) / 2.0
+        x0 = min(max(x, 0.0), width)
+        y0 = min(max(y, 0.0), height)
+        boxes[i, 0] = x0
+        boxes[i, 1] = y0
+        boxes[i, 2] = min(max(x + bw, 0.0), width) - x0
+        boxes[i, 3] = min(max(y + bh, 0.0), height) - y0
+    order = np.argsort(-scores, kind="mergesort")
+    keep = _nms_numba(boxes, order, nms_iou)
+    out_boxes = np.empty((keep.shape[0], 4))
+    out_scores = np.empty(keep.shape[0])
+    for i in range(keep.shape[0]):
+        out_boxes[i] = boxes[keep[i]]
+        out_scores[i] = scores[keep[i]]
+    return out_boxes, out_scores

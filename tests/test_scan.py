@@ -107,6 +107,33 @@ def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit
     np.testing.assert_allclose(r1, r2, rtol=0, atol=1e-9)
 
 
+@pytest.mark.parametrize("settings", [dict(), dict(overhang=0.5, nms_iou=0.6),
+                                      dict(overhang=0.0, stride=3.0), dict(min_object=12.0)])
+def test_scan_equals_candidates_then_detections(model, settings):
+    """The compiled finish (kernels.finish: window boxes, margin, clipping, suppression in one
+    call) gives exactly what candidates() and detections() give with numpy: same boxes, same
+    scores, same order. The bagged model's scores are multiples of 1/20, so ties are many and
+    their order (window order, as detector.boxes.nms visits them) is checked too; min_object 12
+    enlarges the frame (up = 1.5 for this 24-pixel window with margin 0.1: object side
+    24 / 1.2 = 20, 20 / 12 = 1.67 -> the smallest scale 12 / 20 = 0.6, up = 1 / 0.6)."""
+    rng = np.random.default_rng(8)
+    images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
+              np.full((30, 30), 128, np.uint8)]
+    engine = Engine(model, ScanSettings(threshold=0.05, **settings))
+    found = 0
+    for gray in images:
+        result = engine.scan(gray)
+        wboxes, raw, windows, trees = engine.candidates(gray)
+        boxes, scores = engine.detections(wboxes, raw, image_size=gray.shape[::-1])
+        assert (result.windows, result.trees) == (windows, trees)
+        np.testing.assert_array_equal(result.boxes, boxes)
+        np.testing.assert_array_equal(result.scores, scores)
+        numpy_route = engine.scan(gray, use_numpy=True)
+        assert len(numpy_route.scores) == len(scores)
+        found += len(scores)
+    assert found >= 8, found
+
+
 # ------------------------------------------------------------------ against patches cut by hand
 
 @given(st.integers(1, 30), st.integers(0, 2**32 - 1), st.sampled_from([1, 3, 7]))
