@@ -79,24 +79,24 @@ patchwood's defaults are stride 2 and windows reaching up to a quarter of their 
 frame's edges (``overhang=0.25``; 5.1x the baseline's windows on these frames); its ratio there,
 and the 0.05 scan's, are printed too.
 
-Measured here (the default scenario, 2 cores, load average 0.9 before, 1.0 after; numpy 2.4,
-scikit-image 0.26, scikit-learn 1.9; 2026-12-02):
+Measured here (the default scenario, 2 cores, load average 1.1 before and after; numpy 2.4,
+scikit-image 0.26, scikit-learn 1.9; 2026-12-02; the second of two runs):
 
 ====================  ===========  ================
 160 / 40 frames       patchwood    HOG + linear SVM
 ====================  ===========  ================
 AP50 (all-point)      0.909        0.791
 FPPI at recall 0.9    0.225        0.425
-ms per megapixel      130.6        558.9
+ms per megapixel      126.8        606.1
 windows per frame     60,785       11,894
 ====================  ===========  ================
 
 On the same windows as the baseline (stride 4, none past the edges, where patchwood's AP50 is
-0.910), patchwood was 18.3x faster in two runs (16.3 to 18.7 and 18.1 to 19.1 over the 5 passes,
-the routes taking turns frame by frame; the second run after the scan went into the compiled code
-once per frame instead of once per scale; taking turns pass by pass, the previous version measured
-16.4x, 21.9x and 19.1x in three runs); at its defaults and recommended threshold (0.9868, 3.37
-trees per window), 5.9x and 5.7x. The AP goal is met; the 20x speed goal is NOT.
+0.910), patchwood was 25.3x and 25.9x faster in two runs (23.2 to 26.7 and 24.4 to 26.9 over the
+5 passes, the routes taking turns frame by frame). The previous version measured 18.3x twice; the
+scan's plans now hold the features in the order the trees first use them, and the windows kept
+become detections in one compiled call (DEVELOPERS.md). At patchwood's defaults and recommended
+threshold (0.9868, 3.37 trees per window), 6.6x in both runs. Both goals are met.
 """
 
 from __future__ import annotations

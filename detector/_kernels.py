@@ -243,7 +243,6 @@ def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_a
     return kept, trees
 
 
-
 @numba.njit(cache=True, nogil=True)
 def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, height, nms_iou):
     """The windows a frame's scan kept -> its detections, in one call: what

@@ -418,8 +418,8 @@ def first_use_order(node_features, n_features: int):
     rows the first trees need (which every window reaches) lay scattered over the whole table, and
     the later trees' rows, which few windows reach, broke them apart in the cache. In first-use
     order the rows each tree needs sit next to those of the trees before it. Same scores; 1.17 to
-    1.22 times faster on the demo test split at the baseline's stride (A/B in one process, three
-    runs; ``benchmarks/baseline.py``).
+    1.22 times faster on the demo test split at the baseline's stride (a one-off A/B in one
+    process, three runs; DEVELOPERS.md has the benchmark figures).
 
     Returns
     -------
