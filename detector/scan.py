@@ -550,10 +550,9 @@ class Engine:
         """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
         trees)``, before the margin and non-maximum suppression. Window boxes may reach past the
         image's edges (see ``ScanSettings.overhang``)."""
-        grid, up, kept, trees = self._run(gray, use_numpy)
+        grid, up, (out_x, out_y, out_s, out_scale), kept, trees = self._run(gray, use_numpy)
         if grid is None:
             return np.zeros((0, 4)), np.zeros(0), 0, 0
-        out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
         boxes = np.empty((kept, 4))
         boxes[:, 0] = (out_x[:kept] - grid.pad) / up
         boxes[:, 1] = (out_y[:kept] - grid.pad) / up
@@ -561,9 +560,9 @@ class Engine:
         return boxes, out_s[:kept].copy(), grid.windows, int(trees)
 
     def _run(self, gray, use_numpy: bool = False):
-        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, kept, trees)``, the windows
-        kept being the first ``kept`` entries of the workspace's outputs (``grid`` None when the
-        frame has no window)."""
+        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, outputs, kept, trees)``,
+        the windows kept being the first ``kept`` entries of the four ``outputs`` (x, y, raw score,
+        scale index; :meth:`_Workspace.out`); ``grid`` None when the frame has no window."""
         lo, _ = self.object_scale_range()
         up = 1.0
         if lo < 1.0:
@@ -575,7 +574,7 @@ class Engine:
         grid = self._grid((iw, ih), up)
         pad = grid.pad
         if not grid.windows:
-            return None, up, 0, 0
+            return None, up, (None,) * 4, 0, 0
         if pad:
             gray = self._work.padded(gray, pad)
         ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
@@ -598,7 +597,7 @@ class Engine:
                 ii, sq, stride, grid.xs_all, grid.x_start, grid.ys_all, grid.y_start, grid.wins,
                 grid.inv_areas, *rules, grid.offsets, grid.weights, grid.counts, grid.consts,
                 *trees_and_exits, out_x, out_y, out_s, out_scale)
-        return grid, up, int(kept), int(trees)
+        return grid, up, (out_x, out_y, out_s, out_scale), int(kept), int(trees)
 
     def scan(self, gray: np.ndarray, use_numpy: bool = False) -> FrameResult:
         """Detections in one grayscale frame: object boxes, scores in 0..1 (descending), after
@@ -613,11 +612,10 @@ class Engine:
             wboxes, raw, windows, trees = self.candidates(gray, use_numpy=True)
             boxes, scores = self.detections(wboxes, raw, image_size=gray.shape[::-1])
             return FrameResult(boxes, scores, windows, trees)
-        grid, up, kept, trees = self._run(gray)
+        grid, up, (out_x, out_y, out_s, out_scale), kept, trees = self._run(gray)
         if grid is None or not kept:
             return FrameResult(np.zeros((0, 4)), np.zeros(0), 0 if grid is None else grid.windows,
                                trees)
-        out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
         scores = final_scores(self.model, out_s[:kept])
         ih, iw = gray.shape
         boxes, scores = _kernels.finish(out_x, out_y, out_scale, scores, grid.sizes, grid.pad,

@@ -113,9 +113,9 @@ def test_scan_equals_candidates_then_detections(model, settings):
     """The compiled finish (kernels.finish: window boxes, margin, clipping, suppression in one
     call) gives exactly what candidates() and detections() give with numpy: same boxes, same
     scores, same order. The bagged model's scores are multiples of 1/20, so ties are many and
-    their order (window order, as detector.boxes.nms visits them) is checked too; min_object 12
-    enlarges the frame (up = 1.5 for this 24-pixel window with margin 0.1: object side
-    24 / 1.2 = 20, 20 / 12 = 1.67 -> the smallest scale 12 / 20 = 0.6, up = 1 / 0.6)."""
+    their order (window order, as detector.boxes.nms visits them) is checked too. min_object 12
+    enlarges the frame: the window's object side is 24 / (1 + 2 * 0.1) = 20 pixels (the bank's
+    margin 0.1), so the smallest scale is 12 / 20 = 0.6 and the frame grows by 1 / 0.6 = 1.67."""
     rng = np.random.default_rng(8)
     images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
               np.full((30, 30), 128, np.uint8)]
@@ -134,8 +134,6 @@ def test_scan_equals_candidates_then_detections(model, settings):
     assert found >= 8, found
 
 
-# ------------------------------------------------------------------ against patches cut by hand
-
 @given(st.integers(1, 30), st.integers(0, 2**32 - 1), st.sampled_from([1, 3, 7]))
 @settings(max_examples=60, deadline=None)
 def test_first_use_order_renumbers_without_changing_the_trees(n_features, seed, nodes):
@@ -153,6 +151,8 @@ def test_first_use_order_renumbers_without_changing_the_trees(n_features, seed, 
     unused = np.setdiff1d(np.arange(n_features), nf)
     np.testing.assert_array_equal(order[len(firsts):], unused)
 
+
+# ------------------------------------------------------------------ against patches cut by hand
 
 @pytest.mark.parametrize("overhang", [0.0, 0.5])
 def test_scan_scores_equal_classifier_scores_at_scale_one(model, overhang):
