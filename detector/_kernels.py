@@ -275,12 +275,20 @@ def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, heigh
         bh = h / k
         x = x + (w - bw) / 2.0
         y = y + (h - bh) / 2.0
-        x0 = min(max(x, 0.0), width)
-        y0 = min(max(y, 0.0), height)
-        boxes[i, 0] = x0
-        boxes[i, 1] = y0
-        boxes[i, 2] = min(max(x + bw, 0.0), width) - x0
-        boxes[i, 3] = min(max(y + bh, 0.0), height) - y0
+        # cut to the frame only along an axis where the box leaves it (clip_boxes): a box
+        # within the frame keeps its exact width and height
+        boxes[i, 0] = x
+        boxes[i, 1] = y
+        boxes[i, 2] = bw
+        boxes[i, 3] = bh
+        if x < 0.0 or x + bw > width:
+            x0 = min(max(x, 0.0), width)
+            boxes[i, 0] = x0
+            boxes[i, 2] = min(max(x + bw, 0.0), width) - x0
+        if y < 0.0 or y + bh > height:
+            y0 = min(max(y, 0.0), height)
+            boxes[i, 1] = y0
+            boxes[i, 3] = min(max(y + bh, 0.0), height) - y0
     order = np.argsort(-scores, kind="mergesort")
     keep = _nms_numba(boxes, order, nms_iou)
     out_boxes = np.empty((keep.shape[0], 4))

@@ -654,16 +654,27 @@ class Engine:
 def clip_boxes(boxes, image_size) -> np.ndarray:
     """``(x, y, width, height)`` boxes cut to the image ``(width, height)`` (pixel-edge coordinates).
 
+    A box that lies within the image along an axis keeps its position and size on that axis
+    exactly as given: no ``(x + w) - x`` round trip, which can differ from ``w`` in the last bit.
+
     >>> clip_boxes(np.array([[-4.0, 2.0, 10.0, 10.0], [95.0, 50.0, 10.0, 20.0]]), (100, 60)).tolist()
     [[0.0, 2.0, 6.0, 10.0], [95.0, 50.0, 5.0, 10.0]]
+    >>> w = 20.0 / 1.2                              # 16.666666666666668
+    >>> (17.5 + w) - 17.5 == w                      # the round trip loses the last bit here
+    False
+    >>> clip_boxes(np.array([[17.5, 17.5, w, w]]), (100, 60))[0, 2:].tolist() == [w, w]
+    True
     """
     b = np.asarray(boxes, dtype=np.float64)
-    iw, ih = image_size
-    x0 = np.clip(b[:, 0], 0.0, iw)
-    y0 = np.clip(b[:, 1], 0.0, ih)
-    x1 = np.clip(b[:, 0] + b[:, 2], 0.0, iw)
-    y1 = np.clip(b[:, 1] + b[:, 3], 0.0, ih)
-    return np.stack([x0, y0, x1 - x0, y1 - y0], axis=1)
+    out = b.copy()
+    for axis, size in ((0, image_size[0]), (1, image_size[1])):
+        lo, extent = b[:, axis], b[:, axis + 2]
+        hi = lo + extent
+        cut = (lo < 0.0) | (hi > size)
+        lo0 = np.clip(lo[cut], 0.0, size)
+        out[cut, axis] = lo0
+        out[cut, axis + 2] = np.clip(hi[cut], 0.0, size) - lo0
+    return out
 
 
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
