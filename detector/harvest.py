@@ -425,6 +425,7 @@ def harvest(
         "seed": seed,
         "labels_sha256": labels_hash,
         "images_too_small": too_small,
+        "versions": npzfile.library_versions(),
     }
     bank = PatchBank(
         window=chosen,

@@ -93,13 +93,7 @@ def training_date() -> str:
     return when.strftime("%Y-%m-%d")
 
 
-def library_versions() -> dict[str, str]:
-    """Versions of numpy, scikit-learn and patchwood, for the metadata."""
-    import sklearn
-
-    import detector
-
-    return {"numpy": np.__version__, "scikit-learn": sklearn.__version__, "patchwood": detector.__version__}
+library_versions = npzfile.library_versions
 
 
 def _jsonable(value):

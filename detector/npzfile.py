@@ -410,3 +410,32 @@ def file_sha256(path: str | os.PathLike) -> str:
     except OSError as exc:
         raise InputError(f"cannot read ({exc.strerror or exc})", path=path) from None
     return h.hexdigest()
+
+
+#: The libraries whose releases decide a bank's or a model's bytes (resampling, tree growing,
+#: compiled arithmetic), by distribution name.
+RECORDED_LIBRARIES = ("numpy", "scikit-learn", "scikit-image", "opencv-python-headless", "numba")
+
+
+def library_versions() -> dict[str, str]:
+    """Installed versions of the libraries that decide a bank's or model's bytes, and patchwood's,
+    for the files' metadata. Byte-identical retraining holds within one set of these versions
+    (the lock file's); another release of opencv, for one, may resample a few pixels differently.
+
+    >>> import importlib.metadata as md
+    >>> library_versions()["opencv-python-headless"] == md.version("opencv-python-headless")
+    True
+    """
+    import importlib.metadata as md
+
+    import detector
+
+    found = {}
+    for name in RECORDED_LIBRARIES:
+        try:
+            found[name] = md.version(name)
+        except md.PackageNotFoundError:  # e.g. another OpenCV build installed under its own name
+            found[name] = "not installed"
+    found["patchwood"] = detector.__version__
+    return found
+

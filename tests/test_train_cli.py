@@ -103,6 +103,21 @@ def test_train_options_reach_the_model(scenario, cli_env, tmp_path):
     assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_recall"]) == (300, 40, 0.5, 0.9)
 
 
+def test_bank_and_model_record_the_library_versions_that_made_them(scenario, cli_env, tmp_path):
+    """Byte-identical retraining holds for one set of library versions (the lock file's), so the
+    bank and the model say which: the versions importlib.metadata reports for this environment."""
+    import importlib.metadata as md
+
+    out = tmp_path / "model.npz"
+    code, _, err = cli_env("train", scenario / "bank.npz", "--out", out, *TRAIN)
+    assert code == 0, err
+    for metadata in (load_bank(scenario / "bank.npz").metadata, load_model(out).metadata):
+        versions = metadata["versions"]
+        for name in ("numpy", "scikit-learn", "scikit-image", "opencv-python-headless", "numba"):
+            assert versions[name] == md.version(name), name
+        assert versions["patchwood"] == md.version("patchwood")
+
+
 def test_same_seed_same_bytes_and_existing_output_refused(scenario, cli_env, tmp_path):
     bank = scenario / "bank.npz"
     one, two, other = tmp_path / "one.npz", tmp_path / "two.npz", tmp_path / "other.npz"
