@@ -1,22 +1,31 @@
-# Two commands on a fresh machine: `make demo` and `make test`. Both create .venv as needed.
+# Two commands on a fresh machine: `make demo` and `make test`. Both create .venv as needed and
+# install the exact versions of requirements/*.lock (made by `make lock`); pyproject.toml keeps
+# the version ranges for people who install patchwood into an environment of their own.
 PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 DEMO_OUT ?= demo_output
 JOBS   ?= 2
+LOCK   := requirements/runtime.lock
+LOCK_TEST := requirements/test.lock
+# the editable install of patchwood itself, built with the locked setuptools and nothing else
+SELF   := --quiet --no-deps --no-build-isolation -e .
 
-.PHONY: demo test bench clean
+.PHONY: demo test test-newest lock bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
-	$(BIN)/python -m pip install --quiet --upgrade pip
 
-$(VENV)/.installed: pyproject.toml | $(BIN)/python
-	$(BIN)/python -m pip install --quiet -e .
+$(VENV)/.installed: pyproject.toml $(LOCK) | $(BIN)/python
+	$(BIN)/python -m pip install --quiet $$(grep -E '^(pip|setuptools|wheel)==' $(LOCK))
+	$(BIN)/python -m pip install --quiet -r $(LOCK)
+	$(BIN)/python -m pip install $(SELF)
 	touch $@
 
-$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+$(VENV)/.installed-test: pyproject.toml $(LOCK) $(LOCK_TEST) | $(BIN)/python
+	$(BIN)/python -m pip install --quiet $$(grep -E '^(pip|setuptools|wheel)==' $(LOCK))
+	$(BIN)/python -m pip install --quiet -r $(LOCK_TEST)
+	$(BIN)/python -m pip install $(SELF)
 	touch $(VENV)/.installed $@
 
 demo: $(VENV)/.installed
@@ -24,6 +33,21 @@ demo: $(VENV)/.installed
 
 test: $(VENV)/.installed-test
 	$(BIN)/python -m pytest -n $(JOBS) -q
+
+# The suite against the newest releases pyproject.toml's ranges allow today, in a separate
+# virtual environment made afresh (the lock files are not used or changed).
+test-newest:
+	rm -rf .venv-newest
+	$(PYTHON) -m venv .venv-newest
+	.venv-newest/bin/python -m pip install --quiet --upgrade pip
+	.venv-newest/bin/python -m pip install --quiet --upgrade --upgrade-strategy eager -e '.[test]'
+	.venv-newest/bin/python -m pip freeze --exclude-editable > .venv-newest/versions.txt
+	.venv-newest/bin/python -m pytest -n $(JOBS) -q -p no:cacheprovider
+
+# Re-pin every dependency to the newest releases the ranges allow (see requirements/lock.py);
+# run `make clean test` before committing the new lock files.
+lock:
+	$(PYTHON) requirements/lock.py
 
 bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/features.py
@@ -34,4 +58,4 @@ bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/accuracy.py
 
 clean:
-	rm -rf $(VENV) $(DEMO_OUT) .pytest_cache
+	rm -rf $(VENV) .venv-newest $(DEMO_OUT) .pytest_cache
