@@ -51,6 +51,13 @@ def harvest(
     W, H = bank.window
     how = "inferred from the median box aspect ratio, shorter side 24" if size is None else "from --window"
     echo(f"window: {W}x{H} ({how})")
+    sizes = bank.metadata["object_sizes"]
+    echo(f"object sizes: shorter side {sizes['smallest']:g} to {sizes['largest']:g} pixels "
+         f"(median {sizes['median']:g}); the scan looks for these by default")
+    if sizes["below_window"]:
+        echo(f"note: {count(sizes['below_window'], 'labelled object is', 'labelled objects are')} "
+             f"smaller than the window's object side of {sizes['window_object_side']:g} pixels; "
+             f"the scan enlarges images to find them (slower; `--window` sets a smaller window)")
     c = bank.counts()
     echo(f"patches: {c['objects']} object ({c['object']} boxes + {c['augmented']} augmented copies), "
          f"{c['background']} background")

@@ -19,8 +19,8 @@ def scan(
     format: str = typer.Option("csv", "--format", help="csv or coco."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales."),
     stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows in pixels at the window's own size; it grows with the scale."),
-    min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, pixels (default: the model's window). Smaller than the window enlarges the image."),
-    max_object: Optional[float] = typer.Option(None, "--max-object", min=1.0, help="Shorter side of the largest object to look for, pixels (default: as large as the image allows)."),
+    min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, pixels (default: the smallest labelled object in training, less a quarter). Smaller than the window enlarges the image."),
+    max_object: Optional[float] = typer.Option(None, "--max-object", min=1.0, help="Shorter side of the largest object to look for, pixels (default: the largest labelled object in training, plus a quarter; for older models, as large as the image allows)."),
     threshold: float = typer.Option(0.5, "--threshold", min=0.0, max=1.0, help="Keep detections scoring at least this (0..1)."),
     threshold_from: Optional[Path] = typer.Option(None, "--threshold-from", help="Take the threshold from a summary.json written by `patchwood score` (its recommended operating point)."),
     nms_iou: float = typer.Option(0.3, "--nms-iou", min=0.0, max=1.0, help="Non-maximum suppression: drop a box overlapping a better one by more than this IoU."),
@@ -51,6 +51,12 @@ def scan(
     settings = ScanSettings(scale_step=scale_step, stride=stride, min_object=min_object,
                             max_object=max_object, threshold=threshold, nms_iou=nms_iou,
                             early_exit=early_exit, overhang=overhang)
+    from detector.model import load_model
+    from detector.scan import skipped_sizes_note
+
+    note = skipped_sizes_note(load_model(model), settings)
+    if note:
+        echo(note)
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
                        resume=resume, force=force, draw_dir=draw, fmt=format, progress=update)

@@ -12,7 +12,8 @@ from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import train_with_mining
+from detector.training import (DEFAULT_MINE_ROUNDS, mining_params, mining_source,
+                                train_with_mining)
 
 
 def train(
@@ -28,9 +29,9 @@ def train(
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the model does not depend on it)."),
-    mine_rounds: int = typer.Option(0, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds: scan --mine-images, add the false alarms as background, train again."),
-    mine_images: Optional[Path] = typer.Option(None, "--mine-images", help="Folder of labelled images to mine false alarms from."),
-    mine_labels: Optional[Path] = typer.Option(None, "--mine-labels", help="Labels of --mine-images (CSV or COCO JSON); objects there are never mined."),
+    mine_rounds: Optional[int] = typer.Option(None, "--mine-rounds", min=0, max=10, help=f"Hard-negative mining rounds: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees). Default: {DEFAULT_MINE_ROUNDS} when the images can be found, else 0."),
+    mine_images: Optional[Path] = typer.Option(None, "--mine-images", help="Folder of labelled images to mine false alarms from. Default: the images the bank was harvested from."),
+    mine_labels: Optional[Path] = typer.Option(None, "--mine-labels", help="Labels of --mine-images (CSV or COCO JSON); objects there are never mined. Default: the labels the bank was harvested from."),
     mine_per_image: int = typer.Option(20, "--mine-per-image", min=1, help="Most new background patches from one image per round."),
     mine_per_round: int = typer.Option(4000, "--mine-per-round", min=1, help="Most new background patches per round (the highest-scoring are kept)."),
     threshold: float = typer.Option(0.5, "--threshold", min=0.0, max=1.0, help="Score at which mining counts recall and false alarms."),
@@ -41,15 +42,25 @@ def train(
     """Grow a forest of shallow trees on the bank's patches and write the model file."""
     if mode not in ("bagged", "boosted"):
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
-    if mine_rounds and (mine_images is None or mine_labels is None):
-        raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels")
+    if (mine_images is None) != (mine_labels is None):
+        raise typer.BadParameter("--mine-images and --mine-labels go together")
     check_output_file(out, force, "model")
     if save_bank_to is not None:
         check_output_file(save_bank_to, force, "patch bank")
+    b = load_bank(bank)
+    if mine_images is None and mine_rounds != 0:
+        mine_images, mine_labels = mining_source(b, bank)
+        if mine_images is None:
+            if mine_rounds:
+                raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels "
+                                         "(this bank does not record the images it came from)")
+            echo("note: no mining (the bank does not record the images it came from; give "
+                 "--mine-images and --mine-labels)")
+    if mine_rounds is None:
+        mine_rounds = DEFAULT_MINE_ROUNDS if mine_images is not None else 0
     items = None
     if mine_rounds:
         items = read_labels(mine_labels, images_dir=mine_images).items
-    b = load_bank(bank)
     c = b.counts()
     echo(f"bank: {human_path(bank)}: {c['objects']} object and {c['background']} background patches "
          f"of {b.window[0]}x{b.window[1]}")
@@ -67,7 +78,7 @@ def train(
     model, clf, final_bank = train_with_mining(
         b, params, rounds=mine_rounds, images_dir=mine_images, items=items,
         settings=ScanSettings(threshold=threshold, overhang=mine_overhang), per_image=mine_per_image,
-        per_round=mine_per_round, bank_path=bank,
+        per_round=mine_per_round, bank_path=bank, mine_params=mining_params(params),
         progress_factory=lambda d, n: progress_bar(d, n, "trees" if d.startswith("growing") else "images"),
         report=report)
     save_model(out, model)

@@ -149,6 +149,23 @@ def infer_window(boxes: np.ndarray, short_side: int = SHORT_SIDE) -> tuple[int, 
     return short_side, int(round(short_side / aspect))
 
 
+def object_sizes(boxes, window, margin: float) -> dict:
+    """What the labelled boxes say about the sizes to scan for: the shorter side of the smallest,
+    median and largest box (pixels), and how many boxes are smaller than the window's object side
+    (the window's shorter side less the context margin), which the scan finds only by enlarging
+    the image.
+
+    >>> object_sizes(np.array([[0, 0, 12, 30], [0, 0, 40, 50], [5, 5, 25, 20]]), (24, 24), 0.1)
+    {'smallest': 12.0, 'median': 20.0, 'largest': 40.0, 'window_object_side': 20.0, 'below_window': 1}
+    """
+    boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+    shorter = np.minimum(boxes[:, 2], boxes[:, 3])
+    side = min(window) / (1.0 + 2.0 * margin)
+    return {"smallest": float(shorter.min()), "median": float(np.median(shorter)),
+            "largest": float(shorter.max()), "window_object_side": float(side),
+            "below_window": int(np.sum(shorter < side))}
+
+
 def crop_region(image: np.ndarray, center, size, window, angle: float = 0.0,
                 mirror: bool = False) -> np.ndarray:
     """Cut a (possibly rotated) region of ``size=(width, height)`` around ``center`` and resize it
@@ -426,6 +443,11 @@ def harvest(
         "labels_sha256": labels_hash,
         "images_too_small": too_small,
         "versions": npzfile.library_versions(),
+        # where the patches came from, so that training can mine these images by default
+        "source": {"images": os.path.abspath(os.fspath(images_dir)),
+                   "labels": (os.path.abspath(os.fspath(labels_path))
+                              if labels_path is not None else None)},
+        "object_sizes": object_sizes(all_boxes[valid], chosen, margin),
     }
     bank = PatchBank(
         window=chosen,

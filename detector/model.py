@@ -261,6 +261,17 @@ class Model:
         return float(self.metadata.get("score_temperature", 1.0))
 
     @property
+    def object_sizes(self) -> dict | None:
+        """What the training labels said about object sizes (see
+        :func:`detector.harvest.object_sizes`): ``smallest``, ``median`` and ``largest`` shorter
+        side in pixels; None for a model whose bank did not record them."""
+        harvest = _mapping(_mapping(self.metadata.get("bank")).get("harvest"))
+        sizes = _mapping(harvest.get("object_sizes"))
+        if all(_is_real(sizes.get(k)) and sizes[k] > 0 for k in ("smallest", "largest")):
+            return sizes
+        return None
+
+    @property
     def exit_min_sigma(self) -> float:
         """The contrast gate: windows whose grey-level standard deviation is below it are dropped
         before any tree (0 = no gate: models without one, or without contrast normalisation)."""

@@ -179,8 +179,10 @@ class ScanSettings:
     stride : float
         Step between windows at the window's own size; it grows with the scale.
     min_object, max_object : float or None
-        Shorter side of the smallest and largest object box to look for; None = the model's
-        window and the whole image.
+        Shorter side of the smallest and largest object box to look for. None = the sizes the
+        model's training labels hold, widened by :data:`SIZE_SLACK` either way (the smallest no
+        more than :data:`MAX_DEFAULT_ENLARGEMENT` times below the window's object side); for a
+        model that does not record them, the window's object side and the whole image.
     threshold : float
         Keep detections scoring at least this (0..1).
     nms_iou : float
@@ -209,6 +211,60 @@ class ScanSettings:
     def __post_init__(self):
         if not 0.0 <= self.overhang <= MAX_OVERHANG:
             raise ValueError(f"overhang must be in [0, {MAX_OVERHANG}], got {self.overhang!r}")
+
+
+#: The scan looks for objects from the smallest labelled size divided by this to the largest
+#: times this, unless told otherwise: one scale step of 1.2 beyond each end and a little more, for
+#: objects a little smaller or larger than any in training (common practice; the value is ours).
+SIZE_SLACK = 1.25
+#: By default the image is enlarged at most this many times for objects smaller than the window
+#: (an enlarged frame costs the square of it); ``--min-object`` goes further.
+MAX_DEFAULT_ENLARGEMENT = 4.0
+
+
+def default_object_range(model):
+    """``(min_object, max_object)`` in pixels that a scan with neither set looks for: from the
+    model's training labels (:attr:`detector.model.Model.object_sizes`), or ``(None, None)``.
+
+    >>> class M: object_sizes = {"smallest": 10.0, "largest": 50.0, "window_object_side": 20.0}
+    >>> default_object_range(M())
+    (8.0, 62.5)
+    >>> class Tiny: object_sizes = {"smallest": 2.0, "largest": 8.0, "window_object_side": 20.0}
+    >>> default_object_range(Tiny())          # at most 4 times below 20 pixels
+    (5.0, 10.0)
+    """
+    sizes = getattr(model, "object_sizes", None)
+    if not sizes:
+        return None, None
+    lo = sizes["smallest"] / SIZE_SLACK
+    side = sizes.get("window_object_side")
+    if side:
+        lo = max(lo, side / MAX_DEFAULT_ENLARGEMENT)
+    return lo, sizes["largest"] * SIZE_SLACK
+
+
+def skipped_sizes_note(model, settings) -> str | None:
+    """One line when ``--min-object`` / ``--max-object`` leave out object sizes the model's
+    training labels hold; None otherwise.
+
+    >>> class M: object_sizes = {"smallest": 10.0, "largest": 50.0, "window_object_side": 20.0}
+    >>> skipped_sizes_note(M(), ScanSettings(max_object=30.0))
+    'note: --max-object 30 skips labelled objects up to 50 pixels (the training labels hold 10 to 50)'
+    >>> skipped_sizes_note(M(), ScanSettings()) is None
+    True
+    """
+    sizes = getattr(model, "object_sizes", None)
+    if not sizes:
+        return None
+    lo, hi = sizes["smallest"], sizes["largest"]
+    held = f"(the training labels hold {lo:g} to {hi:g})"
+    if settings.min_object is not None and settings.min_object > lo:
+        return (f"note: --min-object {settings.min_object:g} skips labelled objects down to "
+                f"{lo:g} pixels {held}")
+    if settings.max_object is not None and settings.max_object < hi:
+        return (f"note: --max-object {settings.max_object:g} skips labelled objects up to "
+                f"{hi:g} pixels {held}")
+    return None
 
 
 @dataclass
@@ -494,8 +550,13 @@ class Engine:
         k = 1.0 + 2.0 * self.margin
         short = min(W, H) / k  # object box shorter side at scale 1
         st = self.settings
-        lo = 1.0 if st.min_object is None else st.min_object / short
-        hi = None if st.max_object is None else st.max_object / short
+        low, high = default_object_range(self.model)
+        smallest = st.min_object if st.min_object is not None else low
+        largest = st.max_object if st.max_object is not None else high
+        lo = 1.0 if smallest is None else smallest / short
+        hi = None if largest is None else largest / short
+        if hi is not None and hi < lo:  # one bound given, the other from the labels: keep one size
+            lo, hi = (hi, hi) if st.max_object is not None else (lo, lo)
         return lo, hi
 
     def plans(self, image_size, enlarged: float = 1.0):

@@ -47,9 +47,53 @@ def bank_to_xy(bank: PatchBank):
     return bank.patches, bank.labels.astype(np.int64)
 
 
+#: Hard-negative mining rounds of ``patchwood train`` unless told otherwise (chosen on the
+#: cross-data benchmark, ``benchmarks/cross_data.py``; README, "Speed and accuracy").
+DEFAULT_MINE_ROUNDS = 2
+#: The models that only mine (every round but the last) grow this share of the trees: they need to
+#: find false alarms, not to rank them finely, and growing dominates training time.
+MINE_TREE_SHARE = 0.25
+
+
+def mining_source(bank: PatchBank, bank_path=None):
+    """``(images_dir, labels_path)`` the bank was harvested from (absolute paths the harvest
+    recorded), for mining them by default; ``(None, None)`` for a bank that does not record them.
+
+    Raises
+    ------
+    InputError
+        The recorded folder or labels file is gone (naming ``bank_path``).
+    """
+    source = bank.metadata.get("source")
+    if not isinstance(source, dict) or not source.get("images") or not source.get("labels"):
+        return None, None
+    import os
+
+    for what in ("images", "labels"):
+        path = source[what]
+        if not isinstance(path, str) or not os.path.exists(path):
+            raise InputError(f"the {what} {'folder' if what == 'images' else 'file'} this bank was "
+                             f"harvested from is gone ({path}); mining needs it: give "
+                             f"--mine-images and --mine-labels, or --mine-rounds 0", path=bank_path)
+    return source["images"], source["labels"]
+
+
+def mining_params(params: dict, share: float = MINE_TREE_SHARE) -> dict:
+    """The parameters of a model that only mines: ``share`` of the trees (at least 10).
+
+    >>> mining_params({"n_trees": 200, "mode": "boosted"})
+    {'n_trees': 50, 'mode': 'boosted'}
+    >>> mining_params({"n_trees": 12})["n_trees"]
+    10
+    """
+    trees = params["n_trees"]
+    return {**params, "n_trees": max(min(trees, 10), int(round(trees * share)))}
+
+
 def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_dir=None,
                       items=None, settings=None, per_image: int = 20, per_round: int = 4000,
-                      bank_path=None, progress_factory=None, report=None):
+                      bank_path=None, progress_factory=None, report=None,
+                      mine_params: dict | None = None):
     """Train, then ``rounds`` times: scan the mining images, add the false alarms to the bank as
     background patches, and train again.
 
@@ -70,6 +114,9 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
     report : callable(round, MiningRound, bank_counts)
         Called after each scan of the mining images: round 0 is the first model, round ``rounds``
         the final one (whose false alarms are not added).
+    mine_params : dict, optional
+        Parameters of the models that only mine (rounds before the last); default ``params``.
+        :func:`mining_params` gives a cheaper set.
 
     Returns
     -------
@@ -88,8 +135,9 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
 
     history = []
     for r in range(rounds + 1):
-        with bar(f"growing trees (round {r})" if rounds else "growing trees", params["n_trees"]) as up:
-            model, clf = train_model(bank, params, bank_path=bank_path, progress=up)
+        grow = params if r == rounds or mine_params is None else mine_params
+        with bar(f"growing trees (round {r})" if rounds else "growing trees", grow["n_trees"]) as up:
+            model, clf = train_model(bank, grow, bank_path=bank_path, progress=up)
         if rounds == 0:
             break
         with bar(f"mining round {r + 1}" if r < rounds else "checking final model", len(items)) as up:

@@ -639,7 +639,7 @@ def train_command(values: dict, bank_path, model_path, seed: int = 0, mine_round
 
     >>> train_command({"trees": 80, "depth": 2, "mode": "boosted", "pool": 5000,
     ...                "features_per_node": 70, "sample_fraction": 0.8}, "b.npz", "m.npz", seed=1)
-    'patchwood train b.npz --out m.npz --trees 80 --depth 2 --mode boosted --pool 5000 --features-per-node 70 --sample-fraction 0.8 --seed 1'
+    'patchwood train b.npz --out m.npz --trees 80 --depth 2 --mode boosted --pool 5000 --features-per-node 70 --sample-fraction 0.8 --seed 1 --mine-rounds 0'
     """
     q = shlex.quote
     parts = ["patchwood", "train", q(os.fspath(bank_path)), "--out", q(os.fspath(model_path)),
@@ -647,9 +647,9 @@ def train_command(values: dict, bank_path, model_path, seed: int = 0, mine_round
              "--mode", str(values["mode"]), "--pool", str(int(values["pool"])),
              "--features-per-node", str(int(values["features_per_node"])),
              "--sample-fraction", f"{float(values['sample_fraction']):g}", "--seed", str(int(seed))]
+    parts += ["--mine-rounds", str(int(mine_rounds))]
     if mine_rounds:
-        parts += ["--mine-rounds", str(int(mine_rounds)), "--mine-images", q(os.fspath(images_dir)),
-                  "--mine-labels", q(os.fspath(labels_path))]
+        parts += ["--mine-images", q(os.fspath(images_dir)), "--mine-labels", q(os.fspath(labels_path))]
     return " ".join(parts)
 
 

@@ -27,7 +27,8 @@ from detector.scan import Engine, ScanSettings
 from detector.training import train_model
 from synthetic_images import render_scenario
 
-TRAIN = ["--trees", "10", "--pool", "500"]
+GROW = ["--trees", "10", "--pool", "500"]
+TRAIN = [*GROW, "--mine-rounds", "0"]  # tests that are not about mining
 
 
 @pytest.fixture(scope="module")
@@ -138,7 +139,7 @@ def test_same_seed_same_bytes_and_existing_output_refused(scenario, cli_env, tmp
 def test_mining_round(scenario, cli_env, tmp_path):
     test = scenario / "scenario" / "test"
     bank, out, mined = scenario / "bank.npz", tmp_path / "mined.npz", tmp_path / "bank_mined.npz"
-    code, text, err = cli_env("train", bank, "--out", out, *TRAIN, "--mine-rounds", 1,
+    code, text, err = cli_env("train", bank, "--out", out, *GROW, "--mine-rounds", 1,
                               "--mine-images", test / "images", "--mine-labels", test / "labels.csv",
                               "--save-bank", mined)
     assert code == 0, err
@@ -164,11 +165,11 @@ def test_mining_round(scenario, cli_env, tmp_path):
         (float(lines[0][1]), float(lines[0][2]))
 
 
-def first_round_recount(bank, test, settings):
+def first_round_recount(bank, test, settings, trees=10):
     """The first mining round's false alarms per image and recall, counted again: the first model
     is the plain model with the same seed; scan the mining frames with the loosest exits (as
     mining scans) and match with detector.evaluate (IoU 0.5)."""
-    first, _ = train_model(load_bank(bank), dict(n_trees=10, depth=2, mode="bagged", pool=500,
+    first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
                                                  n_jobs=1), bank_path=bank)
@@ -187,7 +188,7 @@ def test_mining_scans_with_the_overhang_asked_for(scenario, cli_env, tmp_path):
     bank = scenario / "bank.npz"
     counts = {}
     for overhang in (0.0, 0.5):
-        code, text, err = cli_env("train", bank, "--out", tmp_path / f"m{overhang}.npz", *TRAIN,
+        code, text, err = cli_env("train", bank, "--out", tmp_path / f"m{overhang}.npz", *GROW,
                                   "--mine-rounds", 1, "--mine-images", test / "images",
                                   "--mine-labels", test / "labels.csv", "--mine-overhang", overhang)
         assert code == 0, err
@@ -199,15 +200,57 @@ def test_mining_scans_with_the_overhang_asked_for(scenario, cli_env, tmp_path):
     assert counts[0.0] != counts[0.5]  # the windows past the edges change what mining finds
 
 
+def test_mining_is_on_by_default_on_the_images_the_bank_came_from(scenario, cli_env, tmp_path):
+    """Without mining options, train mines the training images the harvest recorded: the mining
+    history counts false alarms on exactly those images (recounted with detector.evaluate on the
+    first model's scan, as in test_mining_round), and the models before the last grow a quarter
+    of the trees (at least 10)."""
+    from detector.training import DEFAULT_MINE_ROUNDS
+
+    bank, out = scenario / "bank.npz", tmp_path / "model.npz"
+    train = scenario / "scenario" / "train"
+    assert load_bank(bank).metadata["source"] == {"images": str(train / "images"),
+                                                  "labels": str(train / "labels.csv")}
+    code, text, err = cli_env("train", bank, "--out", out, "--trees", 40, "--pool", 500)
+    assert code == 0, err
+    history = load_model(out).metadata["mining"]
+    assert [h["round"] for h in history] == list(range(DEFAULT_MINE_ROUNDS + 1))
+    assert f"growing trees (round 0): 10/10 trees" in err  # 40 / 4 trees for the mining models
+    assert f"growing trees (round {DEFAULT_MINE_ROUNDS}): 40/40 trees" in err
+    first = history[0]
+    fa, recall = first_round_recount(bank, train, ScanSettings(threshold=0.5, overhang=0.25),
+                                     trees=10)
+    assert (round(first["false_alarms_per_image"], 2), round(first["recall"], 3)) == (fa, recall)
+
+
+def test_mining_by_default_needs_the_recorded_images(scenario, cli_env, tmp_path):
+    """A bank whose images folder has gone: one line naming the bank and the folder, exit 1;
+    --mine-rounds 0 trains without mining."""
+    import shutil
+
+    moved = tmp_path / "copy"
+    shutil.copytree(scenario / "scenario" / "train", moved)
+    bank, out = tmp_path / "bank.npz", tmp_path / "model.npz"
+    code, _, err = cli_env("harvest", moved / "images", moved / "labels.csv", "--out", bank)
+    assert code == 0, err
+    shutil.rmtree(moved / "images")
+    code, _, err = cli_env("train", bank, "--out", out, *GROW)
+    assert code == 1 and err.count("\n") == 1 and not out.exists()
+    assert err.startswith(f"error: {bank}: the images folder this bank was harvested from is gone "
+                          f"({moved / 'images'})")
+    assert cli_env("train", bank, "--out", out, *GROW, "--mine-rounds", 0)[0] == 0
+
+
 def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
     bank, out = scenario / "bank.npz", tmp_path / "model.npz"
     test = scenario / "scenario" / "test"
-    # mining without its images is a usage error (exit 2), checked before the output file
+    # mining images without their labels (or the reverse) is a usage error (exit 2), checked
+    # before the output file
     out.write_bytes(b"keep me")
-    for extra in ([], ["--mine-labels", test / "labels.csv"], ["--mine-images", test / "images"]):
+    for extra in (["--mine-labels", test / "labels.csv"], ["--mine-images", test / "images"]):
         code, _, err = cli_env("train", bank, "--out", out, "--mine-rounds", 1, *extra)
         assert code == 2 and err.count("\n") == 1
-        assert "--mine-rounds needs --mine-images and --mine-labels" in err
+        assert "--mine-images and --mine-labels go together" in err
     code, _, err = cli_env("train", bank, "--out", out, "--mode", "stacked")
     assert code == 2 and "--mode must be bagged or boosted" in err
     assert out.read_bytes() == b"keep me"
