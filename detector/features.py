@@ -533,7 +533,10 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
             largest = max(abs(int(patches.min())), abs(int(patches.max()))) * rows * columns
         else:
             largest = int(np.abs(integrals).max())
-        partial_bound = largest * int(np.add.reduceat(np.abs(coefficients), indptr[:-1]).max())
+        # each feature's sum of |coefficient|, from a running total (a feature whose corners all
+        # cancel owns no entries, which np.add.reduceat would not allow at the end)
+        running = np.concatenate([[0], np.cumsum(np.abs(coefficients.astype(np.int64)))])
+        partial_bound = largest * int(np.diff(running[indptr]).max())
         exact_in_float32 = partial_bound < _FLOAT32_EXACT
     work = np.float32 if exact_in_float32 else np.float64
     buffer = np.zeros((CHUNK, (rows + 1) * (columns + 1), TILE), dtype=work)

@@ -375,6 +375,23 @@ def evaluation_cases(draw):
     return patches, features, kind
 
 
+def test_a_feature_whose_rectangles_cancel_is_zero_even_when_last():
+    """Found by hypothesis (the case below): rectangles +2 and -2 on the same pixels cancel, so the
+    last feature owns no corners; its value is 0 - 0 = 0, and the others are unaffected.
+    The first feature: 3 * (pixel (0, 0) = 1) = 3."""
+    patches = np.array([[[1, 2], [3, 4]]], np.uint8)
+    features = np.zeros((2, 4, 5), np.int32)
+    features[0, 0] = [0, 0, 1, 1, 3]
+    features[1, 0] = [1, 1, 1, 1, 2]
+    features[1, 1] = [1, 1, 1, 1, -2]
+    for normalize in (False, True):
+        values = evaluate_features(features, patches, normalize=normalize)
+        np.testing.assert_array_equal(values, evaluate_features_numpy(features, patches,
+                                                                      normalize=normalize))
+        assert values[0, 1] == 0.0
+    assert evaluate_features(features, patches, normalize=False)[0, 0] == 3.0
+
+
 @settings(max_examples=40, deadline=None)
 @given(evaluation_cases(), st.booleans(), st.booleans())
 def test_kernel_equals_numpy_twin(case, normalize, transpose):
