@@ -69,51 +69,68 @@ TREES = (64, 128, 256, 512)  # trees before and after each of 3 mining rounds
 SHORT_SIDE = 32  # the peer's window: the labels' median aspect, shorter side 32 pixels
 
 
-def _triangle(image: np.ndarray, radius: int) -> np.ndarray:
-    """Separable triangle filter of the given radius (radius 1: [1 2 1] / 4), border repeated.
+def _triangle(images: np.ndarray, radius: int, axes=(-2, -1)) -> np.ndarray:
+    """Separable triangle filter of the given radius (radius 1: [1 2 1] / 4) along two axes of a
+    float32 array, the border repeated; every image of a stack on its own.
 
     >>> _triangle(np.array([[0, 0, 4, 0, 0]], np.float32), 1).tolist()
     [[0.0, 1.0, 2.0, 1.0, 0.0]]
     """
     k = np.r_[np.arange(1, radius + 2), np.arange(radius, 0, -1)].astype(np.float32)
     k /= k.sum()
-    return cv2.sepFilter2D(image, cv2.CV_32F, k, k, borderType=cv2.BORDER_REPLICATE)
+    out = np.asarray(images, np.float32)
+    for axis in axes:
+        axis = axis % out.ndim
+        pad = [(0, 0)] * out.ndim
+        pad[axis] = (radius, radius)
+        padded = np.pad(out, pad, mode="edge")
+        n = out.shape[axis]
+        acc = np.zeros_like(out)
+        for j, w in enumerate(k):
+            acc += w * np.take(padded, np.arange(j, j + n), axis=axis)
+        out = acc
+    return out
 
 
 def channels(gray: np.ndarray) -> np.ndarray:
-    """The 8 channels of one grey image, float32 (H, W, 8): grey in 0..1, normalised gradient
-    magnitude, and the magnitude in 6 unsigned orientation bins (hard assignment).
+    """The 8 channels of a grey image (H, W) or a stack of them (N, H, W), float32 (..., H, W, 8):
+    grey in 0..1, normalised gradient magnitude, and the magnitude in 6 unsigned orientation bins
+    (hard assignment). Each image of a stack is computed on its own, its border repeated.
 
     >>> c = channels(np.tile(np.arange(0, 200, 10, dtype=np.uint8), (12, 1)))  # a ramp along x
     >>> c.shape, int(np.argmax(c[6, 10, 2:]))                # all gradient in the bin around 0 degrees
     ((12, 20, 8), 0)
     """
     g = _triangle(np.asarray(gray, np.float32) / 255.0, 1)
-    gx = cv2.Sobel(g, cv2.CV_32F, 1, 0, ksize=1, borderType=cv2.BORDER_REPLICATE) / 2  # [-1 0 1] / 2
-    gy = cv2.Sobel(g, cv2.CV_32F, 0, 1, ksize=1, borderType=cv2.BORDER_REPLICATE) / 2
+    pad = [(0, 0)] * (g.ndim - 2)
+    p = np.pad(g, pad + [(1, 1), (1, 1)], mode="edge")
+    gx = (p[..., 1:-1, 2:] - p[..., 1:-1, :-2]) / 2  # central differences [-1 0 1] / 2
+    gy = (p[..., 2:, 1:-1] - p[..., :-2, 1:-1]) / 2
     mag = np.sqrt(gx * gx + gy * gy)
     mag = mag / (_triangle(mag, NORM_RADIUS) + NORM_CONST)
-    angle = np.arctan2(gy, gx) % np.pi  # unsigned, in [0, pi)
-    bins = np.minimum((angle * (ORIENTATIONS / np.pi)).astype(np.int64), ORIENTATIONS - 1)
-    out = np.zeros(g.shape + (CHANNELS,), np.float32)
+    angle = np.arctan2(gy, gx) % np.float32(np.pi)  # unsigned, in [0, pi)
+    bins = np.minimum((angle * np.float32(ORIENTATIONS / np.pi)).astype(np.int64),
+                      ORIENTATIONS - 1)
+    out = np.empty(g.shape + (CHANNELS,), np.float32)
     out[..., 0] = g
     out[..., 1] = mag
     for b in range(ORIENTATIONS):
-        out[..., 2 + b] = np.where(bins == b, mag, 0.0)
+        out[..., 2 + b] = mag * (bins == b)
     return out
 
 
 def aggregate(ch: np.ndarray) -> np.ndarray:
-    """Sum-pool channels (H, W, C) over SHRINK x SHRINK blocks (rows and columns past the last
-    whole block are dropped), then smooth each by [1 2 1] / 4: (H // 4, W // 4, C).
+    """Sum-pool channels (..., H, W, C) over SHRINK x SHRINK blocks (rows and columns past the
+    last whole block are dropped), then smooth each by [1 2 1] / 4: (..., H // 4, W // 4, C).
 
     >>> aggregate(np.ones((8, 9, 1), np.float32))[..., 0].tolist()
     [[16.0, 16.0], [16.0, 16.0]]
     """
-    h, w, c = ch.shape
+    *lead, h, w, c = ch.shape
     hb, wb = h // SHRINK, w // SHRINK
-    pooled = ch[:hb * SHRINK, :wb * SHRINK].reshape(hb, SHRINK, wb, SHRINK, c).sum(axis=(1, 3))
-    return _triangle(np.ascontiguousarray(pooled), 1).reshape(hb, wb, c)  # every channel
+    pooled = ch[..., :hb * SHRINK, :wb * SHRINK, :].reshape(
+        *lead, hb, SHRINK, wb, SHRINK, c).sum(axis=(-4, -2))
+    return _triangle(pooled, 1, axes=(-3, -2))
 
 
 def patch_features(patches) -> np.ndarray:
@@ -124,9 +141,70 @@ def patch_features(patches) -> np.ndarray:
     h, w = patches.shape[1:]
     d = (h // SHRINK) * (w // SHRINK) * CHANNELS
     out = np.empty((n, d), np.float32)
-    for i, p in enumerate(patches):
-        out[i] = aggregate(channels(p)).ravel()
+    for k in range(0, n, 2048):  # bounded memory
+        part = patches[k:k + 2048]
+        out[k:k + len(part)] = aggregate(channels(part)).reshape(len(part), d)
     return out
+
+
+def tree_arrays(nodes):
+    """One fitted tree (a ``TreePredictor``'s ``nodes``) as ``(features (3,), thresholds (3,),
+    leaf values (4,))``: the root, its left and its right child; the leaves left-left, left-right,
+    right-left, right-right. A row goes right where its value is above the threshold (scikit-learn
+    sends ``x <= threshold`` left). A leaf above depth 2 becomes a split that always goes left
+    (threshold +inf) onto two copies of its value."""
+    if np.any(nodes["depth"] > 2):
+        raise ValueError("only trees of depth 2 at most")
+    f, t, v = np.zeros(3, np.int64), np.full(3, np.inf), np.zeros(4)
+    root = nodes[0]
+    if root["is_leaf"]:
+        v[:] = root["value"]
+        return f, t, v
+    f[0], t[0] = root["feature_idx"], root["num_threshold"]
+    for slot, child in ((1, root["left"]), (2, root["right"])):
+        nd = nodes[child]
+        base = 2 * (slot - 1)
+        if nd["is_leaf"]:
+            v[base] = v[base + 1] = nd["value"]
+        else:
+            f[slot], t[slot] = nd["feature_idx"], nd["num_threshold"]
+            v[base], v[base + 1] = nodes[nd["left"]]["value"], nodes[nd["right"]]["value"]
+    return f, t, v
+
+
+class FlatTrees:
+    """The depth-2 trees of a fitted binary ``HistGradientBoostingClassifier`` as flat arrays,
+    evaluated for many windows at once with numpy: the same decision values as its
+    ``decision_function`` (a test holds them equal), some 20x faster on a frame's windows, where
+    scikit-learn walks each tree over every row in turn.
+
+    A node that is a leaf above depth 2 is padded into a split that always goes left (threshold
+    +inf) onto two copies of its value.
+    """
+
+    def __init__(self, clf):
+        if len(clf._predictors[0]) != 1:
+            raise ValueError("FlatTrees reads binary classifiers only")
+        trees = [tree_arrays(pred.nodes) for (pred,) in clf._predictors]
+        self.features = np.asarray([t[0] for t in trees], np.int64).reshape(-1, 3)
+        self.thresholds = np.asarray([t[1] for t in trees], np.float64).reshape(-1, 3)
+        self.values = np.asarray([t[2] for t in trees], np.float64).reshape(-1, 4)
+        self.baseline = float(np.ravel(clf._baseline_prediction)[0])
+
+    def decision(self, X: np.ndarray, chunk: int = 4096) -> np.ndarray:
+        """Sum of leaf values + the baseline (log-odds) for rows ``X (N, D)``."""
+        X = np.asarray(X)
+        out = np.empty(len(X))
+        f, t, v = self.features, self.thresholds, self.values
+        cols = np.arange(len(f))[:, None]
+        for k in range(0, len(X), chunk):
+            xt = np.ascontiguousarray(X[k:k + chunk].T)  # (D, n): each feature's row is contiguous
+            right = xt[f[:, 0]] > t[:, 0, None]  # (T, n)
+            left_go = xt[f[:, 1]] > t[:, 1, None]
+            right_go = xt[f[:, 2]] > t[:, 2, None]
+            leaf = np.where(right, 2 + right_go, left_go)
+            out[k:k + xt.shape[1]] = v[cols, leaf].sum(axis=0) + self.baseline
+        return out
 
 
 def peer_window(boxes, short_side: int = SHORT_SIDE) -> tuple[int, int]:
@@ -193,6 +271,7 @@ class ChannelBoost:
                                              early_stopping=False, random_state=self.random_state)
         clf.fit(np.asarray(X, np.float32), np.asarray(y).astype(np.int64))
         self.clf_ = clf
+        self.trees_ = FlatTrees(clf)
         return self
 
     def fit(self, patches, labels, stage: int = 0) -> "ChannelBoost":
@@ -207,7 +286,7 @@ class ChannelBoost:
         return patch_features(patches)
 
     def decision_function(self, patches) -> np.ndarray:
-        return self.clf_.decision_function(self.features(patches)).astype(np.float64)
+        return self.trees_.decision(self.features(patches))
 
     # ---- scanning ---------------------------------------------------------------------------
     def scales(self, frame_size) -> list[float]:
@@ -240,7 +319,7 @@ class ChannelBoost:
             view = sliding_window_view(grid, (hc, wc), axis=(0, 1))  # (ny, nx, C, hc, wc)
             ny, nx = view.shape[:2]
             X = np.ascontiguousarray(view.transpose(0, 1, 3, 4, 2)).reshape(ny * nx, -1)
-            scores = self.clf_.decision_function(X).reshape(ny, nx)
+            scores = self.trees_.decision(X).reshape(ny, nx)
             windows += scores.size
             rows, cols = np.nonzero(scores >= threshold)
             if len(rows):
