@@ -248,6 +248,62 @@ def verdict(results: dict) -> dict | None:
             "met": over and all(p["met"] for p in per.values())}
 
 
+def print_table(results: dict, methods) -> dict | None:
+    """The table of every set and method, and the verdict; returns the verdict."""
+    print("\nAP50 | AP50:95 | FPPI at recall 0.9 | training s | scan ms per megapixel")
+    header = f"{'set':<11}" + "".join(f" | {METHOD_NAMES[m]:^34}" for m in methods)
+    print(header)
+    print("-" * len(header))
+    for name, per in results.items():
+        cells = []
+        for m in methods:
+            r = per.get(m, {})
+            if "ap50" not in r:
+                cells.append(f"{'failed':^34}")
+                continue
+            cells.append(f"{r['ap50']:.3f} {r['ap50_95']:.3f} {_fmt(r['fppi_at_recall_0.9'], '6.2f'):>6}"
+                         f" {r['train_seconds']:5.0f} {r['scan_ms_per_megapixel']:6.0f}")
+        print(f"{name:<11}" + "".join(f" | {c:>34}" for c in cells))
+    means = []
+    for m in methods:
+        aps = [per[m]["ap50"] for per in results.values() if "ap50" in per.get(m, {})]
+        means.append(f"mean AP50 {np.mean(aps):.3f}" if aps else "")
+    print(f"{'':<11}" + "".join(f" | {c:^34}" for c in means))
+    mism = [f"{n}/{m}" for n, per in results.items() for m, r in per.items()
+            if r.get("library_scan_matches_command") is False]
+    if mism:
+        print("note: the library's scan at the scan command's defaults did not give the command's "
+              f"detections for {', '.join(mism)}: its ms per megapixel may not be the command's")
+
+    v = verdict(results)
+    if v is None:
+        print("\ngoal (issue 15): needs the methods defaults, hog and channels")
+    else:
+        print(f"\ngoal (issue 15): the defaults' AP50 >= the better peer's - {GOAL_MARGIN:g} on "
+              f"every set, and on average >= the HOG peer's + {GOAL_OVER_HOG:g}")
+        for name, p in v["per_set"].items():
+            print(f"  {name:<11} {p['defaults']:.3f} vs {p['better_peer']:.3f}: "
+                  f"{'met' if p['met'] else 'NOT met'}")
+        print(f"  mean        {v['mean_defaults']:.3f} vs HOG {v['mean_hog']:.3f} + "
+              f"{GOAL_OVER_HOG:g}: {'met' if v['over_hog_met'] else 'NOT met'}")
+        print(f"  overall: {'met' if v['met'] else 'NOT met'}")
+    return v
+
+
+def from_json(paths, methods) -> int:
+    """Print the table and the verdict of the figures in one or more ``--json`` files."""
+    results = {}
+    for path in paths:
+        doc = json.loads(Path(path).read_text())
+        print(f"{path}: {doc['command']}\n  machine: {doc['machine']}\n  load before "
+              f"{doc['load_before']}, after {doc.get('load_after')}; "
+              + (f"{doc['seconds'] / 60:.1f} min" if doc.get("seconds") else "incomplete"))
+        for name, entry in doc["sets"].items():
+            results.setdefault(name, {}).update(entry["methods"])
+    print_table(results, methods)
+    return 0
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--sets", nargs="+", default=list(datasets.SETS), choices=list(datasets.SETS),
@@ -267,7 +323,12 @@ def main(argv=None) -> int:
     ap.add_argument("--keep", type=Path, default=None,
                     help="keep the banks, models, detections and logs in this folder")
     ap.add_argument("--json", type=Path, default=None, help="write every figure to this file")
+    ap.add_argument("--from-json", type=Path, nargs="+", default=None, metavar="JSON",
+                    help="print the table and verdict of earlier runs' --json files (sets split "
+                         "over several runs), run nothing")
     args = ap.parse_args(argv)
+    if args.from_json:
+        return from_json(args.from_json, args.methods)
     if args.jobs < 1:
         ap.error("--jobs must be at least 1")
     for opt in ("harvest_args", "train_args", "scan_args"):
@@ -303,6 +364,19 @@ def main(argv=None) -> int:
           "scale only (AP figures do not depend on them)", flush=True)
 
     results, infos = {}, {}
+
+    def write_json(seconds=None, load_after=None, v=None):
+        doc = {"command": command, "machine": machine, "versions": versions,
+               "load_before": load_before, "load_after": load_after, "seconds": seconds,
+               "harvest_args": args.harvest_args, "train_args": args.train_args,
+               "scan_args": args.scan_args, "seed": args.seed, "jobs": args.jobs,
+               "methods": list(args.methods),
+               "sets": {n: {"info": infos[n], "methods": results[n]} for n in results},
+               "verdict": v, "complete": seconds is not None}
+        tmp = args.json.with_name(args.json.name + ".tmp")
+        tmp.write_text(json.dumps(doc, indent=1) + "\n")
+        os.replace(tmp, args.json)
+
     work_root = args.keep or Path(tempfile.mkdtemp(prefix="patchwood-cross-data-"))
     try:
         for name in args.sets:
@@ -346,60 +420,18 @@ def main(argv=None) -> int:
                       f"{r['scan_ms_per_megapixel']:.0f} ms/MP", flush=True)
                 for line in r.get("commands", []):
                     print(f"    {line}")
+                if args.json is not None:  # after every method: a long run that stops keeps its figures
+                    write_json()
     finally:
         if args.keep is None:
             shutil.rmtree(work_root, ignore_errors=True)
 
-    print("\nAP50 | AP50:95 | FPPI at recall 0.9 | training s | scan ms per megapixel")
-    header = f"{'set':<11}" + "".join(f" | {METHOD_NAMES[m]:^34}" for m in args.methods)
-    print(header)
-    print("-" * len(header))
-    for name, per in results.items():
-        cells = []
-        for m in args.methods:
-            r = per.get(m, {})
-            if "ap50" not in r:
-                cells.append(f"{'failed':^34}")
-                continue
-            cells.append(f"{r['ap50']:.3f} {r['ap50_95']:.3f} {_fmt(r['fppi_at_recall_0.9'], '6.2f'):>6}"
-                         f" {r['train_seconds']:5.0f} {r['scan_ms_per_megapixel']:6.0f}")
-        print(f"{name:<11}" + "".join(f" | {c:>34}" for c in cells))
-    means = []
-    for m in args.methods:
-        aps = [per[m]["ap50"] for per in results.values() if "ap50" in per.get(m, {})]
-        means.append(f"mean AP50 {np.mean(aps):.3f}" if aps else "")
-    print(f"{'':<11}" + "".join(f" | {c:^34}" for c in means))
-    mism = [f"{n}/{m}" for n, per in results.items() for m, r in per.items()
-            if r.get("library_scan_matches_command") is False]
-    if mism:
-        print("note: the library's scan at the scan command's defaults did not give the command's "
-              f"detections for {', '.join(mism)}: its ms per megapixel may not be the command's")
-
-    v = verdict(results)
-    if v is None:
-        print("\ngoal (issue 15): needs the methods defaults, hog and channels")
-    else:
-        print(f"\ngoal (issue 15): the defaults' AP50 >= the better peer's - {GOAL_MARGIN:g} on "
-              f"every set, and on average >= the HOG peer's + {GOAL_OVER_HOG:g}")
-        for name, p in v["per_set"].items():
-            print(f"  {name:<11} {p['defaults']:.3f} vs {p['better_peer']:.3f}: "
-                  f"{'met' if p['met'] else 'NOT met'}")
-        print(f"  mean        {v['mean_defaults']:.3f} vs HOG {v['mean_hog']:.3f} + "
-              f"{GOAL_OVER_HOG:g}: {'met' if v['over_hog_met'] else 'NOT met'}")
-        print(f"  overall: {'met' if v['met'] else 'NOT met'}")
+    v = print_table(results, args.methods)
     total = time.perf_counter() - started
     load_after = load()
     print(f"whole run: {total / 60:.1f} min; load average (1, 5, 15 min) after: {load_after}")
     if args.json is not None:
-        doc = {"command": command, "machine": machine, "versions": versions,
-               "load_before": load_before, "load_after": load_after, "seconds": total,
-               "harvest_args": args.harvest_args, "train_args": args.train_args,
-               "scan_args": args.scan_args, "seed": args.seed, "jobs": args.jobs,
-               "sets": {n: {"info": infos[n], "methods": results[n]} for n in results},
-               "verdict": v}
-        tmp = args.json.with_name(args.json.name + ".tmp")
-        tmp.write_text(json.dumps(doc, indent=1) + "\n")
-        os.replace(tmp, args.json)
+        write_json(total, load_after, v)
         print(f"wrote {args.json}")
     failed = any("error" in r for per in results.values() for r in per.values())
     return 1 if failed else 0
