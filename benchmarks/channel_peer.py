@@ -43,8 +43,6 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from detector.boxes import nms  # noqa: E402
-from detector.harvest import window_box_to_object_box  # noqa: E402
 from detector.scan import scales_for  # noqa: E402
 
 
@@ -332,22 +330,13 @@ class ChannelBoost:
         return np.zeros((0, 4)), np.zeros(0), windows
 
     def detections(self, window_boxes, decisions, nms_iou=None):
-        """Window boxes -> object boxes after greedy non-maximum suppression, best first."""
-        window_boxes = np.asarray(window_boxes, np.float64).reshape(-1, 4)
-        decisions = np.asarray(decisions, np.float64).reshape(-1)
-        if not len(decisions):
-            return np.zeros((0, 4)), np.zeros(0)
-        x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
-                                              window_boxes[:, 2], window_boxes[:, 3], self.margin)
-        obj = np.stack([x, y, w, h], axis=1)
-        keep = nms(obj, decisions, self.nms_iou if nms_iou is None else nms_iou)
-        return obj[keep], decisions[keep]
+        """Window boxes -> object boxes (the margin removed) after greedy non-maximum
+        suppression, best first: the HOG peer's method, the same arithmetic."""
+        return _baseline().HogLinearSvm.detections(self, window_boxes, decisions, nms_iou)
 
     def scan(self, gray: np.ndarray):
         """Detections in one grey frame: ``(boxes (K, 4), scores (K,), windows)``."""
-        wboxes, values, windows = self.candidates(gray)
-        boxes, scores = self.detections(wboxes, values)
-        return boxes, scores, windows
+        return _baseline().HogLinearSvm.scan(self, gray)
 
 
 def train_channel_peer(bank, frames, ground_truth, *, mining_rounds: int = 3, n_trees=TREES,
