@@ -259,7 +259,7 @@ def print_table(results: dict, methods) -> dict | None:
         for m in methods:
             r = per.get(m, {})
             if "ap50" not in r:
-                cells.append(f"{'failed':^34}")
+                cells.append(f"{'failed' if 'error' in r else 'not run':^34}")
                 continue
             cells.append(f"{r['ap50']:.3f} {r['ap50_95']:.3f} {_fmt(r['fppi_at_recall_0.9'], '6.2f'):>6}"
                          f" {r['train_seconds']:5.0f} {r['scan_ms_per_megapixel']:6.0f}")
