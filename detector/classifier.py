@@ -19,6 +19,7 @@ from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.utils.validation import check_is_fitted
 
 from detector import features as _features
+from detector.channels import CHOICES as CHANNEL_CHOICES
 from detector.errors import InputError
 from detector.forest import (
     MAX_DEPTH,
@@ -53,6 +54,9 @@ MAX_ORDERING_BACKGROUND = 5000
 EXIT_ORDER_ROUNDS = 2
 #: The tree order is made for a scan at this score threshold (``ScanSettings``' default).
 ORDER_LEVEL = 0.5
+#: With ``channels="gradient"``, the share of the pool drawn as channel features (the rest are
+#: grey rectangle differences, as without channels).
+CHANNEL_SHARE = 0.5
 
 
 def calibration_count(n_objects: int) -> int:
@@ -174,6 +178,11 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         ... and scaled by up to this factor up or down: how far the scan's nearest window can be
         from an object at the scan's default stride (2, so at most 1 pixel off) and scale step
         (1.2, so at most its square root, about 1.1, off).
+    channels : {"grey", "gradient"}, default="grey"
+        ``"gradient"``: draw :data:`CHANNEL_SHARE` of the pool as channel features, rectangles and
+        rectangle differences over the gradient magnitude and six orientation channels
+        (:func:`detector.features.channel_pool`; Integral Channel Features, Dollár, Tu, Perona and
+        Belongie, BMVC 2009); the rest stay grey rectangle differences.
     max_bins : int in 2..256 or None, default=256
         Grow on quantile-bin indices of every pool feature (at most ``max_bins`` distinct values per
         feature; see :mod:`detector.forest`, "Binned growing"), then map the thresholds back to
@@ -225,6 +234,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         max_bins=256,
         random_state=None,
         n_jobs=None,
+        channels="grey",
     ):
         self.n_trees = n_trees
         self.depth = depth
@@ -239,6 +249,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         self.max_bins = max_bins
         self.random_state = random_state
         self.n_jobs = n_jobs
+        self.channels = channels
 
     def _check_parameters(self):
         def integer(name, low, high=None):
@@ -256,6 +267,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             integer("max_bins", 2, 256)
         if self.mode not in MODES:
             raise InputError(f"mode must be one of {', '.join(MODES)}, got {self.mode!r}")
+        if self.channels not in CHANNEL_CHOICES:
+            raise InputError(f"channels must be one of {', '.join(CHANNEL_CHOICES)}, got "
+                             f"{self.channels!r}")
         shift = self.exit_shift
         if isinstance(shift, bool) or not isinstance(shift, numbers.Real) or not 0.0 <= shift <= 8.0:
             raise InputError(f"exit_shift must be a number in [0, 8], got {shift!r}")
@@ -298,10 +312,22 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             raise InputError("training needs both object (1) and background (0) patches")
         height, width = patches.shape[1:]
 
-        pool_ss, split_ss, forest_ss, bin_ss, exit_ss = seed_sequence(self.random_state).spawn(5)
-        pool_size = min(int(self.pool), _features.count_features(width, height))
+        # a sixth seed for the channel pool leaves the first five as they were without channels
+        pool_ss, split_ss, forest_ss, bin_ss, exit_ss, channel_ss = \
+            seed_sequence(self.random_state).spawn(6)
+        channel_size = 0
+        if self.channels == "gradient":
+            channel_size = int(round(CHANNEL_SHARE * int(self.pool)))
+        pool_size = min(int(self.pool) - channel_size, _features.count_features(width, height))
         pool = _features.random_pool(width, height, pool_size,
                                      random_state=int(pool_ss.generate_state(1)[0]))
+        pool_channels = None
+        if channel_size:
+            extra, extra_channels = _features.channel_pool(
+                width, height, channel_size, random_state=int(channel_ss.generate_state(1)[0]))
+            pool = np.concatenate([pool, extra])
+            pool_channels = np.concatenate([np.zeros(pool_size, np.int8), extra_channels])
+            pool_size = len(pool)
 
         objects = np.flatnonzero(y == 1)
         n_cal = calibration_count(len(objects))
@@ -315,7 +341,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
 
         # (P, N) C-ordered, so X = values.T is Fortran-ordered: contiguous pool columns
         values = _features.evaluate_features(pool, grow_patches, normalize=bool(self.normalize),
-                                             transpose=True)
+                                             transpose=True, channels=pool_channels)
         if self.max_bins is not None:
             cuts, n_cuts = quantile_cuts(values.T, int(self.max_bins), random_state=bin_ss)
             bin_columns(values.T, cuts, n_cuts, n_jobs=self.n_jobs)
@@ -336,6 +362,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             node_thresholds=small.node_thresholds, leaf_values=small.leaf_values,
             exit_thresholds=np.full(small.n_trees, -np.inf, np.float32), mode=self.mode,
             normalize=bool(self.normalize), feature_importances=small.importances,
+            feature_channels=None if pool_channels is None else pool_channels[used],
         )
         background = grow_patches[grow_y == 0]
         # leaf values once; running scores in any tree order are their cumulative sums

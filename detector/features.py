@@ -40,6 +40,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from detector._feature_kernels import CHUNK, TILE, evaluate_tiles
+from detector.channels import N_CHANNELS, patch_channels
 from detector.errors import InputError
 from detector.integral import integral_images
 
@@ -52,9 +53,16 @@ __all__ = [
     "feature_corners",
     "evaluate_features",
     "evaluate_features_numpy",
+    "CHANNEL_SHAPES",
+    "channel_pool",
+    "check_channels",
 ]
 
 SHAPES = ("two-side-by-side", "two-stacked", "three-side-by-side", "three-stacked", "four-diagonal")
+
+#: Shapes of channel features (:func:`channel_pool`): one rectangle (the channel's mean over it, as
+#: aggregated channel features use) and the five differences.
+CHANNEL_SHAPES = ("one-rectangle",) + SHAPES
 
 #: Smallest standard deviation (grey levels) used to normalise a patch, so flat patches stay finite.
 SIGMA_FLOOR = 1.0
@@ -66,6 +74,7 @@ _LAYOUTS = {
     "three-side-by-side": (3, 1, ((0, 0, -1), (1, 0, 1), (2, 0, -1))),
     "three-stacked": (1, 3, ((0, 0, -1), (0, 1, 1), (0, 2, -1))),
     "four-diagonal": (2, 2, ((0, 0, -1), (1, 0, 1), (1, 1, -1), (0, 1, 1))),
+    "one-rectangle": (1, 1, ((0, 0, 1),)),
 }
 
 # float32 holds every integer below 2**24 exactly; the kernel uses it when all partial sums do.
@@ -282,6 +291,61 @@ def random_pool(window_width, window_height, size, random_state=None, *,
     return np.concatenate(parts)
 
 
+def channel_pool(window_width, window_height, size, random_state=None) -> tuple[np.ndarray,
+                                                                              np.ndarray]:
+    """A random pool of channel features: rectangles and rectangle differences on the gradient
+    channels 1..7 (:mod:`detector.channels`), for integral channel features (Dollár, Tu, Perona
+    and Belongie, BMVC 2009).
+
+    Features are drawn uniformly from every placement of :data:`CHANNEL_SHAPES` inside the window
+    less its outermost ring of pixels (whose gradient a patch alone cannot know; see
+    :mod:`detector.channels`), each on a channel drawn uniformly from 1..7.
+
+    Returns
+    -------
+    features : (min(size, count), 4, 5) ndarray of int32
+    channels : (min(size, count),) ndarray of int8, in 1..7
+        Sorted by channel (then in enumeration order), so that every channel's features are one
+        block.
+
+    Examples
+    --------
+    >>> f, c = channel_pool(24, 24, 500, random_state=0)
+    >>> f.shape, c.dtype, int(c.min()), int(c.max()), bool((np.diff(c) >= 0).all())
+    ((500, 4, 5), dtype('int8'), 1, 7, True)
+    >>> used = f[:, :, 4] != 0
+    >>> int(f[used][:, 0].min()), int((f[used][:, 0] + f[used][:, 2]).max())    # inside 1..23
+    (1, 23)
+    """
+    width, height = _check_window(window_width, window_height)
+    if width < 3 or height < 3:
+        return np.zeros((0, 4, 5), np.int32), np.zeros(0, np.int8)
+    rng = _rng(random_state)
+    features = random_pool(width - 2, height - 2, size, rng, shapes=CHANNEL_SHAPES)
+    used = features[:, :, 4] != 0
+    features[:, :, 0] += used
+    features[:, :, 1] += used
+    channels = rng.integers(1, N_CHANNELS, len(features)).astype(np.int8)
+    order = np.argsort(channels, kind="stable")
+    return np.ascontiguousarray(features[order]), channels[order]
+
+
+def check_channels(channels, n_features: int) -> np.ndarray | None:
+    """The channel of each feature as int8 (0 = grey), or None when all are grey.
+
+    >>> check_channels([0, 0], 2) is None, check_channels([0, 3], 2).tolist()
+    (True, [0, 3])
+    """
+    if channels is None:
+        return None
+    array = np.asarray(channels)
+    if array.shape != (n_features,) or (array.size and array.dtype.kind not in "iu"):
+        raise InputError(f"feature channels must be {n_features} integers, got shape {array.shape}")
+    if array.size and (array.min() < 0 or array.max() >= N_CHANNELS):
+        raise InputError(f"feature channels must be in 0..{N_CHANNELS - 1}")
+    return array.astype(np.int8) if array.any() else None
+
+
 # ----------------------------------------------------------------------------------------------
 # evaluation
 
@@ -440,17 +504,27 @@ def _prepare(features, patches, integrals, squared):
 def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarray]:
     """Per-patch mean and ``max(sigma, SIGMA_FLOOR) * area``, in float64."""
     n, rows, columns = integrals.shape[0], integrals.shape[1] - 1, integrals.shape[2] - 1
-    area = float(rows * columns)
     if squared is not None:
         square_total = squared[:, -1, -1].astype(np.float64)
     else:
         if patches is None:  # recover the pixels from the integral images (exact for integers)
             patches = np.diff(np.diff(integrals, axis=1), axis=2)
-        flat = patches.reshape(n, rows * columns)
-        exact = np.int64 if np.issubdtype(flat.dtype, np.integer) or flat.dtype == np.bool_ \
-            else np.float64
-        square_total = np.einsum("ij,ij->i", flat, flat, dtype=exact).astype(np.float64)
-    mean = integrals[:, -1, -1].astype(np.float64) / area
+        square_total = _square_totals(patches)
+    return _statistics(integrals[:, -1, -1].astype(np.float64), square_total, rows * columns)
+
+
+def _square_totals(patches) -> np.ndarray:
+    """Sum of the squared pixels of every patch (exact for integers), as float64."""
+    flat = patches.reshape(len(patches), -1)
+    exact = np.int64 if np.issubdtype(flat.dtype, np.integer) or flat.dtype == np.bool_ \
+        else np.float64
+    return np.einsum("ij,ij->i", flat, flat, dtype=exact).astype(np.float64)
+
+
+def _statistics(total, square_total, area) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and ``max(sigma, SIGMA_FLOOR) * area`` from the pixel sums and squared sums."""
+    area = float(area)
+    mean = total / area
     var = np.maximum(square_total / area - mean * mean, 0.0)
     scale = np.maximum(np.sqrt(var), SIGMA_FLOOR) * area
     return mean, scale
@@ -466,7 +540,7 @@ def _check_out(out, shape):
 
 
 def evaluate_features(features, patches=None, *, integrals=None, squared=None, normalize=True,
-                      out=None, transpose=False) -> np.ndarray:
+                      out=None, transpose=False, channels=None) -> np.ndarray:
     """Values of F features on N patches at once (compiled loop).
 
     Raw value (``normalize=False``): ``sum_i weight_i * S_i``, with ``S_i`` the pixel sum of
@@ -499,6 +573,11 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     transpose : bool, default False
         Return ``(F, N)`` instead of ``(N, F)`` (feature columns contiguous, as a tree learner
         reading one feature over all patches prefers).
+    channels : (F,) array_like of int in 0..7, optional
+        The channel each feature reads (:mod:`detector.channels`; default all 0, grey). A feature
+        on channel c >= 1 sums its rectangles over that channel, made from each 8-bit patch with
+        its border repeated; normalised, its value is ``sum_i weight_i * S_i / (max(sigma,
+        SIGMA_FLOOR) * A_window)`` with the grey patch's ``sigma`` (no mean is subtracted).
 
     Returns
     -------
@@ -521,12 +600,76 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
         features, patches, integrals, squared)
     shape = (len(features), n) if transpose else (n, len(features))
     out = _check_out(out, shape)
+    channels = check_channels(channels, len(features))
     if out.size == 0:
         return out
+    if channels is not None:
+        _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
+                             transpose)
+    else:
+        _evaluate(features, patches, integrals, squared, normalize, out, transpose)
+    return out
+
+
+def _grey_patches(patches, integrals, squared):
+    """The 8-bit grey patches (recovered from the integral images if need be) and their
+    statistics ``(mean, max(sigma, SIGMA_FLOOR) * area)``."""
+    if patches is None:  # recover the pixels from the integral images (exact for integers)
+        patches = np.diff(np.diff(integrals, axis=1), axis=2)
+    if not (np.issubdtype(patches.dtype, np.integer) or patches.dtype == np.bool_) or (
+            patches.size and (patches.min() < 0 or patches.max() > 255)):
+        raise InputError("channel features need 8-bit grey patches (integers 0..255)")
+    n, rows, columns = patches.shape
+    total = patches.reshape(n, -1).sum(axis=1, dtype=np.int64).astype(np.float64)
+    square_total = (squared[:, -1, -1].astype(np.float64) if squared is not None
+                    else _square_totals(patches))
+    statistics = _statistics(total, square_total, rows * columns)
+    return patches, statistics
+
+
+def _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
+                         transpose):
+    """:func:`evaluate_features` for features on several channels: each channel's block of
+    features on its own channel images (a channel feature's value is its rectangles' weighted sum
+    over the channel, divided by the grey patch's ``max(sigma, SIGMA_FLOOR) * area``: no mean is
+    subtracted, a gradient has none)."""
+    patches, (mean, scale) = _grey_patches(patches, integrals, squared)
+    n = len(patches)
+    made = None
+    for c in np.unique(channels):
+        idx = np.flatnonzero(channels == c)
+        contiguous = int(idx[-1] - idx[0] + 1) == len(idx)
+        if contiguous:
+            block = slice(int(idx[0]), int(idx[-1]) + 1)
+            target = out[block] if transpose else out[:, block]
+        else:
+            target = np.empty((len(idx), n) if transpose else (n, len(idx)), np.float32)
+        if c == 0:
+            _evaluate(features[idx], patches, integrals, squared, normalize, target, transpose)
+        else:
+            if made is None:
+                made = patch_channels(patches)
+            source = np.ascontiguousarray(made[:, c - 1])
+            _evaluate(features[idx], source, None, None, normalize, target, transpose,
+                      statistics=(np.zeros(n), scale))
+        if not contiguous:
+            if transpose:
+                out[idx] = target
+            else:
+                out[:, idx] = target
+
+
+def _evaluate(features, patches, integrals, squared, normalize, out, transpose, statistics=None):
+    """The compiled evaluation of validated inputs into ``out``; ``statistics``: every patch's
+    ``(mean, max(sigma, SIGMA_FLOOR) * area)`` when they come from elsewhere (channel features
+    use the grey patch's)."""
+    source = patches if integrals is None else integrals
+    n, rows, columns = source.shape[0], source.shape[1], source.shape[2]
+    if integrals is not None:
+        rows, columns = rows - 1, columns - 1
     indptr, offsets, coefficients, weighted_area = feature_corners(features, columns + 1)
     # float32 work space when it is exact: every partial sum of a feature's corner terms is at most
     # sum |coefficient| * max |ii|, and |ii| <= max |pixel| * area for integer patches
-    source = patches if integrals is None else integrals
     exact_in_float32 = False
     if np.issubdtype(source.dtype, np.integer) and coefficients.size:
         if integrals is None:
@@ -547,7 +690,9 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     for start in range(0, n, step):
         stop = min(n, start + step)
         ii = integrals[start:stop] if integrals is not None else integral_images(patches[start:stop])
-        if normalize:
+        if normalize and statistics is not None:
+            mean, scale = statistics[0][start:stop], statistics[1][start:stop]
+        elif normalize:
             mean, scale = _patch_statistics(
                 ii, None if patches is None else patches[start:stop],
                 None if squared is None else squared[start:stop])
@@ -556,12 +701,11 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
         flat = np.ascontiguousarray(ii.reshape(stop - start, (rows + 1) * (columns + 1)))
         evaluate_tiles(flat, indptr, offsets, coefficients, weighted_area, mean, scale,
                        bool(normalize), bool(transpose), buffer, start, out)
-    return out
 
 
 def evaluate_features_numpy(features, patches=None, *, integrals=None, squared=None,
-                            normalize=True, out=None, transpose=False,
-                            chunk: int = 2048) -> np.ndarray:
+                            normalize=True, out=None, transpose=False, chunk: int = 2048,
+                            channels=None) -> np.ndarray:
     """Plain-numpy twin of :func:`evaluate_features` (same parameters, same values).
 
     Sums each rectangle with four integral-image look-ups by fancy indexing, ``chunk`` features at
@@ -576,24 +720,39 @@ def evaluate_features_numpy(features, patches=None, *, integrals=None, squared=N
     """
     features, patches, integrals, squared, (n, _, _) = _prepare(features, patches, integrals,
                                                                 squared)
+    channels = check_channels(channels, len(features))
     if integrals is None:
         integrals = integral_images(patches)
     if normalize:
         mean, scale = _patch_statistics(integrals, patches, squared)
+    exact = np.int64 if np.issubdtype(integrals.dtype, np.integer) else np.float64
+    tables = integrals[:, None]  # (N, channels, h + 1, w + 1): grey, then the gradient channels
+    if channels is not None:
+        grey, _ = _grey_patches(patches, integrals, squared)
+        made = patch_channels(grey)
+        n_made, rows, columns = made.shape[1:]
+        made = integral_images(made.reshape(-1, rows, columns)).reshape(
+            n, n_made, rows + 1, columns + 1)
+        tables = np.concatenate([tables.astype(exact), made.astype(exact)], axis=1)
+        channels = channels.astype(np.int64)
+    else:
+        channels = np.zeros(len(features), np.int64)
     f = len(features)
     values = np.empty((n, f), dtype=np.float64)
-    exact = np.int64 if np.issubdtype(integrals.dtype, np.integer) else np.float64
     for start in range(0, f, chunk):
         block = features[start:start + chunk].astype(np.int64)
+        c = channels[start:start + chunk]
         raw = np.zeros((n, len(block)), dtype=exact)
         for slot in range(4):
             x, y, w, h, weight = (block[:, slot, i] for i in range(5))
-            sums = (integrals[:, y + h, x + w] - integrals[:, y, x + w]
-                    - integrals[:, y + h, x] + integrals[:, y, x])
+            sums = (tables[:, c, y + h, x + w] - tables[:, c, y, x + w]
+                    - tables[:, c, y + h, x] + tables[:, c, y, x])
             raw += weight * sums
         values[:, start:start + len(block)] = raw
         if normalize:
-            area = (block[:, :, 4] * block[:, :, 2] * block[:, :, 3]).sum(axis=1).astype(np.float64)
+            # a channel feature subtracts no mean (its weighted area counts as 0)
+            area = np.where(c == 0, (block[:, :, 4] * block[:, :, 2] * block[:, :, 3]).sum(axis=1),
+                            0).astype(np.float64)
             values[:, start:start + len(block)] = (
                 (values[:, start:start + len(block)] - mean[:, None] * area) / scale[:, None])
     result = values.T if transpose else values

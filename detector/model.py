@@ -7,11 +7,14 @@ One ``.npz`` archive (written by :func:`detector.npzfile.save_npz`, deterministi
 =====================  =================  =====================================================
 array                  dtype, shape       meaning
 =====================  =================  =====================================================
-``format_version``     int64, ()          1
+``format_version``     int64, ()          1, or 2 when the file holds ``feature_channels``
 ``kind``               str, ()            ``"model"``
 ``window``             int32, (2,)        window width and height in pixels
 ``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
                                           features the trees use (unused slots all zero)
+``feature_channels``   int8, (F,)         the channel each feature reads (0 grey, 1..7 the
+                                          gradient channels of :mod:`detector.channels`);
+                                          absent: all grey (format 1; optional)
 ``node_features``      int32, (T, 2**D-1) index into ``features``, heap order
 ``node_thresholds``    float32, (T, 2**D-1)  go left when ``value <= threshold``
 ``leaf_values``        float32, (T, 2**D)    added to the running score
@@ -46,16 +49,22 @@ from detector.errors import InputError
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores)
 
-__all__ = ["FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model", "load_model", "training_date",
+__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model", "load_model", "training_date",
            "library_versions", "model_arrays"]
 
 FORMAT_VERSION = 1
+#: Files with channel features (``feature_channels``) are version 2, so that a patchwood that
+#: does not know channels refuses them instead of scanning their features as grey ones; grey-only
+#: models are still written as version 1, byte for byte as before.
+CHANNELS_FORMAT_VERSION = 2
+READ_VERSIONS = (FORMAT_VERSION, CHANNELS_FORMAT_VERSION)
 
 MODEL_SPEC = {
     "format_version": npzfile.ArraySpec("integer", ()),
     "kind": npzfile.ArraySpec("str", ()),
     "window": npzfile.ArraySpec("int32", (2,)),
     "features": npzfile.ArraySpec("int32", ("F", 4, 5)),
+    "feature_channels": npzfile.ArraySpec("int8", ("F",), required=False),
     "node_features": npzfile.ArraySpec("int32", ("T", "nodes")),
     "node_thresholds": npzfile.ArraySpec("float32", ("T", "nodes")),
     "leaf_values": npzfile.ArraySpec("float32", ("T", "leaves")),
@@ -132,6 +141,8 @@ class Model:
     exit_levels : ndarray of float32, shape (L,), optional
     exit_table : ndarray of float32, shape (L, T), optional
         Exits for scans at a given score threshold or above (see :meth:`exits_for`).
+    feature_channels : ndarray of int8, shape (F,), optional
+        The channel each feature reads (:mod:`detector.channels`); None (or all 0): grey only.
 
     Examples
     --------
@@ -153,6 +164,7 @@ class Model:
     feature_importances: np.ndarray | None = None
     exit_levels: np.ndarray | None = None
     exit_table: np.ndarray | None = None
+    feature_channels: np.ndarray | None = None
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -172,10 +184,15 @@ class Model:
                 len(self.exit_levels), -1)
         if self.mode not in MODES:
             raise ValueError(f"mode must be one of {MODES}, got {self.mode!r}")
+        if self.feature_channels is not None:
+            channels = np.ascontiguousarray(self.feature_channels, dtype=np.int8).reshape(-1)
+            if len(channels) != len(self.features):
+                raise ValueError("feature_channels needs one channel per feature")
+            self.feature_channels = channels if channels.any() else None
 
     @classmethod
     def from_forest(cls, window, pool, forest: FlatForest, exit_thresholds=None, *, normalize=True,
-                    metadata=None) -> "Model":
+                    metadata=None, pool_channels=None) -> "Model":
         """Model from a forest grown on a feature pool: keeps only the features the trees use.
 
         Parameters
@@ -191,9 +208,10 @@ class Model:
         """
         used, small = forest.reindex()
         exits = np.full(small.n_trees, -np.inf, np.float32) if exit_thresholds is None else exit_thresholds
+        channels = None if pool_channels is None else np.asarray(pool_channels)[used]
         return cls(window, np.asarray(pool)[used], small.node_features, small.node_thresholds,
                    small.leaf_values, exits, small.mode, normalize, dict(metadata or {}),
-                   small.importances)
+                   small.importances, feature_channels=channels)
 
     def exits_for(self, threshold: float) -> np.ndarray:
         """The exit thresholds for a scan that keeps scores of at least ``threshold``.
@@ -240,7 +258,8 @@ class Model:
                 f"patches of shape {patches.shape[1:]} do not fit the model's window "
                 f"{self.window[0]}x{self.window[1]} (width x height)"
             )
-        return evaluate_features(self.features, patches, normalize=self.normalize)
+        return evaluate_features(self.features, patches, normalize=self.normalize,
+                                 channels=self.feature_channels)
 
     def running_scores(self, patches) -> np.ndarray:
         """Running scores after each tree, float64 (N, T) (no early exit)."""
@@ -345,7 +364,8 @@ def _plain(value: float) -> str:
 def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
-        "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
+        "format_version": np.array(FORMAT_VERSION if model.feature_channels is None
+                                   else CHANNELS_FORMAT_VERSION, dtype=np.int64),
         "kind": np.array("model"),
         "window": np.array(model.window, dtype=np.int32),
         "features": model.features,
@@ -359,6 +379,8 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
     }
     if model.feature_importances is not None:
         arrays["feature_importances"] = model.feature_importances
+    if model.feature_channels is not None:
+        arrays["feature_channels"] = model.feature_channels
     if model.exit_levels is not None:
         arrays["exit_levels"] = model.exit_levels
         arrays["exit_table"] = model.exit_table
@@ -426,6 +448,15 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
             raise InputError("model exit levels must be scores in 0..1, rising", path=path)
         if np.isnan(table).any() or np.isposinf(table).any():
             raise InputError("model exit table must be finite or -inf", path=path)
+    if "feature_channels" in a:
+        from detector.channels import N_CHANNELS
+
+        channels = a["feature_channels"]
+        if channels.min() < 0 or channels.max() >= N_CHANNELS:
+            raise InputError(f"model feature channels must be in 0..{N_CHANNELS - 1}", path=path)
+        if int(a["format_version"]) < CHANNELS_FORMAT_VERSION:
+            raise InputError(f"model array 'feature_channels' needs format version "
+                             f"{CHANNELS_FORMAT_VERSION}", path=path)
     if "feature_importances" in a and not np.isfinite(a["feature_importances"]).all():
         raise InputError("model feature importances must be finite", path=path)
     mode = str(a["mode"])
@@ -501,9 +532,10 @@ def load_model(path: str | os.PathLike) -> Model:
         raise InputError("not a model file: array 'format_version' is missing", path=path)
     if version.ndim != 0 or version.dtype.kind not in "iu":
         raise InputError("model array 'format_version' must be one integer", path=path)
-    if int(version) != FORMAT_VERSION:
+    if int(version) not in READ_VERSIONS:
         raise InputError(f"unsupported model format version {int(version)} "
-                         f"(this patchwood reads {FORMAT_VERSION})", path=path)
+                         f"(this patchwood reads {' and '.join(map(str, READ_VERSIONS))})",
+                         path=path)
     metadata = validate_model(a, path)
     return Model(
         window=tuple(int(v) for v in a["window"]),
@@ -518,4 +550,5 @@ def load_model(path: str | os.PathLike) -> Model:
         feature_importances=a.get("feature_importances"),
         exit_levels=a.get("exit_levels"),
         exit_table=a.get("exit_table"),
+        feature_channels=a.get("feature_channels"),
     )

@@ -83,13 +83,19 @@ def _merge_corners(offsets, weights):
 
 
 def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
-               normalize: bool = True) -> ScalePlan:
+               normalize: bool = True, channels=None, plane: int = 0) -> ScalePlan:
     """Corner offsets and weights of ``features`` at ``scale`` in an integral image whose rows are
     ``row_stride`` long.
 
     Rectangle corners are scaled and rounded (half up) separately, so rectangles that touch in the
     window still touch after scaling. A rectangle's pixel sum is divided by its own scaled pixel
     count (its mean is what is compared across scales).
+
+    ``channels`` (one per feature, 0 = grey; see :mod:`detector.channels`): a feature on channel
+    c reads plane c of a stack of integral images ``plane`` cells apart (its offsets grow by
+    ``c * plane``), subtracts no window mean (its const is 0), and its weights are multiplied by
+    ``scale``: a gradient measured in image pixels is ``1 / scale`` of the same edge measured in
+    window pixels, the unit training used.
 
     Examples
     --------
@@ -119,6 +125,12 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
     # S = I(y1,x1) - I(y0,x1) - I(y1,x0) + I(y0,x0)
     corners = np.stack([y0 * row_stride + x0, y0 * row_stride + x1,
                         y1 * row_stride + x0, y1 * row_stride + x1], axis=-1)
+    if channels is not None:
+        channel = np.asarray(channels, dtype=np.int64)
+        gradient = channel > 0
+        coefs = np.where(gradient[:, None], coefs * scale, coefs)
+        consts = np.where(gradient, 0.0, consts)
+        corners = corners + (channel * plane)[:, None, None]
     signs = np.array([1.0, -1.0, -1.0, 1.0])
     F = len(feats)
     offsets, weights, counts = _merge_corners(np.where(used[..., None], corners, 0).reshape(F, 16),
@@ -396,6 +408,38 @@ def frame_integrals(gray: np.ndarray, out=None):
             squared_integral_image(gray).ravel().astype(np.float64))
 
 
+def channel_frame_integrals(gray: np.ndarray, out=None):
+    """The integral images of a frame's :data:`detector.channels.N_CHANNELS` channels stacked as
+    planes in one flat table (grey first, then the gradient channels; each plane
+    ``(height + 1) * (width + 1)`` cells, :func:`integral_dtype`), and the squared-integral image
+    (float64), flattened: what the scan of a model with channel features reads.
+
+    ``out``, optional: a ``(N_CHANNELS, height + 1, width + 1)`` table and a ``(height + 1,
+    width + 1)`` float64 array to write into (see :func:`frame_integrals`).
+    """
+    import cv2
+
+    from detector._channel_kernels import channel_integrals
+    from detector.channels import N_CHANNELS
+
+    gray = np.asarray(gray)
+    if gray.dtype != np.uint8:
+        if gray.size and (gray.min() < 0 or gray.max() > 255):
+            raise ValueError("channel features need an 8-bit grey frame")
+        gray = gray.astype(np.uint8)
+    gray = np.ascontiguousarray(gray)
+    h, w = gray.shape
+    dtype = integral_dtype(h, w)
+    if (out is None or out[0].shape != (N_CHANNELS, h + 1, w + 1) or out[0].dtype != dtype
+            or out[1].shape != (h + 1, w + 1)):
+        out = (np.empty((N_CHANNELS, h + 1, w + 1), dtype), np.empty((h + 1, w + 1)))
+    table, sq = out
+    depth = cv2.CV_32S if dtype == np.int32 else cv2.CV_64F
+    cv2.integral2(gray, sum=table[0], sqsum=sq, sdepth=depth, sqdepth=cv2.CV_64F)
+    channel_integrals(gray, table)
+    return table.ravel(), sq.ravel()
+
+
 class _Workspace(threading.local):
     """Per-thread buffers the scan reuses from frame to frame (see :func:`frame_integrals`)."""
 
@@ -406,11 +450,14 @@ class _Workspace(threading.local):
         self.outputs = None
         self.frame = None
 
-    def tables(self, gray_shape):
+    def tables(self, gray_shape, planes: int = 1):
+        """Buffers for :func:`frame_integrals` (``planes == 1``) or, with more planes, for
+        :func:`channel_frame_integrals`."""
         shape = (gray_shape[0] + 1, gray_shape[1] + 1)
-        if self.shape != shape:
-            self.shape = shape
-            self.integrals = (np.empty(shape, integral_dtype(*gray_shape)), np.empty(shape))
+        if self.shape != (planes,) + shape:
+            self.shape = (planes,) + shape
+            table = (planes,) + shape if planes > 1 else shape
+            self.integrals = (np.empty(table, integral_dtype(*gray_shape)), np.empty(shape))
         return self.integrals
 
     def padded(self, gray, pad):
@@ -524,6 +571,10 @@ class Engine:
         # the plans hold the features in the order the trees first use them (see first_use_order)
         order, node_features = first_use_order(model.node_features, len(model.features))
         self.features = np.asarray(model.features)[order]
+        # the channel of each feature (None: all grey, scanned exactly as before channels existed)
+        channels = getattr(model, "feature_channels", None)
+        self.channels = (np.asarray(channels, np.int64)[order]
+                         if channels is not None and np.any(channels) else None)
         self.node_features = np.ascontiguousarray(node_features, np.int64)
         self.node_thresholds = np.ascontiguousarray(model.node_thresholds, np.float32)
         self.split_bounds = split_bounds(self.node_thresholds)
@@ -597,8 +648,10 @@ class Engine:
                     # the farthest this scale's windows reach past any edge
                     pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
                               int(ys[-1]) + Hs - ih)
+            plane = (iw + 2 * pad + 1) * (ih + 2 * pad + 1)
             grid = FramePlan.stack([(scale_plan(self.features, self.window, s,
-                                                iw + 2 * pad + 1, self.normalize),
+                                                iw + 2 * pad + 1, self.normalize, self.channels,
+                                                plane),
                                      xs + pad, ys + pad) for s, xs, ys in axes], pad,
                                    len(self.features))
             with self._lock:
@@ -638,7 +691,12 @@ class Engine:
             return None, up, (None,) * 4, 0, 0
         if pad:
             gray = self._work.padded(gray, pad)
-        ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
+        if self.channels is None:
+            ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
+        else:
+            from detector.channels import N_CHANNELS
+
+            ii, sq = channel_frame_integrals(gray, self._work.tables(gray.shape, N_CHANNELS))
         out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
         stride = iw + 2 * pad + 1
         rules = (SIGMA_FLOOR, self.min_var, self.normalize)

@@ -197,7 +197,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
 @pytest.mark.parametrize(
     "change, message",
     [
-        (dict(format_version=np.array(2, np.int64)), "unsupported model format version 2 (this patchwood reads 1)"),
+        (dict(format_version=np.array(3, np.int64)), "unsupported model format version 3 (this patchwood reads 1 and 2)"),
         (dict(format_version=None), "not a model file: array 'format_version' is missing"),
         (dict(node_thresholds=None), "not a complete model file: array 'node_thresholds' is missing"),
         (dict(kind=np.array("patch-bank")), "this is a patch bank, not a model"),

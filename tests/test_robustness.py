@@ -586,7 +586,8 @@ def _damaged(kind: str, trained, folder: Path, marker: Path) -> tuple[Path, str]
         return path, f"not a {what} file (not an .npz archive, or truncated)"
     if case == "version":
         _replaced(src, path, format_version=lambda v: np.array(99, np.int64))
-        return path, f"unsupported {what} format version 99 (this patchwood reads 1)"
+        reads = "1 and 2" if model else "1"
+        return path, f"unsupported {what} format version 99 (this patchwood reads {reads})"
     if case == "dtype":
         name, want = ("node_features", "int32") if model else ("patches", "uint8")
         _replaced(src, path, **{name: lambda v: v.astype(np.float32)})

@@ -1,0 +1,335 @@
+"""Gradient channels and channel features (detector.channels; Integral Channel Features, Dollár, Tu,
+Perona and Belongie, BMVC 2009): the channel images against numpy references, the compiled
+integral images against their numpy twin, channel feature values against the numpy twin, the
+scan of channel models against its numpy twin and against the classifier on patches cut by hand,
+the scale property, and the model file.
+
+References: the central differences and the magnitude are checked against numpy (``np.pad`` with
+mode "edge", ``np.hypot``), the orientation bins against ``np.arctan2`` in degrees; the scale
+property is exact arithmetic on a linear ramp enlarged 2x2 with ``np.kron`` (each of its central
+differences is half the small image's), and holds within a stated tolerance on a smooth image.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from detector.channels import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
+                               gradient_channels, orientation_bins, patch_channels)
+from detector.classifier import PatchClassifier
+from detector.errors import InputError
+from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
+                               random_pool)
+from detector.harvest import harvest
+from detector.labels import read_labels
+from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \
+    save_model
+from detector.scan import (Engine, ScanSettings, channel_frame_integrals, final_scores,
+                           integral_dtype, scale_plan)
+from synthetic_images import render_frame, render_scenario
+
+WINDOW = (24, 24)
+
+
+def reference_channels(gray):
+    """Channels 1..7 with numpy: central differences on the edge-padded image, np.hypot, and the
+    orientation from np.arctan2 in degrees modulo 180, in bins of 30 degrees."""
+    g = np.pad(gray.astype(np.int64), 1, mode="edge")
+    gx = g[1:-1, 2:] - g[1:-1, :-2]
+    gy = g[2:, 1:-1] - g[:-2, 1:-1]
+    magnitude = np.minimum(np.rint(np.hypot(gx, gy)), 255).astype(np.uint8)
+    angle = np.degrees(np.arctan2(gy, gx)) % 180.0
+    bins = np.minimum(angle // 30, 5).astype(np.int64)
+    out = np.zeros((7,) + gray.shape, np.uint8)
+    out[0] = magnitude
+    for k in range(6):
+        out[k + 1] = np.where(bins == k, magnitude, 0)
+    return out
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(1, 9), st.integers(1, 9), st.integers(0, 2**32 - 1), st.booleans())
+def test_channels_equal_the_numpy_reference(height, width, seed, binary):
+    rng = np.random.default_rng(seed)
+    gray = (rng.integers(0, 2, (height, width)) * 255 if binary
+            else rng.integers(0, 256, (height, width))).astype(np.uint8)
+    np.testing.assert_array_equal(gradient_channels(gray), reference_channels(gray))
+
+
+def test_orientation_bins_equal_arctan2_everywhere():
+    """Every integer gradient the channels can meet (|gx|, |gy| <= 255) but (0, 0): the integer
+    rules give floor((atan2(gy, gx) mod 180) / 30). No integer gradient lies on a boundary at
+    30, 60, 120 or 150 degrees (tan 30 is irrational), so arctan2's rounding cannot matter."""
+    gx, gy = np.meshgrid(np.arange(-255, 256), np.arange(-255, 256))
+    gx, gy = gx.ravel(), gy.ravel()
+    keep = (gx != 0) | (gy != 0)
+    expected = (np.degrees(np.arctan2(gy, gx)) % 180.0) // 30
+    np.testing.assert_array_equal(orientation_bins(gx[keep], gy[keep]), expected[keep])
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 4), (5, 1), (2, 2), (13, 17), (61, 83)])
+@pytest.mark.parametrize("dtype", [np.int32, np.float64])
+def test_compiled_channel_integrals_equal_numpy_twin(shape, dtype):
+    rng = np.random.default_rng(shape[0] * 100 + shape[1])
+    for gray in (rng.integers(0, 256, shape).astype(np.uint8),
+                 (rng.integers(0, 2, shape) * 255).astype(np.uint8)):
+        a = channel_integrals(gray, dtype)
+        b = channel_integrals_numpy(gray, dtype)
+        assert a.dtype == b.dtype == dtype and a.shape == (N_CHANNELS,) + tuple(np.add(shape, 1))
+        np.testing.assert_array_equal(a, b)
+        # the scan's table: the same planes, flattened, and the squared grey integral
+        table, sq = channel_frame_integrals(gray)
+        if integral_dtype(*shape) == dtype:
+            np.testing.assert_array_equal(table, a.ravel())
+        g = gray.astype(np.int64)
+        assert sq[-1] == (g * g).sum()
+
+
+def test_patch_channels_are_the_channels_of_each_patch_alone():
+    rng = np.random.default_rng(1)
+    patches = rng.integers(0, 256, (5, 6, 7)).astype(np.uint8)
+    made = patch_channels(patches)
+    for p, c in zip(patches, made):
+        np.testing.assert_array_equal(c, reference_channels(p))
+
+
+def test_channel_pool_draws_inside_the_border_ring():
+    features, channels = channel_pool(24, 20, 3000, random_state=4)
+    used = features[:, :, 4] != 0
+    r = features[used]
+    assert r[:, 0].min() == 1 and r[:, 1].min() == 1
+    assert (r[:, 0] + r[:, 2]).max() == 23 and (r[:, 1] + r[:, 3]).max() == 19
+    assert channels.min() == 1 and channels.max() == N_CHANNELS - 1
+    assert (np.diff(channels) >= 0).all()
+    assert len(np.unique(np.c_[features.reshape(len(features), -1), channels], axis=0)) >= 2990
+    single = used.sum(axis=1) == 1  # the one-rectangle shape, weight +1
+    assert single.any() and (features[single, 0, 4] == 1).all()
+    again = channel_pool(24, 20, 3000, random_state=4)
+    np.testing.assert_array_equal(again[0], features)
+    np.testing.assert_array_equal(again[1], channels)
+
+
+@pytest.mark.parametrize("normalize", [True, False])
+@pytest.mark.parametrize("transpose", [False, True])
+def test_channel_features_compiled_equal_numpy_twin(normalize, transpose):
+    rng = np.random.default_rng(2)
+    patches = rng.integers(0, 256, (150, 24, 24)).astype(np.uint8)
+    grey = random_pool(24, 24, 300, random_state=0)
+    extra, channels = channel_pool(24, 24, 300, random_state=1)
+    features = np.concatenate([grey, extra])
+    channels = np.r_[np.zeros(300, np.int8), channels]
+    a = evaluate_features(features, patches, channels=channels, normalize=normalize,
+                          transpose=transpose)
+    b = evaluate_features_numpy(features, patches, channels=channels, normalize=normalize,
+                                transpose=transpose)
+    np.testing.assert_allclose(a, b, rtol=1e-6, atol=1e-6)
+    # the grey block is what it was without channels; any feature order gives the same columns
+    plain = evaluate_features(grey, patches, normalize=normalize, transpose=transpose)
+    np.testing.assert_array_equal(a[:300] if transpose else a[:, :300], plain)
+    order = rng.permutation(600)
+    c = evaluate_features(features[order], patches, channels=channels[order], normalize=normalize)
+    np.testing.assert_array_equal(c, (a.T if transpose else a)[:, order])
+
+
+def test_channel_feature_value_by_hand():
+    """A vertical step of 100 grey levels between columns 2 and 3 of a 6 x 6 patch: the central
+    differences at columns 2 and 3 are 100 (orientation 0 degrees, channel 2), 0 elsewhere. The
+    one-rectangle feature over columns 1..4, rows 1..4 sums 4 rows x 2 columns x 100 = 800.
+    Normalised: the patch is half 0, half 100, so sigma = 50 and the value is 800 / (50 * 36)."""
+    patch = np.zeros((1, 6, 6), np.uint8)
+    patch[0, :, 3:] = 100
+    feature = np.zeros((1, 4, 5), np.int32)
+    feature[0, 0] = [1, 1, 4, 4, 1]
+    for channel, raw in ((1, 800.0), (2, 800.0), (3, 0.0), (0, 800.0)):
+        got = evaluate_features(feature, patch, channels=[channel], normalize=False)
+        assert got[0, 0] == raw
+    value = evaluate_features(feature, patch, channels=[2])[0, 0]
+    assert value == pytest.approx(800 / (50 * 36), rel=1e-6)
+
+
+def test_channel_features_refuse_other_than_8_bit():
+    feature, channels = channel_pool(4, 4, 3, random_state=0)
+    with pytest.raises(InputError, match="8-bit"):
+        evaluate_features(feature, np.full((1, 4, 4), 300, np.int64), channels=channels)
+    with pytest.raises(InputError, match="channels must be in"):
+        evaluate_features(feature, np.zeros((1, 4, 4), np.uint8), channels=[9, 0, 0])
+
+
+# ------------------------------------------------------------------ the scan of channel models
+
+@pytest.fixture(scope="module")
+def bank(tmp_path_factory):
+    root = tmp_path_factory.mktemp("channel-scenario")
+    render_scenario(root, train_images=12, test_images=2, seed=11)
+    items = list(read_labels(root / "train" / "labels.csv", root / "train" / "images"))
+    return harvest(root / "train" / "images", items, window=WINDOW, negatives_per_image=60, seed=0)
+
+
+@pytest.fixture(scope="module", params=["bagged", "boosted"])
+def channel_model(request, bank):
+    clf = PatchClassifier(n_trees=20, pool=2000, mode=request.param, random_state=0,
+                          channels="gradient")
+    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    model = clf.model_
+    assert model.feature_channels is not None and (model.feature_channels > 0).sum() >= 5
+    return model
+
+
+def every_window(model, **kw):
+    kw.setdefault("threshold", 0.0)
+    kw.setdefault("early_exit", False)
+    return Engine(model, ScanSettings(**kw))
+
+
+@pytest.mark.parametrize("early_exit", [False, True])
+def test_compiled_scan_equals_numpy_twin_with_channels(channel_model, early_exit):
+    rng = np.random.default_rng(5)
+    for gray in (rng.integers(0, 256, (61, 83), dtype=np.uint8), render_frame(3, 160, 160).image):
+        engine = every_window(channel_model, early_exit=early_exit, threshold=0.3,
+                              scale_step=1.25)
+        b1, r1, w1, t1 = engine.candidates(gray)
+        b2, r2, w2, t2 = engine.candidates(gray, use_numpy=True)
+        assert (w1, t1) == (w2, t2)
+        np.testing.assert_array_equal(b1, b2)
+        np.testing.assert_array_equal(r1, r2)
+
+
+@pytest.mark.parametrize("overhang", [0.0, 0.5])
+def test_scan_scores_equal_classifier_scores_at_scale_one_with_channels(channel_model, overhang):
+    """Every scale-1 window, edges included: the scan's score == predict_proba of the patch cut by
+    hand (border repeated past the image's edge). Exact for every window, not only those whose
+    surroundings repeat its border: the patch's channels differ from the frame's only in the
+    window's outermost ring of pixels, which no channel feature reads."""
+    gray = render_frame(4, 160, 160).image
+    boxes, raw, _, _ = every_window(channel_model, stride=3, overhang=overhang).candidates(gray)
+    at1 = (boxes[:, 2] == WINDOW[0]) & (boxes[:, 3] == WINDOW[1])
+    xs, ys = boxes[at1, 0].astype(int), boxes[at1, 1].astype(int)
+    padded = np.pad(gray, 12, mode="edge")
+    patches = np.stack([padded[y + 12:y + 36, x + 12:x + 36] for x, y in zip(xs, ys)])
+    reference = PatchClassifier.from_model(channel_model).predict_proba(patches)[:, 1]
+    np.testing.assert_allclose(final_scores(channel_model, raw[at1]), reference, rtol=0, atol=1e-9)
+    assert reference.max() - reference.min() > 0.5
+
+
+def _plan_values(features, channels, gray, scale, x, y):
+    """The values the scan computes for the window at (x, y) of ``gray`` at ``scale``: the plan's
+    corner sums over the channel table, minus const * mean, times 1 / sigma."""
+    h, w = gray.shape
+    table, sq = channel_frame_integrals(gray)
+    plan = scale_plan(features, WINDOW, scale, w + 1, True, channels, (h + 1) * (w + 1))
+    base = y * (w + 1) + x
+    a, b, c, d = (base + plan.win).tolist()
+    mean = (table[d] - table[b] - table[c] + table[a]) * plan.inv_area
+    var = (sq[d] - sq[b] - sq[c] + sq[a]) * plan.inv_area - mean * mean
+    inv_sigma = 1.0 / max(np.sqrt(max(var, 0.0)), 1.0)
+    acc = np.array([(plan.weights[f, :plan.counts[f]]
+                     * table[base + plan.offsets[f, :plan.counts[f]]]).sum()
+                    for f in range(len(features))])
+    return (acc - plan.consts * mean) * inv_sigma
+
+
+def test_scale_property_exact_on_a_ramp():
+    """A ramp rising 3 grey levels per column and 4 per row: every central difference is (6, 8),
+    magnitude 10. Enlarged 2x2 with np.kron, every interior one is (3, 4), magnitude 5, which
+    the scale (2) brings back to 10; sigma and rectangle means are those of the small image. So the
+    scale-2 window at (2x, 2y) of the enlarged image has exactly the values of the scale-1 window
+    at (x, y), for windows away from the image's border."""
+    yy, xx = np.mgrid[:30, :40]
+    gray = (3 * xx + 4 * yy).astype(np.uint8)              # 0 .. 3 * 39 + 4 * 29 = 233
+    big = np.kron(gray, np.ones((2, 2), np.uint8))
+    features, channels = channel_pool(*WINDOW, 400, random_state=0)
+    grey = random_pool(*WINDOW, 100, random_state=1)
+    features = np.concatenate([grey, features])
+    channels = np.r_[np.zeros(100, np.int8), channels]
+    v1 = _plan_values(features, channels, gray, 1.0, 8, 3)
+    v2 = _plan_values(features, channels, big, 2.0, 16, 6)
+    np.testing.assert_allclose(v2, v1, rtol=1e-12, atol=1e-12)
+    assert np.abs(v1[100:]).max() > 0.05  # the channel features see the ramp
+    # and the scale-1 values are the training values of the patch cut from the frame
+    patch = gray[3:27, 8:32][None]
+    np.testing.assert_allclose(v1, evaluate_features(features, patch, channels=channels)[0],
+                               rtol=1e-6, atol=1e-6)
+
+
+def test_scale_property_within_tolerance_on_a_smooth_image():
+    """A smooth image (periods of 40 and 56 pixels) enlarged 2x2: the enlarged image's central
+    differences alternate between the small one's backward and forward differences, halved and
+    rounded to whole grey levels, so the channel values at scale 2 agree with scale 1 only
+    approximately: within 0.05 of the largest channel value here (measured 0.02-0.03), while the
+    grey features stay exact."""
+    yy, xx = np.mgrid[:48, :48]
+    gray = np.rint(128 + 90 * np.sin(2 * np.pi * xx / 40) * np.cos(2 * np.pi * yy / 56)
+                   ).astype(np.uint8)
+    big = np.kron(gray, np.ones((2, 2), np.uint8))
+    features, channels = channel_pool(*WINDOW, 600, random_state=2)
+    grey = random_pool(*WINDOW, 100, random_state=3)
+    features = np.concatenate([grey, features])
+    channels = np.r_[np.zeros(100, np.int8), channels]
+    for x, y in ((4, 4), (12, 20), (20, 9)):
+        v1 = _plan_values(features, channels, gray, 1.0, x, y)
+        v2 = _plan_values(features, channels, big, 2.0, 2 * x, 2 * y)
+        np.testing.assert_allclose(v2[:100], v1[:100], rtol=1e-12, atol=1e-12)
+        top = np.abs(v1[100:]).max()
+        assert top > 0.1
+        assert np.abs(v2[100:] - v1[100:]).max() <= 0.05 * top
+
+
+# ------------------------------------------------------------------ the model file
+
+def test_channel_model_file_round_trip(channel_model, tmp_path):
+    path = tmp_path / "channels.npz"
+    save_model(path, channel_model)
+    with np.load(path, allow_pickle=False) as npz:
+        assert int(npz["format_version"]) == CHANNELS_FORMAT_VERSION
+        assert npz["feature_channels"].dtype == np.int8
+    loaded = load_model(path)
+    np.testing.assert_array_equal(loaded.feature_channels, channel_model.feature_channels)
+    gray = render_frame(6, 160, 160).image
+    a = Engine(channel_model, ScanSettings(threshold=0.2)).scan(gray)
+    b = Engine(loaded, ScanSettings(threshold=0.2)).scan(gray)
+    np.testing.assert_array_equal(a.boxes, b.boxes)
+    np.testing.assert_array_equal(a.scores, b.scores)
+
+
+def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
+    """A grey-only model is written as before channels existed (format 1, no feature_channels),
+    loads with no channels, and its scan reads the one-plane integral image."""
+    clf = PatchClassifier(n_trees=10, pool=800, random_state=0).fit(
+        bank.patches, bank.labels, metadata={"margin": bank.margin})
+    same = PatchClassifier(n_trees=10, pool=800, random_state=0, channels="grey").fit(
+        bank.patches, bank.labels, metadata={"margin": bank.margin})
+    arrays = model_arrays(clf.model_)
+    assert int(arrays["format_version"]) == FORMAT_VERSION and "feature_channels" not in arrays
+    for name, value in model_arrays(same.model_).items():
+        if name != "metadata":
+            np.testing.assert_array_equal(value, arrays[name])
+    path = tmp_path / "grey.npz"
+    save_model(path, clf.model_)
+    loaded = load_model(path)
+    assert loaded.feature_channels is None
+    engine = Engine(loaded, ScanSettings(threshold=0.2))
+    assert engine.channels is None
+    gray = render_frame(6, 160, 160).image
+    a = engine.scan(gray)
+    b = Engine(clf.model_, ScanSettings(threshold=0.2)).scan(gray, use_numpy=True)
+    np.testing.assert_array_equal(a.boxes, b.boxes)
+    np.testing.assert_allclose(a.scores, b.scores, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("change, message", [
+    (dict(format_version=1), "model array 'feature_channels' needs format version 2"),
+    (dict(feature_channels=9), "model feature channels must be in 0..7"),
+])
+def test_bad_channel_files_are_refused(channel_model, tmp_path, change, message):
+    arrays = model_arrays(channel_model)
+    if "format_version" in change:
+        arrays["format_version"] = np.array(change["format_version"], np.int64)
+    else:
+        arrays["feature_channels"] = arrays["feature_channels"].copy()
+        arrays["feature_channels"][0] = change["feature_channels"]
+    path = tmp_path / "bad.npz"
+    np.savez(path, **arrays)
+    with pytest.raises(InputError, match=message):
+        load_model(path)
