@@ -8,6 +8,7 @@ from detector.classifier import PatchClassifier, misaligned_copies
 from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
                              exit_kept, float32_thresholds, kept_objects,
                              order_for_early_exit, trees_evaluated)
+from detector.model import Model
 
 
 def _dropped_after_first(o, b, t, exit_recall=1.0):
@@ -244,3 +245,83 @@ def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed)
     b = rng.integers(-3, 2, (n_bg, t)) * 0.25
     np.testing.assert_array_equal(order_for_early_exit(o, b, exit_recall),
                                   _order_for_early_exit_numpy(o, b, exit_recall))
+
+
+# ------------------------------------------------------------------ the scan's exit row
+
+def _staircase_model(levels):
+    """A hand-built model whose first tree sorts windows into 16 steps and whose exit table gives
+    every score level its own first exit, so that the windows a scan keeps name the row it used.
+
+    Window 1 x 2 pixels, one raw feature: bottom pixel minus top pixel. Tree 0 (depth 4) is a
+    staircase on it: leaf k (value k / 16) holds the differences in (10k - 9.5, 10k + 0.5], leaf 0
+    everything up to 0.5 and leaf 15 everything above 140.5. Trees 1..39 give every window 1.0, so a
+    window's final score is (k / 16 + 39) / 40 >= 0.975: it clears every threshold up to 0.975 and
+    only the exits can drop it. Exit rows: ``exit_thresholds`` never exits; row l of
+    ``exit_table`` (level ``levels[l]``) drops, after tree 0, the windows below step l + 1."""
+    depth, n_trees = 4, 40
+    nodes = 2**depth - 1
+    steps = [10.0 * k + 0.5 for k in range(15)]
+    node_thresholds = np.zeros((n_trees, nodes), np.float32)
+    for i in range(nodes):  # heap order: node i at level d, j-th from the left, splits its 2**(4-d)
+        d = (i + 1).bit_length() - 1  # leaves in the middle
+        j = i - (2**d - 1)
+        span = 2 ** (depth - d)
+        node_thresholds[0, i] = steps[j * span + span // 2 - 1]
+    leaf_values = np.ones((n_trees, nodes + 1), np.float32)
+    leaf_values[0] = np.arange(16) / 16
+    table = np.full((len(levels), n_trees), -np.inf, np.float32)
+    table[:, 0] = (np.arange(len(levels)) + 1) / 16
+    feature = np.array([[[0, 0, 1, 1, -1], [0, 1, 1, 1, 1], [0] * 5, [0] * 5]], np.int32)
+    return Model((1, 2), feature, np.zeros((n_trees, nodes), np.int32), node_thresholds,
+                 leaf_values, np.full(n_trees, -np.inf, np.float32), "bagged", normalize=False,
+                 exit_levels=levels, exit_table=table)
+
+
+def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
+    """Direct backward pruning (Zhang and Viola, NIPS 2007): a scan at threshold c must use the
+    exits calibrated for the highest level not above c (``exit_thresholds`` below the first level),
+    at every level and between levels; with ``exit_level`` the row of that level instead. The
+    windows kept, and the trees they cost, show which row the compiled scan used."""
+    from detector.forest import EXIT_LEVELS
+    from detector.scan import Engine, ScanSettings
+
+    levels = np.array(EXIT_LEVELS, np.float32)
+    model = _staircase_model(levels)
+    # a 16 x 2 frame: column k is 0 over 10k (150 in the last column), so window k is on step k
+    gray = np.zeros((2, 16), np.uint8)
+    gray[1] = [10 * k for k in range(15)] + [150]
+    # hand check of the staircase: the no-exit scores are (k / 16 + 39) / 40 for window k
+    plain = Engine(model, ScanSettings(threshold=0.0, early_exit=False, stride=1, scale_step=2.0,
+                                       overhang=0.0))
+    boxes, raw, windows, _ = plain.candidates(gray)
+    assert windows == 16 and boxes[:, 2:].tolist() == [[1.0, 2.0]] * 16
+    assert dict(zip(boxes[:, 0].astype(int).tolist(), raw.tolist())) == \
+        {k: k / 16 + 39 for k in range(16)}
+
+    def row_of(c):  # the highest level not above c (compared in float32, as the levels are stored)
+        rows = [r for r, level in enumerate(levels) if level <= np.float32(c)]
+        return rows[-1] if rows else None
+
+    between = [(a + b) / 2 for a, b in zip(levels[:-1].astype(float), levels[1:].astype(float))]
+    thresholds = [0.0, 0.03, *levels.astype(float).tolist(), *between, 0.97]
+    for c in thresholds:
+        row = row_of(c)
+        first_exit = -np.inf if row is None else (row + 1) / 16
+        for engine, cutoff in [
+            (Engine(model, ScanSettings(threshold=c, stride=1, scale_step=2.0, overhang=0.0)), c),
+            (Engine(model, ScanSettings(threshold=0.0, stride=1, scale_step=2.0, overhang=0.0),
+                    exit_level=c), 0.0),
+        ]:
+            boxes, raw, windows, trees = engine.candidates(gray)
+            kept = sorted(boxes[:, 0].astype(int).tolist())
+            expected = [k for k in range(16) if k / 16 >= first_exit and (k / 16 + 39) / 40 >= cutoff]
+            assert kept == expected, (c, row)
+            # a window dropped by the first exit costs 1 tree, any other all 40 (none of the
+            # windows dropped here could have been dropped for its score: 39 / 40 >= 0.975)
+            dropped = sum(1 for k in range(16) if k / 16 < first_exit)
+            assert trees == dropped + 40 * (16 - dropped), (c, row)
+    # without early exit no row is used, whatever the threshold
+    boxes, _, _, trees = Engine(model, ScanSettings(threshold=0.5, early_exit=False, stride=1,
+                                                    scale_step=2.0, overhang=0.0)).candidates(gray)
+    assert len(boxes) == 16 and trees == 16 * 40
