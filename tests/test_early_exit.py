@@ -325,3 +325,56 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
     boxes, _, _, trees = Engine(model, ScanSettings(threshold=0.5, early_exit=False, stride=1,
                                                     scale_step=2.0, overhang=0.0)).candidates(gray)
     assert len(boxes) == 16 and trees == 16 * 40
+
+
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshold(mode):
+    """The promise of ``exit_recall``, kept by the compiled scan itself: the calibration copies
+    (9 per held-out object), laid side by side in one frame so that each is one window of the
+    scan, are scanned with early exit (contrast gate included) at thresholds below the first exit
+    level, at every level, between levels and above the last. Of the copies whose score without
+    early exit reaches the threshold, at most floor((1 - 0.9) * n) are dropped, n being the copies
+    scoring at least the level whose exits the scan uses (all of them below the first level)."""
+    from detector.scan import Engine, ScanSettings, final_scores
+
+    patches, y = _top_bright(1, 80, 160, spread=90, lift=120)
+    clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
+                          random_state=0).fit(patches, y)
+    m = clf.model_
+    cal = _calibration_copies(clf, patches)
+    cols = 12
+    rows = -(-len(cal) // cols)
+    tiles = np.zeros((rows * cols, 12, 12), np.uint8)
+    tiles[:len(cal)] = cal
+    # frame of rows x cols tiles of 12 x 12; at stride 12 and scale 1 each window is one tile
+    gray = tiles.reshape(rows, cols, 12, 12).transpose(0, 2, 1, 3).reshape(rows * 12, cols * 12)
+    grid = dict(stride=12.0, max_object=12.0, overhang=0.0, nms_iou=1.0)
+
+    def kept_tiles(engine):
+        boxes, raw, windows, _ = engine.candidates(gray)
+        assert windows == rows * cols and (boxes[:, 2:] == 12).all()
+        index = (boxes[:, 1] // 12 * cols + boxes[:, 0] // 12).astype(int)
+        return dict(zip(index.tolist(), raw.tolist()))
+
+    everything = kept_tiles(Engine(m, ScanSettings(threshold=0.0, early_exit=False, **grid)))
+    if mode == "bagged":  # threshold 0 is the raw cutoff 0: no window is dropped
+        assert len(everything) == rows * cols
+    score = np.full(len(cal), -1.0)  # tiles past the last copy are not calibration objects
+    for i, raw in everything.items():
+        if i < len(cal):
+            score[i] = final_scores(m, np.array([raw]))[0]
+    assert (score[:len(cal)] >= 0).sum() > 0.9 * len(cal)
+    levels = m.exit_levels.astype(float).tolist()
+    assert len(levels) >= 3
+    between = [(a + b) / 2 for a, b in zip(levels[:-1], levels[1:])]
+    checked = 0
+    for c in [0.02, *levels, *between, min(0.99, levels[-1] + 0.02)]:
+        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid)))
+        reach = {i for i in range(len(cal)) if score[i] >= c}
+        dropped = reach - set(with_exit)
+        row_level = max([level for level in levels if np.float32(level) <= np.float32(c)],
+                        default=0.0)
+        n = int((score >= np.float32(row_level)).sum())
+        assert len(dropped) <= int(np.floor(0.1 * n + 1e-9)), (mode, c, len(dropped), n)
+        checked += len(reach)
+    assert checked > 0
