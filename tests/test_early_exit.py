@@ -9,6 +9,7 @@ from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_
                              exit_kept, float32_thresholds, kept_objects,
                              order_for_early_exit, trees_evaluated)
 from detector.model import Model
+from shared import calibration_copies, top_bright
 
 
 def _dropped_after_first(o, b, t, exit_recall=1.0):
@@ -71,30 +72,11 @@ def test_misaligned_copies_follow_crop_region():
                                   misaligned_copies(p, 1.0, 1.1, 5, random_state=7))
 
 
-def _top_bright(seed, n_objects, n_background, spread, lift):
-    """12 x 12 object patches whose top half is ``lift`` brighter than noise of ``spread`` grey
-    levels, and plain noise patches as background: (patches, labels)."""
-    rng = np.random.default_rng(seed)
-    bright = rng.integers(0, spread, (n_objects, 12, 12))
-    bright[:, :6] += lift
-    dull = rng.integers(0, 210, (n_background, 12, 12))
-    return (np.concatenate([bright, dull]).astype(np.uint8),
-            np.r_[np.ones(n_objects), np.zeros(n_background)])
-
-
-def _calibration_copies(clf, patches, random_state=0):
-    """The calibration copies a fit made (as PatchClassifier.fit draws them from its seed)."""
-    from detector.forest import seed_sequence
-
-    exit_ss = seed_sequence(random_state).spawn(5)[4]
-    return misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
-
-
 def test_fitted_exit_keeps_every_kept_calibration_copy():
-    patches, y = _top_bright(0, 60, 120, spread=60, lift=150)
+    patches, y = top_bright(0, 60, 120, spread=60, lift=150)
     clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
     m = clf.model_
-    cal = _calibration_copies(clf, patches)
+    cal = calibration_copies(clf, patches)
     run = m.running_scores(cal)
     # exit_recall 1.0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
@@ -216,12 +198,12 @@ def test_fitted_exit_gives_up_at_most_its_budget():
     every exit together drop at most a tenth, at every score level."""
     from detector.forest import final_score
 
-    patches, y = _top_bright(1, 80, 160, spread=90, lift=120)
+    patches, y = top_bright(1, 80, 160, spread=90, lift=120)
     for mode in ("bagged", "boosted"):
         clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
                               random_state=0).fit(patches, y)
         m = clf.model_
-        cal = _calibration_copies(clf, patches)
+        cal = calibration_copies(clf, patches)
         run = m.running_scores(cal)
         gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
         rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
@@ -337,11 +319,11 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
     scoring at least the level whose exits the scan uses (all of them below the first level)."""
     from detector.scan import Engine, ScanSettings, final_scores
 
-    patches, y = _top_bright(1, 80, 160, spread=90, lift=120)
+    patches, y = top_bright(1, 80, 160, spread=90, lift=120)
     clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
                           random_state=0).fit(patches, y)
     m = clf.model_
-    cal = _calibration_copies(clf, patches)
+    cal = calibration_copies(clf, patches)
     cols = 12
     rows = -(-len(cal) // cols)
     tiles = np.zeros((rows * cols, 12, 12), np.uint8)
