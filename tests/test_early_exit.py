@@ -288,10 +288,11 @@ def _staircase_model(levels):
 
 
 def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
-    """Direct backward pruning (Zhang and Viola, NIPS 2007): a scan at threshold c must use the
-    exits calibrated for the highest level not above c (``exit_thresholds`` below the first level),
-    at every level and between levels; with ``exit_level`` the row of that level instead. The
-    windows kept, and the trees they cost, show which row the compiled scan used."""
+    """Direct backward pruning (Zhang and Viola, NIPS 2007): exits for score level c are the row
+    calibrated for the highest level not above c (``exit_thresholds`` below the first level), at
+    every level and between levels: ``Model.exits_for(c)`` gives it, and a scan given
+    ``exit_level=c`` uses it, whether its own threshold is c or 0. The windows kept, and the
+    trees they cost, show which row the compiled scan used."""
     from detector.forest import EXIT_LEVELS
     from detector.scan import Engine, ScanSettings
 
@@ -317,11 +318,11 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
     for c in thresholds:
         row = row_of(c)
         first_exit = -np.inf if row is None else (row + 1) / 16
-        for engine, cutoff in [
-            (Engine(model, ScanSettings(threshold=c, stride=1, scale_step=2.0, overhang=0.0)), c),
-            (Engine(model, ScanSettings(threshold=0.0, stride=1, scale_step=2.0, overhang=0.0),
-                    exit_level=c), 0.0),
-        ]:
+        np.testing.assert_array_equal(model.exits_for(c), model.exit_thresholds if row is None
+                                      else model.exit_table[row])
+        for cutoff in (c, 0.0):
+            engine = Engine(model, ScanSettings(threshold=cutoff, stride=1, scale_step=2.0,
+                                                overhang=0.0), exit_level=c)
             boxes, raw, windows, trees = engine.candidates(gray)
             kept = sorted(boxes[:, 0].astype(int).tolist())
             expected = [k for k in range(16) if k / 16 >= first_exit and (k / 16 + 39) / 40 >= cutoff]
@@ -343,7 +344,8 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
     scan, are scanned with early exit (contrast gate included) at thresholds below the first exit
     level, at every level, between levels and above the last. Of the copies whose score without
     early exit reaches the threshold, at most floor((1 - 0.9) * n) are dropped, n being the copies
-    scoring at least the level whose exits the scan uses (all of them below the first level)."""
+    scoring at least the level whose exits the scan uses (``exit_level=c``: the highest level not
+    above c, all of the copies below the first level)."""
     from detector.scan import Engine, ScanSettings, final_scores
 
     patches, y = top_bright(1, 80, 160, spread=90, lift=120)
@@ -378,7 +380,7 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
     between = [(a + b) / 2 for a, b in zip(levels[:-1], levels[1:])]
     checked = 0
     for c in [0.02, *levels, *between, min(0.99, levels[-1] + 0.02)]:
-        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid)))
+        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid), exit_level=c))
         reach = {i for i in range(len(cal)) if score[i] >= c}
         dropped = reach - set(with_exit)
         row_level = max([level for level in levels if np.float32(level) <= np.float32(c)],
