@@ -1054,51 +1054,34 @@ class CocoResultIds:
     category_id: object
 
     def image_id(self, image: str):
-        """The id of a scanned image, matched by file name: the labels' ``file_name`` equal to the
-        image's name, or else the one that ends the name (or that the name ends) at a folder
-        boundary with the most folders in common, so that ``test/images/a.png`` given by itself,
-        or ``a.png`` scanned in a folder the labels call ``images/``, still find ``a.png`` or
-        ``images/a.png``.
+        """The id of a scanned image: that of the labels' image whose ``file_name`` is the name
+        the detections file gives it (relative to the folder scanned, forward slashes), the same
+        rule by which ``patchwood score`` matches detections to labels. A name that differs only
+        in its folders is not guessed at (two folders may hold different frames of the same
+        name): the error says which labelled image has that file name.
 
-        Raises :class:`InputError` (naming the labels file) when no image matches, or when two
-        match equally well.
+        Raises :class:`InputError`, naming the labels file, when no image has that name.
 
         Examples
         --------
-        >>> ids = CocoResultIds("gt.json", {"a.png": 7, "day2/a.png": 8, "images/b.png": 9}, 1)
-        >>> ids.image_id("a.png"), ids.image_id("scans/day2/a.png"), ids.image_id("b.png")
-        (7, 8, 9)
-        >>> ids.image_id("c.png")
+        >>> ids = CocoResultIds("gt.json", {"a.png": 7, "day2/a.png": 8}, 1)
+        >>> ids.image_id("a.png"), ids.image_id("day2/a.png")
+        (7, 8)
+        >>> ids.image_id("test/images/day2/a.png")
         Traceback (most recent call last):
         ...
-        detector.errors.InputError: gt.json: image 'c.png' is not among the images of this COCO labels file (matched by file name)
+        detector.errors.InputError: gt.json: image 'test/images/day2/a.png' is not among the \
+images of this COCO labels file (matched by file name; it lists 'day2/a.png': scan the folder its \
+file names are relative to)
         """
         name = image.replace("\\", "/")
         if name in self.image_ids:
             return self.image_ids[name]
-        base = posixpath.basename(name)
-        found = [fn for fn in self._by_base().get(base, ())
-                 if name.endswith("/" + fn) or fn.endswith("/" + name)]
-        if found:  # the most folders in common
-            common = [min(fn.count("/"), name.count("/")) for fn in found]
-            found = [fn for fn, c in zip(found, common) if c == max(common)]
-        if len(found) == 1:
-            return self.image_ids[found[0]]
-        if found:
-            raise InputError(f"image {image!r} matches {len(found)} images of this COCO labels "
-                             f"file ({', '.join(repr(f) for f in found[:3])}); scan the folder the "
-                             "file names are relative to", path=self.path)
+        near = [fn for fn in self.image_ids if name.endswith("/" + fn) or fn.endswith("/" + name)]
+        hint = (f"; it lists {max(near, key=len)!r}: scan the folder its file names are relative "
+                "to" if near else "")
         raise InputError(f"image {image!r} is not among the images of this COCO labels file "
-                         "(matched by file name)", path=self.path)
-
-    def _by_base(self) -> dict:
-        by_base = self.__dict__.get("_by_base_index")
-        if by_base is None:
-            by_base = {}
-            for fn in self.image_ids:
-                by_base.setdefault(posixpath.basename(fn), []).append(fn)
-            self.__dict__["_by_base_index"] = by_base
-        return by_base
+                         f"(matched by file name{hint})", path=self.path)
 
 
 def coco_result_ids(path: str | os.PathLike, label: str | None = None) -> CocoResultIds:
