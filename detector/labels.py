@@ -470,16 +470,21 @@ def _coco_annotation(entry: dict, where: str, image_of: dict, categories: dict |
     return rec
 
 
-def _coco_records(doc, path, inside_folder: bool, with_score: bool):
-    """Records (every image once, then every annotation) from a COCO dataset dictionary, the
-    image sizes it gives, the number of crowd annotations left out, and whether it names
-    categories."""
+def _check_coco_dataset(doc, path) -> None:
+    """Refuse a JSON document that is not a COCO dataset object (a results list, or no object)."""
     if isinstance(doc, list):
         raise InputError("this is a COCO results list (detections), not a labels file with "
                          "'images' and 'annotations'", path=path)
     if not isinstance(doc, dict):
         raise InputError("a COCO file must be a JSON object with 'images' and 'annotations'",
                          path=path)
+
+
+def _coco_records(doc, path, inside_folder: bool, with_score: bool):
+    """Records (every image once, then every annotation) from a COCO dataset dictionary, the
+    image sizes it gives, the number of crowd annotations left out, and whether it names
+    categories."""
+    _check_coco_dataset(doc, path)
     images = _list_of_objects(doc, "images", path)
     annotations = _list_of_objects(doc, "annotations", path)
     categories = _coco_categories(doc, path)
@@ -1107,12 +1112,7 @@ def coco_result_ids(path: str | os.PathLike, label: str | None = None) -> CocoRe
         raise InputError("image ids come from a COCO JSON labels file (with 'images' and "
                          "'annotations'), not a CSV one", path=path)
     doc = _json_document(text, path)
-    if isinstance(doc, list):
-        raise InputError("this is a COCO results list, not a labels file with 'images' and "
-                         "'annotations'", path=path)
-    if not isinstance(doc, dict):
-        raise InputError("a COCO file must be a JSON object with 'images' and 'annotations'",
-                         path=path)
+    _check_coco_dataset(doc, path)
     image_of, _, _ = _coco_images(_list_of_objects(doc, "images", path), path,
                                   inside_folder=False)
     categories = _coco_categories(doc, path)
