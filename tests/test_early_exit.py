@@ -374,11 +374,11 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
     for i, raw in everything.items():
         if i < len(cal):
             score[i] = final_scores(m, np.array([raw]))[0]
-    assert (score[:len(cal)] >= 0).sum() > 0.9 * len(cal)
+    assert (score >= 0).sum() > 0.9 * len(cal)
     levels = m.exit_levels.astype(float).tolist()
     assert len(levels) >= 3
     between = [(a + b) / 2 for a, b in zip(levels[:-1], levels[1:])]
-    checked = 0
+    given_up = 0
     for c in [0.02, *levels, *between, min(0.99, levels[-1] + 0.02)]:
         with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid), exit_level=c))
         reach = {i for i in range(len(cal)) if score[i] >= c}
@@ -387,5 +387,5 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
                         default=0.0)
         n = int((score >= np.float32(row_level)).sum())
         assert len(dropped) <= int(np.floor(0.1 * n + 1e-9)), (mode, c, len(dropped), n)
-        checked += len(reach)
-    assert checked > 0
+        given_up += len(dropped)
+    assert given_up > 0  # the exits do spend their budget here: the bound is not idle

@@ -11,6 +11,8 @@ boosted sum ``F`` without the project's flat export, and the scan's scores must 
 
 from __future__ import annotations
 
+import inspect
+
 import numpy as np
 import pytest
 from sklearn.linear_model import LogisticRegression
@@ -23,12 +25,18 @@ from detector.scan import Engine, ScanSettings
 from shared import calibration_copies, top_bright
 
 
+#: No penalty: ``C=inf`` where scikit-learn has deprecated ``penalty`` (1.8 on), else
+#: ``penalty=None`` (1.2 to 1.7).
+UNPENALISED = (dict(C=np.inf) if inspect.signature(LogisticRegression).parameters["penalty"].default
+               == "deprecated" else dict(penalty=None))
+
+
 def sklearn_temperature(object_totals, background_totals, class_weight="balanced") -> float:
     """1 / w of scikit-learn's unpenalised logistic regression of the class on 2F, no intercept."""
     x = 2.0 * np.r_[object_totals, background_totals][:, None]
     y = np.r_[np.ones(len(object_totals)), np.zeros(len(background_totals))]
-    fit = LogisticRegression(C=np.inf, class_weight=class_weight, fit_intercept=False,
-                             tol=1e-12, max_iter=100_000).fit(x, y)
+    fit = LogisticRegression(class_weight=class_weight, fit_intercept=False, tol=1e-12,
+                             max_iter=100_000, **UNPENALISED).fit(x, y)
     return 1.0 / float(fit.coef_[0, 0])
 
 
