@@ -40,7 +40,7 @@ def scan(
     DETECTIONS.failures.csv, and the run goes on.
 
     Exit status: 0 when the run finished, even with some files listed as failures; 1 when no
-    image could be read, or for bad input (model, paths, --out); 2 for a usage error."""
+    image could be read, or for bad input (model, paths, --out, --labels); 2 for a usage error."""
     if format not in FORMATS:
         raise typer.BadParameter(f"--format must be {', '.join(FORMATS[:-1])} or {FORMATS[-1]}, "
                                  f"got {format!r}")
