@@ -8,15 +8,17 @@ from typing import List, Optional
 import typer
 
 from cli.common import echo, human_path, progress_bar
-from detector.batch import scan_paths
+from detector.batch import FORMATS, scan_paths
 from detector.scan import ScanSettings
 
 
 def scan(
     model: Path = typer.Argument(..., help="Model file from `patchwood train`."),
     paths: List[Path] = typer.Argument(..., help="Image files and folders (searched recursively for png, jpg, jpeg, bmp, tif, tiff)."),
-    out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco."),
-    format: str = typer.Option("csv", "--format", help="csv or coco."),
+    out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco or coco-results."),
+    format: str = typer.Option("csv", "--format", help="csv; coco (a COCO JSON object: the images scanned and the detections as scored annotations); or coco-results (the COCO results list, [{image_id, category_id, bbox, score}, ...], that pycocotools' COCO.loadRes and COCOeval read; image ids from --labels)."),
+    labels: Optional[Path] = typer.Option(None, "--labels", help="With --format coco-results: the COCO labels file (JSON) the results are for; its image ids, matched by file name, and its category id are written (without it, images are numbered 1, 2, ... in the order written)."),
+    label: Optional[str] = typer.Option(None, "--label", help="With --labels: the category the detections are for, when the labels file has several."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales."),
     stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows in pixels at the window's own size; it grows with the scale."),
     min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, pixels (default: the smallest labelled object in training, less a quarter). Smaller than the window enlarges the image."),
@@ -38,9 +40,14 @@ def scan(
     DETECTIONS.failures.csv, and the run goes on.
 
     Exit status: 0 when the run finished, even with some files listed as failures; 1 when no
-    image could be read, or for bad input (model, paths, --out); 2 for a usage error."""
-    if format not in ("csv", "coco"):
-        raise typer.BadParameter(f"--format must be csv or coco, got {format!r}")
+    image could be read, or for bad input (model, paths, --out, --labels); 2 for a usage error."""
+    if format not in FORMATS:
+        raise typer.BadParameter(f"--format must be {', '.join(FORMATS[:-1])} or {FORMATS[-1]}, "
+                                 f"got {format!r}")
+    if labels is not None and format != "coco-results":
+        raise typer.BadParameter("--labels gives image ids to --format coco-results only")
+    if label is not None and labels is None:
+        raise typer.BadParameter("--label chooses a category of the --labels file; give that file")
     if min_object and max_object and min_object > max_object:
         raise typer.BadParameter("--min-object is larger than --max-object")
     if threshold_from is not None:
@@ -59,9 +66,12 @@ def scan(
         echo(note)
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
-                       resume=resume, force=force, draw_dir=draw, fmt=format, progress=update)
+                       resume=resume, force=force, draw_dir=draw, fmt=format, labels=labels,
+                       label=label, progress=update)
     echo(f"images scanned: {s.images}" + (f" (+{s.resumed} kept from the earlier run)" if s.resumed else ""))
     echo(f"detections: {s.detections} at score >= {threshold:g}")
+    if labels is not None:
+        echo(f"image ids: from {human_path(labels)}")
     echo(f"failures: {len(s.failures)}" + (f" (listed in {human_path(s.failures_file)})" if s.failures else ""))
     for image, reason in s.failures[:10]:
         echo(f"  {image}: {reason}")

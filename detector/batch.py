@@ -22,7 +22,8 @@ import numpy as np
 
 from detector.errors import InputError
 from detector.images import header_size, list_images, max_pixels_limit, read_gray
-from detector.labels import (ImageDetections, read_detections, write_detections_coco,
+from detector.labels import (ImageDetections, coco_result_ids, read_detections,
+                             write_detections_coco, write_detections_coco_results,
                              write_detections_csv)
 from detector.model import Model, load_model
 from detector.scan import Engine, ScanSettings
@@ -232,11 +233,21 @@ def _check_draw_targets(draw_dir, inputs, names, replace: bool) -> None:
                              "drawings", path=target)
 
 
-def _write(out, fmt, results: list[ImageResult]):
+#: The detections file formats :func:`scan_paths` writes.
+FORMATS = ("csv", "coco", "coco-results")
+
+
+def _write(out, fmt, results: list[ImageResult], result_ids=None):
     # 1/100 pixel and 6 digits of score are plenty, and keep the file readable
     items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, 6)) for r in results]
     if fmt == "coco":
         write_detections_coco(out, items)
+    elif fmt == "coco-results":
+        if result_ids is None:
+            write_detections_coco_results(out, items)
+        else:
+            write_detections_coco_results(out, items, {r.image: result_ids.image_id(r.image)
+                                                       for r in results}, result_ids.category_id)
     else:
         write_detections_csv(out, items)
 
@@ -283,8 +294,9 @@ def _check_unique_names(listed) -> None:
 
 def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
                cluster: str | None = None, resume: bool = False, force: bool = False,
-               draw_dir=None, fmt: str = "csv", batch_images: int = 16, batch_seconds: float = 2.0,
-               progress=None, on_image=None) -> RunSummary:
+               draw_dir=None, fmt: str = "csv", labels=None, label: str | None = None,
+               batch_images: int = 16, batch_seconds: float = 2.0, progress=None,
+               on_image=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
 
     Image names in the output follow :func:`detector.images.list_images`: relative to the folder
@@ -300,7 +312,9 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     paths : list of paths
         Image files and folders (searched recursively).
     out : path
-        Detections file (CSV contract, or COCO JSON with ``fmt="coco"``).
+        Detections file: the CSV contract; with ``fmt="coco"`` a COCO JSON object (images and
+        scored annotations); with ``fmt="coco-results"`` the COCO results list that pycocotools'
+        ``COCO.loadRes`` reads (see :func:`detector.labels.write_detections_coco_results`).
     settings : ScanSettings
     jobs : int
         Worker processes on this machine.
@@ -313,7 +327,13 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     draw_dir : path, optional
         Write annotated copies here (never inside an input folder; existing files are replaced
         only with ``force`` or ``resume``).
-    fmt : {"csv", "coco"}
+    fmt : {"csv", "coco", "coco-results"}
+    labels : path, optional
+        Only with ``fmt="coco-results"``: the COCO labels file whose image ids (matched by file
+        name, :meth:`detector.labels.CocoResultIds.image_id`) and category id the results use;
+        without it images are numbered 1..N in the order written.
+    label : str, optional
+        The category of ``labels`` the detections are for, when it has several.
     batch_images, batch_seconds : int, float
         How often the output is rewritten (see above).
     progress : callable(done, total), optional
@@ -331,12 +351,15 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     InputError
         Before any image is scanned: a bad model file, an existing ``out`` without ``force`` or
         ``resume``, a missing input path, no image files among the inputs, two inputs with the
-        same image name, a drawing folder among the inputs, or a bad ``PATCHWOOD_MAX_MEGAPIXELS``.
+        same image name, a drawing folder among the inputs, a bad ``PATCHWOOD_MAX_MEGAPIXELS``,
+        or a ``labels`` file that is not COCO JSON or lacks one of the images.
     """
     settings = settings or ScanSettings()
     out = Path(out)
-    if fmt not in ("csv", "coco"):
-        raise InputError(f"unknown output format {fmt!r} (csv or coco)")
+    if fmt not in FORMATS:
+        raise InputError(f"unknown output format {fmt!r} ({', '.join(FORMATS)})")
+    if (labels is not None or label is not None) and fmt != "coco-results":
+        raise InputError("a labels file gives image ids to the coco-results format only")
     limit = max_pixels_limit()  # a bad PATCHWOOD_MAX_MEGAPIXELS stops the run, not every image
     model = load_model(model_path)
     if out.is_dir():
@@ -358,10 +381,17 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         raise InputError("no image files to scan (png, jpg, jpeg, bmp, tif, tiff)" + others,
                          path=where)
     _check_unique_names(listed)
+    result_ids = None
+    if label is not None and labels is None:
+        raise InputError("a category name (--label) needs the COCO labels file it is in (--labels)")
+    if labels is not None:
+        result_ids = coco_result_ids(labels, label)
+        for _, name in listed:  # every image needs its id before any is scanned
+            result_ids.image_id(name)
     summary = RunSummary(skipped_files=skipped, out=str(out))
     done: list[ImageResult] = []
     if resume and out.exists():
-        if fmt == "coco":
+        if fmt != "csv":
             raise InputError("--resume continues CSV output only", path=out)
         for d in read_detections(out):
             done.append(ImageResult(d.image, d.boxes, d.scores))
@@ -378,7 +408,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
 
     def write_now():
         t0 = time.perf_counter()
-        _write(out, fmt, results)
+        _write(out, fmt, results, result_ids)
         now = time.perf_counter()
         state.update(pending=0, last_write=now, write_cost=now - t0)
 

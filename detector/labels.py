@@ -11,8 +11,9 @@ Readers
 
 Writers
 -------
-:func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv` and
-:func:`write_detections_coco`. Each writes to a temporary file beside the target and renames it
+:func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv`,
+:func:`write_detections_coco` and :func:`write_detections_coco_results` (the COCO results list,
+with the image and category ids of a COCO labels file: :func:`coco_result_ids`). Each writes to a temporary file beside the target and renames it
 into place, so an interrupted run never leaves a half-written file.
 
 Every problem in a file raises :class:`detector.errors.InputError` with a one-line message that
@@ -469,16 +470,21 @@ def _coco_annotation(entry: dict, where: str, image_of: dict, categories: dict |
     return rec
 
 
-def _coco_records(doc, path, inside_folder: bool, with_score: bool):
-    """Records (every image once, then every annotation) from a COCO dataset dictionary, the
-    image sizes it gives, the number of crowd annotations left out, and whether it names
-    categories."""
+def _check_coco_dataset(doc, path) -> None:
+    """Refuse a JSON document that is not a COCO dataset object (a results list, or no object)."""
     if isinstance(doc, list):
         raise InputError("this is a COCO results list (detections), not a labels file with "
                          "'images' and 'annotations'", path=path)
     if not isinstance(doc, dict):
         raise InputError("a COCO file must be a JSON object with 'images' and 'annotations'",
                          path=path)
+
+
+def _coco_records(doc, path, inside_folder: bool, with_score: bool):
+    """Records (every image once, then every annotation) from a COCO dataset dictionary, the
+    image sizes it gives, the number of crowd annotations left out, and whether it names
+    categories."""
+    _check_coco_dataset(doc, path)
     images = _list_of_objects(doc, "images", path)
     annotations = _list_of_objects(doc, "annotations", path)
     categories = _coco_categories(doc, path)
@@ -1027,4 +1033,141 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
            "categories": [{"id": 1, "name": category}]}
     with _replacing(path, newline=None) as fh:
         json.dump(doc, fh, ensure_ascii=False)
+        fh.write("\n")
+
+
+# ----------------------------------------------------------------------------------------------
+# the COCO results list
+
+
+@dataclass
+class CocoResultIds:
+    """The ids a COCO results list uses for a COCO labels file (see :func:`coco_result_ids`).
+
+    Attributes
+    ----------
+    path : str
+        The labels file.
+    image_ids : dict of str to int or str
+        The id of every image of the labels file, by its ``file_name`` (forward slashes).
+    category_id : int or str
+        The category the detections are written under.
+    """
+
+    path: str
+    image_ids: dict
+    category_id: object
+
+    def image_id(self, image: str):
+        """The id of a scanned image: that of the labels' image whose ``file_name`` is the name
+        the detections file gives it (relative to the folder scanned, forward slashes), the same
+        rule by which ``patchwood score`` matches detections to labels. A name that differs only
+        in its folders is not guessed at (two folders may hold different frames of the same
+        name): the error says which labelled image has that file name.
+
+        Raises :class:`InputError`, naming the labels file, when no image has that name.
+
+        Examples
+        --------
+        >>> ids = CocoResultIds("gt.json", {"a.png": 7, "day2/a.png": 8}, 1)
+        >>> ids.image_id("a.png"), ids.image_id("day2/a.png")
+        (7, 8)
+        >>> ids.image_id("test/images/day2/a.png")
+        Traceback (most recent call last):
+        ...
+        detector.errors.InputError: gt.json: image 'test/images/day2/a.png' is not among the \
+images of this COCO labels file (matched by file name; it lists 'day2/a.png': scan the folder its \
+file names are relative to)
+        """
+        name = image.replace("\\", "/")
+        if name in self.image_ids:
+            return self.image_ids[name]
+        near = [fn for fn in self.image_ids if name.endswith("/" + fn) or fn.endswith("/" + name)]
+        hint = (f"; it lists {max(near, key=len)!r}: scan the folder its file names are relative "
+                "to" if near else "")
+        raise InputError(f"image {image!r} is not among the images of this COCO labels file "
+                         f"(matched by file name{hint})", path=self.path)
+
+
+def coco_result_ids(path: str | os.PathLike, label: str | None = None) -> CocoResultIds:
+    """The image ids and the category id that detections written for a COCO labels file use.
+
+    A COCO results list (what pycocotools' ``COCO.loadRes`` reads) names images and categories
+    only by the ids of the labels file it is evaluated against, so those are taken from it: every
+    image's ``id`` by ``file_name``, and the id of its one category, or of the category named
+    ``label`` when it has several. A file without ``categories`` gets category id 1.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "gt.json"
+    >>> _ = path.write_text('{"images": [{"id": 42, "file_name": "a.png"}], "annotations": [],'
+    ...                     ' "categories": [{"id": 3, "name": "nut"}]}')
+    >>> ids = coco_result_ids(path)
+    >>> ids.image_ids, ids.category_id
+    ({'a.png': 42}, 3)
+    """
+    text = _read_text(path)
+    if not _looks_like_json(path, text):
+        raise InputError("image ids come from a COCO JSON labels file (with 'images' and "
+                         "'annotations'), not a CSV one", path=path)
+    doc = _json_document(text, path)
+    _check_coco_dataset(doc, path)
+    image_of, _, _ = _coco_images(_list_of_objects(doc, "images", path), path,
+                                  inside_folder=False)
+    categories = _coco_categories(doc, path)
+    if not categories:
+        if label is not None:
+            raise InputError(f"no category named {label!r}: the file lists no categories",
+                             path=path)
+        category = 1
+    elif label is not None:
+        named = [cid for cid, name in categories.items() if name == label.strip()]
+        if not named:
+            raise InputError(f"no category named {label!r} (the file has "
+                             f"{', '.join(repr(n) for n in categories.values())})", path=path)
+        category = named[0]
+    elif len(categories) == 1:
+        category = next(iter(categories))
+    else:
+        raise InputError(f"the file has {len(categories)} categories "
+                         f"({', '.join(repr(n) for n in list(categories.values())[:5])}); choose "
+                         "the one the detections are for with --label NAME", path=path)
+    return CocoResultIds(os.fspath(path), {name: image_id for image_id, name in image_of.items()},
+                         category)
+
+
+def write_detections_coco_results(path: str | os.PathLike, items: list[ImageDetections],
+                                  image_ids: dict | None = None, category_id=1) -> None:
+    """Write detections as a COCO results list: ``[{"image_id", "category_id", "bbox",
+    "score"}, ...]``, the format pycocotools' ``COCO.loadRes`` and ``COCOeval`` read (Lin et al.,
+    2014), images in the order given, each image's detections by descending score.
+
+    The list names images only by id: pass the ids of the COCO labels file the results will be
+    scored against (:func:`coco_result_ids`); without them the images are numbered 1..N in the
+    order given, as :func:`write_detections_coco` numbers them. Images without detections leave
+    no trace in a results list.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "results.json"
+    >>> write_detections_coco_results(path, [ImageDetections("a.png", [[1, 2, 3, 4]], [0.5]),
+    ...                                      ImageDetections("b.png")], {"a.png": 42, "b.png": 7}, 3)
+    >>> print(path.read_text(), end="")
+    [{"image_id": 42, "category_id": 3, "bbox": [1.0, 2.0, 3.0, 4.0], "score": 0.5}]
+    """
+    results = []
+    for k, (image, boxes, scores) in enumerate(_merged_detections(items)):
+        if image_ids is None:
+            image_id = k + 1
+        elif image in image_ids:
+            image_id = image_ids[image]
+        else:
+            raise InputError(f"image {image!r} has no id in image_ids", path=path)
+        for box, score in zip(boxes, scores):
+            results.append({"image_id": image_id, "category_id": category_id,
+                            "bbox": _bbox(box)[0], "score": float(score)})
+    with _replacing(path, newline=None) as fh:
+        json.dump(results, fh, ensure_ascii=False)
         fh.write("\n")

@@ -150,6 +150,32 @@ def test_nms_ties_lower_index_first():
     assert nms(boxes[::-1], [0.5, 0.5, 0.5], 0.3).tolist() == [0, 1]
 
 
+@pytest.mark.parametrize("seed", range(4))
+def test_nms_many_ties_equal_opencv(seed):
+    """Hundreds of boxes sharing four score values: equal scores must be visited lower index
+    first. OpenCV's ``cv2.dnn.NMSBoxes`` sorts the scores with ``std::stable_sort`` (its
+    ``GetMaxScoreIndex``), so it is the reference for the order of ties. A handful of tied boxes
+    cannot tell a stable sort from numpy's quicksort (below 17 elements it is an insertion sort,
+    which keeps ties in order), so the set is large and clustered: most boxes overlap a tied
+    neighbour, and which of the two is kept depends on the order."""
+    rng = np.random.default_rng(seed)
+    n = 240
+    boxes = random_boxes(rng, n)
+    scores = rng.integers(1, 5, n) / 4.0  # 0.25, 0.5, 0.75, 1.0: exact in float32 as well
+    ov = iou(boxes, boxes)
+    # OpenCV rounds the overlap to float32: no pair within 1e-6 of the threshold (none in these sets)
+    assert not (np.abs(ov - 0.3) < 1e-6)[~np.eye(n, dtype=bool)].any()
+    kept = nms(boxes, scores, 0.3).tolist()
+    assert kept == opencv_nms(boxes, scores, 0.3)
+    # the same rule written out: descending score, ties by index, keep while IoU <= 0.3
+    order = sorted(range(n), key=lambda i: (-scores[i], i))
+    expected = []
+    for i in order:
+        if all(ov[i, j] <= 0.3 for j in expected):
+            expected.append(i)
+    assert kept == expected
+
+
 def test_nms_edges():
     out = nms(np.zeros((0, 4)), np.zeros(0))
     assert out.dtype == np.int64 and out.shape == (0,)

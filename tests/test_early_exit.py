@@ -8,6 +8,8 @@ from detector.classifier import PatchClassifier, misaligned_copies
 from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
                              exit_kept, float32_thresholds, kept_objects,
                              order_for_early_exit, trees_evaluated)
+from detector.model import Model
+from shared import calibration_copies, top_bright
 
 
 def _dropped_after_first(o, b, t, exit_recall=1.0):
@@ -31,17 +33,24 @@ def test_order_is_a_permutation_and_first_tree_drops_most(t, n_obj, n_bg, seed):
 @settings(max_examples=30, deadline=None)
 @given(st.integers(2, 8), st.integers(0, 2**31 - 1))
 def test_reordering_keeps_scores_and_never_costs_trees_on_first_exit(t, seed):
+    """Leaves on a grid of eighths (exact in float32, so the exits calibrate_exit rounds down to
+    float32 are the float64 minima the greedy order works with)."""
     rng = np.random.default_rng(seed)
-    o = rng.random((20, t))
-    b = rng.random((50, t)) * 0.8
+    o = rng.integers(0, 9, (20, t)) / 8
+    b = rng.integers(0, 7, (50, t)) / 8
     order = order_for_early_exit(o, b, exit_recall=1.0)
     # the final score is a sum: any order gives the same totals
     np.testing.assert_allclose(o[:, order].sum(axis=1), o.sum(axis=1))
-    # with exit thresholds calibrated for each order, no kept object is ever dropped
-    for perm in (np.arange(t), order):
+    trees = {}
+    for name, perm in (("given", np.arange(t)), ("greedy", order)):
         run_o = np.cumsum(o[:, perm], axis=1)
         thr = calibrate_exit(run_o, 1.0)
+        # with exit thresholds calibrated for each order, no kept object is ever dropped
         assert (trees_evaluated(run_o, thr) == t).all()
+        trees[name] = trees_evaluated(np.cumsum(b[:, perm], axis=1), thr)
+    # the cost: background windows that go on past the first exit (each costs a second tree and
+    # more) are never more with the greedy order than with the trees in their given order
+    assert (trees["greedy"] > 1).sum() <= (trees["given"] > 1).sum()
 
 
 def test_hand_worked_order():
@@ -55,45 +64,46 @@ def test_hand_worked_order():
 def test_misaligned_copies_follow_crop_region():
     from detector.harvest import crop_region
 
+    # crop_region itself: scale 1 and a whole-pixel shift reduce to an edge-padded slice
+    # (reference: numpy edge padding)
     rng = np.random.default_rng(3)
     p = rng.integers(0, 256, (2, 10, 12), dtype=np.uint8)
-    copies = misaligned_copies(p, shift=1.0, scale=1.0, copies=5, random_state=7).reshape(2, 6, 10, 12)
-    np.testing.assert_array_equal(copies[:, 0], p)  # the patch itself first
-    # scale 1 and a whole-pixel shift reduce to an edge-padded slice (reference: numpy edge padding)
     padded = np.pad(p[0], 1, mode="edge")
     np.testing.assert_array_equal(crop_region(p[0], (6.0 + 1, 5.0 - 1), (12, 10), (12, 10)),
                                   padded[0:10, 2:14])
-    # every copy is some shift of at most 1 pixel: its mean stays within the border's reach
-    assert np.all(np.abs(copies.reshape(12, -1).mean(axis=1) - np.repeat(p.reshape(2, -1).mean(axis=1), 6)) < 30)
+    # smooth patches (a 1-pixel shift keeps them alike), each with its own pattern
+    yy, xx = np.mgrid[:10, :12]
+    phases = rng.uniform(0, 2 * np.pi, (4, 2))
+    p = np.stack([128 + 100 * np.sin(xx / 2.5 + a) * np.cos(yy / 3.0 + b) for a, b in phases])
+    p = p.astype(np.uint8)
+    copies = misaligned_copies(p, shift=1.0, scale=1.1, copies=5, random_state=7).reshape(4, 6, 10, 12)
+    np.testing.assert_array_equal(copies[:, 0], p)  # the patch itself first
+    # every copy is crop_region of its own patch around a centre moved by dx, dy (uniform in
+    # [-1, 1]) at a size scaled by k (log-uniform in [1 / 1.1, 1.1]), drawn patch by patch in
+    # that order from the seed
+    draws = np.random.default_rng(7)
+    for i in range(4):
+        dx, dy = draws.uniform(-1, 1, 5), draws.uniform(-1, 1, 5)
+        k = np.exp(draws.uniform(-np.log(1.1), np.log(1.1), 5))
+        for j in range(5):
+            np.testing.assert_array_equal(
+                copies[i, j + 1], crop_region(p[i], (6 + dx[j], 5 + dy[j]), (12 * k[j], 10 * k[j]),
+                                              (12, 10)))
+    # ... and so looks like its own patch far more than like the others (correlation of pixels)
+    corr = np.corrcoef(np.concatenate([p.reshape(4, -1), copies[:, 1:].reshape(20, -1)]))[4:, :4]
+    own = corr[np.arange(20), np.repeat(np.arange(4), 5)]
+    others = np.where(np.arange(4)[None, :] == np.repeat(np.arange(4), 5)[:, None], -1, corr)
+    assert (own > 0.8).all() and (own > others.max(axis=1) + 0.1).all()
     # seeded: the same copies again
     np.testing.assert_array_equal(misaligned_copies(p, 1.0, 1.1, 5, random_state=7),
                                   misaligned_copies(p, 1.0, 1.1, 5, random_state=7))
 
 
-def _top_bright(seed, n_objects, n_background, spread, lift):
-    """12 x 12 object patches whose top half is ``lift`` brighter than noise of ``spread`` grey
-    levels, and plain noise patches as background: (patches, labels)."""
-    rng = np.random.default_rng(seed)
-    bright = rng.integers(0, spread, (n_objects, 12, 12))
-    bright[:, :6] += lift
-    dull = rng.integers(0, 210, (n_background, 12, 12))
-    return (np.concatenate([bright, dull]).astype(np.uint8),
-            np.r_[np.ones(n_objects), np.zeros(n_background)])
-
-
-def _calibration_copies(clf, patches, random_state=0):
-    """The calibration copies a fit made (as PatchClassifier.fit draws them from its seed)."""
-    from detector.forest import seed_sequence
-
-    exit_ss = seed_sequence(random_state).spawn(5)[4]
-    return misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)
-
-
 def test_fitted_exit_keeps_every_kept_calibration_copy():
-    patches, y = _top_bright(0, 60, 120, spread=60, lift=150)
+    patches, y = top_bright(0, 60, 120, spread=60, lift=150)
     clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
     m = clf.model_
-    cal = _calibration_copies(clf, patches)
+    cal = calibration_copies(clf, patches)
     run = m.running_scores(cal)
     # exit_recall 1.0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
@@ -215,12 +225,12 @@ def test_fitted_exit_gives_up_at_most_its_budget():
     every exit together drop at most a tenth, at every score level."""
     from detector.forest import final_score
 
-    patches, y = _top_bright(1, 80, 160, spread=90, lift=120)
+    patches, y = top_bright(1, 80, 160, spread=90, lift=120)
     for mode in ("bagged", "boosted"):
         clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
                               random_state=0).fit(patches, y)
         m = clf.model_
-        cal = _calibration_copies(clf, patches)
+        cal = calibration_copies(clf, patches)
         run = m.running_scores(cal)
         gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
         rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
@@ -244,3 +254,138 @@ def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed)
     b = rng.integers(-3, 2, (n_bg, t)) * 0.25
     np.testing.assert_array_equal(order_for_early_exit(o, b, exit_recall),
                                   _order_for_early_exit_numpy(o, b, exit_recall))
+
+
+# ------------------------------------------------------------------ the scan's exit row
+
+def _staircase_model(levels):
+    """A hand-built model whose first tree sorts windows into 16 steps and whose exit table gives
+    every score level its own first exit, so that the windows a scan keeps name the row it used.
+
+    Window 1 x 2 pixels, one raw feature: bottom pixel minus top pixel. Tree 0 (depth 4) is a
+    staircase on it: leaf k (value k / 16) holds the differences in (10k - 9.5, 10k + 0.5], leaf 0
+    everything up to 0.5 and leaf 15 everything above 140.5. Trees 1..39 give every window 1.0, so a
+    window's final score is (k / 16 + 39) / 40 >= 0.975: it clears every threshold up to 0.975 and
+    only the exits can drop it. Exit rows: ``exit_thresholds`` never exits; row l of
+    ``exit_table`` (level ``levels[l]``) drops, after tree 0, the windows below step l + 1."""
+    depth, n_trees = 4, 40
+    nodes = 2**depth - 1
+    steps = [10.0 * k + 0.5 for k in range(15)]
+    node_thresholds = np.zeros((n_trees, nodes), np.float32)
+    for i in range(nodes):  # heap order: node i at level d, j-th from the left, splits its 2**(4-d)
+        d = (i + 1).bit_length() - 1  # leaves in the middle
+        j = i - (2**d - 1)
+        span = 2 ** (depth - d)
+        node_thresholds[0, i] = steps[j * span + span // 2 - 1]
+    leaf_values = np.ones((n_trees, nodes + 1), np.float32)
+    leaf_values[0] = np.arange(16) / 16
+    table = np.full((len(levels), n_trees), -np.inf, np.float32)
+    table[:, 0] = (np.arange(len(levels)) + 1) / 16
+    feature = np.array([[[0, 0, 1, 1, -1], [0, 1, 1, 1, 1], [0] * 5, [0] * 5]], np.int32)
+    return Model((1, 2), feature, np.zeros((n_trees, nodes), np.int32), node_thresholds,
+                 leaf_values, np.full(n_trees, -np.inf, np.float32), "bagged", normalize=False,
+                 exit_levels=levels, exit_table=table)
+
+
+def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
+    """Direct backward pruning (Zhang and Viola, NIPS 2007): exits for score level c are the row
+    calibrated for the highest level not above c (``exit_thresholds`` below the first level), at
+    every level and between levels: ``Model.exits_for(c)`` gives it, and a scan given
+    ``exit_level=c`` uses it, whether its own threshold is c or 0. The windows kept, and the
+    trees they cost, show which row the compiled scan used."""
+    from detector.forest import EXIT_LEVELS
+    from detector.scan import Engine, ScanSettings
+
+    levels = np.array(EXIT_LEVELS, np.float32)
+    model = _staircase_model(levels)
+    # a 16 x 2 frame: column k is 0 over 10k (150 in the last column), so window k is on step k
+    gray = np.zeros((2, 16), np.uint8)
+    gray[1] = [10 * k for k in range(15)] + [150]
+    # hand check of the staircase: the no-exit scores are (k / 16 + 39) / 40 for window k
+    plain = Engine(model, ScanSettings(threshold=0.0, early_exit=False, stride=1, scale_step=2.0,
+                                       overhang=0.0))
+    boxes, raw, windows, _ = plain.candidates(gray)
+    assert windows == 16 and boxes[:, 2:].tolist() == [[1.0, 2.0]] * 16
+    assert dict(zip(boxes[:, 0].astype(int).tolist(), raw.tolist())) == \
+        {k: k / 16 + 39 for k in range(16)}
+
+    def row_of(c):  # the highest level not above c (compared in float32, as the levels are stored)
+        rows = [r for r, level in enumerate(levels) if level <= np.float32(c)]
+        return rows[-1] if rows else None
+
+    between = [(a + b) / 2 for a, b in zip(levels[:-1].astype(float), levels[1:].astype(float))]
+    thresholds = [0.0, 0.03, *levels.astype(float).tolist(), *between, 0.97]
+    for c in thresholds:
+        row = row_of(c)
+        first_exit = -np.inf if row is None else (row + 1) / 16
+        np.testing.assert_array_equal(model.exits_for(c), model.exit_thresholds if row is None
+                                      else model.exit_table[row])
+        for cutoff in (c, 0.0):
+            engine = Engine(model, ScanSettings(threshold=cutoff, stride=1, scale_step=2.0,
+                                                overhang=0.0), exit_level=c)
+            boxes, raw, windows, trees = engine.candidates(gray)
+            kept = sorted(boxes[:, 0].astype(int).tolist())
+            expected = [k for k in range(16) if k / 16 >= first_exit and (k / 16 + 39) / 40 >= cutoff]
+            assert kept == expected, (c, row)
+            # a window dropped by the first exit costs 1 tree, any other all 40 (none of the
+            # windows dropped here could have been dropped for its score: 39 / 40 >= 0.975)
+            dropped = sum(1 for k in range(16) if k / 16 < first_exit)
+            assert trees == dropped + 40 * (16 - dropped), (c, row)
+    # without early exit no row is used, whatever the threshold
+    boxes, _, _, trees = Engine(model, ScanSettings(threshold=0.5, early_exit=False, stride=1,
+                                                    scale_step=2.0, overhang=0.0)).candidates(gray)
+    assert len(boxes) == 16 and trees == 16 * 40
+
+
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshold(mode):
+    """The promise of ``exit_recall``, kept by the compiled scan itself: the calibration copies
+    (9 per held-out object), laid side by side in one frame so that each is one window of the
+    scan, are scanned with early exit (contrast gate included) at thresholds below the first exit
+    level, at every level, between levels and above the last. Of the copies whose score without
+    early exit reaches the threshold, at most floor((1 - 0.9) * n) are dropped, n being the copies
+    scoring at least the level whose exits the scan uses (``exit_level=c``: the highest level not
+    above c, all of the copies below the first level)."""
+    from detector.scan import Engine, ScanSettings, final_scores
+
+    patches, y = top_bright(1, 80, 160, spread=90, lift=120)
+    clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
+                          random_state=0).fit(patches, y)
+    m = clf.model_
+    cal = calibration_copies(clf, patches)
+    cols = 12
+    rows = -(-len(cal) // cols)
+    tiles = np.zeros((rows * cols, 12, 12), np.uint8)
+    tiles[:len(cal)] = cal
+    # frame of rows x cols tiles of 12 x 12; at stride 12 and scale 1 each window is one tile
+    gray = tiles.reshape(rows, cols, 12, 12).transpose(0, 2, 1, 3).reshape(rows * 12, cols * 12)
+    grid = dict(stride=12.0, max_object=12.0, overhang=0.0, nms_iou=1.0)
+
+    def kept_tiles(engine):
+        boxes, raw, windows, _ = engine.candidates(gray)
+        assert windows == rows * cols and (boxes[:, 2:] == 12).all()
+        index = (boxes[:, 1] // 12 * cols + boxes[:, 0] // 12).astype(int)
+        return dict(zip(index.tolist(), raw.tolist()))
+
+    everything = kept_tiles(Engine(m, ScanSettings(threshold=0.0, early_exit=False, **grid)))
+    if mode == "bagged":  # threshold 0 is the raw cutoff 0: no window is dropped
+        assert len(everything) == rows * cols
+    score = np.full(len(cal), -1.0)  # tiles past the last copy are not calibration objects
+    for i, raw in everything.items():
+        if i < len(cal):
+            score[i] = final_scores(m, np.array([raw]))[0]
+    assert (score >= 0).sum() > 0.9 * len(cal)
+    levels = m.exit_levels.astype(float).tolist()
+    assert len(levels) >= 3
+    between = [(a + b) / 2 for a, b in zip(levels[:-1], levels[1:])]
+    given_up = 0
+    for c in [0.02, *levels, *between, min(0.99, levels[-1] + 0.02)]:
+        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid), exit_level=c))
+        reach = {i for i in range(len(cal)) if score[i] >= c}
+        dropped = reach - set(with_exit)
+        row_level = max([level for level in levels if np.float32(level) <= np.float32(c)],
+                        default=0.0)
+        n = int((score >= np.float32(row_level)).sum())
+        assert len(dropped) <= int(np.floor(0.1 * n + 1e-9)), (mode, c, len(dropped), n)
+        given_up += len(dropped)
+    assert given_up > 0  # the exits do spend their budget here: the bound is not idle

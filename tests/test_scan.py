@@ -517,3 +517,160 @@ def test_scan_gives_the_same_with_float64_sums(bagged, monkeypatch):
     np.testing.assert_array_equal(got[0], want[0])
     np.testing.assert_array_equal(got[1], want[1])
     assert got[2:] == want[2:]
+
+
+# ------------------------------------------------------------------ non-integer scales, slowly
+
+REFERENCE_WINDOW = (20, 16)
+#: Hand-picked features of a 20 x 16 window (x, y, width, height, weight): odd sizes, a column one
+#: pixel wide, three and four rectangles, two single pixels that do not touch; at scales 1.2**k their
+#: rounded corners give rectangles whose pixel counts are far from scale**2 times the area.
+REFERENCE_FEATURES = np.array([
+    [[3, 2, 5, 7, -1], [8, 2, 5, 7, 1], [0] * 5, [0] * 5],
+    [[9, 1, 1, 6, -1], [9, 7, 1, 6, 1], [0] * 5, [0] * 5],
+    [[1, 5, 3, 4, -1], [4, 5, 3, 4, 1], [7, 5, 3, 4, -1], [0] * 5],
+    [[11, 3, 4, 5, -1], [15, 3, 4, 5, 1], [15, 8, 4, 5, -1], [11, 8, 4, 5, 1]],
+    [[0, 0, 20, 8, -1], [0, 8, 20, 8, 1], [0] * 5, [0] * 5],
+    [[0, 15, 1, 1, -1], [19, 0, 1, 1, 1], [0] * 5, [0] * 5],
+], np.int32)
+
+
+def round_half_up(v: float) -> int:
+    return int(np.floor(v + 0.5))
+
+
+def slow_window_value(padded, pad, x, y, scale, feature, normalize):
+    """One feature on one window at ``scale``, pixel by pixel, as DEVELOPERS.md describes the scan:
+    the window is round(20 s) x round(16 s) pixels at (x, y); every rectangle corner is scaled and
+    rounded half up on its own; each rectangle's pixel sum is divided by its own rounded pixel
+    count, and weighted by its unscaled area. Normalised: sum_i w_i A_i (mean_i - mu) / (sigma W H),
+    with the window's mean mu and population standard deviation sigma (at least 1 grey level); raw:
+    sum_i w_i A_i mean_i. At scale 1 both are the training values."""
+    W, H = REFERENCE_WINDOW
+    ws, hs = round_half_up(W * scale), round_half_up(H * scale)
+    win = padded[y + pad:y + pad + hs, x + pad:x + pad + ws].astype(np.float64)
+    assert win.shape == (hs, ws)
+    mu = win.sum() / win.size
+    sigma = max(np.sqrt(max((win * win).sum() / win.size - mu * mu, 0.0)), 1.0)
+    total = 0.0
+    for rx, ry, rw, rh, weight in feature.tolist():
+        if weight == 0:
+            continue
+        x0, x1 = round_half_up(rx * scale), round_half_up((rx + rw) * scale)
+        y0, y1 = round_half_up(ry * scale), round_half_up((ry + rh) * scale)
+        mean = win[y0:y1, x0:x1].sum() / ((x1 - x0) * (y1 - y0))
+        total += weight * rw * rh * ((mean - mu) if normalize else mean)
+    return total / (W * H * sigma) if normalize else total
+
+
+def safe_threshold(values, q):
+    """A float32 split threshold near the q-quantile of ``values`` that lies in a gap between them,
+    so that rounding (float64 here, the scan's own order of operations there, float32 in the split
+    test) cannot move a value across it."""
+    v = np.unique(values)
+    for i in sorted(range(len(v) - 1), key=lambda i: abs(i - q * len(v))):
+        lo, hi = v[i], v[i + 1]
+        t = np.float32((lo + hi) / 2)
+        margin = 1e-5 * max(1.0, abs(float(t)))
+        if lo + margin < float(t) < hi - margin:
+            return t
+    raise AssertionError("no gap")
+
+
+def reference_frames():
+    rng = np.random.default_rng(21)
+    noise = rng.integers(0, 256, (60, 70), dtype=np.uint8)
+    yy, xx = np.mgrid[:60, :70]
+    blobs = (128 + 90 * np.sin(xx / 4.0) * np.cos(yy / 5.0) + rng.normal(0, 12, (60, 70)))
+    return [noise, np.clip(blobs, 0, 255).astype(np.uint8), frame(5, 160, 160)[40:100, 30:100]]
+
+
+@pytest.mark.parametrize("normalize", [True, False])
+@pytest.mark.parametrize("overhang", [0.0, 0.25])
+def test_scan_at_scales_of_1_2_to_the_k_equals_a_slow_per_window_reference(normalize, overhang):
+    """The compiled scan against the slow reference above, window by window, at the scales a real
+    scan uses (1.2**k, k = 0..6, of which only the first is an integer), through a one-feature
+    model (15 stumps on the one-pixel-wide feature at its quantiles: the raw score counts the
+    thresholds a window's value exceeds) and a multi-feature one (12 trees of depth 2 over all six
+    features, leaves 0, 0.25, 0.5, 0.75: the raw score sums the leaves each window reaches). Every
+    split threshold lies in a gap between the reference values, so the scan must reach the very
+    same leaves. Windows past the edges see the border repeated (np.pad, mode "edge")."""
+    W, H = REFERENCE_WINDOW
+    scales = [1.0]
+    while len(scales) < 7:
+        scales.append(scales[-1] * 1.2)  # as the scan steps: 1.2, 1.44, 1.728, 2.0736, ...
+    sizes = {(round_half_up(W * s), round_half_up(H * s)): s for s in scales}
+    assert len(sizes) == 7  # 20x16, 24x19, 29x23, 35x28, 41x33, 50x40, 60x48
+    stumps = 15
+    for gray in reference_frames():
+        settings_ = dict(stride=2.0, scale_step=1.2, overhang=overhang, threshold=0.0,
+                         early_exit=False, nms_iou=1.0)
+        probe = Model(REFERENCE_WINDOW, REFERENCE_FEATURES, [[0]], [[0.0]], [[0.0, 1.0]],
+                      [-np.inf], "bagged", normalize=normalize)
+        boxes, _, windows, _ = Engine(probe, ScanSettings(**settings_)).candidates(gray)
+        assert len(boxes) == windows  # bagged at threshold 0: every window is reported
+        assert {(int(w), int(h)) for w, h in boxes[:, 2:]} == set(sizes)
+        if overhang == 0.0:  # every window inside, at steps of round(2 s) from the corner
+            for (ws, hs), s in sizes.items():
+                step = round_half_up(2 * s)
+                count = ((70 - ws) // step + 1) * ((60 - hs) // step + 1)
+                assert ((boxes[:, 2] == ws) & (boxes[:, 3] == hs)).sum() == count
+        pad = 20
+        padded = np.pad(gray, pad, mode="edge")
+        windows_ = [(int(x), int(y), sizes[(int(w), int(h))]) for x, y, w, h in boxes]
+        values = np.array([[slow_window_value(padded, pad, x, y, s, f, normalize)
+                            for f in REFERENCE_FEATURES] for x, y, s in windows_])
+
+        # one feature: a staircase of stumps on feature 1
+        thr = [safe_threshold(values[:, 1], q) for q in np.linspace(0.05, 0.95, stumps)]
+        one = Model(REFERENCE_WINDOW, REFERENCE_FEATURES[1:2], np.zeros((stumps, 1), np.int32),
+                    np.array(thr, np.float32)[:, None], np.tile([[0.0, 1.0]], (stumps, 1)),
+                    np.full(stumps, -np.inf), "bagged", normalize=normalize)
+        expected = (values[:, 1:2] > np.array(thr, np.float64)[None, :]).sum(axis=1)
+        b1, r1, _, _ = Engine(one, ScanSettings(**settings_)).candidates(gray)
+        np.testing.assert_array_equal(b1, boxes)
+        np.testing.assert_array_equal(r1, expected)
+        assert len(np.unique(expected)) > 10  # the staircase spreads the windows out
+
+        # six features: depth-2 trees, root on feature t % 6, children on the next two
+        n_trees = 12
+        nf = np.array([[t % 6, (t + 1) % 6, (t + 2) % 6] for t in range(n_trees)], np.int32)
+        qs = np.linspace(0.2, 0.8, n_trees)
+        nt = np.array([[safe_threshold(values[:, f], q) for f in row] for row, q in zip(nf, qs)],
+                      np.float32)
+        leaves = np.tile(np.array([[0.0, 0.25, 0.5, 0.75]], np.float32), (n_trees, 1))
+        many = Model(REFERENCE_WINDOW, REFERENCE_FEATURES, nf, nt, leaves, np.full(n_trees, -np.inf),
+                     "bagged", normalize=normalize)
+        expected = np.zeros(len(values))
+        for t in range(n_trees):
+            right = values[:, nf[t, 0]] > nt[t, 0]  # node 0; children 1 (left) and 2 (right)
+            child = np.where(right, nf[t, 2], nf[t, 1])
+            child_t = np.where(right, nt[t, 2], nt[t, 1])
+            second = values[np.arange(len(values)), child] > child_t
+            expected += leaves[t, 2 * right + second]
+        b2, r2, _, _ = Engine(many, ScanSettings(**settings_)).candidates(gray)
+        np.testing.assert_array_equal(b2, boxes)
+        np.testing.assert_array_equal(r2, expected)
+
+
+@pytest.mark.parametrize("settings", [dict(), dict(overhang=0.5, nms_iou=0.6),
+                                      dict(overhang=0.0, stride=3.0), dict(min_object=12.0)])
+def test_numpy_route_scan_equals_the_compiled_scan(model, settings):
+    """Engine.scan(use_numpy=True) (the numpy twin of the kernel, then candidates -> detections
+    with numpy) gives the compiled route's detections box for box, in the same order, with the
+    same scores (to 1e-12: the raw sums agree to 1e-9 or better, see the twin tests above), on a
+    scenario frame, a wider one, noise and a flat frame, at the settings of the finish test and
+    threshold 0, so that every window is a candidate (and the bagged zeros tie by the thousand)."""
+    rng = np.random.default_rng(8)
+    images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
+              np.full((30, 30), 128, np.uint8)]
+    engine = Engine(model, ScanSettings(threshold=0.0, **settings))  # every window a candidate
+    found = 0
+    for gray in images:
+        compiled = engine.scan(gray)
+        numpy_route = engine.scan(gray, use_numpy=True)
+        assert (numpy_route.windows, numpy_route.trees) == (compiled.windows, compiled.trees)
+        np.testing.assert_array_equal(numpy_route.boxes, compiled.boxes)
+        np.testing.assert_allclose(numpy_route.scores, compiled.scores, rtol=0, atol=1e-12)
+        found += len(compiled.scores)
+    assert found > 0  # at threshold 0 (the flat frame aside, which the contrast gate empties)

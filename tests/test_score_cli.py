@@ -145,7 +145,15 @@ def test_report_html_is_offline_and_links_exist(scored):
     order = [text.index(s) for s in ('class="cards"', "precision-recall.png",
                                      "gallery/false-alarm-01.png", "<h2>Per image</h2>")]
     assert order == sorted(order)
-    assert text.count("How to read this") >= 5
+    # every section opens with its "How to read this" note: the headline figures, the curves,
+    # the size table (when there is one), both galleries and the per-image table; no other
+    headings = ["<h2>Curves</h2>", "<h3>Highest-scoring false alarms", "<h3>Missed objects",
+                "<h2>Per image</h2>"] + (["<h3>By object size</h3>"]
+                                         if "<h3>By object size</h3>" in text else [])
+    for heading in headings:
+        after = text[text.index(heading):].split("</h", 1)[1].split(">", 1)[1]
+        assert after.lstrip().startswith('<p class="read">How to read this:'), heading
+    assert text.count("How to read this") == len(headings) + 1
     # the per-image table is sorted by errors: b.png (1 false alarm + 1 miss) first
     table = text[text.index("<h2>Per image</h2>"):]
     rows = re.findall(r"<tr class=\"\w+\"><td>([^<]+)</td>", table)

@@ -2,7 +2,9 @@
 
 References: the objective is checked against the computation it stands for, done here step by
 step with the library's parts (train on the fold's patches, scan the held-out frames, score with
-detector.evaluate.evaluate, whose all-point AP is itself held to pycocotools in test_evaluate.py);
+detector.evaluate.evaluate, whose all-point AP is held in test_evaluate.py to hand-worked PASCAL VOC
+examples and bounded by sklearn.metrics.average_precision_score, and whose matching and 101-point
+COCO AP to pycocotools' COCOeval);
 fold properties are checked with hypothesis; the printed `patchwood train` line is run through the
 CLI and the model it writes is compared with one trained directly.
 """
