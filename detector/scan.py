@@ -323,7 +323,7 @@ def detection_scores(model, raw) -> np.ndarray:
     >>> from detector.model import Model
     >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
     ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False)
-    >>> detection_scores(m, [0.12345649, 0.1234565]).tolist()  # one tree: the score is the sum
+    >>> detection_scores(m, [0.12345649, 0.12345651]).tolist()  # one tree: the score is the sum
     [0.123456, 0.123457]
     """
     return np.round(final_scores(model, raw), SCORE_DECIMALS)
