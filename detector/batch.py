@@ -25,7 +25,8 @@ from detector.images import header_size, list_images, max_pixels_limit, read_gra
 from detector.labels import (ImageDetections, read_detections, write_detections_coco,
                              write_detections_csv)
 from detector.model import Model, load_model
-from detector.scan import Engine, ScanSettings
+from detector.provenance import check_same_scan, scan_record, write_provenance
+from detector.scan import SCORE_DECIMALS, Engine, ScanSettings
 
 # the project's own marks for drawn detections (BGR): a warm amber box, its score on a dark tab
 DETECTION_COLOUR = (0, 176, 255)
@@ -232,13 +233,19 @@ def _check_draw_targets(draw_dir, inputs, names, replace: bool) -> None:
                              "drawings", path=target)
 
 
-def _write(out, fmt, results: list[ImageResult]):
-    # 1/100 pixel and 6 digits of score are plenty, and keep the file readable
-    items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, 6)) for r in results]
+def _write(out, fmt, results: list[ImageResult], record: dict):
+    """Write the detections file, then its provenance side file (each atomically), so the side
+    file always describes the detections file that exists."""
+    # 1/100 pixel is plenty and keeps the file readable; scores come with the six decimals the
+    # engine rounds them to (detector.scan.SCORE_DECIMALS), so np.round changes nothing there
+    items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, SCORE_DECIMALS))
+             for r in results]
     if fmt == "coco":
-        write_detections_coco(out, items)
+        info = dict(record, detections={"file": Path(out).name, "images": len(results)})
+        write_detections_coco(out, items, info=info)
     else:
         write_detections_csv(out, items)
+    write_provenance(out, record, len(results))
 
 
 def failures_path(out) -> Path:
@@ -284,14 +291,17 @@ def _check_unique_names(listed) -> None:
 def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
                cluster: str | None = None, resume: bool = False, force: bool = False,
                draw_dir=None, fmt: str = "csv", batch_images: int = 16, batch_seconds: float = 2.0,
-               progress=None, on_image=None) -> RunSummary:
+               progress=None, on_image=None, threshold_from=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
 
     Image names in the output follow :func:`detector.images.list_images`: relative to the folder
     given (forward slashes), or the path as given for a file given by itself. The output is
     rewritten atomically after every batch of ``batch_images`` images or ``batch_seconds`` seconds
     (whichever comes first, and never so often that rewriting takes more than about a tenth of the
-    run), and once more if the run is interrupted, so it always holds complete images only.
+    run), and once more if the run is interrupted, so it always holds complete images only. Each
+    time, the provenance side file (:func:`detector.provenance.provenance_path`: the model's
+    SHA-256 and metadata SHA-256, every scan setting, the inputs, the versions, the detections
+    file's SHA-256) is rewritten after it; a COCO output also carries the record in its ``info``.
 
     Parameters
     ----------
@@ -307,7 +317,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     cluster : str, optional
         Address of a Dask distributed scheduler; the images run there.
     resume : bool
-        Keep the images already in ``out`` and scan only the rest.
+        Keep the images already in ``out`` and scan only the rest; only when its provenance side
+        file says it was made with this model file and these settings.
     force : bool
         Replace an existing ``out`` (and existing drawings in ``draw_dir``).
     draw_dir : path, optional
@@ -319,6 +330,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     progress : callable(done, total), optional
     on_image : callable(ImageResult), optional
         Called after each image's result is recorded.
+    threshold_from : path, optional
+        The summary the threshold was taken from, recorded in the provenance.
 
     Returns
     -------
@@ -331,7 +344,9 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     InputError
         Before any image is scanned: a bad model file, an existing ``out`` without ``force`` or
         ``resume``, a missing input path, no image files among the inputs, two inputs with the
-        same image name, a drawing folder among the inputs, or a bad ``PATCHWOOD_MAX_MEGAPIXELS``.
+        same image name, a drawing folder among the inputs, or a bad ``PATCHWOOD_MAX_MEGAPIXELS``;
+        with ``resume``, an output without a provenance side file, or made with another model or
+        other settings (:func:`detector.provenance.check_same_scan`).
     """
     settings = settings or ScanSettings()
     out = Path(out)
@@ -359,11 +374,14 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
                          path=where)
     _check_unique_names(listed)
     summary = RunSummary(skipped_files=skipped, out=str(out))
+    record = scan_record(model_path, model, settings, paths, threshold_from)
     done: list[ImageResult] = []
     if resume and out.exists():
         if fmt == "coco":
             raise InputError("--resume continues CSV output only", path=out)
-        for d in read_detections(out):
+        kept = read_detections(out)
+        check_same_scan(out, model_path, settings)
+        for d in kept:
             done.append(ImageResult(d.image, d.boxes, d.scores))
         summary.resumed = len(done)
     seen = {r.image for r in done}
@@ -378,7 +396,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
 
     def write_now():
         t0 = time.perf_counter()
-        _write(out, fmt, results)
+        _write(out, fmt, results, record)
         now = time.perf_counter()
         state.update(pending=0, last_write=now, write_cost=now - t0)
 
