@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, echo, human_path, progress_bar
+from cli.common import check_output_file, echo, given, human_path, progress_bar, usage_error
 from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
@@ -15,7 +15,14 @@ from detector.scan import ScanSettings
 from detector.training import train_with_mining
 
 
+#: Options that only shape hard-negative mining (parameter name -> option).
+MINING_OPTIONS = {"mine_images": "--mine-images", "mine_labels": "--mine-labels",
+                  "mine_per_image": "--mine-per-image", "mine_per_round": "--mine-per-round",
+                  "mine_overhang": "--mine-overhang", "threshold": "--threshold"}
+
+
 def train(
+    ctx: typer.Context,
     bank: Path = typer.Argument(..., help="Patch bank from `patchwood harvest`."),
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
     trees: int = typer.Option(200, "--trees", min=1, max=10000, help="Number of trees."),
@@ -43,6 +50,14 @@ def train(
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
     if mine_rounds and (mine_images is None or mine_labels is None):
         raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels")
+    unused = [option for name, option in MINING_OPTIONS.items() if given(ctx, name)]
+    if unused and not mine_rounds:
+        usage_error(f"{', '.join(unused)} only shape{'s' if len(unused) == 1 else ''} mining "
+                    "rounds; add --mine-rounds N (N >= 1) or leave "
+                    f"{'it' if len(unused) == 1 else 'them'} out")
+    if features_per_node is not None and features_per_node > pool:
+        usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
+                    "node cannot try more features than the pool holds")
     check_output_file(out, force, "model")
     if save_bank_to is not None:
         check_output_file(save_bank_to, force, "patch bank")
