@@ -1358,6 +1358,12 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     provenance, why = provenance_of(detections_path)
     if why is not None:
         notes.append(why)
+    level = None if provenance is None else provenance["settings"].get("exit_level")
+    if level is not None and provenance["settings"]["early_exit"]:
+        notes.append(f"the detections were made with the tighter early exits for scans at "
+                     f"{level:g} or above (--exit-level {level:g}); below {level:g} the curve "
+                     "lacks objects those exits give up; a scan with the same exits (scan "
+                     "--threshold-from reuses them) reproduces the operating point")
     evaluation = evaluate(inputs.detections, inputs.ground_truth, iou_threshold)
     point = choose_operating_point(evaluation, p_target, r_target)
     if not point["met"]:

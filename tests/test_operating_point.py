@@ -79,6 +79,9 @@ def test_the_scan_at_the_recommended_threshold_reproduces_the_report(scenario, t
     assert summary["provenance"]["model"]["file"] == str(model)
     assert summary["provenance"]["settings"]["exit_level"] == exit_level
     assert summary["provenance"]["settings"]["threshold"] == 0.05
+    # and says when tighter exits shaped the curve
+    assert any("tighter early exits for scans at 0.5 or above" in n for n in summary["notes"]) \
+        == (exit_level is not None)
 
     daily = tmp_path / "daily.csv"
     code, out, err = patchwood(monkeypatch, capsys, "scan", model, images, "--out", daily,
