@@ -195,6 +195,30 @@ def _draw_path(draw_dir: Path, name: str) -> Path:
     return Path(draw_dir) / rel
 
 
+def draw_folder(images_dir, detections: dict, draw_dir, threshold: float = 0.0) -> int:
+    """Annotated copies of the images of a detections file, with the detections scoring
+    ``threshold`` or more (by the threshold invariance of the scan, what a scan at that
+    threshold would draw); ``detections`` maps image names (relative to ``images_dir``) to
+    ``(boxes, scores)``. Images that cannot be read are skipped. Returns the number drawn."""
+    drawn = 0
+    for name, (boxes, scores) in detections.items():
+        boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+        scores = np.asarray(scores, dtype=np.float64).reshape(-1)
+        keep = scores >= threshold
+        try:
+            gray = read_gray(Path(images_dir) / name)
+        except InputError:
+            continue
+        dst = _draw_path(draw_dir, name)
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        ok, buf = cv2.imencode(".png", draw_detections(gray, boxes[keep], scores[keep],
+                                                       title=f"score >= {threshold:g}"))
+        if ok:
+            buf.tofile(str(dst))
+            drawn += 1
+    return drawn
+
+
 # ---------------------------------------------------------------- the run
 
 def _inside(child: Path, parent: Path) -> bool:
