@@ -13,9 +13,11 @@ from detector.harvest import harvest as harvest_bank, save_bank
 from detector.labels import read_labels
 
 
-#: Options that only shape the augmented copies (parameter name -> option).
-COPY_OPTIONS = {"jitter": "--jitter", "mirror": "--mirror/--no-mirror", "rotate": "--rotate",
-                "brightness": "--brightness", "contrast": "--contrast"}
+#: Options that only shape the augmented copies: parameter name -> (option, the value that
+#: asks for nothing, which is fine without copies).
+COPY_OPTIONS = {"jitter": ("--jitter", 0.0), "mirror": ("--mirror", False),
+                "rotate": ("--rotate", 0.0), "brightness": ("--brightness", 0.0),
+                "contrast": ("--contrast", 0.0)}
 
 
 def harvest(
@@ -40,7 +42,8 @@ def harvest(
 ) -> None:
     """Cut object patches (with augmented copies) from the labelled boxes and background patches
     from everywhere else, into one patch bank file."""
-    unused = [option for name, option in COPY_OPTIONS.items() if given(ctx, name)]
+    unused = [option for name, (option, off) in COPY_OPTIONS.items()
+              if given(ctx, name) and ctx.params[name] != off]
     if unused and copies == 0:
         usage_error(f"{', '.join(unused)} only shape{'s' if len(unused) == 1 else ''} the "
                     "augmented copies, and --copies 0 makes none; raise --copies or leave "

@@ -59,8 +59,8 @@ CONFLICTS = [
     (["audit", "imgs", "labels.csv", "--pool", "100", "--features-per-node", "200"],
      "--features-per-node 200 is larger than --pool 100"),
     (["harvest", "imgs", "labels.csv", "--out", "b.npz", "--copies", "0", "--rotate", "30",
-      "--no-mirror"],
-     "--mirror/--no-mirror, --rotate only shape the augmented copies, and --copies 0 makes none"),
+      "--no-mirror", "--jitter", "0.1"],  # --no-mirror asks for nothing: not named
+     "--jitter, --rotate only shape the augmented copies, and --copies 0 makes none"),
     (["synth", "out", "--images", "50", "--train-images", "30", "--test-images", "10"],
      "--images is split into train/ and test/, but --train-images and --test-images set both"),
 ]
