@@ -191,6 +191,7 @@ def main(argv=None):
                 start = time.perf_counter()
                 eng.scan(gray)
                 turns[name].append(time.perf_counter() - start)
+        tight_turns = turns["tight"]
         same = (np.array_equal(tight_result.boxes, result.boxes)
                 and np.array_equal(tight_result.scores, result.scores))
         print(f"  tighter exits for scans at 0.5 or above (--exit-level 0.5): "
@@ -293,8 +294,10 @@ def main(argv=None):
     frame_ok = med * 1e3 <= FRAME_MS_GOAL
     ratio_ok = ratio >= RATIO_GOAL
     print("\ngoals:")
+    tight_ms = statistics.median(tight_turns) * 1e3
     print(f"  at most {FRAME_MS_GOAL:g} ms per 640 x 480 frame on one core ({med * 1e3:.2f} ms): "
-          f"{'met' if frame_ok else 'NOT met'}")
+          f"{'met' if frame_ok else 'NOT met'}; with --exit-level 0.5 ({tight_ms:.2f} ms): "
+          f"{'met' if tight_ms <= FRAME_MS_GOAL else 'NOT met'}")
     print(f"  at least {RATIO_GOAL:,.0f}x faster than the reference route ({ratio:,.0f}x): "
           f"{'met' if ratio_ok else 'NOT met'}")
     print(f"load average (1, 5, 15 min) after: {load()}")
