@@ -629,6 +629,17 @@ def _ap_name(iou_threshold) -> str:
     return "AP50" if t == 0.5 else f"AP at IoU {t:.2f}"
 
 
+def _near_path(path) -> str:
+    """A recorded absolute path as the user would type it: relative to the working folder when
+    inside it."""
+    text = str(path)
+    try:
+        rel = os.path.relpath(text)
+    except ValueError:
+        return text
+    return text if rel.startswith("..") else rel
+
+
 def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
     """The short summary the terminal prints: ``(name, value)`` rows.
 
@@ -689,7 +700,8 @@ def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
     record = summary.get("provenance")
     if record:
         model = record.get("model") or {}
-        rows.append(("model", f"{model.get('file')} (sha256 {str(model.get('sha256'))[:12]})"))
+        rows.append(("model", f"{_near_path(model.get('file'))} (sha256 "
+                              f"{str(model.get('sha256'))[:12]})"))
         rows.append(("scan settings", describe_settings(record.get("settings") or {})))
     if report_path is not None:
         rows.append(("report", os.fspath(report_path)))
