@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import echo, human_path, parse_window_option, progress_bar
+from cli.common import echo, human_path, parse_window_option, progress_bar, usage_error
 from detector.audit import (BACKGROUND_CALLED_OBJECT, DEFAULT_PARAMS, OBJECT_CALLED_BACKGROUND,
                             audit_bank, check_audit_folder, harvest_for_audit, write_audit)
 from detector.harvest import load_bank
@@ -88,6 +88,9 @@ def audit(
         if given:
             raise typer.BadParameter(f"{', '.join(given)} shape a new harvest; a --bank is "
                                      "already harvested")
+    if features_per_node is not None and features_per_node > pool:
+        usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
+                    "node cannot try more features than the pool holds")
     size = parse_window_option(window)
     check_audit_folder(out, force)
 

@@ -30,6 +30,30 @@ def check_output_file(path: Path, force: bool, what: str = "output") -> None:
         raise InputError(f"folder for the {what} does not exist", path=parent)
 
 
+def given(ctx: typer.Context, name: str) -> bool:
+    """Whether the option ``name`` (its parameter name) was given on the command line, rather
+    than left at its default."""
+    source = ctx.get_parameter_source(name)
+    return source is not None and source.name not in ("DEFAULT", "DEFAULT_MAP")
+
+
+#: click's usage error (exit status 2), reached through Typer's public names.
+UsageError = typer.BadParameter.__bases__[0]
+
+
+def usage_error(message: str) -> None:
+    """Stop with a usage error: one line, exit status 2 (options that contradict each other)."""
+    raise UsageError(message)
+
+
+def refuse_together(ctx: typer.Context, first: str, second: str, why: str) -> None:
+    """A usage error (exit 2) when both options were given: one would silently override the
+    other. ``first`` and ``second`` are parameter names; the message names them as options."""
+    if given(ctx, first) and given(ctx, second):
+        names = [f"--{n.replace('_', '-')}" for n in (first, second)]
+        usage_error(f"{names[0]} and {names[1]} cannot go together: {why}")
+
+
 def parse_window_option(text: str | None):
     """``--window WxH`` -> (W, H) or None; a bad value is a usage error (exit 2)."""
     if text is None:

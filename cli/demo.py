@@ -8,10 +8,10 @@ from pathlib import Path
 import typer
 
 from cli.common import echo, human_path, progress_bar
-from detector.batch import scan_paths
+from detector.batch import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
-from detector.labels import read_labels
+from detector.labels import read_detections, read_labels
 from detector.model import save_model
 from detector.report import score_files, summary_table
 from detector.scan import ScanSettings
@@ -20,7 +20,7 @@ from synthetic_images import render_scenario
 
 #: What the demo writes inside its folder (and may replace with --force).
 DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detections.failures.csv",
-                "drawn", "report")
+                "detections.provenance.json", "drawn", "report")
 
 
 def demo(
@@ -96,18 +96,25 @@ def demo(
     with progress_bar("      scanning", None, "images") as update:
         run = scan_paths(model_path, [test_dir / "images"], detections,
                          settings=ScanSettings(threshold=0.05), jobs=jobs, force=True,
-                         draw_dir=drawn, progress=update)
+                         progress=update)
     per_frame = 1000.0 * run.seconds * max(jobs, 1) / max(run.images, 1)
     echo(f"      {run.images} frames, {run.detections} detections at score >= 0.05, "
          f"{run.mean_trees:.2f} trees per window, about {per_frame:.0f} ms of CPU per frame")
-    echo(f"      annotated frames in {human_path(drawn)}")
 
     echo("[5/5] scoring against the test labels")
     result = score_files(detections, test_dir / "labels.csv", out / "report",
                          images_dir=test_dir / "images", force=True)
+    for warning in result.warnings:
+        typer.echo(f"warning: {warning}", err=True)
     width = max(len(k) for k, _ in summary_table(result.summary))
     for key, value in summary_table(result.summary):
         echo(f"      {key:<{width}}  {value}")
+    # the frames drawn at the recommended threshold: what a daily scan at it finds
+    threshold = result.summary["operating_point"]["threshold"]
+    found = {d.image: (d.boxes, d.scores) for d in read_detections(detections)}
+    count = draw_folder(test_dir / "images", found, drawn, 0.05 if threshold is None else threshold)
+    echo(f"      {count} annotated frames in {human_path(drawn)}, detections at score >= "
+         f"{0.05 if threshold is None else threshold:g}")
     echo("")
     echo(f"demo finished in {time.perf_counter() - started:.0f} s")
     echo(f"report: {human_path(result.report)}")

@@ -7,12 +7,21 @@ from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, count, echo, human_path, parse_window_option, progress_bar
+from cli.common import (check_output_file, count, echo, given, human_path, parse_window_option,
+                        progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.labels import read_labels
 
 
+#: Options that only shape the augmented copies: parameter name -> (option, the value that
+#: asks for nothing, which is fine without copies).
+COPY_OPTIONS = {"jitter": ("--jitter", 0.0), "mirror": ("--mirror", False),
+                "rotate": ("--rotate", 0.0), "brightness": ("--brightness", 0.0),
+                "contrast": ("--contrast", 0.0)}
+
+
 def harvest(
+    ctx: typer.Context,
     images_dir: Path = typer.Argument(..., help="Folder the labels' image paths are relative to."),
     labels: Path = typer.Argument(..., help="Labels CSV (image,x,y,width,height[,label]) or COCO JSON."),
     out: Path = typer.Option(..., "--out", help="Patch bank to write (.npz)."),
@@ -33,6 +42,12 @@ def harvest(
 ) -> None:
     """Cut object patches (with augmented copies) from the labelled boxes and background patches
     from everywhere else, into one patch bank file."""
+    unused = [option for name, (option, off) in COPY_OPTIONS.items()
+              if given(ctx, name) and ctx.params[name] != off]
+    if unused and copies == 0:
+        usage_error(f"{', '.join(unused)} only shape{'s' if len(unused) == 1 else ''} the "
+                    "augmented copies, and --copies 0 makes none; raise --copies or leave "
+                    f"{'it' if len(unused) == 1 else 'them'} out")
     size = parse_window_option(window)
     check_output_file(out, force, "patch bank")
     lf = read_labels(labels, images_dir=images_dir, label=label)

@@ -7,12 +7,13 @@ from typing import List, Optional
 
 import typer
 
-from cli.common import echo, human_path, progress_bar
+from cli.common import echo, given, human_path, progress_bar, refuse_together, usage_error
 from detector.batch import FORMATS, scan_paths
 from detector.scan import ScanSettings
 
 
 def scan(
+    ctx: typer.Context,
     model: Path = typer.Argument(..., help="Model file from `patchwood train`."),
     paths: List[Path] = typer.Argument(..., help="Image files and folders (searched recursively for png, jpg, jpeg, bmp, tif, tiff)."),
     out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco or coco-results."),
@@ -27,20 +28,26 @@ def scan(
     threshold_from: Optional[Path] = typer.Option(None, "--threshold-from", help="Take the threshold from a summary.json written by `patchwood score` (its recommended operating point)."),
     nms_iou: float = typer.Option(0.3, "--nms-iou", min=0.0, max=1.0, help="Non-maximum suppression: drop a box overlapping a better one by more than this IoU."),
     early_exit: bool = typer.Option(True, "--early-exit/--no-early-exit", help="Drop windows early with the model's calibrated exit thresholds."),
+    exit_level: Optional[float] = typer.Option(None, "--exit-level", min=0.0, max=1.0, metavar="LEVEL", help="Speed option: use the tighter early exits calibrated for scans at LEVEL or above (fewer trees per window). They may drop objects that would score LEVEL or more, so scan the curve you score with the same --exit-level; --threshold-from then reuses it. Default: the exits for every threshold, so that a scan keeps exactly the detections a scan at a lower threshold finds at or above its own."),
     overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window may reach past the image's edges, as a share of its size (border pixels repeated there), so that objects cut by the edge are found: 0.25 finds objects about four fifths inside, 0.5 those at least half inside; 0 keeps windows inside."),
     draw: Optional[Path] = typer.Option(None, "--draw", help="Also write annotated copies of the images into this folder (never into an input folder)."),
     jobs: int = typer.Option(1, "--jobs", min=1, max=256, help="Worker processes."),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
-    resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest."),
-    force: bool = typer.Option(False, "--force", help="Replace an existing --out."),
+    resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest (only when its provenance side file names this model and these settings)."),
+    force: bool = typer.Option(False, "--force", help="Replace an existing --out; with --threshold-from, also use a summary made from another model's detections."),
 ) -> None:
     """Find objects in images: a multi-scale sliding-window scan with early exit and non-maximum
     suppression. Files that cannot be read (damaged, not an image, above the size limit set by
     PATCHWOOD_MAX_MEGAPIXELS, default 100) are counted, listed at the end and in
     DETECTIONS.failures.csv, and the run goes on.
 
+    Every detections file gets a provenance side file, DETECTIONS.provenance.json (the model's
+    SHA-256, every setting, the versions), which --resume, --threshold-from and `patchwood score`
+    read.
+
     Exit status: 0 when the run finished, even with some files listed as failures; 1 when no
-    image could be read, or for bad input (model, paths, --out, --labels); 2 for a usage error."""
+    image could be read, or for bad input (model, paths, --out, --labels, a summary made from
+    another model's detections); 2 for a usage error (options that contradict each other)."""
     if format not in FORMATS:
         raise typer.BadParameter(f"--format must be {', '.join(FORMATS[:-1])} or {FORMATS[-1]}, "
                                  f"got {format!r}")
@@ -50,14 +57,50 @@ def scan(
         raise typer.BadParameter("--label chooses a category of the --labels file; give that file")
     if min_object and max_object and min_object > max_object:
         raise typer.BadParameter("--min-object is larger than --max-object")
+    refuse_together(ctx, "threshold", "threshold_from",
+                    "--threshold-from sets the threshold; give one of them")
+    refuse_together(ctx, "resume", "force",
+                    "--resume continues --out, --force replaces it; give one of them")
+    refuse_together(ctx, "jobs", "cluster",
+                    "with --cluster the cluster's workers scan, not local processes; give one")
+    if resume and format != "csv":
+        usage_error(f"--resume continues CSV output only; --format {format} writes a new file")
+    if exit_level is not None and not early_exit:
+        usage_error("--exit-level chooses early exits; it has no effect with --no-early-exit")
+    recorded = None
     if threshold_from is not None:
-        from detector.report import threshold_from_summary
+        from detector.provenance import check_summary_model, settings_differences
+        from detector.report import read_summary_point
 
-        threshold = threshold_from_summary(threshold_from)
-        echo(f"threshold {threshold:.4f} from {human_path(threshold_from)}")
+        threshold, recorded = read_summary_point(threshold_from)
+        if recorded is not None:
+            for line in check_summary_model(recorded, model, threshold_from, force):
+                typer.echo(f"warning: {line}", err=True)
+            level = recorded["settings"]["exit_level"]
+            if given(ctx, "exit_level") and exit_level != level:
+                usage_error(
+                    f"--exit-level {exit_level:g} differs from the exit level the summary's "
+                    f"detections were made with ({'none' if level is None else f'{level:g}'}); "
+                    "leave --exit-level out to reuse theirs")
+            if early_exit:
+                exit_level = level
+        echo(f"threshold {threshold:g} from {human_path(threshold_from)}"
+             + (f", early exits for scans at {exit_level:g} or above"
+                if exit_level is not None else ""))
+        if recorded is None:
+            typer.echo(f"warning: {human_path(threshold_from)} does not say which model and "
+                       "settings made its detections (no provenance); cannot check them",
+                       err=True)
     settings = ScanSettings(scale_step=scale_step, stride=stride, min_object=min_object,
                             max_object=max_object, threshold=threshold, nms_iou=nms_iou,
-                            early_exit=early_exit, overhang=overhang)
+                            early_exit=early_exit, overhang=overhang, exit_level=exit_level)
+    if recorded is not None:
+        other = settings_differences(
+            {k: v for k, v in recorded["settings"].items() if k != "threshold"}, settings)
+        if other:
+            typer.echo(f"warning: the report's detections were made with other settings: "
+                       f"{', '.join(other)}; its precision and recall hold for those",
+                       err=True)
     from detector.model import load_model
     from detector.scan import skipped_sizes_note
 
@@ -67,7 +110,7 @@ def scan(
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
                        resume=resume, force=force, draw_dir=draw, fmt=format, labels=labels,
-                       label=label, progress=update)
+                       label=label, progress=update, threshold_from=threshold_from)
     echo(f"images scanned: {s.images}" + (f" (+{s.resumed} kept from the earlier run)" if s.resumed else ""))
     echo(f"detections: {s.detections} at score >= {threshold:g}")
     if labels is not None:

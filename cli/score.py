@@ -51,15 +51,25 @@ def score(
     force: bool = typer.Option(
         False, "--force", help="Replace the report in a folder that already holds files."
     ),
+    strict: bool = typer.Option(
+        False, "--strict",
+        help="Stop with an error when labelled images have no rows in the detections file, or "
+             "images with rows are not in the labels (without it: a warning, and the report).",
+    ),
 ) -> None:
     """Score detections against labels: precision-recall, AP, miss rate against false alarms per
     image, galleries of errors, and a recommended score threshold (best F1 unless a target is
-    given). Every labelled image counts, with or without detections."""
+    given). Every labelled image counts, with or without detections; labelled images without
+    rows in the detections file, and detected images without labels, are named in a warning.
+    The curves use every detection; the per-image table and the galleries show the detections
+    at or above the recommended threshold."""
     if target_precision is not None and target_recall is not None:
         raise typer.BadParameter("give --target-precision or --target-recall, not both")
     result = score_files(detections, labels, report, iou_threshold=iou, images_dir=images,
                          label=label, target_precision=target_precision,
-                         target_recall=target_recall, force=force)
+                         target_recall=target_recall, force=force, strict=strict)
+    for warning in result.warnings:
+        typer.echo(f"warning: {warning}", err=True)
     rows = summary_table(result.summary, result.report)
     width = max(len(name) for name, _ in rows)
     for name, value in rows:

@@ -8,6 +8,7 @@ from typing import Optional
 
 import typer
 
+from cli.common import given, usage_error
 from synthetic_images import FRAME_LIMITS, render_scenario, split_counts
 
 _SIZE = re.compile(r"\s*(\d+)\s*[xX]\s*(\d+)\s*")
@@ -35,6 +36,7 @@ def _count(n: int, word: str) -> str:
 
 
 def synth(
+    ctx: typer.Context,
     out_dir: Path = typer.Argument(
         ..., help="Folder to write train/ and test/ into (each: images/ + labels.csv); created if missing."
     ),
@@ -60,6 +62,9 @@ def synth(
     """Render the demo scenario: hex nuts among washers, square nuts, screw heads and debris on a
     conveyor belt, 15% of frames without nuts, nuts 20-120 px. Nuts more than half hidden under a
     guard rail or past the frame edge are drawn but not labelled."""
+    if given(ctx, "images") and train_images is not None and test_images is not None:
+        usage_error("--images is split into train/ and test/, but --train-images and "
+                    "--test-images set both counts; give --images or the two counts")
     width, height = parse_size(size)
     train_default, test_default = split_counts(images)
     train_n = train_default if train_images is None else train_images

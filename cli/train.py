@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, echo, human_path, progress_bar
+from cli.common import check_output_file, echo, given, human_path, progress_bar, usage_error
 from detector.channels import CHOICES as CHANNEL_CHOICES
 from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
@@ -17,7 +17,14 @@ from detector.training import (DEFAULT_MINE_ROUNDS, mining_params, mining_source
                                 train_with_mining)
 
 
+#: Options that only shape hard-negative mining (parameter name -> option).
+MINING_OPTIONS = {"mine_images": "--mine-images", "mine_labels": "--mine-labels",
+                  "mine_per_image": "--mine-per-image", "mine_per_round": "--mine-per-round",
+                  "mine_overhang": "--mine-overhang", "threshold": "--threshold"}
+
+
 def train(
+    ctx: typer.Context,
     bank: Path = typer.Argument(..., help="Patch bank from `patchwood harvest`."),
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
     trees: int = typer.Option(200, "--trees", min=1, max=10000, help="Number of trees."),
@@ -48,6 +55,14 @@ def train(
         raise typer.BadParameter(f"--channels must be {' or '.join(CHANNEL_CHOICES)}, got {channels!r}")
     if (mine_images is None) != (mine_labels is None):
         raise typer.BadParameter("--mine-images and --mine-labels go together")
+    unused = [option for name, option in MINING_OPTIONS.items() if given(ctx, name)]
+    if unused and mine_rounds == 0:
+        usage_error(f"{', '.join(unused)} only shape{'s' if len(unused) == 1 else ''} mining "
+                    "rounds; leave out --mine-rounds 0 (mining is on by default) or "
+                    f"{'it' if len(unused) == 1 else 'them'}")
+    if features_per_node is not None and features_per_node > pool:
+        usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
+                    "node cannot try more features than the pool holds")
     check_output_file(out, force, "model")
     if save_bank_to is not None:
         check_output_file(save_bank_to, force, "patch bank")

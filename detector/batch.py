@@ -26,7 +26,8 @@ from detector.labels import (ImageDetections, coco_result_ids, read_detections,
                              write_detections_coco, write_detections_coco_results,
                              write_detections_csv)
 from detector.model import Model, load_model
-from detector.scan import Engine, ScanSettings
+from detector.provenance import check_same_scan, scan_record, write_provenance
+from detector.scan import SCORE_DECIMALS, Engine, ScanSettings
 
 # the project's own marks for drawn detections (BGR): a warm amber box, its score on a dark tab
 DETECTION_COLOUR = (0, 176, 255)
@@ -195,6 +196,30 @@ def _draw_path(draw_dir: Path, name: str) -> Path:
     return Path(draw_dir) / rel
 
 
+def draw_folder(images_dir, detections: dict, draw_dir, threshold: float = 0.0) -> int:
+    """Annotated copies of the images of a detections file, with the detections scoring
+    ``threshold`` or more (by the threshold invariance of the scan, what a scan at that
+    threshold would draw); ``detections`` maps image names (relative to ``images_dir``) to
+    ``(boxes, scores)``. Images that cannot be read are skipped. Returns the number drawn."""
+    drawn = 0
+    for name, (boxes, scores) in detections.items():
+        boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+        scores = np.asarray(scores, dtype=np.float64).reshape(-1)
+        keep = scores >= threshold
+        try:
+            gray = read_gray(Path(images_dir) / name)
+        except InputError:
+            continue
+        dst = _draw_path(draw_dir, name)
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        ok, buf = cv2.imencode(".png", draw_detections(gray, boxes[keep], scores[keep],
+                                                       title=f"score >= {threshold:g}"))
+        if ok:
+            buf.tofile(str(dst))
+            drawn += 1
+    return drawn
+
+
 # ---------------------------------------------------------------- the run
 
 def _inside(child: Path, parent: Path) -> bool:
@@ -237,11 +262,16 @@ def _check_draw_targets(draw_dir, inputs, names, replace: bool) -> None:
 FORMATS = ("csv", "coco", "coco-results")
 
 
-def _write(out, fmt, results: list[ImageResult], result_ids=None):
-    # 1/100 pixel and 6 digits of score are plenty, and keep the file readable
-    items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, 6)) for r in results]
+def _write(out, fmt, results: list[ImageResult], record: dict, result_ids=None):
+    """Write the detections file, then its provenance side file (each atomically), so the side
+    file always describes the detections file that exists."""
+    # 1/100 pixel is plenty and keeps the file readable; scores come with the six decimals the
+    # engine rounds them to (detector.scan.SCORE_DECIMALS), so np.round changes nothing there
+    items = [ImageDetections(r.image, np.round(r.boxes, 2), np.round(r.scores, SCORE_DECIMALS))
+             for r in results]
     if fmt == "coco":
-        write_detections_coco(out, items)
+        info = dict(record, detections={"file": Path(out).name, "images": len(results)})
+        write_detections_coco(out, items, info=info)
     elif fmt == "coco-results":
         if result_ids is None:
             write_detections_coco_results(out, items)
@@ -250,6 +280,7 @@ def _write(out, fmt, results: list[ImageResult], result_ids=None):
                                                        for r in results}, result_ids.category_id)
     else:
         write_detections_csv(out, items)
+    write_provenance(out, record, len(results))
 
 
 def failures_path(out) -> Path:
@@ -296,14 +327,17 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
                cluster: str | None = None, resume: bool = False, force: bool = False,
                draw_dir=None, fmt: str = "csv", labels=None, label: str | None = None,
                batch_images: int = 16, batch_seconds: float = 2.0, progress=None,
-               on_image=None) -> RunSummary:
+               on_image=None, threshold_from=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
 
     Image names in the output follow :func:`detector.images.list_images`: relative to the folder
     given (forward slashes), or the path as given for a file given by itself. The output is
     rewritten atomically after every batch of ``batch_images`` images or ``batch_seconds`` seconds
     (whichever comes first, and never so often that rewriting takes more than about a tenth of the
-    run), and once more if the run is interrupted, so it always holds complete images only.
+    run), and once more if the run is interrupted, so it always holds complete images only. Each
+    time, the provenance side file (:func:`detector.provenance.provenance_path`: the model's
+    SHA-256 and metadata SHA-256, every scan setting, the inputs, the versions, the detections
+    file's SHA-256) is rewritten after it; a COCO output also carries the record in its ``info``.
 
     Parameters
     ----------
@@ -321,7 +355,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     cluster : str, optional
         Address of a Dask distributed scheduler; the images run there.
     resume : bool
-        Keep the images already in ``out`` and scan only the rest.
+        Keep the images already in ``out`` and scan only the rest; only when its provenance side
+        file says it was made with this model file and these settings.
     force : bool
         Replace an existing ``out`` (and existing drawings in ``draw_dir``).
     draw_dir : path, optional
@@ -339,6 +374,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     progress : callable(done, total), optional
     on_image : callable(ImageResult), optional
         Called after each image's result is recorded.
+    threshold_from : path, optional
+        The summary the threshold was taken from, recorded in the provenance.
 
     Returns
     -------
@@ -352,7 +389,9 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         Before any image is scanned: a bad model file, an existing ``out`` without ``force`` or
         ``resume``, a missing input path, no image files among the inputs, two inputs with the
         same image name, a drawing folder among the inputs, a bad ``PATCHWOOD_MAX_MEGAPIXELS``,
-        or a ``labels`` file that is not COCO JSON or lacks one of the images.
+        or a ``labels`` file that is not COCO JSON or lacks one of the images; with ``resume``, an
+        output without a provenance side file, or made with another model or other settings
+        (:func:`detector.provenance.check_same_scan`).
     """
     settings = settings or ScanSettings()
     out = Path(out)
@@ -389,11 +428,14 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         for _, name in listed:  # every image needs its id before any is scanned
             result_ids.image_id(name)
     summary = RunSummary(skipped_files=skipped, out=str(out))
+    record = scan_record(model_path, model, settings, paths, threshold_from)
     done: list[ImageResult] = []
     if resume and out.exists():
         if fmt != "csv":
             raise InputError("--resume continues CSV output only", path=out)
-        for d in read_detections(out):
+        kept = read_detections(out)
+        check_same_scan(out, model_path, settings)
+        for d in kept:
             done.append(ImageResult(d.image, d.boxes, d.scores))
         summary.resumed = len(done)
     seen = {r.image for r in done}
@@ -408,7 +450,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
 
     def write_now():
         t0 = time.perf_counter()
-        _write(out, fmt, results, result_ids)
+        _write(out, fmt, results, record, result_ids)
         now = time.perf_counter()
         state.update(pending=0, last_write=now, write_cost=now - t0)
 

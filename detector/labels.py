@@ -986,7 +986,7 @@ def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) 
 def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
                           image_ids: dict[str, int] | None = None,
                           image_sizes: dict[str, tuple[int, int]] | None = None,
-                          category: str = "object") -> None:
+                          category: str = "object", info: dict | None = None) -> None:
     """Write detections as a COCO JSON object with ``images``, ``annotations`` and ``categories``.
 
     Each annotation has ``image_id``, ``category_id`` (1), ``bbox``, ``area``, ``iscrowd`` 0 and
@@ -1006,6 +1006,9 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
         Written as ``width``/``height`` where known.
     category : str, optional
         The one category's name.
+    info : dict, optional
+        Written as the file's ``info`` object, first (COCO's place for what made a data set;
+        ``patchwood scan`` puts its provenance record there, see :mod:`detector.provenance`).
 
     Examples
     --------
@@ -1028,9 +1031,10 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
             annotations.append({"id": len(annotations) + 1, "image_id": image_id,
                                 "category_id": 1, "bbox": bbox, "area": area, "iscrowd": 0,
                                 "score": float(score)})
-    doc = {"images": _coco_image_entries([m[0] for m in merged], image_sizes, image_ids),
-           "annotations": annotations,
-           "categories": [{"id": 1, "name": category}]}
+    doc = {"info": info} if info is not None else {}
+    doc.update({"images": _coco_image_entries([m[0] for m in merged], image_sizes, image_ids),
+                "annotations": annotations,
+                "categories": [{"id": 1, "name": category}]})
     with _replacing(path, newline=None) as fh:
         json.dump(doc, fh, ensure_ascii=False)
         fh.write("\n")

@@ -70,9 +70,9 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     """
     settings = settings or ScanSettings()
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
-    # the loosest exits (every calibration object): a false alarm that a scan at any threshold
-    # could report must not escape mining by exiting early here
-    engine = Engine(model, low, exit_level=0.0)
+    # the default exits keep every calibration object whatever the threshold, so a false alarm a
+    # scan could report does not escape mining by exiting early here
+    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None}))
     W, H = engine.window
     patches, boxes, names, scores = [], [], [], []
     dets, gts = {}, {}

@@ -49,8 +49,9 @@ from detector.errors import InputError
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores)
 
-__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model", "load_model", "training_date",
-           "library_versions", "model_arrays"]
+__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model",
+           "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
+           "metadata_sha256"]
 
 FORMAT_VERSION = 1
 #: Files with channel features (``feature_channels``) are version 2, so that a patchwood that
@@ -361,6 +362,25 @@ def _plain(value: float) -> str:
     return str(int(value)) if float(value).is_integer() and abs(value) < 2**53 else str(value)
 
 
+def metadata_text(model: Model) -> str:
+    """The model's metadata as the model file stores it: JSON, keys sorted, no NaN."""
+    return json.dumps(_jsonable(model.metadata), sort_keys=True, allow_nan=False)
+
+
+def metadata_sha256(model: Model) -> str:
+    """Hex SHA-256 (FIPS 180-4) of :func:`metadata_text`: names the training (parameters, bank
+    hash, figures, date) whatever file the model was copied to.
+
+    >>> m = Model((2, 2), np.array([[[0, 0, 1, 2, -1], [1, 0, 1, 2, 1]] + [[0] * 5] * 2], np.int32),
+    ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", metadata={"seed": 1})
+    >>> metadata_sha256(m) == __import__("hashlib").sha256(b'{"seed": 1}').hexdigest()
+    True
+    """
+    import hashlib
+
+    return hashlib.sha256(metadata_text(model).encode("utf-8")).hexdigest()
+
+
 def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
@@ -375,7 +395,7 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
         "exit_thresholds": model.exit_thresholds,
         "mode": np.array(model.mode),
         "normalize": np.array(model.normalize, dtype=bool),
-        "metadata": np.array(json.dumps(_jsonable(model.metadata), sort_keys=True, allow_nan=False)),
+        "metadata": np.array(metadata_text(model)),
     }
     if model.feature_importances is not None:
         arrays["feature_importances"] = model.feature_importances

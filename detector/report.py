@@ -37,6 +37,8 @@ import numpy as np
 
 from detector.errors import InputError
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
+from detector.npzfile import file_sha256
+from detector.provenance import describe_settings, provenance_of
 
 __all__ = [
     "BOX_STYLES",
@@ -45,14 +47,17 @@ __all__ = [
     "SUMMARY_FORMAT",
     "ScoreInputs",
     "ScoreResult",
+    "at_threshold",
     "build_summary",
     "check_image_names",
     "check_report_folder",
     "choose_operating_point",
+    "name_mismatches",
     "plot_miss_rate",
     "plot_precision_recall",
     "plot_score_histogram",
     "read_score_inputs",
+    "read_summary_point",
     "score_files",
     "summary_table",
     "threshold_from_summary",
@@ -210,6 +215,68 @@ folder itself so names are relative to it
             if other is not None:
                 raise InputError(f"no detection image matches a labelled image; they differ in "
                                  f"{kind}, e.g. {name!r} vs {other!r} — {advice}", path=path)
+
+
+#: Image names a mismatch warning shows.
+SHOWN_NAMES = 3
+
+
+def _names(names) -> str:
+    shown = ", ".join(repr(n) for n in names[:SHOWN_NAMES])
+    return shown + (f" and {len(names) - SHOWN_NAMES} more" if len(names) > SHOWN_NAMES else "")
+
+
+def name_mismatches(detection_images, labelled_images, detections_path=None,
+                    labels_path=None) -> list[str]:
+    """One line per kind of mismatch between the images of a detections file and those of a
+    labels file, naming how many and the first few.
+
+    A labelled image without a row in the detections file is scored as if nothing was found in
+    it (``patchwood scan`` writes a row for every image it scans, so the image was most likely
+    not scanned: another folder, or a typo in a name). An image with rows but no labels is left
+    out of every figure.
+
+    Examples
+    --------
+    >>> for line in name_mismatches(["a.png", "x.png"], ["a.png", "b.png", "c.png"],
+    ...                             "det.csv", "labels.csv"):
+    ...     print(line)
+    det.csv: 2 of 3 labelled images have no rows in it (not scanned: another folder or a typo?); scored as finding nothing there: 'b.png', 'c.png'
+    det.csv: 1 image has rows but is not in labels.csv; left out of every figure: 'x.png'
+    """
+    detected = list(dict.fromkeys(detection_images))
+    labelled = list(dict.fromkeys(labelled_images))
+    seen, known = set(detected), set(labelled)
+    missing = [n for n in labelled if n not in seen]
+    extra = [n for n in detected if n not in known]
+    where = "" if detections_path is None else f"{os.fspath(detections_path)}: "
+    lines = []
+    if missing:
+        lines.append(f"{where}{len(missing)} of {len(labelled)} labelled images "
+                     f"{'has' if len(missing) == 1 else 'have'} no rows in it (not scanned: "
+                     f"another folder or a typo?); scored as finding nothing there: "
+                     f"{_names(missing)}")
+    if extra:
+        other = "the labels" if labels_path is None else os.fspath(labels_path)
+        lines.append(f"{where}{len(extra)} image{' has' if len(extra) == 1 else 's have'} rows but "
+                     f"{'is' if len(extra) == 1 else 'are'} not in {other}; left out of every "
+                     f"figure: {_names(extra)}")
+    return lines
+
+
+def at_threshold(detections: dict, threshold: float) -> dict:
+    """The detections scoring ``threshold`` or more, image by image (every image stays).
+
+    >>> at_threshold({"a.png": ([[0, 0, 5, 5], [9, 9, 5, 5]], [0.9, 0.2])}, 0.5)["a.png"][1]
+    array([0.9])
+    """
+    out = {}
+    for name, (boxes, scores) in detections.items():
+        b = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+        sc = np.asarray(scores, dtype=np.float64).reshape(-1)
+        keep = sc >= threshold
+        out[name] = (b[keep], sc[keep])
+    return out
 
 
 def read_score_inputs(detections_path, labels_path, label: str | None = None) -> ScoreInputs:
@@ -394,7 +461,8 @@ def _true_flags(figures) -> np.ndarray:
 
 
 def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = None,
-                  notes=()) -> dict:
+                  notes=(), errors: Evaluation | None = None, provenance: dict | None = None,
+                  warnings=()) -> dict:
     """Every figure of a scoring run as plain JSON-ready types (the content of ``summary.json``).
 
     Parameters
@@ -406,14 +474,25 @@ def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = Non
         What was scored and how (file names, IoU, label, targets).
     notes : sequence of str
         Lines worth knowing, kept in the file.
+    errors : Evaluation, optional
+        The evaluation of the detections at or above the operating point's threshold
+        (:func:`at_threshold`): its counts, per-image rows and error lists go under
+        ``at_operating_point``.
+    provenance : dict, optional
+        The detections file's provenance record (:mod:`detector.provenance`): which model and
+        settings made them. ``scan --threshold-from`` checks it.
+    warnings : sequence of str
+        Mismatches between the detections and the labels (:func:`name_mismatches`).
 
     Returns
     -------
     dict
-        ``format``, ``version``, ``inputs``, ``operating_point`` (``threshold``, ``precision``,
-        ``recall``, ``rule``, ...), ``fppi_at_recall_0.9``, ``unlabelled_image_count``,
-        ``notes``, then everything of ``evaluation.to_dict()`` (figures, curves, size buckets,
-        per-image rows, false alarm and miss lists).
+        ``format``, ``version``, ``inputs``, ``provenance``, ``operating_point`` (``threshold``,
+        ``precision``, ``recall``, ``rule``, ...), ``at_operating_point`` (``threshold``, counts,
+        ``per_image``, ``false_alarm_list``, ``miss_list`` of the detections kept there),
+        ``fppi_at_recall_0.9``, ``unlabelled_image_count``, ``warnings``, ``notes``, then
+        everything of ``evaluation.to_dict()`` (figures, curves, size buckets, and per-image rows,
+        false alarm and miss lists of every detection in the file).
 
     Examples
     --------
@@ -423,14 +502,25 @@ def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = Non
     >>> s["average_precision"], s["operating_point"]["threshold"], s["fppi_at_recall_0.9"]
     (1.0, 0.8, 0.0)
     """
+    at_point = None
+    if errors is not None:
+        e = errors.to_dict()
+        at_point = {"threshold": point.get("threshold"), "detections": errors.detections,
+                    "true_detections": errors.true_detections,
+                    "false_alarms": errors.false_alarms, "misses": errors.misses,
+                    "per_image": e["per_image"], "false_alarm_list": e["false_alarm_list"],
+                    "miss_list": e["miss_list"]}
     summary = {
         "format": SUMMARY_FORMAT,
         "version": SUMMARY_VERSION,
         "inputs": dict(inputs or {}),
+        "provenance": provenance,
         "operating_point": {k: (_finite(v) if isinstance(v, (float, np.floating)) else v)
                             for k, v in point.items()},
+        "at_operating_point": at_point,
         "fppi_at_recall_0.9": _finite(fppi_at_recall(evaluation, 0.9)),
         "unlabelled_image_count": len(evaluation.unlabelled_images),
+        "warnings": list(warnings),
         "notes": list(notes),
     }
     summary.update(evaluation.to_dict())
@@ -445,7 +535,8 @@ def _summary_text(summary: dict) -> str:
 
 
 def threshold_from_summary(path) -> float:
-    """The recommended score threshold stored in a ``summary.json`` written by ``score``.
+    """The recommended score threshold stored in a ``summary.json`` written by ``score`` (see
+    :func:`read_summary_point`, which also gives the provenance of the scored detections).
 
     Parameters
     ----------
@@ -461,7 +552,8 @@ def threshold_from_summary(path) -> float:
     ------
     InputError
         One line naming the file: it is missing or unreadable, is not valid JSON (with the line),
-        has no operating point, or its threshold is null (the rule could not be met).
+        has no operating point, its threshold is null (the rule could not be met) or is not a
+        score in 0..1.
 
     Examples
     --------
@@ -471,6 +563,21 @@ def threshold_from_summary(path) -> float:
     >>> threshold_from_summary(path)
     0.62
     """
+    return read_summary_point(path)[0]
+
+
+def read_summary_point(path) -> tuple[float, dict | None]:
+    """``(threshold, provenance)`` from a ``summary.json`` written by ``score``: the recommended
+    score threshold, and the provenance record of the detections it was computed from (None
+    when the summary has none: detections made by another program or an older patchwood).
+
+    Raises
+    ------
+    InputError
+        As :func:`threshold_from_summary`, and for a provenance entry that is not a record.
+    """
+    from detector.provenance import _check_record
+
     try:
         with open(path, "rb") as fh:
             data = fh.read()
@@ -498,7 +605,13 @@ def threshold_from_summary(path) -> float:
                          "score again with another target", path=path)
     if isinstance(t, bool) or not isinstance(t, (int, float)) or not math.isfinite(t):
         raise InputError(f"the operating point's threshold is not a number: {t!r}", path=path)
-    return float(t)
+    if not 0.0 <= t <= 1.0:
+        raise InputError(f"the operating point's threshold {t!r} is not a score in 0..1",
+                         path=path)
+    record = doc.get("provenance")
+    if record is not None:
+        record = _check_record(record, path)
+    return float(t), record
 
 
 def _fmt(value, digits: int = 3) -> str:
@@ -514,6 +627,17 @@ def _percent(value) -> str:
 def _ap_name(iou_threshold) -> str:
     t = float(iou_threshold)
     return "AP50" if t == 0.5 else f"AP at IoU {t:.2f}"
+
+
+def _near_path(path) -> str:
+    """A recorded absolute path as the user would type it: relative to the working folder when
+    inside it."""
+    text = str(path)
+    try:
+        rel = os.path.relpath(text)
+    except ValueError:
+        return text
+    return text if rel.startswith("..") else rel
 
 
 def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
@@ -563,10 +687,22 @@ def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
         ("false alarms / misses", f"{summary.get('false_alarms', 0)} / "
                                   f"{summary.get('misses', 0)}"),
     ]
+    at = summary.get("at_operating_point")
+    if at:
+        rows.append((f"at {_fmt(at['threshold'], 4)}: detections / true",
+                     f"{at['detections']} / {at['true_detections']}"))
+        rows.append((f"at {_fmt(at['threshold'], 4)}: false alarms / misses",
+                     f"{at['false_alarms']} / {at['misses']}"))
     if summary.get("unlabelled_image_count"):
         rows.append(("unlabelled images (left out)",
                      f"{summary['unlabelled_image_count']} with "
                      f"{summary.get('unlabelled_detections', 0)} detections"))
+    record = summary.get("provenance")
+    if record:
+        model = record.get("model") or {}
+        rows.append(("model", f"{_near_path(model.get('file'))} (sha256 "
+                              f"{str(model.get('sha256'))[:12]})"))
+        rows.append(("scan settings", describe_settings(record.get("settings") or {})))
     if report_path is not None:
         rows.append(("report", os.fspath(report_path)))
     return rows
@@ -933,7 +1069,23 @@ def _image_boxes(name, detections, ground_truth, iou_threshold):
     return out
 
 
-def _galleries(evaluation, detections, ground_truth, images_dir, out_dir, count, notes):
+def _nearest_scores(misses, detections) -> None:
+    """Give each miss the highest score of any detection in the file overlapping it (IoU > 0),
+    also those below the operating point's threshold: a miss just below it reads differently
+    from one no window came near."""
+    from detector.boxes import iou
+
+    for m in misses:
+        boxes, scores = detections.get(m.image, (np.zeros((0, 4)), np.zeros(0)))
+        boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+        scores = np.asarray(scores, dtype=np.float64).reshape(-1)
+        near = iou(boxes, np.asarray(m.box, dtype=np.float64).reshape(1, 4))[:, 0] > 0 \
+            if len(boxes) else np.zeros(0, dtype=bool)
+        m.best_score = float(scores[near].max()) if near.any() else math.nan
+
+
+def _galleries(evaluation, detections, ground_truth, images_dir, out_dir, count, notes,
+               threshold=None):
     """Write the thumbnails; return {"false alarm": [...], "missed": [...]} of entries."""
     from detector.images import read_gray
 
@@ -975,9 +1127,11 @@ def _galleries(evaluation, detections, ground_truth, images_dir, out_dir, count,
                 detail = [f"score {item.score:.3f}",
                           f"IoU {item.iou:.2f}" if item.iou > 0 else "no object overlaps"]
             else:
+                below = threshold is not None and item.best_score < threshold
                 detail = [f"{item.box[2]:.0f} x {item.box[3]:.0f} px",
                           "no detection overlaps" if math.isnan(item.best_score)
-                          else f"nearest score {item.best_score:.3f}"]
+                          else f"nearest score {item.best_score:.3f}"
+                          + (", below the threshold" if below else "")]
             result[kind].append({"file": f"gallery/{file_name}", "image": item.image,
                                  "detail": detail})
     return result
@@ -1044,8 +1198,14 @@ def _write_text(path: Path, text: str) -> None:
 
 def write_report(report_dir, evaluation: Evaluation, point: dict, detections: dict | None = None,
                  ground_truth: dict | None = None, images_dir=None, inputs: dict | None = None,
-                 notes=(), force: bool = False, gallery_size: int = GALLERY_SIZE) -> dict:
+                 notes=(), force: bool = False, gallery_size: int = GALLERY_SIZE,
+                 provenance: dict | None = None, warnings=()) -> dict:
     """Write the report folder: ``report.html``, ``summary.json``, plots and galleries.
+
+    The curves, AP and the figures of the headline describe every detection in the file; the
+    per-image table, the galleries and the boxes drawn in them describe the operating point: the
+    detections scoring at least its threshold (every detection when the rule has no threshold),
+    which is what a scan at that threshold gives (``scan --threshold-from``).
 
     Parameters
     ----------
@@ -1069,6 +1229,11 @@ def write_report(report_dir, evaluation: Evaluation, point: dict, detections: di
         Write into a folder that holds files; the report's own files are replaced.
     gallery_size : int, default 24
         Thumbnails per gallery.
+    provenance : dict, optional
+        The detections file's provenance record (model and scan settings), kept in the summary
+        and shown at the top of the page.
+    warnings : sequence of str
+        Mismatches of image names (:func:`name_mismatches`), shown first on the page.
 
     Returns
     -------
@@ -1088,13 +1253,20 @@ def write_report(report_dir, evaluation: Evaluation, point: dict, detections: di
     plot_precision_recall(evaluation, out / "precision-recall.png", point)
     plot_miss_rate(evaluation, out / "miss-rate.png", point)
     plot_score_histogram(evaluation, out / "score-histogram.png", point.get("threshold"))
+    errors, shown = evaluation, detections
+    if detections is not None and ground_truth is not None and point.get("threshold") is not None:
+        shown = at_threshold(detections, point["threshold"])
+        errors = evaluate(shown, ground_truth, evaluation.iou_threshold, size_buckets=None)
+        _nearest_scores(errors.miss_list, detections)
     galleries = None
     if images_dir is not None and detections is not None and ground_truth is not None:
-        galleries = _galleries(evaluation, detections, ground_truth, images_dir, out,
-                               int(gallery_size), notes)
-    summary = build_summary(evaluation, point, inputs, notes)
+        galleries = _galleries(errors, shown, ground_truth, images_dir, out, int(gallery_size),
+                               notes, point.get("threshold"))
+    summary = build_summary(evaluation, point, inputs, notes,
+                            errors=errors if errors is not evaluation else None,
+                            provenance=provenance, warnings=warnings)
     _write_text(out / "summary.json", _summary_text(summary))
-    _write_text(out / "report.html", _html(summary, evaluation, galleries))
+    _write_text(out / "report.html", _html(summary, evaluation, galleries, errors))
     return summary
 
 
@@ -1110,18 +1282,21 @@ class ScoreResult:
     report : str
         Path of ``report.html``.
     notes : list of str
+    warnings : list of str
+        Mismatches of image names between the two files (:func:`name_mismatches`).
     """
 
     summary: dict
     evaluation: Evaluation
     report: str
     notes: list
+    warnings: list = field(default_factory=list)
 
 
 def score_files(detections_path, labels_path, report_dir, iou_threshold: float = 0.5,
                 images_dir=None, label: str | None = None, target_precision: float | None = None,
                 target_recall: float | None = None, force: bool = False,
-                gallery_size: int = GALLERY_SIZE) -> ScoreResult:
+                gallery_size: int = GALLERY_SIZE, strict: bool = False) -> ScoreResult:
     """Score a detections file against a labels file and write the report folder.
 
     Parameters
@@ -1143,6 +1318,10 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     force : bool, default False
         Replace the report in a folder that holds files.
     gallery_size : int, default 24
+    strict : bool, default False
+        Refuse (before writing anything) when labelled images have no rows in the detections
+        file or detected images are not in the labels (:func:`name_mismatches`); without it
+        they are warnings, in ``ScoreResult.warnings`` and on the page.
 
     Returns
     -------
@@ -1152,7 +1331,8 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     ------
     InputError
         Bad input files (naming file and line), names that differ only in folder or case, a
-        non-empty report folder without ``force``, bad targets or IoU, a missing ``images_dir``.
+        non-empty report folder without ``force``, bad targets or IoU, a missing ``images_dir``,
+        a provenance side file that cannot be read, and with ``strict`` a mismatch of names.
 
     Examples
     --------
@@ -1183,13 +1363,20 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
             folder = None
     inputs = read_score_inputs(detections_path, labels_path, label=label)
     notes = inputs.notes + notes
+    warnings = name_mismatches(list(inputs.detections), list(inputs.ground_truth),
+                               detections_path, labels_path)
+    if strict and warnings:
+        raise InputError(warnings[0] + " (--strict)")
+    provenance, why = provenance_of(detections_path)
+    if why is not None:
+        notes.append(why)
+    level = None if provenance is None else provenance["settings"].get("exit_level")
+    if level is not None and provenance["settings"]["early_exit"]:
+        notes.append(f"the detections were made with the tighter early exits for scans at "
+                     f"{level:g} or above (--exit-level {level:g}); below {level:g} the curve "
+                     "lacks objects those exits give up; a scan with the same exits (scan "
+                     "--threshold-from reuses them) reproduces the operating point")
     evaluation = evaluate(inputs.detections, inputs.ground_truth, iou_threshold)
-    if evaluation.unlabelled_images:
-        shown = ", ".join(evaluation.unlabelled_images[:3])
-        more = len(evaluation.unlabelled_images) - 3
-        notes.append(f"{len(evaluation.unlabelled_images)} detected images are not in the labels "
-                     f"and were left out ({evaluation.unlabelled_detections} detections): {shown}"
-                     + (f" and {more} more" if more > 0 else ""))
     point = choose_operating_point(evaluation, p_target, r_target)
     if not point["met"]:
         notes.append(f"operating point ({point['rule']}): {point['note']}")
@@ -1203,11 +1390,13 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
         "target_recall": r_target,
         "labelled_images": len(inputs.ground_truth),
         "detection_images": len(inputs.detections),
+        "detections_sha256": file_sha256(detections_path),
     }
     summary = write_report(out, evaluation, point, inputs.detections, inputs.ground_truth,
-                           folder, record, notes, force=True, gallery_size=gallery_size)
+                           folder, record, notes, force=True, gallery_size=gallery_size,
+                           provenance=provenance, warnings=warnings)
     return ScoreResult(summary=summary, evaluation=evaluation, report=str(out / "report.html"),
-                       notes=list(summary["notes"]))
+                       notes=list(summary["notes"]), warnings=warnings)
 
 
 # --------------------------------------------------------------------------------------------
@@ -1234,6 +1423,7 @@ h3 { font-size: 1rem; margin: 18px 0 6px; }
 .notes { background: #fffbe6; border-left: 4px solid #e0c200; padding: 8px 14px; margin: 14px 0;
          font-size: 0.88rem; }
 .notes li { margin: 2px 0; word-break: break-word; }
+.warnings { background: #fff1ec; border-left-color: #d55e00; }
 .plots { display: flex; flex-wrap: wrap; gap: 18px; }
 .plots figure { margin: 0; flex: 1 1 340px; max-width: 600px; }
 .plots img { width: 100%; height: auto; border: 1px solid var(--line); border-radius: 4px; }
@@ -1272,7 +1462,22 @@ def _swatch(kind: str) -> str:
             f'</span>{_esc(text)}</span>')
 
 
-def _html(summary: dict, evaluation: Evaluation, galleries) -> str:
+def _provenance_html(record: dict | None) -> str:
+    """Which model and settings made the detections: one paragraph."""
+    if not record:
+        return ('<p class="inputs">made by: <span class="empty">unknown (the detections file has '
+                'no provenance side file)</span></p>')
+    model = record.get("model") or {}
+    parts = [f'model <code>{_esc(model.get("file"))}</code> (SHA-256 '
+             f'<code>{_esc(str(model.get("sha256"))[:16])}</code>, {_esc(model.get("mode"))}, '
+             f'{_esc(model.get("trees"))} trees, trained {_esc(model.get("trained"))})',
+             f'scan: {_esc(describe_settings(record.get("settings") or {}))}',
+             f'patchwood {_esc(record.get("patchwood"))}']
+    return f'<p class="inputs">made by: {" &middot; ".join(parts)}</p>'
+
+
+def _html(summary: dict, evaluation: Evaluation, galleries, errors: Evaluation | None = None) -> str:
+    errors = evaluation if errors is None else errors
     inputs = summary.get("inputs") or {}
     point = summary["operating_point"]
     ap = _ap_name(evaluation.iou_threshold)
@@ -1290,6 +1495,11 @@ def _html(summary: dict, evaluation: Evaluation, galleries) -> str:
     if inputs.get("label"):
         described.append(f"label <code>{_esc(inputs['label'])}</code>")
     parts.append(f'<p class="inputs">{" &middot; ".join(described)}</p>')
+    parts.append(_provenance_html(summary.get("provenance")))
+    warnings = summary.get("warnings") or []
+    if warnings:
+        parts.append('<ul class="notes warnings">' + "".join(f"<li>warning: {_esc(w)}</li>"
+                                                            for w in warnings) + '</ul>')
 
     # headline
     parts.append('<div class="cards">')
@@ -1305,18 +1515,27 @@ def _html(summary: dict, evaluation: Evaluation, galleries) -> str:
     parts.append(_card("not reached" if f09 is None else _fmt(f09, 2), "FPPI at recall 0.9"))
     parts.append(_card(_percent(evaluation.log_average_miss_rate), "log-average miss rate"))
     parts.append('</div><div class="cards">')
-    for value, name in ((evaluation.images, "labelled images"), (evaluation.objects, "objects"),
-                        (evaluation.detections, "detections"),
-                        (evaluation.true_detections, "true detections"),
-                        (evaluation.false_alarms, "false alarms"), (evaluation.misses, "misses")):
+    at = "" if point.get("threshold") is None else " at the threshold"
+    for value, name in ((errors.images, "labelled images"), (errors.objects, "objects"),
+                        (errors.detections, "detections" + at),
+                        (errors.true_detections, "true detections" + at),
+                        (errors.false_alarms, "false alarms" + at), (errors.misses, "misses" + at)):
         parts.append(_card(str(value), name, "count"))
     parts.append('</div>')
+    if point.get("threshold") is None:
+        counted = ('The counts, the galleries and the table keep every detection in the file '
+                   '(there is no recommended threshold).')
+    else:
+        counted = (f'The counts, the galleries and the per-image table describe the operating '
+                   f'point: the {errors.detections} detections scoring {point["threshold"]:.6g} '
+                   f'or more, what a scan at that threshold gives; the AP and the curves use all '
+                   f'{evaluation.detections} detections in the file.')
     parts.append('<p class="read">How to read this: AP is the area under the precision-recall '
                  'curve, 1.0 when every object is found before any false alarm. The orange cards '
                  f'are the recommended score threshold: {_esc(point["note"])}. '
                  'FPPI is false alarms per image; the log-average miss rate is the share of '
                  'objects missed, averaged over 0.01 to 1 false alarms per image (lower is '
-                 'better). The counts keep every detection in the file.</p>')
+                 f'better). {_esc(counted)}</p>')
     notes = summary.get("notes") or []
     if notes:
         parts.append('<ul class="notes">' + "".join(f"<li>{_esc(n)}</li>" for n in notes)
@@ -1363,14 +1582,20 @@ def _html(summary: dict, evaluation: Evaluation, galleries) -> str:
     else:
         parts.append('<div class="legend">' + "".join(_swatch(k) for k in BOX_STYLES)
                      + '<span>thick line: the box the thumbnail is about</span></div>')
+        if point.get("threshold") is not None:
+            parts.append(f'<p class="read">The errors at the recommended threshold '
+                         f'{point["threshold"]:.6g}: the boxes drawn are the detections scoring '
+                         'that or more; a missed object\'s nearest score counts every detection '
+                         'in the file, so "below the threshold" marks an object the scan saw '
+                         'but the threshold drops.</p>')
         sections = (
-            ("false alarm", "Highest-scoring false alarms", evaluation.false_alarms,
+            ("false alarm", "Highest-scoring false alarms", errors.false_alarms,
              "How to read this: the detections the model was surest of that match no labelled "
              "object, highest score first. IoU is the best overlap with a labelled object: a "
              "high IoU means a badly placed box or a second detection of the same object; no "
              "overlap means the model fires on background (candidates for mining rounds) - or "
              "the object is not labelled."),
-            ("missed", "Missed objects", evaluation.misses,
+            ("missed", "Missed objects", errors.misses,
              "How to read this: labelled objects that no detection matched. Those with a "
              "nearby detection come first (highest nearby score first): the model saw something "
              "but placed the box too poorly or scored it too low. Those with no detection at all "
@@ -1393,12 +1618,14 @@ def _html(summary: dict, evaluation: Evaluation, galleries) -> str:
             parts.append('</div>')
 
     # per-image table
-    rows = sorted(evaluation.per_image,
+    rows = sorted(errors.per_image,
                   key=lambda r: (-(r.false_alarms + r.misses), -r.misses, r.image))
     parts.append('<h2>Per image</h2>')
+    which = ("counts keep every detection in the file" if point.get("threshold") is None else
+             f'counts are those of the detections scoring {point["threshold"]:.6g} or more')
     parts.append('<p class="read">How to read this: one row per labelled image, the images '
-                 'with the most errors (false alarms plus misses) first; counts keep every '
-                 'detection in the file. Shaded rows have errors.</p>')
+                 f'with the most errors (false alarms plus misses) first; {_esc(which)}. '
+                 'Shaded rows have errors.</p>')
     parts.append('<table><tr><th>image</th><th>objects</th><th>detections</th><th>true</th>'
                  '<th>false alarms</th><th>misses</th></tr>')
     for r in rows:

@@ -200,7 +200,15 @@ class ScanSettings:
     nms_iou : float
         Non-maximum suppression: drop a box whose IoU with a better one exceeds this.
     early_exit : bool
-        Use the model's early-exit thresholds.
+        Use the model's early-exit thresholds (and its contrast gate).
+    exit_level : float in [0, 1] or None
+        None (the default): the exits that keep every calibration object the model was trained to
+        keep, the same whatever the threshold, so that a scan at threshold T returns exactly the
+        detections of a scan at any lower threshold that score T or more. A level: the tighter
+        exits calibrated for scans at that level or above (``Model.exits_for``), a speed option
+        (fewer trees per window at high thresholds); they may drop objects that would have
+        scored at or above the level, so a report and the scans it is meant for must use the
+        same level.
     overhang : float in [0, 0.5]
         How far a window may reach past each edge of the image, as a share of its width (height);
         the image's border pixels are repeated there, so objects cut by the frame's edge are found.
@@ -219,10 +227,18 @@ class ScanSettings:
     nms_iou: float = 0.3
     early_exit: bool = True
     overhang: float = 0.25
+    exit_level: float | None = None
 
     def __post_init__(self):
         if not 0.0 <= self.overhang <= MAX_OVERHANG:
             raise ValueError(f"overhang must be in [0, {MAX_OVERHANG}], got {self.overhang!r}")
+        if not 0.0 <= self.threshold <= 1.0:
+            raise ValueError(f"threshold must be in [0, 1], got {self.threshold!r}")
+        if self.exit_level is not None:
+            if not 0.0 <= self.exit_level <= 1.0:
+                raise ValueError(f"exit_level must be in [0, 1], got {self.exit_level!r}")
+            if not self.early_exit:
+                raise ValueError("exit_level chooses early exits; it needs early_exit")
 
 
 #: The scan looks for objects from the smallest labelled size divided by this to the largest
@@ -357,6 +373,58 @@ def final_scores(model, raw):
     from detector.forest import final_score
 
     return final_score(model.mode, raw, model.leaf_values.shape[0], model.temperature)
+
+
+#: Decimals a detection's score keeps. The detections file holds scores to six decimals, and the
+#: scan rounds them the same way *before* it compares them with its threshold and before
+#: non-maximum suppression, so the scores the engine returns are the scores the file shows, and a
+#: threshold read from a file (``score`` recommends a detection's score) keeps exactly the
+#: detections the file shows at or above it.
+SCORE_DECIMALS = 6
+
+
+def detection_scores(model, raw) -> np.ndarray:
+    """Running score after the last tree -> a detection's score: :func:`final_scores` rounded to
+    :data:`SCORE_DECIMALS` decimals (``np.round``: monotone, so the order of windows by score
+    never reverses; it may only tie them).
+
+    >>> from detector.model import Model
+    >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+    ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged", normalize=False)
+    >>> detection_scores(m, [0.12345649, 0.12345651]).tolist()  # one tree: the score is the sum
+    [0.123456, 0.123457]
+    """
+    return np.round(final_scores(model, raw), SCORE_DECIMALS)
+
+
+def kernel_cutoff(model, threshold: float) -> float:
+    """A running score below which no window can reach a detection score of ``threshold``.
+
+    The compiled loop keeps the windows whose running score after the last tree is at least this
+    (and drops a window early once even the largest leaves of the trees left cannot lift it
+    there); the engine then keeps those whose :func:`detection_scores` reach ``threshold``, the
+    exact rule. Aiming a millionth of a score below the threshold leaves room for the rounding of
+    the scores and of the logistic link, so the loop never drops a window the exact rule keeps;
+    the few windows in between cost nothing to check. ``-inf`` when the threshold is within a
+    millionth of 0 (every window is kept).
+
+    >>> from detector.model import Model
+    >>> m = Model((2, 2), np.array([[[0, 0, 2, 1, -1], [0, 1, 2, 1, 1]] + [[0] * 5] * 2], np.int32),
+    ...           [[0]] * 4, [[0.0]] * 4, [[0.0, 1.0]] * 4, [-np.inf] * 4, "bagged", normalize=False)
+    >>> round(kernel_cutoff(m, 0.5), 9), kernel_cutoff(m, 0.0)   # 4 trees: 4 * (0.5 - 1e-6)
+    (1.999996, -inf)
+    """
+    margin = 10.0 ** -SCORE_DECIMALS
+    if threshold - margin <= 0.0:
+        return -math.inf
+    cut = raw_cutoff(model, threshold - margin)
+    step = 1e-9 * (1.0 + abs(cut))
+    # a guard only: with the margin above a computed score monotone in the running score never
+    # reaches the threshold here
+    while detection_scores(model, [cut])[0] >= threshold:
+        cut -= step
+        step *= 2.0
+    return cut
 
 
 #: An 8-bit frame's integral image is held as int32 while its sums fit (255 * pixels < 2**31, so
@@ -547,23 +615,32 @@ def first_use_order(node_features, n_features: int):
 
 
 def _remaining_bound(leaf_values):
+    """``bound[t]``: the most the trees after ``t`` can add to a running score, raised by a
+    billionth of the largest total any running score can reach, so that rounding in the float
+    sums (far smaller) never makes the bound drop a window that would have reached the cutoff."""
     top = leaf_values.max(axis=1).astype(np.float64)
-    return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]])
+    slack = 1e-9 * (1.0 + float(np.abs(leaf_values).max(axis=1).sum()))
+    return np.concatenate([np.cumsum(top[::-1])[::-1][1:], [0.0]]) + slack
 
 
 class Engine:
     """A model made ready for scanning: arrays in the kernel's dtypes, per-size plans cached.
 
+    The detections of a scan at threshold ``T`` are exactly those of a scan with the same
+    settings at any lower threshold whose score is ``T`` or more: same boxes, same scores, same
+    order. Nothing the loop does depends on the threshold except the exact rule that drops a
+    window once it can no longer reach it (:func:`kernel_cutoff`): the early exits are the
+    model's ``exit_thresholds`` (or, with ``settings.exit_level``, the row for that level, the
+    same at every threshold), and greedy non-maximum suppression visits boxes in descending score,
+    so a box at or above ``T`` is only ever suppressed by another one at or above ``T``.
+
     Parameters
     ----------
     model : detector.model.Model
     settings : ScanSettings
-    exit_level : float, optional
-        Use the early exits for this score threshold instead of the settings' threshold (a lower
-        level exits later; 0 keeps every calibration object).
     """
 
-    def __init__(self, model, settings: ScanSettings | None = None, exit_level: float | None = None):
+    def __init__(self, model, settings: ScanSettings | None = None):
         self.model = model
         self.settings = settings or ScanSettings()
         self.window = tuple(int(v) for v in model.window)
@@ -580,16 +657,19 @@ class Engine:
         self.split_bounds = split_bounds(self.node_thresholds)
         self.leaf_values = np.ascontiguousarray(model.leaf_values, np.float64)
         T = self.leaf_values.shape[0]
-        if self.settings.early_exit:
-            level = self.settings.threshold if exit_level is None else exit_level
-            self.exits = np.ascontiguousarray(model.exits_for(level), np.float64)
-        else:
+        if not self.settings.early_exit:
             self.exits = np.full(T, -np.inf)
+        elif self.settings.exit_level is None:
+            self.exits = np.ascontiguousarray(model.exit_thresholds, np.float64)
+        else:
+            self.exits = np.ascontiguousarray(model.exits_for(self.settings.exit_level),
+                                              np.float64)
         self.bound = _remaining_bound(self.leaf_values)
         # the contrast gate is part of the early exit (off with it)
         gate = model.exit_min_sigma if self.settings.early_exit else 0.0
         self.min_var = gate * gate if gate > 0 else -np.inf
-        self.cutoff = raw_cutoff(model, self.settings.threshold)
+        self.threshold = float(self.settings.threshold)
+        self.cutoff = kernel_cutoff(model, self.threshold)
         self.normalize = bool(model.normalize)
         self._grids: dict = {}
         self._lock = threading.Lock()
@@ -661,10 +741,11 @@ class Engine:
         return grid
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
-        """Every window that reaches the cutoff: ``(boxes (K,4) window boxes, raw (K,), windows,
-        trees)``, before the margin and non-maximum suppression. Window boxes may reach past the
-        image's edges (see ``ScanSettings.overhang``)."""
-        grid, up, (out_x, out_y, out_s, out_scale), kept, trees = self._run(gray, use_numpy)
+        """Every window whose score (:func:`detection_scores`) reaches the threshold: ``(boxes
+        (K,4) window boxes, raw (K,), windows, trees)``, before the margin and non-maximum
+        suppression. Window boxes may reach past the image's edges (see
+        ``ScanSettings.overhang``)."""
+        grid, up, (out_x, out_y, out_s, out_scale), _, kept, trees = self._run(gray, use_numpy)
         if grid is None:
             return np.zeros((0, 4)), np.zeros(0), 0, 0
         boxes = np.empty((kept, 4))
@@ -674,9 +755,11 @@ class Engine:
         return boxes, out_s[:kept].copy(), grid.windows, int(trees)
 
     def _run(self, gray, use_numpy: bool = False):
-        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, outputs, kept, trees)``,
-        the windows kept being the first ``kept`` entries of the four ``outputs`` (x, y, raw score,
-        scale index; :meth:`_Workspace.out`); ``grid`` None when the frame has no window."""
+        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, outputs, scores, kept,
+        trees)``, the windows kept being the first ``kept`` entries of the four ``outputs`` (x, y,
+        raw score, scale index; :meth:`_Workspace.out`), in window order, and ``scores`` their
+        detection scores, every one at least the threshold; ``grid`` None when the frame has no
+        window."""
         lo, _ = self.object_scale_range()
         up = 1.0
         if lo < 1.0:
@@ -688,7 +771,7 @@ class Engine:
         grid = self._grid((iw, ih), up)
         pad = grid.pad
         if not grid.windows:
-            return None, up, (None,) * 4, 0, 0
+            return None, up, (None,) * 4, np.zeros(0), 0, 0
         if pad:
             gray = self._work.padded(gray, pad)
         if self.channels is None:
@@ -716,7 +799,17 @@ class Engine:
                 ii, sq, stride, grid.xs_all, grid.x_start, grid.ys_all, grid.y_start, grid.wins,
                 grid.inv_areas, *rules, grid.offsets, grid.weights, grid.counts, grid.consts,
                 *trees_and_exits, out_x, out_y, out_s, out_scale)
-        return grid, up, (out_x, out_y, out_s, out_scale), int(kept), int(trees)
+        kept = int(kept)
+        # the exact rule: the loop kept every window that can score the threshold, and a few
+        # just below it (kernel_cutoff)
+        scores = detection_scores(self.model, out_s[:kept])
+        reach = scores >= self.threshold
+        if not reach.all():
+            keep = np.flatnonzero(reach)
+            for out in (out_x, out_y, out_s, out_scale):
+                out[:len(keep)] = out[keep]
+            scores, kept = scores[keep], len(keep)
+        return grid, up, (out_x, out_y, out_s, out_scale), scores, kept, int(trees)
 
     def scan(self, gray: np.ndarray, use_numpy: bool = False) -> FrameResult:
         """Detections in one grayscale frame: object boxes, scores in 0..1 (descending), after
@@ -731,11 +824,10 @@ class Engine:
             wboxes, raw, windows, trees = self.candidates(gray, use_numpy=True)
             boxes, scores = self.detections(wboxes, raw, image_size=gray.shape[::-1])
             return FrameResult(boxes, scores, windows, trees)
-        grid, up, (out_x, out_y, out_s, out_scale), kept, trees = self._run(gray)
+        grid, up, (out_x, out_y, out_s, out_scale), scores, kept, trees = self._run(gray)
         if grid is None or not kept:
             return FrameResult(np.zeros((0, 4)), np.zeros(0), 0 if grid is None else grid.windows,
                                trees)
-        scores = final_scores(self.model, out_s[:kept])
         ih, iw = gray.shape
         boxes, scores = _kernels.finish(out_x, out_y, out_scale, scores, grid.sizes, grid.pad,
                                         float(up), self.margin, float(iw), float(ih),
@@ -744,14 +836,15 @@ class Engine:
 
     def detections(self, window_boxes, raw, nms_iou=None, threshold=None, image_size=None,
                    windows: bool = False):
-        """Candidates -> object boxes and 0..1 scores, descending, after non-maximum suppression
-        (at ``nms_iou``, default the settings'), keeping scores >= ``threshold`` (default: all).
+        """Candidates -> object boxes and 0..1 scores (:func:`detection_scores`), descending, after
+        non-maximum suppression (at ``nms_iou``, default the settings'), keeping scores >=
+        ``threshold`` (default: all).
 
         ``image_size=(width, height)``: clip the object boxes to the image first (a window that
         reaches past the edge stands for the part of the object inside, as labels do).
         ``windows=True``: also return the window box of each detection (what the scan scored).
         """
-        scores = final_scores(self.model, raw)
+        scores = detection_scores(self.model, raw)
         if threshold is not None:
             keep = scores >= threshold
             window_boxes, scores = window_boxes[keep], scores[keep]

@@ -187,6 +187,101 @@ def test_coco_output_holds_the_same_detections(trained, folder, tmp_path):
     assert len(res.anns) == sum(len(d.scores) for d in a)
 
 
+# ------------------------------------------------------------------ provenance
+
+def test_every_detections_file_has_a_provenance_side_file(trained, folder, tmp_path):
+    """DETECTIONS.provenance.json names the model (SHA-256 of its bytes and of its metadata
+    string, both checked here with hashlib, FIPS 180-4), every scan setting, the versions, and
+    the detections file it describes (its SHA-256 and image count); a COCO file carries the same
+    record in its info (issue 16)."""
+    import dataclasses
+    import hashlib
+    import json
+
+    import numba
+
+    from detector.provenance import provenance_of, provenance_path
+
+    model = trained / "model.npz"
+    out = tmp_path / "daily.csv"
+    result = invoke(model, folder, "--out", out, "--threshold", 0.3, "--stride", 3)
+    assert result.exit_code == 0, result.output
+    side = tmp_path / "daily.provenance.json"
+    assert provenance_path(out) == side
+    record = json.loads(side.read_text())
+    assert record["format"] == "patchwood scan provenance" and record["version"] == 1
+    assert record["model"]["sha256"] == hashlib.sha256(model.read_bytes()).hexdigest()
+    stored = str(np.load(model, allow_pickle=False)["metadata"])
+    assert record["model"]["metadata_sha256"] == hashlib.sha256(stored.encode()).hexdigest()
+    assert record["model"]["file"] == str(model.resolve())
+    assert record["settings"] == dataclasses.asdict(ScanSettings(threshold=0.3, stride=3.0))
+    assert record["inputs"] == [str(folder)]
+    assert record["libraries"]["numpy"] == np.__version__
+    assert record["libraries"]["numba"] == numba.__version__
+    assert record["libraries"]["opencv"] == cv2.__version__
+    assert record["detections"] == {"file": "daily.csv", "images": 7,
+                                    "sha256": hashlib.sha256(out.read_bytes()).hexdigest()}
+    assert provenance_of(out) == (record, None)
+    # the COCO file carries the same record under info (without its own hash)
+    coco = tmp_path / "daily.json"
+    assert invoke(model, folder, "--out", coco, "--format", "coco", "--threshold", 0.3,
+                  "--stride", 3).exit_code == 0
+    info = json.loads(coco.read_text())["info"]
+    side_coco = json.loads((tmp_path / "daily.provenance.json").read_text())
+    assert info == dict(side_coco, detections={"file": "daily.json", "images": 7})
+    assert info["settings"] == record["settings"] and info["model"] == record["model"]
+    # a side file written for other contents does not describe the file
+    out.write_text(out.read_text() + "frame_0009.png,,,,,\n")
+    found, why = provenance_of(out)
+    assert found is None and "written for other contents" in why
+
+
+def test_resume_refuses_an_output_made_another_way(trained, folder, tmp_path, monkeypatch,
+                                                   capsys):
+    """--resume continues only an output whose provenance names this model file and these
+    settings; otherwise one line and exit 1, and the output is left as it was (issue 17, 6)."""
+    from detector.model import save_model
+
+    model = trained / "model.npz"
+    other = tmp_path / "other.npz"
+    changed = load_model(model)
+    changed.metadata["note"] = "trained again"  # same trees, another file: another model
+    save_model(other, changed)
+    out = tmp_path / "d.csv"
+    code, _, err = run_main(monkeypatch, capsys, model, folder, "--out", out, "--threshold", 0.3)
+    assert code == 0, err
+    before = out.read_bytes()
+    cases = [
+        ([other, folder, "--out", out, "--resume", "--threshold", 0.3],
+         "--resume: the output was made with another model"),
+        ([model, folder, "--out", out, "--resume"],
+         "--resume: the output was made with other settings: threshold 0.5 (recorded 0.3)"),
+        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--exit-level", 0.5],
+         "other settings: exit_level 0.5 (recorded None)"),
+        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--overhang", 0],
+         "other settings: overhang 0.0 (recorded 0.25)"),
+    ]
+    for args, message in cases:
+        code, _, err = run_main(monkeypatch, capsys, *args)
+        assert code == 1 and err.count("\n") == 1, (args, err)
+        assert err.startswith(f"error: {out}: ") and message in err, (args, err)
+        assert out.read_bytes() == before
+    # the same model and settings continue it
+    code, stdout, err = run_main(monkeypatch, capsys, model, folder, "--out", out, "--resume",
+                                 "--threshold", 0.3)
+    assert code == 0, err
+    assert "images scanned: 0 (+7 kept from the earlier run)" in stdout
+    # an output changed since, or without a side file, cannot be checked: refused
+    out.write_bytes(before + b"elsewhere.png,,,,,\n")
+    code, _, err = run_main(monkeypatch, capsys, model, folder, "--out", out, "--resume",
+                            "--threshold", 0.3)
+    assert code == 1 and "the output changed after the scan that wrote d.provenance.json" in err
+    (tmp_path / "d.provenance.json").unlink()
+    code, _, err = run_main(monkeypatch, capsys, model, folder, "--out", out, "--resume",
+                            "--threshold", 0.3)
+    assert code == 1 and "no provenance side file (d.provenance.json)" in err
+
+
 # ------------------------------------------------------------------ refusals
 
 def test_existing_output_is_refused_without_force(trained, folder, tmp_path, monkeypatch, capsys):
@@ -348,6 +443,10 @@ def test_interrupted_run_resumes_into_the_uninterrupted_file(trained, folder, re
         scan_paths(model, [folder], out, batch_images=2, on_image=interrupt_after_five)
     partial = read_detections(out)  # parses: a valid detections file
     assert_matches_engine(partial, reference, NAMES[:5])  # the images handled, each complete
+    from detector.provenance import provenance_of
+
+    record, _ = provenance_of(out)  # its side file describes it as it is
+    assert record is not None and record["detections"]["images"] == 5
     summary = scan_paths(model, [folder], out, resume=True)
     assert (summary.resumed, summary.images) == (5, 2)
     assert out.read_bytes() == whole.read_bytes()

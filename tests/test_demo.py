@@ -20,6 +20,13 @@ def test_demo_runs_the_whole_workflow_on_small_data(tmp_path):
                  "report/summary.json"):
         assert (out / name).is_file(), name
     assert "report:" in result.output and "[5/5]" in result.output
+    # the frames are drawn at the recommended threshold, one per test frame (10 frames: 8 / 2)
+    threshold = json.loads((out / "report" / "summary.json").read_text())["operating_point"][
+        "threshold"]
+    assert len(list((out / "drawn").glob("*.png"))) == 2
+    assert f"2 annotated frames in {out / 'drawn'}, detections at score >= " \
+           f"{0.05 if threshold is None else threshold:g}" in result.output
+    assert (out / "detections.provenance.json").is_file()
     model = load_model(out / "model.npz")
     assert model.n_trees == 8 and len(model.metadata["mining"]) == 2  # first model + after round 1
     # the report's AP is the evaluator's AP on the files the demo wrote

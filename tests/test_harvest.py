@@ -575,7 +575,7 @@ def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
     # --window is reported as such
     code, text, _ = run_cli(monkeypatch, capsys, "harvest", folder / "images", folder / "labels.csv",
                             "--out", tmp_path / "b2.npz", "--window", "32x16", "--copies", 0,
-                            "--no-mirror", "--rotate", 0, "--jitter", 0.1)
+                            "--no-mirror", "--rotate", 0)  # options that ask for no copies
     assert code == 0 and "window: 32x16 (from --window)" in text
     assert load_bank(tmp_path / "b2.npz").patches.shape[1:] == (16, 32)
     # an existing bank is refused and left as it was

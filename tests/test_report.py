@@ -300,6 +300,10 @@ def test_threshold_from_summary_reads_the_key(tmp_path):
     ('{"operating_point": {"threshold": null, "rule": "highest recall with precision >= 0.99"}}',
      "no threshold: highest recall with precision >= 0.99 could not be met"),
     ('{"operating_point": {"threshold": "0.5"}}', "not a number"),
+    ('{"operating_point": {"threshold": 1.5}}', "threshold 1.5 is not a score in 0..1"),
+    ('{"operating_point": {"threshold": -0.01}}', "threshold -0.01 is not a score in 0..1"),
+    ('{"operating_point": {"threshold": 0.5}, "provenance": {"format": "other"}}',
+     "not a provenance record"),
 ])
 def test_threshold_from_summary_errors(tmp_path, content, message):
     path = tmp_path / "summary.json"

@@ -19,7 +19,8 @@ from detector.classifier import PatchClassifier
 from detector.harvest import harvest, window_box_to_object_box
 from detector.labels import read_labels
 from detector.model import Model
-from detector.scan import Engine, ScanSettings, clip_boxes, final_scores, first_use_order
+from detector.scan import (Engine, ScanSettings, clip_boxes, detection_scores, final_scores,
+                           first_use_order)
 from synthetic_images import render_frame, render_scenario
 
 WINDOW = (24, 24)
@@ -247,8 +248,8 @@ def test_scan_objects_are_window_boxes_shrunk_by_margin(bagged):
     inside = (obj[:, 0] >= 0) & (obj[:, 1] >= 0) & (obj[:, 0] + obj[:, 2] <= 160) & \
         (obj[:, 1] + obj[:, 3] <= 160)
     assert inside.any() and not inside.all()
-    found = as_dict(clip_boxes(obj, (160, 160)), final_scores(bagged, raw))
-    exact = as_dict(obj[inside], final_scores(bagged, raw[inside]))
+    found = as_dict(clip_boxes(obj, (160, 160)), detection_scores(bagged, raw))
+    exact = as_dict(obj[inside], detection_scores(bagged, raw[inside]))
     for box, score in zip(result.boxes.tolist(), result.scores.tolist()):
         assert found[tuple(box)] == pytest.approx(score, abs=1e-12)
         x, y, w, h = box
@@ -349,12 +350,103 @@ def test_cutoff_bound_is_exact_without_early_exit(model):
     gray = frame(9)
     b_all, r_all, windows, trees_all = every_window(model, threshold=0.0).candidates(gray)
     b, r, _, trees = every_window(model, threshold=0.5).candidates(gray)
-    scores = final_scores(model, r_all)
+    scores = detection_scores(model, r_all)
     if model.mode == "bagged":
         assert trees_all == windows * model.leaf_values.shape[0]  # nothing dropped at threshold 0
     expected = as_dict(b_all[scores >= 0.5], r_all[scores >= 0.5])
     assert as_dict(b, r).keys() == expected.keys()
     assert trees < trees_all
+
+
+# ------------------------------------------------------------------ threshold invariance
+
+#: Scan settings the invariance property draws from (exit levels: the model's own rows).
+SETTINGS_DRAWN = st.fixed_dictionaries({
+    "stride": st.sampled_from([1.5, 2.0, 3.0]),
+    "scale_step": st.sampled_from([1.15, 1.25, 1.5]),
+    "overhang": st.sampled_from([0.0, 0.25, 0.5]),
+    "nms_iou": st.sampled_from([0.2, 0.3, 0.5]),
+    "early_exit": st.booleans(),
+    "exit_level": st.sampled_from([None, None, 0.05, 0.3, 0.5, 0.9]),
+})
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(mode=st.sampled_from(["bagged", "boosted"]), image=st.sampled_from([3, 4, 9]),
+       chosen=SETTINGS_DRAWN, low=st.floats(0.0, 0.9), data=st.data())
+def test_scan_at_a_threshold_is_the_lower_scan_cut_there(bagged, boosted, mode, image, chosen,
+                                                          low, data):
+    """For T' < T, the scan at T gives exactly the detections of the scan at T' that score T or
+    more: same boxes, same scores, same order (issue 16). Greedy NMS visits boxes in descending
+    score, so a box at or above T is only ever suppressed by one at or above T; what remains to
+    prove is that nothing else in the scan depends on the threshold. T is drawn between T' and 1,
+    often exactly at one of the lower scan's scores (the case `score` recommends), and the exits
+    drawn include the tighter rows of --exit-level (the same at both thresholds)."""
+    model = bagged if mode == "bagged" else boosted
+    if not chosen["early_exit"]:
+        chosen = dict(chosen, exit_level=None)
+    gray = frame(image, 160, 160)
+    lower = Engine(model, ScanSettings(threshold=low, **chosen)).scan(gray)
+    above = np.unique(lower.scores[lower.scores > low])
+    if len(above) and data.draw(st.booleans(), label="at a score"):
+        high = float(data.draw(st.sampled_from(above.tolist()), label="T"))
+    else:
+        high = data.draw(st.floats(low, 1.0, exclude_min=True), label="T")
+    upper = Engine(model, ScanSettings(threshold=high, **chosen)).scan(gray)
+    cut = lower.scores >= high
+    np.testing.assert_array_equal(upper.boxes, lower.boxes[cut])
+    np.testing.assert_array_equal(upper.scores, lower.scores[cut])
+    assert upper.windows == lower.windows and upper.trees <= lower.trees
+
+
+def test_threshold_invariance_holds_on_the_numpy_route_and_on_candidates(model):
+    """The same property through the numpy twin, and for the windows before suppression: the
+    candidates of a scan at 0.5 are those of the scan at 0.05 whose score is 0.5 or more, in the
+    same window order."""
+    gray = frame(9)
+    lo, hi = (Engine(model, ScanSettings(threshold=t)) for t in (0.05, 0.5))
+    b_lo, r_lo, _, _ = lo.candidates(gray)
+    b_hi, r_hi, _, _ = hi.candidates(gray)
+    keep = detection_scores(model, r_lo) >= 0.5
+    assert keep.any() and not keep.all()
+    np.testing.assert_array_equal(b_hi, b_lo[keep])
+    np.testing.assert_array_equal(r_hi, r_lo[keep])
+    d_lo, d_hi = lo.scan(gray, use_numpy=True), hi.scan(gray, use_numpy=True)
+    cut = d_lo.scores >= 0.5
+    np.testing.assert_array_equal(d_hi.boxes, d_lo.boxes[cut])
+    np.testing.assert_array_equal(d_hi.scores, d_lo.scores[cut])
+
+
+def test_default_exits_are_the_models_own_and_the_level_picks_a_row(model):
+    """By default the scan uses exit_thresholds (every calibration object the exit keeps) at any
+    threshold; exit_level=L takes the exit_table row of the highest level not above L
+    (Model.exits_for); a level needs the early exit."""
+    for t in (0.05, 0.5, 0.95):
+        np.testing.assert_array_equal(Engine(model, ScanSettings(threshold=t)).exits,
+                                      model.exit_thresholds)
+    row = int(np.searchsorted(model.exit_levels, np.float32(0.5), side="right")) - 1
+    np.testing.assert_array_equal(Engine(model, ScanSettings(threshold=0.05, exit_level=0.5)).exits,
+                                  model.exit_table[row])
+    assert (model.exit_table[row] >= model.exit_thresholds).all()
+    with pytest.raises(ValueError, match="needs early_exit"):
+        ScanSettings(exit_level=0.5, early_exit=False)
+    for bad in (-0.1, 1.5):
+        with pytest.raises(ValueError, match="exit_level"):
+            ScanSettings(exit_level=bad)
+    with pytest.raises(ValueError, match="threshold"):
+        ScanSettings(threshold=1.01)
+
+
+def test_scores_are_rounded_as_the_file_writes_them(model):
+    """The engine's scores have six decimals, the detections file's precision, so a threshold
+    equal to a score read from a file keeps that detection."""
+    result = Engine(model, ScanSettings(threshold=0.05)).scan(frame(3))
+    assert len(result.scores)
+    np.testing.assert_array_equal(result.scores, np.round(result.scores, 6))
+    for s in result.scores[:5]:
+        as_read = float(repr(float(s)))  # the detections file writes repr(), "0.80255"
+        again = Engine(model, ScanSettings(threshold=as_read)).scan(frame(3))
+        assert as_read in again.scores
 
 
 def test_small_objects_enlarge_the_image(bagged):

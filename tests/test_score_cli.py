@@ -125,8 +125,19 @@ def test_terminal_summary(scored):
     assert lines["images / objects"] == "4 / 4"
     assert lines["detections / true"] == "5 / 2"
     assert lines["false alarms / misses"] == "3 / 2"
+    # at the recommended 0.6: 0.9 T, 0.8 F, 0.7 F, 0.6 T kept; 0.5 on c.png dropped
+    assert lines["at 0.6000: detections / true"] == "4 / 2"
+    assert lines["at 0.6000: false alarms / misses"] == "2 / 2"
     assert lines["report"] == str(root / "report" / "report.html")
-    assert "note: 1 detected images are not in the labels" in out
+    # handmade detections have no provenance side file: the report says it cannot tell
+    assert "note: " + str(root / "detections.csv") + ": no provenance side file" in out
+    # e.png is labelled and has no row; d.png has rows and no label: one warning line each
+    warnings = [line for line in result.stderr.splitlines() if line.startswith("warning: ")]
+    assert warnings == [
+        f"warning: {root / 'detections.csv'}: 1 of 4 labelled images has no rows in it (not "
+        "scanned: another folder or a typo?); scored as finding nothing there: 'e.png'",
+        f"warning: {root / 'detections.csv'}: 1 image has rows but is not in "
+        f"{root / 'labels.csv'}; left out of every figure: 'd.png'"]
 
 
 def test_report_html_is_offline_and_links_exist(scored):
@@ -137,7 +148,7 @@ def test_report_html_is_offline_and_links_exist(scored):
     assert "<script" not in text.lower()
     parser = Links()
     parser.feed(text)
-    assert len(parser.links) >= 3 + 3 + 2  # plots, false alarms, misses
+    assert len(parser.links) >= 3 + 2 + 2  # plots, false alarms and misses at the threshold
     for link in parser.links:
         assert not link.startswith(("/", "file:")), link
         assert (report / link).is_file(), link
@@ -145,6 +156,7 @@ def test_report_html_is_offline_and_links_exist(scored):
     order = [text.index(s) for s in ('class="cards"', "precision-recall.png",
                                      "gallery/false-alarm-01.png", "<h2>Per image</h2>")]
     assert order == sorted(order)
+<<<<<<< HEAD
     # every section opens with its "How to read this" note: the headline figures, the curves,
     # the size table (when there is one), both galleries and the per-image table; no other
     headings = ["<h2>Curves</h2>", "<h3>Highest-scoring false alarms", "<h3>Missed objects",
@@ -155,9 +167,18 @@ def test_report_html_is_offline_and_links_exist(scored):
         assert after.lstrip().startswith('<p class="read">How to read this:'), heading
     assert text.count("How to read this") == len(headings) + 1
     # the per-image table is sorted by errors: b.png (1 false alarm + 1 miss) first
+=======
+    assert text.count("How to read this") >= 5
+    # the per-image table is sorted by errors at the threshold 0.6: b.png (1 false alarm + 1
+    # miss) first; c.png's only detection (0.5) is below it, so c.png is clean
+>>>>>>> issue-16
     table = text[text.index("<h2>Per image</h2>"):]
-    rows = re.findall(r"<tr class=\"\w+\"><td>([^<]+)</td>", table)
-    assert rows[:1] == ["b.png"] and sorted(rows) == ["a.png", "b.png", "c.png", "e.png"]
+    rows = re.findall(r"<tr class=\"(\w+)\"><td>([^<]+)</td>", table)
+    assert rows[:1] == [("bad", "b.png")]
+    assert sorted(rows, key=lambda r: r[1]) == [("bad", "a.png"), ("bad", "b.png"),
+                                                ("clean", "c.png"), ("bad", "e.png")]
+    # the mismatches of names are on the page too
+    assert text.count("<li>warning: ") == 2 and "&#x27;e.png&#x27;" in text
 
 
 def test_report_pictures_are_valid_pngs(scored):
@@ -165,11 +186,11 @@ def test_report_pictures_are_valid_pngs(scored):
     report = root / "report"
     pngs = sorted(report.rglob("*.png"))
     names = {p.relative_to(report).as_posix() for p in pngs}
-    # 3 false alarms, 2 misses (b.png's and e.png's objects)
+    # at the threshold 0.6: 2 false alarms (0.8 and 0.7; 0.5 is below), 2 misses (b.png's and
+    # e.png's objects); the curves keep all 3 false alarms
     assert names == {"precision-recall.png", "miss-rate.png", "score-histogram.png",
                      "gallery/false-alarm-01.png", "gallery/false-alarm-02.png",
-                     "gallery/false-alarm-03.png", "gallery/missed-01.png",
-                     "gallery/missed-02.png"}
+                     "gallery/missed-01.png", "gallery/missed-02.png"}
     for p in pngs:
         img = cv2.imread(str(p), cv2.IMREAD_UNCHANGED)
         assert img is not None and img.ndim == 3 and min(img.shape[:2]) >= 100, p
@@ -263,3 +284,77 @@ def test_missing_images_folder_is_an_error(tmp_path):
     result = run(root / "detections.csv", root / "labels.csv", "--report", root / "r",
                  "--images", root / "nowhere")
     assert result.exit_code == 1 and "no such images folder" in str(result.exception)
+
+
+def test_strict_turns_the_name_warnings_into_an_error(tmp_path):
+    """--strict: labelled images without rows (e.png) stop the run with one line naming the file
+    and the count, before any report file is written (issue 16)."""
+    root = make_folder(tmp_path / "data")
+    out = tmp_path / "report"
+    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    assert result.exit_code == 1 and isinstance(result.exception, InputError)
+    assert str(result.exception) == (
+        f"{root / 'detections.csv'}: 1 of 4 labelled images has no rows in it (not scanned: "
+        "another folder or a typo?); scored as finding nothing there: 'e.png' (--strict)")
+    assert not out.exists()
+    # detections of unlabelled images alone are refused the same way
+    (root / "labels.csv").write_text(LABELS_CSV + "e.png,,,,,\n".replace("e.png", "z.png"))
+    (root / "detections.csv").write_text(DETECTIONS_CSV + "e.png,,,,,\nz.png,,,,,\n")
+    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    assert result.exit_code == 1
+    assert str(result.exception).endswith("1 image has rows but is not in "
+                                          f"{root / 'labels.csv'}; left out of every figure: "
+                                          "'d.png' (--strict)")
+    # with every name matched, --strict scores as usual
+    (root / "detections.csv").write_text(
+        "\n".join(line for line in (DETECTIONS_CSV + "e.png,,,,,\nz.png,,,,,\n").splitlines()
+                  if not line.startswith("d.png")) + "\n")
+    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    assert result.exit_code == 0, result.output
+    assert "warning" not in result.stderr
+
+
+def test_many_missing_images_are_counted_and_the_first_few_named(tmp_path):
+    """A detections file of another folder: every labelled image lacks rows; the one warning
+    line counts them and names the first three."""
+    root = make_folder(tmp_path / "data")
+    (root / "detections.csv").write_text("image,x,y,width,height,score\n"
+                                         "other.png,1,1,5,5,0.5\n")
+    result = run(root / "detections.csv", root / "labels.csv", "--report", tmp_path / "r")
+    assert result.exit_code == 0, result.output
+    lines = result.stderr.splitlines()
+    assert lines[0] == (f"warning: {root / 'detections.csv'}: 4 of 4 labelled images have no "
+                        "rows in it (not scanned: another folder or a typo?); scored as finding "
+                        "nothing there: 'a.png', 'b.png', 'c.png' and 1 more")
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert summary["warnings"][0] == lines[0][len("warning: "):]
+
+
+def test_table_and_galleries_describe_the_operating_point(tmp_path):
+    """Two objects; a hit at 0.9, three false alarms at 0.8, 0.7, 0.6 and a hit at 0.3. Best F1:
+    at 0.9 F1 = 2 * 1 * .5 / 1.5 = .667; at 0.3 precision 2 / 5, recall 1, F1 = .571 (the other
+    thresholds are lower), so T = 0.9. At T the table has 1 detection, 1 true, 0 false alarms and
+    1 miss; the missed object's nearest score is 0.3, below T; the curves keep all 5 (issue 16)."""
+    (tmp_path / "images").mkdir()
+    cv2.imwrite(str(tmp_path / "images" / "a.png"), np.full((100, 100), 90, np.uint8))
+    (tmp_path / "labels.csv").write_text("image,x,y,width,height\na.png,0,0,10,10\n"
+                                         "a.png,40,0,10,10\n")
+    (tmp_path / "d.csv").write_text("image,x,y,width,height,score\na.png,0,0,10,10,0.9\n"
+                                    "a.png,80,80,10,10,0.8\na.png,60,60,10,10,0.7\n"
+                                    "a.png,20,60,10,10,0.6\na.png,40,0,10,10,0.3\n")
+    result = run(tmp_path / "d.csv", tmp_path / "labels.csv", "--report", tmp_path / "r")
+    assert result.exit_code == 0, result.output
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["operating_point"]["threshold"] == 0.9
+    assert (s["detections"], s["false_alarms"], s["misses"]) == (5, 3, 0)  # the whole file
+    at = s["at_operating_point"]
+    assert (at["detections"], at["true_detections"], at["false_alarms"], at["misses"]) == \
+        (1, 1, 0, 1)
+    assert at["per_image"] == [{"image": "a.png", "objects": 2, "detections": 1,
+                                "true_detections": 1, "false_alarms": 0, "misses": 1}]
+    assert at["miss_list"] == [{"image": "a.png", "box": [40.0, 0.0, 10.0, 10.0],
+                                "best_score": 0.3}]
+    html = (tmp_path / "r" / "report.html").read_text()
+    assert "nearest score 0.300, below the threshold" in html
+    assert "Highest-scoring false alarms (0 of 0)" in html and "Missed objects (1 of 1)" in html
+    assert sorted(p.name for p in (tmp_path / "r" / "gallery").iterdir()) == ["missed-01.png"]

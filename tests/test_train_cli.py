@@ -173,7 +173,7 @@ def first_round_recount(bank, test, settings, trees=10):
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
                                                  n_jobs=1), bank_path=bank)
-    engine = Engine(first, settings, exit_level=0.0)
+    engine = Engine(first, settings)
     items = read_labels(test / "labels.csv", images_dir=test / "images").items
     dets = {}
     for it in items:
