@@ -624,6 +624,14 @@ def train_baseline(bank, frames, ground_truth, *, cell: int = CELL, C: float = S
     (HogLinearSvm, list of int)
         The detector and the number of patches each mining round added.
     """
+    if "min_object" not in scan_options and "max_object" not in scan_options:
+        # the object sizes patchwood's scan looks for by default: the labelled ones
+        from types import SimpleNamespace
+
+        from detector.scan import default_object_range
+
+        lo, hi = default_object_range(SimpleNamespace(object_sizes=bank.metadata.get("object_sizes")))
+        scan_options = dict(scan_options, min_object=lo, max_object=hi)
     detector = HogLinearSvm(window=tuple(bank.window), margin=bank.margin, cell=cell, C=C,
                             random_state=random_state, **scan_options)
     X = detector.descriptors(bank.patches)

@@ -29,7 +29,7 @@ def train(
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
     trees: int = typer.Option(200, "--trees", min=1, max=10000, help="Number of trees."),
     depth: int = typer.Option(2, "--depth", min=1, max=8, help="Depth of every tree."),
-    mode: str = typer.Option("bagged", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
+    mode: str = typer.Option("boosted", "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
     pool: int = typer.Option(20000, "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
     sample_fraction: float = typer.Option(1.0, "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),

@@ -198,5 +198,7 @@ def test_resume_is_refused_for_a_results_list(scenario, tmp_path, monkeypatch, c
     code, err = run_main(monkeypatch, capsys, "scan", root / "model.npz", root / "test" / "images",
                          "--out", out, "--format", "coco-results", "--labels", root / "gt.json",
                          "--resume")
-    assert (code, err) == (1, f"error: {out}: --resume continues CSV output only\n")
+    # a usage error (exit status 2), before anything is read or written
+    assert code == 2 and err.count("\n") == 1
+    assert "--resume continues CSV output only; --format coco-results writes a new file" in err
     assert out.read_text() == "[]\n"

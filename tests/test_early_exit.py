@@ -322,7 +322,7 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
                                       else model.exit_table[row])
         for cutoff in (c, 0.0):
             engine = Engine(model, ScanSettings(threshold=cutoff, stride=1, scale_step=2.0,
-                                                overhang=0.0), exit_level=c)
+                                                overhang=0.0, exit_level=c))
             boxes, raw, windows, trees = engine.candidates(gray)
             kept = sorted(boxes[:, 0].astype(int).tolist())
             expected = [k for k in range(16) if k / 16 >= first_exit and (k / 16 + 39) / 40 >= cutoff]
@@ -380,7 +380,7 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
     between = [(a + b) / 2 for a, b in zip(levels[:-1], levels[1:])]
     given_up = 0
     for c in [0.02, *levels, *between, min(0.99, levels[-1] + 0.02)]:
-        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, **grid), exit_level=c))
+        with_exit = kept_tiles(Engine(m, ScanSettings(threshold=c, exit_level=c, **grid)))
         reach = {i for i in range(len(cal)) if score[i] >= c}
         dropped = reach - set(with_exit)
         row_level = max([level for level in levels if np.float32(level) <= np.float32(c)],

@@ -27,8 +27,8 @@ from detector.scan import Engine, ScanSettings
 from detector.training import train_model
 from synthetic_images import render_scenario
 
-GROW = ["--trees", "10", "--pool", "500"]
-TRAIN = [*GROW, "--mine-rounds", "0"]  # tests that are not about mining
+GROW = ["--trees", "10", "--pool", "500", "--mode", "bagged"]
+TRAIN = [*GROW, "--mine-rounds", "0", "--mode", "bagged"]  # tests that are not about mining
 
 
 @pytest.fixture(scope="module")
@@ -211,7 +211,8 @@ def test_mining_is_on_by_default_on_the_images_the_bank_came_from(scenario, cli_
     train = scenario / "scenario" / "train"
     assert load_bank(bank).metadata["source"] == {"images": str(train / "images"),
                                                   "labels": str(train / "labels.csv")}
-    code, text, err = cli_env("train", bank, "--out", out, "--trees", 40, "--pool", 500)
+    code, text, err = cli_env("train", bank, "--out", out, "--trees", 40, "--pool", 500,
+                              "--mode", "bagged")
     assert code == 0, err
     history = load_model(out).metadata["mining"]
     assert [h["round"] for h in history] == list(range(DEFAULT_MINE_ROUNDS + 1))
