@@ -12,8 +12,9 @@ Readers
 Writers
 -------
 :func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv` and
-:func:`write_detections_coco`. Each writes to a temporary file beside the target and renames it
-into place, so an interrupted run never leaves a half-written file.
+:func:`write_detections_coco`. Each writes through :func:`detector.files.atomic_write` (a temporary
+file beside the target, synced and renamed into place), so an interrupted run never leaves a
+half-written file.
 
 Every problem in a file raises :class:`detector.errors.InputError` with a one-line message that
 names the file and, for CSV, the 1-based line number (the header is line 1; a UTF-8 byte order
@@ -32,13 +33,12 @@ import math
 import os
 import posixpath
 import re
-import uuid
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write
 
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
@@ -804,30 +804,6 @@ def _number(v: float) -> str:
     return str(int(v)) if v.is_integer() and abs(v) < 2**53 else repr(v)
 
 
-@contextmanager
-def _replacing(path, newline: str | None = ""):
-    """Write to a temporary file beside ``path``, then rename it into place."""
-    path = os.fspath(path)
-    folder, base = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(folder, f".{base}.{os.getpid()}-{uuid.uuid4().hex[:8]}.part")
-    try:
-        fh = open(tmp, "x", newline=newline, encoding="utf-8")
-    except OSError as err:
-        reason = "its folder does not exist" if isinstance(err, FileNotFoundError) else (
-            err.strerror or str(err))
-        raise InputError(f"cannot write the file: {reason}", path=path) from None
-    try:
-        with fh:
-            yield fh
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
 def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
     """Write the labels CSV contract: header, one row per box, one empty row per object-free image.
 
@@ -847,7 +823,7 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
     """
     with_label = any(c for it in items for c in it.classes)
     header = list(LABEL_COLUMNS) + (["label"] if with_label else [])
-    with _replacing(path) as fh:
+    with atomic_write(path, "w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(header)
         for it in items:
@@ -928,7 +904,7 @@ def write_coco(path: str | os.PathLike, items: list[ImageLabels],
     doc = {"images": _coco_image_entries(list(merged), image_sizes, None),
            "annotations": annotations,
            "categories": [{"id": cid, "name": name} for name, cid in category_ids.items()]}
-    with _replacing(path, newline=None) as fh:
+    with atomic_write(path, "w") as fh:
         json.dump(doc, fh, ensure_ascii=False)
         fh.write("\n")
 
@@ -967,7 +943,7 @@ def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) 
     a.png,0,0,24,24,0.25
     b.png,,,,,
     """
-    with _replacing(path) as fh:
+    with atomic_write(path, "w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(DETECTION_COLUMNS)
         for image, boxes, scores in _merged_detections(items):
@@ -1025,6 +1001,6 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
     doc = {"images": _coco_image_entries([m[0] for m in merged], image_sizes, image_ids),
            "annotations": annotations,
            "categories": [{"id": 1, "name": category}]}
-    with _replacing(path, newline=None) as fh:
+    with atomic_write(path, "w") as fh:
         json.dump(doc, fh, ensure_ascii=False)
         fh.write("\n")

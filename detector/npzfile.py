@@ -2,9 +2,9 @@
 
 Writing
     :func:`save_npz` writes a deterministic zip archive (sorted entry names, fixed entry time
-    1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through a temporary file
-    in the same folder and an atomic :func:`os.replace`, so a crash never leaves a half-written file
-    at the destination. The same arrays always give the same bytes (for one zlib version).
+    1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through
+    :func:`detector.files.atomic_write`, so a crash never leaves a half-written file at the
+    destination. The same arrays always give the same bytes (for one zlib version).
 
 Reading
     :func:`read_npz` opens an archive without ever unpickling (object arrays are refused before their
@@ -20,7 +20,6 @@ import hashlib
 import io
 import os
 import struct
-import tempfile
 import warnings
 import zipfile
 import zlib
@@ -29,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write
 
 __all__ = ["ArraySpec", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
 
@@ -107,7 +107,7 @@ def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:
     ValueError
         An array has an object dtype (it could only be stored by pickling).
     InputError
-        The destination folder does not exist or cannot be written.
+        The destination cannot be written (its folder does not exist, the disk is full, ...).
 
     Examples
     --------
@@ -125,34 +125,14 @@ def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:
             raise ValueError(f"array {name!r} has an object dtype; it cannot be stored without pickle")
         payload[name] = _npy_bytes(arr)
 
-    folder = os.path.dirname(os.path.abspath(path))
-    if not os.path.isdir(folder):
-        raise InputError("the folder to write into does not exist", path=path)
-    try:
-        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-    except OSError as exc:
-        raise InputError(f"cannot write here ({exc.strerror or exc})", path=path) from None
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-                for name, data in payload.items():
-                    info = zipfile.ZipInfo(name + ".npy", date_time=ZIP_EPOCH)
-                    info.compress_type = zipfile.ZIP_DEFLATED
-                    info.create_system = 3
-                    info.external_attr = 0o644 << 16
-                    zf.writestr(info, data, compresslevel=6)
-            fh.flush()
-            os.fsync(fh.fileno())
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    with atomic_write(path) as fh:
+        with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+            for name, data in payload.items():
+                info = zipfile.ZipInfo(name + ".npy", date_time=ZIP_EPOCH)
+                info.compress_type = zipfile.ZIP_DEFLATED
+                info.create_system = 3
+                info.external_attr = 0o644 << 16
+                zf.writestr(info, data, compresslevel=6)
 
 
 def _read_header(buf: bytearray) -> tuple[tuple, bool, np.dtype, int]:

@@ -28,7 +28,6 @@ import math
 import os
 import posixpath
 import re
-import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from urllib.parse import quote
@@ -36,6 +35,7 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
 
 __all__ = [
@@ -589,15 +589,8 @@ def _figure(width=5.4, height=4.2):
 
 
 def _save(fig, path) -> None:
-    path = os.fspath(path)
-    folder, base = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(folder, f".{base}.{uuid.uuid4().hex[:8]}.part.png")
-    try:
-        fig.savefig(tmp, format="png", metadata={"Software": None})
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    with atomic_write(path) as fh:
+        fig.savefig(fh, format="png", metadata={"Software": None})
 
 
 def _nothing_to_draw(ax, text: str) -> None:
@@ -917,8 +910,7 @@ def _write_png(path, image: np.ndarray) -> None:
     ok, data = cv2.imencode(".png", image)
     if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
         raise InputError("cannot encode the picture", path=path)
-    with open(path, "wb") as fh:
-        fh.write(data.tobytes())
+    write_bytes(path, data.tobytes())
 
 
 def _image_boxes(name, detections, ground_truth, iou_threshold):
@@ -1031,17 +1023,6 @@ def _clear_old_report(out_dir: Path) -> None:
                 entry.unlink()
 
 
-def _write_text(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.part")
-    try:
-        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-
-
 def write_report(report_dir, evaluation: Evaluation, point: dict, detections: dict | None = None,
                  ground_truth: dict | None = None, images_dir=None, inputs: dict | None = None,
                  notes=(), force: bool = False, gallery_size: int = GALLERY_SIZE) -> dict:
@@ -1093,8 +1074,8 @@ def write_report(report_dir, evaluation: Evaluation, point: dict, detections: di
         galleries = _galleries(evaluation, detections, ground_truth, images_dir, out,
                                int(gallery_size), notes)
     summary = build_summary(evaluation, point, inputs, notes)
-    _write_text(out / "summary.json", _summary_text(summary))
-    _write_text(out / "report.html", _html(summary, evaluation, galleries))
+    write_text(out / "summary.json", _summary_text(summary))
+    write_text(out / "report.html", _html(summary, evaluation, galleries))
     return summary
 
 
