@@ -46,6 +46,8 @@ from detector.integral import integral_images
 __all__ = [
     "SHAPES",
     "SIGMA_FLOOR",
+    "MIN_WINDOW_SIDE",
+    "MAX_WINDOW_SIDE",
     "count_features",
     "enumerate_features",
     "random_pool",
@@ -58,6 +60,12 @@ SHAPES = ("two-side-by-side", "two-stacked", "three-side-by-side", "three-stacke
 
 #: Smallest standard deviation (grey levels) used to normalise a patch, so flat patches stay finite.
 SIGMA_FLOOR = 1.0
+
+#: The sides a window may have, in pixels: what ``patchwood harvest --window`` accepts, and what a
+#: model or patch bank file must hold (a larger window is refused on loading, before anything is
+#: allocated for it).
+MIN_WINDOW_SIDE = 4
+MAX_WINDOW_SIDE = 512
 
 # shape -> (blocks across, blocks down, ((block column, block row, weight), ...))
 _LAYOUTS = {

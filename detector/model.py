@@ -43,6 +43,7 @@ import numpy as np
 
 from detector import npzfile
 from detector.errors import InputError
+from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores)
 
@@ -367,10 +368,10 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     --------
     >>> import tempfile
     >>> p = os.path.join(tempfile.mkdtemp(), "m.npz")
-    >>> m = Model((2, 2), np.array([[[0, 0, 1, 2, -1], [1, 0, 1, 2, 1]] + [[0] * 5] * 2], np.int32),
+    >>> m = Model((4, 4), np.array([[[0, 0, 2, 4, -1], [2, 0, 2, 4, 1]] + [[0] * 5] * 2], np.int32),
     ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged")
     >>> save_model(p, m); load_model(p).window
-    (2, 2)
+    (4, 4)
     """
     arrays = model_arrays(model)
     validate_model(dict(arrays), path)
@@ -391,6 +392,11 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
     width, height = (int(v) for v in a["window"])
     if width < 1 or height < 1:
         raise InputError(f"model window {width}x{height} is empty", path=path)
+    if not (MIN_WINDOW_SIDE <= width <= MAX_WINDOW_SIDE
+            and MIN_WINDOW_SIDE <= height <= MAX_WINDOW_SIDE):
+        raise InputError(f"model window {width}x{height} is outside the sides a window may have "
+                         f"({MIN_WINDOW_SIDE}..{MAX_WINDOW_SIDE} pixels, as harvest allows)",
+                         path=path)
     nf = a["node_features"]
     if nf.min() < 0 or nf.max() >= n_features:
         raise InputError(f"model node feature index out of range (0..{n_features - 1}): "
@@ -482,7 +488,7 @@ def load_model(path: str | os.PathLike) -> Model:
     ...
     detector.errors.InputError: no/such/model.npz: no such model file
     """
-    a = npzfile.read_npz(path, kind="model")
+    a = npzfile.read_npz(path, kind="model", spec=MODEL_SPEC)
     kind = a.get("kind")
     if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 and str(kind) != "model":
         if str(kind) == "patch-bank":
