@@ -264,9 +264,35 @@ def _check_score(score: float, path, rec: _Record, text: str | None = None) -> N
         raise _error(f"score must be a number in 0..1, found {shown}", path, rec)
 
 
+def normalise_image_name(name: str) -> str:
+    """An image name the way the labels readers hold it: surrounding spaces dropped, forward
+    slashes, no ``.`` or repeated separators (a name that cannot be normalised is returned as it
+    is). Detections keep their names exactly; scoring matches them to labels by this form.
+
+    >>> normalise_image_name(" ./belt\\\\a.png ")
+    'belt/a.png'
+    """
+    try:
+        return _normalise_image(name, inside_folder=False)
+    except ValueError:
+        return name
+
+
+def _exact_image(name: str) -> str:
+    """A detections file's image name, kept exactly as written (RFC 4180: spaces are part of a
+    field), so that names round-trip through the file; only an empty name or a NUL is refused."""
+    if not name.strip():
+        raise ValueError("the image name is empty")
+    if "\x00" in name:
+        raise ValueError("the image name contains a NUL character")
+    return name
+
+
 def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
                  with_score: bool) -> tuple[list[_Record], bool]:
-    """Rows of a CSV with ``columns`` as validated records; also whether a label column exists."""
+    """Rows of a CSV with ``columns`` as validated records; also whether a label column exists.
+    Labels' image names are normalised (:func:`normalise_image_name`); a detections file's
+    (``with_score``) are kept exactly."""
     reader = csv.reader(io.StringIO(text, newline=""), strict=False)
     header: list[str] | None = None
     header_line = 1
@@ -309,7 +335,8 @@ def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
         raw = row[index["image"]]
         if raw not in names:
             try:
-                names[raw] = _normalise_image(raw, inside_folder)
+                names[raw] = (_exact_image(raw) if with_score
+                              else _normalise_image(raw, inside_folder))
             except ValueError as err:
                 raise _error(str(err), path, rec) from None
         rec.image = names[raw]
@@ -743,8 +770,11 @@ def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetection
       ``loadRes`` reads), together with ``images``: the COCO labels file that lists the images
       (or a dict of image id to file name). Every image listed there counts as scanned.
 
-    Image names get forward slashes; unlike labels, absolute paths are allowed (a file scanned
-    by itself keeps the path as given). Detections keep their file order within each image.
+    A CSV's image names are kept exactly as written (spaces, backslashes and all: RFC 4180 counts
+    spaces as part of a field), so a name written by :func:`write_detections_csv` reads back the
+    same; :func:`normalise_image_name` gives the form labels use. COCO names get forward slashes.
+    Unlike labels, absolute paths are allowed (a file scanned by itself keeps the path as given).
+    Detections keep their file order within each image.
 
     Parameters
     ----------

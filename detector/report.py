@@ -246,7 +246,7 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
     >>> sorted(inputs.ground_truth), inputs.detections
     (['a.png', 'b.png'], {})
     """
-    from detector.labels import read_detections, read_labels
+    from detector.labels import normalise_image_name, read_detections, read_labels
 
     labels = read_labels(labels_path, label=label)
     if len(labels) == 0:
@@ -266,7 +266,15 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
                              "COCO labels file that defines those ids", path=detections_path)
         found = read_detections(detections_path, images=labels_path if labels_json else None)
     ground_truth = {it.image: it.boxes for it in labels}
-    detections = {d.image: (d.boxes, d.scores) for d in found}
+    detections = {}
+    for d in found:  # names as labels hold them (a detections file keeps them exactly)
+        name = normalise_image_name(d.image)
+        if name in detections:
+            boxes, scores = detections[name]
+            detections[name] = (np.concatenate([boxes, d.boxes]),
+                                np.concatenate([scores, d.scores]))
+        else:
+            detections[name] = (d.boxes, d.scores)
     check_image_names(list(detections), list(ground_truth), detections_path)
     return ScoreInputs(detections=detections, ground_truth=ground_truth,
                        detections_path=os.fspath(detections_path),
