@@ -7,7 +7,7 @@ from typing import List, Optional
 
 import typer
 
-from cli.common import echo, human_path, progress_bar
+from cli.common import check_not_an_input, echo, human_path, progress_bar
 from detector.batch import scan_paths
 from detector.scan import ScanSettings
 
@@ -45,6 +45,8 @@ def scan(
         raise typer.BadParameter("--min-object is larger than --max-object")
     if threshold_from is not None:
         from detector.report import threshold_from_summary
+
+        check_not_an_input(out, [threshold_from])
 
         threshold = threshold_from_summary(threshold_from)
         echo(f"threshold {threshold:.4f} from {human_path(threshold_from)}")

@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, echo, human_path, progress_bar
+from cli.common import check_not_an_input, check_output_file, echo, human_path, progress_bar
 from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
@@ -43,12 +44,18 @@ def train(
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
     if mine_rounds and (mine_images is None or mine_labels is None):
         raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels")
-    check_output_file(out, force, "model")
+    if save_bank_to is not None and os.path.abspath(save_bank_to) == os.path.abspath(out):
+        raise typer.BadParameter("--save-bank names the same file as --out")
+    inputs = [bank, mine_labels]
+    check_output_file(out, force, "model", inputs=inputs)
     if save_bank_to is not None:
-        check_output_file(save_bank_to, force, "patch bank")
+        check_output_file(save_bank_to, force, "patch bank", inputs=inputs + [out])
     items = None
     if mine_rounds:
         items = read_labels(mine_labels, images_dir=mine_images).items
+        for target, what in ((out, "model"), (save_bank_to, "patch bank")):
+            if target is not None:
+                check_not_an_input(target, [mine_images / it.image for it in items], what)
     b = load_bank(bank)
     c = b.counts()
     echo(f"bank: {human_path(bank)}: {c['objects']} object and {c['background']} background patches "

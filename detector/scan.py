@@ -28,6 +28,7 @@ import numpy as np
 
 from detector import _kernels
 from detector.boxes import nms
+from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
 from detector.harvest import window_box_to_object_box
 from detector.integral import integral_image, squared_integral_image
@@ -378,6 +379,50 @@ class _Workspace(threading.local):
         return self.outputs
 
 
+def enlarged_size(shape, up: float) -> tuple[int, int]:
+    """``(width, height)`` of a frame of ``shape`` (rows, columns) enlarged ``up`` times, as
+    ``cv2.resize`` with ``fx = fy = up`` rounds it.
+
+    >>> enlarged_size((240, 320), 20.0)
+    (6400, 4800)
+    """
+    return int(round(shape[1] * up)), int(round(shape[0] * up))
+
+
+def check_enlargement(shape, up: float, min_object=None) -> None:
+    """Refuse, before anything is allocated, to enlarge a frame beyond the readers' size limit.
+
+    An object smaller than the window is looked for by enlarging the frame (``min_object`` below
+    the window's object size); the enlarged frame must stay within the limit
+    :func:`detector.images.read_gray` applies to images (100 megapixels, or
+    ``PATCHWOOD_MAX_MEGAPIXELS``), since the scan's memory grows with its pixels
+    (README, "Memory").
+
+    Raises
+    ------
+    InputError
+        One line: the enlargement, the sizes and the limit.
+
+    Examples
+    --------
+    >>> check_enlargement((240, 320), 2.0)          # 640 x 480: fine
+    >>> check_enlargement((3000, 4000), 20.0, 1.0)
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: --min-object 1 enlarges this 4000 x 3000 image 20 times, to 80000 x 60000 pixels, more than the limit of 100,000,000 pixels (PATCHWOOD_MAX_MEGAPIXELS); look for larger objects or cut the image into parts
+    """
+    from detector.images import MAX_MEGAPIXELS_VARIABLE, max_pixels_limit
+
+    limit = max_pixels_limit()
+    width, height = enlarged_size(shape, up)
+    if width * height > limit:
+        what = "" if min_object is None else f"--min-object {min_object:g} "
+        raise InputError(f"{what}enlarges this {shape[1]} x {shape[0]} image {up:g} times, to "
+                         f"{width} x {height} pixels, more than the limit of {limit:,} pixels "
+                         f"({MAX_MEGAPIXELS_VARIABLE}); look for larger objects or cut the image "
+                         "into parts")
+
+
 def split_bounds(thresholds) -> np.ndarray:
     """float64 bounds that make ``v > bound`` exactly ``float32(v) > threshold`` for every float64
     ``v`` (training compared float32 feature values; the scan computes in float64 and so skips the
@@ -569,6 +614,7 @@ class Engine:
             import cv2
 
             up = 1.0 / lo
+            check_enlargement(gray.shape, up, self.settings.min_object)
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
         grid = self._grid((iw, ih), up)
