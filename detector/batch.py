@@ -87,16 +87,8 @@ def _engine_from_bytes(model_bytes: bytes, settings: dict) -> Engine:
     with _ENGINES_LOCK:
         engine = _ENGINES.get(key)
         if engine is None:
-            import tempfile
-
-            with tempfile.NamedTemporaryFile(suffix=".npz", delete=False) as fh:
-                fh.write(model_bytes)
-                name = fh.name
-            try:
-                model = load_model(name)
-            finally:
-                os.unlink(name)
-            engine = Engine(model, ScanSettings(**settings))
+            engine = Engine(load_model("model sent by the client", data=model_bytes),
+                            ScanSettings(**settings))
             _ENGINES.clear()
             _ENGINES[key] = engine
     return engine

@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write
+from detector.files import atomic_write, read_bytes
 
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
@@ -184,11 +184,16 @@ def _error(message: str, path, rec: _Record | None = None) -> InputError:
     return InputError(rec.where + message, path=path, line=rec.line)
 
 
+#: The most bytes a labels or detections file may hold (COCO's largest published annotation
+#: file, instances_train2017.json, is about 450 MB).
+TEXT_MAX_BYTES = 2 * 2**30
+
+
 def _read_text(path) -> str:
-    """The file as text: UTF-8, an optional byte order mark dropped."""
+    """The file as text: UTF-8, an optional byte order mark dropped. Only a regular file is read,
+    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.files.read_bytes`)."""
     try:
-        with open(path, "rb") as fh:
-            data = fh.read()
+        data = read_bytes(path, max_bytes=TEXT_MAX_BYTES)
     except OSError as err:
         reason = "no such file" if isinstance(err, FileNotFoundError) else (
             err.strerror or str(err))

@@ -473,13 +473,14 @@ def _shown(value) -> str:
     return text if len(text) <= 40 else text[:37] + "..."
 
 
-def load_model(path: str | os.PathLike) -> Model:
+def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
     """Read and validate a model file; every problem is one :class:`InputError` naming the file.
 
     Refuses: a file that is not an ``.npz`` archive or is truncated or damaged, object arrays
     (never unpickled), a patch bank or other file given instead of a model, an unknown format
     version, missing arrays, wrong dtypes or shapes, inconsistent tree sizes, node feature indices
-    out of range, rectangles outside the window, non-finite thresholds or leaf values.
+    out of range, rectangles outside the window, non-finite thresholds or leaf values. With
+    ``data``, the file's bytes are read instead of ``path`` (which names them in messages).
 
     Examples
     --------
@@ -488,7 +489,7 @@ def load_model(path: str | os.PathLike) -> Model:
     ...
     detector.errors.InputError: no/such/model.npz: no such model file
     """
-    a = npzfile.read_npz(path, kind="model", spec=MODEL_SPEC)
+    a = npzfile.read_npz(path, kind="model", spec=MODEL_SPEC, data=data)
     kind = a.get("kind")
     if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 and str(kind) != "model":
         if str(kind) == "patch-bank":

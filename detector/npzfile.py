@@ -239,7 +239,7 @@ def _read_data(zf: zipfile.ZipFile, info: zipfile.ZipInfo, layout: _Layout, path
 
 
 def read_npz(path: str | os.PathLike, kind: str = "model", spec: dict | None = None,
-             max_bytes: int | None = MAX_ARRAY_BYTES) -> dict[str, np.ndarray]:
+             max_bytes: int | None = MAX_ARRAY_BYTES, data: bytes | None = None) -> dict[str, np.ndarray]:
     """Read every array of an ``.npz`` archive, never unpickling, checking what the arrays'
     headers declare before any array data is read.
 
@@ -256,6 +256,9 @@ def read_npz(path: str | os.PathLike, kind: str = "model", spec: dict | None = N
         left to :func:`check_arrays`.
     max_bytes : int or None, default=MAX_ARRAY_BYTES
         The most bytes of array data the file may declare, all arrays together.
+    data : bytes, optional
+        The file's bytes (a model sent to a cluster worker, say), read instead of ``path``, which
+        then only names them in messages.
 
     Returns
     -------
@@ -282,13 +285,15 @@ def read_npz(path: str | os.PathLike, kind: str = "model", spec: dict | None = N
     detector.errors.InputError: ...x.npz: model file declares 16 bytes of arrays, more than the limit of 15
     """
     path = os.fspath(path)
-    if not os.path.exists(path):
-        raise InputError(f"no such {kind} file", path=path)
-    if os.path.isdir(path):
-        raise InputError(f"is a folder, not a {kind} file", path=path)
+    if data is None:
+        if not os.path.exists(path):
+            raise InputError(f"no such {kind} file", path=path)
+        if os.path.isdir(path):
+            raise InputError(f"is a folder, not a {kind} file", path=path)
     try:
-        with open_regular(path) as fh:
-            size = os.fstat(fh.fileno()).st_size
+        with (open_regular(path) if data is None else io.BytesIO(data)) as fh:
+            size = fh.seek(0, io.SEEK_END)
+            fh.seek(0)
             if size == 0:
                 raise InputError(f"not a {kind} file: the file is empty (0 bytes)", path=path)
             if not zipfile.is_zipfile(fh):
@@ -463,7 +468,7 @@ def file_sha256(path: str | os.PathLike) -> str:
     """
     h = hashlib.sha256()
     try:
-        with open(path, "rb") as fh:
+        with open_regular(path) as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
                 h.update(block)
     except OSError as exc:

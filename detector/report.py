@@ -35,7 +35,7 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, write_bytes, write_text
+from detector.files import atomic_write, read_bytes, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
 
 __all__ = [
@@ -452,6 +452,10 @@ def _summary_text(summary: dict) -> str:
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
+#: The most bytes :func:`threshold_from_summary` reads (a summary.json is a few kilobytes).
+SUMMARY_MAX_BYTES = 16 * 2**20
+
+
 def threshold_from_summary(path) -> float:
     """The recommended score threshold stored in a ``summary.json`` written by ``score``.
 
@@ -480,8 +484,7 @@ def threshold_from_summary(path) -> float:
     0.62
     """
     try:
-        with open(path, "rb") as fh:
-            data = fh.read()
+        data = read_bytes(path, max_bytes=SUMMARY_MAX_BYTES)
     except OSError as err:
         reason = "no such file" if isinstance(err, FileNotFoundError) else (
             err.strerror or str(err))
