@@ -29,7 +29,6 @@ the other labelled objects near it in sky blue, solid and thin.
 
 from __future__ import annotations
 
-import csv
 import html
 import io
 import numbers
@@ -46,6 +45,7 @@ from detector.errors import InputError
 from detector.files import write_bytes
 from detector.forest import bin_columns, oob_scores, quantile_cuts, seed_sequence
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
+from detector.labels import csv_writer
 
 __all__ = [
     "AUDIT_STYLES",
@@ -591,7 +591,7 @@ def check_audit_folder(out_dir, force: bool = False) -> None:
 
 def _csv_text(findings) -> str:
     buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
+    writer = csv_writer(buf)
     writer.writerow(CSV_COLUMNS)
     for f in findings:
         writer.writerow(f.row())

@@ -10,7 +10,6 @@ on its output (:func:`detector.files.output_lock`), so that two runs never write
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import io
 import os
@@ -28,8 +27,8 @@ from detector.errors import InputError
 from detector.files import output_lock, read_bytes, same_file, write_bytes, write_text
 from detector.images import (decode_gray, header_size, list_images, max_file_bytes,
                              max_pixels_limit, read_gray)
-from detector.labels import (ImageDetections, read_detections, write_detections_coco,
-                             write_detections_csv)
+from detector.labels import (ImageDetections, csv_writer, read_detections,
+                             write_detections_coco, write_detections_csv)
 from detector.model import Model, load_model
 from detector.scan import Engine, ScanSettings
 
@@ -252,7 +251,7 @@ def _write_failures(out, failures) -> str | None:
             pass
         return None
     buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")
+    w = csv_writer(buf)
     w.writerow(_FAILURES_HEADER)
     w.writerows(failures)
     write_text(fp, buf.getvalue())

@@ -481,9 +481,11 @@ def save_bank(path, bank: PatchBank) -> None:
     )
 
 
-def load_bank(path) -> PatchBank:
-    """Read and validate a patch bank written by :func:`save_bank` (never unpickles)."""
-    a = npzfile.read_npz(path, kind="patch bank", spec=_bank_spec())
+def load_bank(path, data: bytes | None = None) -> PatchBank:
+    """Read and validate a patch bank written by :func:`save_bank` (never unpickles; declared
+    sizes are checked before any array data is read). With ``data``, the file's bytes are read
+    instead of ``path`` (which names them in messages)."""
+    a = npzfile.read_npz(path, kind="patch bank", spec=_bank_spec(), data=data)
     kind = a.get("kind")
     if kind is None or kind.dtype.kind != "U" or kind.ndim != 0 or str(kind) != "patch-bank":
         what = f"a {kind}" if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 else "no bank"

@@ -833,6 +833,44 @@ def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetection
 # writers
 
 
+class _CsvWriter:
+    """``csv.writer`` rows with RFC 4180 quoting, ``\n`` line ends."""
+
+    def __init__(self, fh):
+        self.fh = fh
+
+    def writerow(self, fields) -> None:
+        self.fh.write(csv_line(fields))
+
+    def writerows(self, rows) -> None:
+        for row in rows:
+            self.writerow(row)
+
+
+def csv_line(fields) -> str:
+    """One CSV line as the project writes them (RFC 4180): fields joined by commas, a field that
+    holds a comma, a double quote, a carriage return or a line feed put in double quotes (with its
+    quotes doubled), and a line feed at the end. Unlike Python 3.11's ``csv.writer`` with
+    ``lineterminator="\\n"``, a lone carriage return in a field (a legal file-name character) is
+    quoted too, so the reader does not take it for a line end.
+
+    >>> csv_line(["a\\rb.png", 'say "hi" twice', " x,y ", 1.5])
+    '"a\\rb.png","say ""hi"" twice"," x,y ",1.5\\n'
+    """
+    out = []
+    for field in fields:
+        text = str(field)
+        if any(c in text for c in ',"\r\n'):
+            text = '"' + text.replace('"', '""') + '"'
+        out.append(text)
+    return ",".join(out) + "\n"
+
+
+def csv_writer(fh) -> _CsvWriter:
+    """A writer of :func:`csv_line` rows on ``fh`` (``writerow``, ``writerows``)."""
+    return _CsvWriter(fh)
+
+
 def _number(v: float) -> str:
     """Shortest text that reads back to the same float64 ('112' for 112.0, '64.5' for 64.5)."""
     v = float(v)
@@ -859,7 +897,7 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
     with_label = any(c for it in items for c in it.classes)
     header = list(LABEL_COLUMNS) + (["label"] if with_label else [])
     with atomic_write(path, "w", newline="") as fh:
-        w = csv.writer(fh, lineterminator="\n")
+        w = csv_writer(fh)
         w.writerow(header)
         for it in items:
             if len(it.boxes) == 0:
@@ -979,7 +1017,7 @@ def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) 
     b.png,,,,,
     """
     with atomic_write(path, "w", newline="") as fh:
-        w = csv.writer(fh, lineterminator="\n")
+        w = csv_writer(fh)
         w.writerow(DETECTION_COLUMNS)
         for image, boxes, scores in _merged_detections(items):
             if len(boxes) == 0:

@@ -22,7 +22,6 @@ engine finds on images the model never saw, not the accuracy of the classifier o
 
 from __future__ import annotations
 
-import csv
 import math
 import os
 import shlex
@@ -36,6 +35,7 @@ from detector.files import atomic_write
 from detector.evaluate import evaluate
 from detector.features import count_features
 from detector.harvest import PatchBank, harvest
+from detector.labels import csv_writer
 from detector.images import read_gray
 from detector.scan import Engine, ScanSettings
 
@@ -556,7 +556,7 @@ def write_trials_csv(path, records, folds: int) -> None:
     previous complete file or the new one.
     """
     with atomic_write(path, "w", newline="") as fh:
-        w = csv.writer(fh, lineterminator="\n")
+        w = csv_writer(fh)
         w.writerow(trials_columns(folds))
         for r in records:
             w.writerow(_row(r))
