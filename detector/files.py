@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import errno
 import hashlib
+import io
 import os
 import re
 import stat
@@ -54,7 +55,7 @@ try:  # POSIX; elsewhere the lock is skipped
 except ImportError:  # pragma: no cover - Windows
     fcntl = None
 
-__all__ = ["NotRegularFileError", "FileTooLargeError", "open_regular", "read_bytes",
+__all__ = ["NotRegularFileError", "FileTooLargeError", "open_regular", "read_at_most", "read_bytes",
            "atomic_write", "write_bytes", "write_text", "remove_stale_parts", "output_lock",
            "same_file", "display_name", "PART_SUFFIX"]
 
@@ -154,6 +155,33 @@ def open_regular(path, max_bytes: int | None = None):
         raise
 
 
+def read_at_most(fh, max_bytes: int | None) -> bytes:
+    """Read ``fh`` from where it stands to its end, but at most ``max_bytes + 1`` bytes, without
+    setting aside ``max_bytes`` of memory first (``fh.read(n)`` allocates ``n`` bytes before it
+    reads: two gigabytes for an empty file under a two-gigabyte limit). The caller refuses a
+    result longer than ``max_bytes``.
+
+    >>> import io
+    >>> read_at_most(io.BytesIO(b"abcdef"), 3), read_at_most(io.BytesIO(b"ab"), 3)
+    (b'abcd', b'ab')
+    """
+    if max_bytes is None:
+        return fh.read()
+    try:
+        left = os.fstat(fh.fileno()).st_size - fh.tell()
+    except (OSError, AttributeError, ValueError, io.UnsupportedOperation):
+        left = 0
+    first = fh.read(min(max(left, 0), max_bytes) + 1)
+    chunks, total = [first], len(first)
+    while total <= max_bytes:  # the file was longer than its size said (a /proc file, a growing one)
+        block = fh.read(min(1 << 20, max_bytes + 1 - total))
+        if not block:
+            break
+        chunks.append(block)
+        total += len(block)
+    return first if len(chunks) == 1 else b"".join(chunks)
+
+
 def read_bytes(path, max_bytes: int | None = None) -> bytes:
     """The bytes of a regular file, at most ``max_bytes`` of them (see :func:`open_regular`).
 
@@ -173,7 +201,7 @@ def read_bytes(path, max_bytes: int | None = None) -> bytes:
     detector.files.FileTooLargeError: [Errno 27] the file is larger than the limit of 4 bytes: '...'
     """
     with open_regular(path, max_bytes) as fh:
-        data = fh.read() if max_bytes is None else fh.read(max_bytes + 1)
+        data = read_at_most(fh, max_bytes)
     if max_bytes is not None and len(data) > max_bytes:
         raise FileTooLargeError(path, max_bytes)
     return data

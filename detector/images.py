@@ -31,7 +31,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import FileTooLargeError, display_name, open_regular
+from detector.files import FileTooLargeError, display_name, open_regular, read_at_most
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 DEFAULT_MAX_PIXELS = 100_000_000
@@ -441,7 +441,7 @@ def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
             probe = _probe(fh)  # the header only: a huge image is refused before it is read
             _check_probe(probe, max_pixels, from_environment, path)
             fh.seek(0)
-            data = fh.read() if limit is None else fh.read(limit + 1)
+            data = read_at_most(fh, limit)
             if limit is not None and len(data) > limit:
                 raise FileTooLargeError(path, limit)
     except OSError as err:
