@@ -374,6 +374,18 @@ def _to_uint8(img: np.ndarray, depth_scaling: str) -> np.ndarray:
     return _stretch(img)
 
 
+def _read_options(max_pixels, depth_scaling: str):
+    """``(max_pixels as a number or None, whether it came from the environment)``; a bad
+    argument is a ValueError (a programming error, not bad input)."""
+    if depth_scaling not in ("shift", "range"):
+        raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
+    if isinstance(max_pixels, str):
+        if max_pixels != "auto":
+            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
+        return max_pixels_limit(), True
+    return max_pixels, False
+
+
 def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
               depth_scaling: str = "shift") -> np.ndarray:
     """Read an image file as an 8-bit grayscale array, the way a viewer would show it.
@@ -428,13 +440,7 @@ def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
     array([[60, 60, 60],
            [60, 60, 60]], dtype=uint8)
     """
-    if depth_scaling not in ("shift", "range"):
-        raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
-    from_environment = isinstance(max_pixels, str)
-    if from_environment:
-        if max_pixels != "auto":
-            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
-        max_pixels = max_pixels_limit()
+    max_pixels, from_environment = _read_options(max_pixels, depth_scaling)
     limit = max_file_bytes(max_pixels)
     try:
         with open_regular(path, limit) as fh:
@@ -475,13 +481,7 @@ def decode_gray(data: bytes, name: str, max_pixels: int | str | None = "auto",
     ...
     detector.errors.InputError: old.gif: cannot read image: not a PNG, JPEG, BMP or TIFF file (unrecognised content)
     """
-    if depth_scaling not in ("shift", "range"):
-        raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
-    from_environment = isinstance(max_pixels, str)
-    if from_environment:
-        if max_pixels != "auto":
-            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
-        max_pixels = max_pixels_limit()
+    max_pixels, from_environment = _read_options(max_pixels, depth_scaling)
     data = bytes(data)
     limit = max_file_bytes(max_pixels)
     if limit is not None and len(data) > limit:
