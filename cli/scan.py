@@ -30,12 +30,14 @@ def scan(
     jobs: int = typer.Option(1, "--jobs", min=1, max=256, help="Worker processes."),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest."),
-    force: bool = typer.Option(False, "--force", help="Replace an existing --out."),
+    force: bool = typer.Option(False, "--force", help="Replace an existing --out and its failures side file (never an input)."),
 ) -> None:
     """Find objects in images: a multi-scale sliding-window scan with early exit and non-maximum
     suppression. Files that cannot be read (damaged, not an image, above the size limit set by
-    PATCHWOOD_MAX_MEGAPIXELS, default 100) are counted, listed at the end and in
-    DETECTIONS.failures.csv, and the run goes on.
+    PATCHWOOD_MAX_MEGAPIXELS, default 100, not a regular file such as a named pipe) and folders
+    that cannot be listed are counted, listed at the end and in DETECTIONS.failures.csv, and the
+    run goes on. Names that are not UTF-8 are written with %XX for each such byte. One run at a
+    time writes an output: a second one on the same --out stops, naming the first.
 
     Exit status: 0 when the run finished, even with some files listed as failures; 1 when no
     image could be read, or for bad input (model, paths, --out); 2 for a usage error."""

@@ -35,7 +35,7 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, read_bytes, write_bytes, write_text
+from detector.files import atomic_write, read_bytes, same_file, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
 
 __all__ = [
@@ -1025,6 +1025,22 @@ def check_report_folder(report_dir, force: bool = False) -> None:
                          path=path)
 
 
+def _check_inputs_outside_report(out_dir: Path, inputs) -> None:
+    """Refuse (even with --force) an input that is one of the files the report writes or
+    removes: ``report.html`` given as the labels, say."""
+    if not out_dir.is_dir():
+        return
+    own = [out_dir / name for name in REPORT_FILES]
+    gallery = out_dir / "gallery"
+    if gallery.is_dir():
+        own += [entry for entry in gallery.iterdir() if _GALLERY_FILE.fullmatch(entry.name)]
+    for given in inputs:
+        for target in own:
+            if same_file(target, given):
+                raise InputError(f"the report would replace its own input ({os.fspath(given)}); "
+                                 "choose another report folder", path=target)
+
+
 def _clear_old_report(out_dir: Path) -> None:
     """With --force: remove the report's own files of an earlier run, nothing else."""
     gallery = out_dir / "gallery"
@@ -1158,6 +1174,7 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     """
     out = Path(report_dir)
     check_report_folder(out, force)  # before any work: refuse early
+    _check_inputs_outside_report(out, (detections_path, labels_path))
     p_target = _check_target("precision", target_precision)
     r_target = _check_target("recall", target_recall)
     if p_target is not None and r_target is not None:

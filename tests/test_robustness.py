@@ -1639,3 +1639,19 @@ def test_fuzz_every_reader_loads_or_raises_input_error_within_memory(tmp_path, r
     finally:
         tracemalloc.stop()
     assert peak < FUZZ_MEMORY, (kind, peak)
+
+
+def test_a_report_never_replaces_its_inputs(trained, tmp_path, monkeypatch, capsys):
+    """score --force replaces an earlier report's files, never its own input: labels named
+    summary.json in the report folder stay as they are."""
+    report = tmp_path / "report"
+    report.mkdir()
+    labels = report / "summary.json"
+    shutil.copy(trained.test / "labels.csv", labels)
+    before = labels.read_bytes()
+    line = fails(monkeypatch, capsys, 1, "score", _detections(trained, tmp_path), labels,
+                 "--report", report, "--force")
+    assert line == (f"error: {labels}: the report would replace its own input ({labels}); "
+                    "choose another report folder")
+    assert labels.read_bytes() == before and sorted(p.name for p in report.iterdir()) == [
+        "summary.json"]
