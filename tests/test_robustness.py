@@ -23,10 +23,18 @@ model/bank  truncated, empty, not an archive, unknown format version, wrong dtyp
 outputs     an existing --out (or report/audit/inspect/tune/synth folder files) without --force,
             for every command that writes
 options     bad option values exit 2
+hostile     named pipes and /dev/zero among the images, a 1 GiB file, names that are not
+            UTF-8, names that must survive --resume, a --min-object that would enlarge past the
+            limit, outputs onto inputs (scan, train, harvest, score), two runs on one output, the
+            failures side file, a bank declaring a million patches, a model with a 100000 x
+            100000 window, temporary files of killed runs, a full disk, bad --cluster addresses,
+            an unreadable folder, and the one atomic writer (a source check and its behaviour)
 fuzzing     hypothesis: the label reader on arbitrary bytes, CSV-like text and COCO-like JSON;
             the model loader on damaged copies of a real model file, on replaced arrays and on
             hand-edited metadata (it loads, and the model scans a frame and summarises itself,
-            or it gives one InputError naming the file)
+            or it gives one InputError naming the file); every reader (images, labels, COCO,
+            detections, bank, model, from damaged bytes) loads or raises InputError within a
+            memory limit
 
 References: OpenCV (``cv2.imdecode`` with ``IMREAD_GRAYSCALE``, ``cv2.cvtColor``) for how 16-bit
 and RGBA pixels become 8-bit gray; Pillow (scikit-image's imaging dependency:
