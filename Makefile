@@ -54,6 +54,7 @@ bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/train.py
 	$(BIN)/python benchmarks/scan.py
 	$(BIN)/python benchmarks/load.py
+	$(BIN)/python benchmarks/memory.py
 	$(BIN)/python benchmarks/baseline.py
 	$(BIN)/python benchmarks/accuracy.py
 

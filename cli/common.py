@@ -14,15 +14,19 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 
 from detector.errors import InputError
+from detector.files import display_name, same_file
 
 console = Console(stderr=True, highlight=False)
 
 
-def check_output_file(path: Path, force: bool, what: str = "output") -> None:
-    """Refuse to replace an existing file unless ``force``; refuse a missing parent folder."""
+def check_output_file(path: Path, force: bool, what: str = "output", inputs=()) -> None:
+    """Refuse to replace an existing file unless ``force``; refuse a missing parent folder; and
+    refuse, even with ``force``, an output that is one of the command's ``inputs`` (the same file,
+    by ``os.path.samefile``, also through a link or another spelling of the path)."""
     path = Path(path)
     if path.is_dir():
         raise InputError(f"{what} must be a file, but this is a folder", path=path)
+    check_not_an_input(path, inputs, what)
     if path.exists() and not force:
         raise InputError(f"{what} exists; add --force to replace it", path=path)
     parent = path.parent if str(path.parent) else Path(".")
@@ -52,6 +56,16 @@ def refuse_together(ctx: typer.Context, first: str, second: str, why: str) -> No
     if given(ctx, first) and given(ctx, second):
         names = [f"--{n.replace('_', '-')}" for n in (first, second)]
         usage_error(f"{names[0]} and {names[1]} cannot go together: {why}")
+
+
+def check_not_an_input(path: Path, inputs, what: str = "output") -> None:
+    """Refuse an output that is one of ``inputs`` (paths; None entries are ignored)."""
+    if not os.path.exists(path):
+        return
+    for other in inputs:
+        if other is not None and same_file(path, other):
+            raise InputError(f"the {what} is an input of this command ({human_path(other)}); "
+                             "choose another file to write", path=path)
 
 
 def parse_window_option(text: str | None):
@@ -130,8 +144,9 @@ def count(n: int, noun: str, plural: str | None = None) -> str:
 
 
 def echo(text: str = "") -> None:
-    """Print a line of results to stdout."""
-    typer.echo(text)
+    """Print a line of results to stdout (a name that is not UTF-8 shown as the project writes
+    it, :func:`detector.files.display_name`)."""
+    typer.echo(display_name(text))
 
 
 def fail(message: str, path=None) -> None:

@@ -7,8 +7,8 @@ from typing import Optional
 
 import typer
 
-from cli.common import (check_output_file, count, echo, given, human_path, parse_window_option,
-                        progress_bar, usage_error)
+from cli.common import (check_not_an_input, check_output_file, count, echo, given, human_path,
+                        parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.labels import read_labels
 
@@ -49,8 +49,9 @@ def harvest(
                     "augmented copies, and --copies 0 makes none; raise --copies or leave "
                     f"{'it' if len(unused) == 1 else 'them'} out")
     size = parse_window_option(window)
-    check_output_file(out, force, "patch bank")
+    check_output_file(out, force, "patch bank", inputs=[labels])
     lf = read_labels(labels, images_dir=images_dir, label=label)
+    check_not_an_input(out, [images_dir / it.image for it in lf], "patch bank")
     n_boxes = sum(len(it.boxes) for it in lf)
     echo(f"labels: {count(len(lf), 'image')}, {count(n_boxes, 'box', 'boxes')} from "
          f"{human_path(labels)}"

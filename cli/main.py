@@ -13,6 +13,7 @@ import sys
 import typer
 
 from detector.errors import InputError
+from detector.files import display_name
 
 #: Every command: (module under cli/, function, one-line summary for `patchwood --help`). The
 #: module is imported only when its command runs or shows its own help, so `patchwood --help`
@@ -100,14 +101,17 @@ def run() -> None:
         typer.echo("aborted", err=True)
         sys.exit(1)
     except InputError as err:
-        typer.echo(f"error: {err}", err=True)
+        typer.echo(display_name(f"error: {err}"), err=True)
         sys.exit(1)
     except KeyboardInterrupt:
         typer.echo("interrupted", err=True)
         sys.exit(130)
     except OSError as err:
-        # file-system trouble the library did not turn into an InputError: still one line
-        typer.echo(f"error: {err.filename or ''}: {err.strerror or err}", err=True)
+        # file-system trouble the library did not turn into an InputError: still one line, and
+        # naming the file whenever the error knows it
+        where = f"{err.filename}: " if err.filename else ""
+        reason = " ".join(str(err.strerror or err).split())
+        typer.echo(display_name(f"error: {where}{reason}"), err=True)
         sys.exit(1)
     sys.exit(code if isinstance(code, int) else 0)
 

@@ -7,7 +7,8 @@ from typing import List, Optional
 
 import typer
 
-from cli.common import echo, given, human_path, progress_bar, refuse_together, usage_error
+from cli.common import (check_not_an_input, echo, given, human_path, progress_bar,
+                        refuse_together, usage_error)
 from detector.batch import FORMATS, scan_paths
 from detector.scan import ScanSettings
 
@@ -34,12 +35,14 @@ def scan(
     jobs: int = typer.Option(1, "--jobs", min=1, max=256, help="Worker processes."),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest (only when its provenance side file names this model and these settings)."),
-    force: bool = typer.Option(False, "--force", help="Replace an existing --out; with --threshold-from, also use a summary made from another model's detections."),
+    force: bool = typer.Option(False, "--force", help="Replace an existing --out and its failures side file (never an input); with --threshold-from, also use a summary made from another model's detections."),
 ) -> None:
     """Find objects in images: a multi-scale sliding-window scan with early exit and non-maximum
     suppression. Files that cannot be read (damaged, not an image, above the size limit set by
-    PATCHWOOD_MAX_MEGAPIXELS, default 100) are counted, listed at the end and in
-    DETECTIONS.failures.csv, and the run goes on.
+    PATCHWOOD_MAX_MEGAPIXELS, default 100, not a regular file such as a named pipe) and folders
+    that cannot be listed are counted, listed at the end and in DETECTIONS.failures.csv, and the
+    run goes on. Names that are not UTF-8 are written with %XX for each such byte. One run at a
+    time writes an output: a second one on the same --out stops, naming the first.
 
     Every detections file gets a provenance side file, DETECTIONS.provenance.json (the model's
     SHA-256, every setting, the versions), which --resume, --threshold-from and `patchwood score`
@@ -71,6 +74,8 @@ def scan(
     if threshold_from is not None:
         from detector.provenance import check_summary_model, settings_differences
         from detector.report import read_summary_point
+
+        check_not_an_input(out, [threshold_from])
 
         threshold, recorded = read_summary_point(threshold_from)
         if recorded is not None:

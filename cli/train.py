@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Optional
 
 import typer
 
-from cli.common import check_output_file, echo, given, human_path, progress_bar, usage_error
+from cli.common import (check_not_an_input, check_output_file, echo, given, human_path,
+                        progress_bar, usage_error)
 from detector.channels import CHOICES as CHANNEL_CHOICES
 from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
@@ -63,9 +65,8 @@ def train(
     if features_per_node is not None and features_per_node > pool:
         usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
                     "node cannot try more features than the pool holds")
-    check_output_file(out, force, "model")
-    if save_bank_to is not None:
-        check_output_file(save_bank_to, force, "patch bank")
+    if save_bank_to is not None and os.path.abspath(save_bank_to) == os.path.abspath(out):
+        raise typer.BadParameter("--save-bank names the same file as --out")
     b = load_bank(bank)
     if mine_images is None and mine_rounds != 0:
         mine_images, mine_labels = mining_source(b, bank)
@@ -77,9 +78,16 @@ def train(
                  "--mine-images and --mine-labels)")
     if mine_rounds is None:
         mine_rounds = DEFAULT_MINE_ROUNDS if mine_images is not None else 0
+    inputs = [bank, mine_labels]
+    check_output_file(out, force, "model", inputs=inputs)
+    if save_bank_to is not None:
+        check_output_file(save_bank_to, force, "patch bank", inputs=inputs + [out])
     items = None
     if mine_rounds:
         items = read_labels(mine_labels, images_dir=mine_images).items
+        for target, what in ((out, "model"), (save_bank_to, "patch bank")):
+            if target is not None:
+                check_not_an_input(target, [Path(mine_images) / it.image for it in items], what)
     c = b.counts()
     echo(f"bank: {human_path(bank)}: {c['objects']} object and {c['background']} background patches "
          f"of {b.window[0]}x{b.window[1]}")

@@ -11,6 +11,7 @@ import typer
 
 from cli.common import echo, human_path, parse_window_option, progress_bar
 from detector.errors import InputError
+from detector.files import write_text
 from detector.harvest import save_bank
 from detector.labels import read_labels
 from detector.scan import ScanSettings
@@ -157,9 +158,7 @@ def tune(
                "ap50_per_fold": [float(a) for a in best.per_fold], "ap50_sd": best.spread,
                "folds": folds, "seed": seed, "trials": len(result.trials),
                "stopped": result.stopped, "train_command": command}
-    tmp = files[BEST_FILE].with_name(BEST_FILE + ".part")
-    tmp.write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n", encoding="utf-8")
-    tmp.replace(files[BEST_FILE])
+    write_text(files[BEST_FILE], json.dumps(summary, indent=2, sort_keys=True) + "\n")
     echo(f"best: trial {best.number}, AP50 {best.mean:.3f} ± {best.spread:.3f} over {folds} folds "
          f"({describe(best.values)})")
     echo("train the final model on every image with:")

@@ -86,8 +86,9 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     Parameters
     ----------
     ii, sq : 1-d
-        Flattened integral image (int32 or float64; see :func:`detector.scan.integral_dtype`) and
-        squared-integral image (float64); exact integers either way.
+        Flattened integral image (int32, uint32 or float64; see
+        :func:`detector.scan.integral_dtype`) and squared-integral image (float64); exact
+        integers either way.
     row_stride : int
         Width of the integral image (image width + 1).
     xs, ys : int64 1-d

@@ -29,13 +29,11 @@ the other labelled objects near it in sky blue, solid and thin.
 
 from __future__ import annotations
 
-import csv
 import html
 import io
 import numbers
 import os
 import re
-import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from urllib.parse import quote
@@ -44,8 +42,10 @@ import numpy as np
 
 from detector import features as _features
 from detector.errors import InputError
+from detector.files import write_bytes
 from detector.forest import bin_columns, oob_scores, quantile_cuts, seed_sequence
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
+from detector.labels import csv_writer
 
 __all__ = [
     "AUDIT_STYLES",
@@ -589,20 +589,9 @@ def check_audit_folder(out_dir, force: bool = False) -> None:
                          path=sorted(existing)[0])
 
 
-def _write_atomic(path: Path, data: bytes) -> None:
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.part")
-    try:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-
-
 def _csv_text(findings) -> str:
     buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
+    writer = csv_writer(buf)
     writer.writerow(CSV_COLUMNS)
     for f in findings:
         writer.writerow(f.row())
@@ -696,13 +685,13 @@ def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
         if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
             raise InputError("cannot encode the thumbnail", path=folder / name)
         folder.mkdir(exist_ok=True)
-        _write_atomic(folder / name, data.tobytes())
+        write_bytes(folder / name, data.tobytes())
         entries[f.kind].append((r + 1, f, f"{THUMBNAIL_DIR}/{name}"))
 
     csv_path, html_path = out / CSV_NAME, out / HTML_NAME
-    _write_atomic(csv_path, _csv_text(listed).encode("utf-8"))
+    write_bytes(csv_path, _csv_text(listed).encode("utf-8"))
     page = _html(result, listed, entries, inputs or {}, notes, top, min_suspicion)
-    _write_atomic(html_path, page.encode("utf-8"))
+    write_bytes(html_path, page.encode("utf-8"))
     return {"csv": str(csv_path), "html": str(html_path), "listed": listed, "notes": notes}
 
 

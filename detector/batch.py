@@ -1,16 +1,19 @@
 """Scanning many images: folders, worker processes, a Dask cluster, resumable atomic output.
 
-A run never dies on one bad file: a file that cannot be read is recorded as a failure (listed at the
+A run never dies on one bad file: a file that cannot be read (damaged, not an image, too large, a
+named pipe or a device, a folder that cannot be listed) is recorded as a failure (listed at the
 end and in a side file) and the run goes on. The output file is rewritten atomically after every
 batch of images (and once more when the run is interrupted), so an interrupted run leaves a valid
-detections file of complete images that ``resume=True`` continues.
+detections file of complete images that ``resume=True`` continues. A run holds an exclusive lock
+on its output (:func:`detector.files.output_lock`), so that two runs never write the same file.
 """
 
 from __future__ import annotations
 
-import csv
 import hashlib
+import io
 import os
+import re
 import threading
 import time
 from collections import deque
@@ -21,8 +24,10 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.images import header_size, list_images, max_pixels_limit, read_gray
-from detector.labels import (ImageDetections, coco_result_ids, read_detections,
+from detector.files import output_lock, read_bytes, same_file, write_bytes, write_text
+from detector.images import (decode_gray, header_size, list_images, max_file_bytes,
+                             max_pixels_limit, read_gray)
+from detector.labels import (ImageDetections, coco_result_ids, csv_writer, read_detections,
                              write_detections_coco, write_detections_coco_results,
                              write_detections_csv)
 from detector.model import Model, load_model
@@ -83,39 +88,16 @@ def _engine_from_bytes(model_bytes: bytes, settings: dict) -> Engine:
     with _ENGINES_LOCK:
         engine = _ENGINES.get(key)
         if engine is None:
-            import tempfile
-
-            with tempfile.NamedTemporaryFile(suffix=".npz", delete=False) as fh:
-                fh.write(model_bytes)
-                name = fh.name
-            try:
-                model = load_model(name)
-            finally:
-                os.unlink(name)
-            engine = Engine(model, ScanSettings(**settings))
+            engine = Engine(load_model("model sent by the client", data=model_bytes),
+                            ScanSettings(**settings))
             _ENGINES.clear()
             _ENGINES[key] = engine
     return engine
 
 
-def decode_gray(data: bytes, name: str) -> np.ndarray:
-    """Decode image bytes the way :func:`detector.images.read_gray` reads files."""
-    import tempfile
-
-    suffix = Path(name).suffix or ".png"
-    with tempfile.NamedTemporaryFile(suffix=suffix, delete=False) as fh:
-        fh.write(data)
-        tmp = fh.name
-    try:
-        return read_gray(tmp)
-    except InputError as err:
-        raise InputError(err.message, path=name) from None
-    finally:
-        os.unlink(tmp)
-
-
 def scan_one(engine: Engine, path, name: str, data: bytes | None = None) -> ImageResult:
-    """Scan one image; a file that cannot be read becomes a failure, not an exception."""
+    """Scan one image; a file that cannot be read (or scanned) becomes a failure, not an
+    exception."""
     start = time.perf_counter()
     try:
         gray = decode_gray(data, name) if data is not None else read_gray(path)
@@ -124,6 +106,11 @@ def scan_one(engine: Engine, path, name: str, data: bytes | None = None) -> Imag
         return ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=err.message)
     except MemoryError:
         return ImageResult(name, np.zeros((0, 4)), np.zeros(0), error="out of memory")
+    except cv2.error as err:  # an allocation OpenCV refuses, say: this image only
+        lines = [t for t in str(err).splitlines() if t.strip()]
+        reason = lines[-1].strip() if lines else "no reason given"
+        return ImageResult(name, np.zeros((0, 4)), np.zeros(0),
+                           error=f"the image could not be scanned ({reason})")
     return ImageResult(name, r.boxes, r.scores, r.windows, r.trees,
                        seconds=time.perf_counter() - start)
 
@@ -293,7 +280,8 @@ _FAILURES_HEADER = ["image", "reason"]
 
 
 def _write_failures(out, failures) -> str | None:
-    """Write the side file (atomically); without failures, remove an earlier run's side file."""
+    """Write the side file (atomically); without failures, remove an earlier run's side file
+    (the run was allowed to replace it: ``force`` or ``resume``)."""
     fp = failures_path(out)
     if not failures:
         try:
@@ -304,12 +292,11 @@ def _write_failures(out, failures) -> str | None:
         except (OSError, UnicodeDecodeError):
             pass
         return None
-    tmp = fp.with_name(f".{fp.name}.{os.getpid()}.part")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh, lineterminator="\n")
-        w.writerow(_FAILURES_HEADER)
-        w.writerows(failures)
-    os.replace(tmp, fp)
+    buf = io.StringIO()
+    w = csv_writer(buf)
+    w.writerow(_FAILURES_HEADER)
+    w.writerows(failures)
+    write_text(fp, buf.getvalue())
     return str(fp)
 
 
@@ -386,12 +373,13 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     Raises
     ------
     InputError
-        Before any image is scanned: a bad model file, an existing ``out`` without ``force`` or
-        ``resume``, a missing input path, no image files among the inputs, two inputs with the
-        same image name, a drawing folder among the inputs, a bad ``PATCHWOOD_MAX_MEGAPIXELS``,
-        or a ``labels`` file that is not COCO JSON or lacks one of the images; with ``resume``, an
-        output without a provenance side file, or made with another model or other settings
-        (:func:`detector.provenance.check_same_scan`).
+        Before any image is scanned: a bad model file, an existing ``out`` (or its failures side
+        file) without ``force`` or ``resume``, an output that is one of the inputs, another run
+        writing the same output, a missing input path, no image files among the inputs, two
+        inputs with the same image name, a drawing folder among the inputs, a bad cluster
+        address, a bad ``PATCHWOOD_MAX_MEGAPIXELS``, or a ``labels`` file that is not COCO JSON or
+        lacks one of the images; with ``resume``, an output without a provenance side file, or
+        made with another model or other settings (:func:`detector.provenance.check_same_scan`).
     """
     settings = settings or ScanSettings()
     out = Path(out)
@@ -399,27 +387,87 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         raise InputError(f"unknown output format {fmt!r} ({', '.join(FORMATS)})")
     if (labels is not None or label is not None) and fmt != "coco-results":
         raise InputError("a labels file gives image ids to the coco-results format only")
+    if cluster:
+        check_cluster_address(cluster)
     limit = max_pixels_limit()  # a bad PATCHWOOD_MAX_MEGAPIXELS stops the run, not every image
     model = load_model(model_path)
     if out.is_dir():
         raise InputError("output must be a file, but this is a folder", path=out)
+    if not (out.parent if str(out.parent) else Path(".")).is_dir():
+        raise InputError("folder for the output does not exist", path=out.parent)
+    with output_lock(out):
+        return _scan_locked(model, model_path, paths, out, settings, jobs, cluster, resume, force,
+                            draw_dir, fmt, batch_images, batch_seconds, progress, on_image, limit)
+
+
+def check_cluster_address(address: str) -> str:
+    """Refuse a Dask scheduler address that is not ``PROTOCOL://HOST:PORT`` (or ``HOST:PORT``,
+    which Dask reads as ``tcp://``), before any connection is tried.
+
+    >>> check_cluster_address("tcp://10.0.0.5:8786")
+    'tcp://10.0.0.5:8786'
+    >>> check_cluster_address("not a url")
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: --cluster 'not a url' is not a scheduler address; give PROTOCOL://HOST:PORT, e.g. tcp://10.0.0.5:8786
+    """
+    text = str(address).strip()
+    if re.fullmatch(r"inproc://\S+", text):  # a cluster inside this process (Dask's own tests)
+        return text
+    match = re.fullmatch(r"(?:(tcp|tls|ws|wss|ucx)://)?"
+                         r"(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9](?:[A-Za-z0-9.-]*[A-Za-z0-9])?)"
+                         r"(?::([0-9]{1,5}))?/?", text)
+    good = (match is not None and bool(match.group(1) or match.group(3))
+            and (match.group(3) is None or 0 < int(match.group(3)) < 65536))
+    if not good:
+        shown = text if len(text) <= 60 else text[:57] + "..."
+        raise InputError(f"--cluster {shown!r} is not a scheduler address; give "
+                         "PROTOCOL://HOST:PORT, e.g. tcp://10.0.0.5:8786")
+    return text
+
+
+def _check_not_an_input(out: Path, model_path, listed) -> None:
+    """Refuse an output (or its failures side file) that is one of the inputs: the model or an
+    image to scan (the same file, by :func:`os.path.samefile`; through a link too)."""
+    for target, what in ((out, "output"), (failures_path(out), "failures side file")):
+        if not target.exists():
+            continue
+        if same_file(target, model_path):
+            raise InputError(f"the {what} is the model file; choose another --out", path=target)
+        for p, name in listed:
+            if same_file(target, p):
+                raise InputError(f"the {what} is one of the images to scan ({name}); choose "
+                                 "another --out", path=target)
+
+
+def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, resume, force,
+                 draw_dir, fmt, batch_images, batch_seconds, progress, on_image,
+                 limit) -> RunSummary:
+    """:func:`scan_paths` once it holds the output's lock."""
     if out.exists() and not (force or resume):
         raise InputError("output exists; add --force to replace it or --resume to continue it",
                          path=out)
-    if not (out.parent if str(out.parent) else Path(".")).is_dir():
-        raise InputError("folder for the output does not exist", path=out.parent)
+    side = failures_path(out)
+    if side.exists() and not (force or resume):
+        raise InputError("the failures side file of this output exists; add --force to replace "
+                         "it or --resume to continue the run", path=side)
+    if side.is_dir():
+        raise InputError("the failures side file of this output would go where a folder is",
+                         path=side)
     if draw_dir is not None:
         check_draw_dir(draw_dir, paths)
     for p in paths:
-        if not Path(p).exists():
+        if not os.path.lexists(p):
             raise InputError("no such file or folder", path=p)
-    listed, skipped = list_images(paths)
-    if not listed and not (resume and out.exists()):
+    folder_failures: list = []
+    listed, skipped = list_images(paths, failures=folder_failures)
+    if not listed and not folder_failures and not (resume and out.exists()):
         others = f"; {skipped} other file{'s' if skipped != 1 else ''} skipped" if skipped else ""
         where = paths[0] if len(paths) == 1 else None
         raise InputError("no image files to scan (png, jpg, jpeg, bmp, tif, tiff)" + others,
                          path=where)
     _check_unique_names(listed)
+    _check_not_an_input(out, model_path, listed)
     result_ids = None
     if label is not None and labels is None:
         raise InputError("a category name (--label) needs the COCO labels file it is in (--labels)")
@@ -443,7 +491,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     if draw_dir is not None:
         _check_draw_targets(draw_dir, paths, [name for _, name in todo], replace=force or resume)
     source = {name: p for p, name in todo}
-    total = len(todo)
+    total = len(todo) + len(folder_failures)
     start = time.perf_counter()
     results = [r for r in done if r.error is None]
     state = {"pending": 0, "last_write": start, "write_cost": 0.0}
@@ -470,7 +518,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
                     dst.parent.mkdir(parents=True, exist_ok=True)
                     ok, buf = cv2.imencode(".png", draw_detections(gray, r.boxes, r.scores))
                     if ok:
-                        buf.tofile(str(dst))
+                        write_bytes(dst, buf.tobytes())
                         summary.drawn += 1
                 except (InputError, OSError):
                     pass
@@ -487,6 +535,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
 
     settings_dict = dict(settings.__dict__)
     try:
+        for name, reason in folder_failures:
+            handle(ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=reason))
         if cluster:
             _run_on_cluster(model_path, settings_dict, todo, cluster, handle, limit)
         elif jobs > 1 and len(todo) > 1:
@@ -551,59 +601,79 @@ def _run_on_cluster(model_path, settings: dict, todo, address: str, handle, limi
         from distributed import Client
     except ImportError:  # pragma: no cover - dask[distributed] is a dependency
         raise InputError("--cluster needs dask[distributed]") from None
-    model_bytes = Path(model_path).read_bytes()
+    address = check_cluster_address(address)
+    model_bytes = read_bytes(model_path)
     try:
         client = Client(address, timeout="20s", set_as_default=False)
-    except (OSError, TimeoutError) as err:
-        raise InputError(f"cannot reach the Dask scheduler at {address}: {err}") from None
+    except Exception as err:  # OSError, TimeoutError, ValueError, ...: one line, whichever
+        raise InputError(f"cannot reach the Dask scheduler at {address}: {_one_line(err)}") from None
     try:
-        model_future = client.scatter(model_bytes, broadcast=True)
-        # at most `window` tasks in flight, each of up to CLUSTER_BATCH_IMAGES images; a handled
-        # future is dropped at once, so the cluster forgets its result and memory stays flat
-        # however long the run
-        window = max(2, 2 * len(client.scheduler_info().get("workers", {})))
-        futures = deque()  # a batch's future, or an image refused here, in the order of `todo`
-        it = iter(todo)
-
-        def submit(batch):
-            # the bytes travel by scatter, the task message carries only their key: Dask keeps a
-            # debugging log of recent task messages (distributed.admin.low-level-log-length),
-            # which would otherwise hold up to a thousand images in the client and the scheduler
-            data_future = client.scatter([batch], hash=False)[0]
-            futures.append(client.submit(scan_bytes_batch, model_future, settings, data_future,
-                                         pure=False))
-
-        def submit_next():
-            batch, size = [], 0
-            while len(batch) < CLUSTER_BATCH_IMAGES and size < CLUSTER_BATCH_BYTES:
-                try:
-                    p, name = next(it)
-                except StopIteration:
-                    break
-                reason = _too_large(p, limit)
-                if reason is None:
-                    try:
-                        data = Path(p).read_bytes()
-                    except OSError as err:
-                        reason = _read_failure(p, err)
-                if reason is not None:  # keep the order: the batch so far goes first
-                    if batch:
-                        submit(batch)
-                    futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=reason))
-                    return
-                batch.append((name, data))
-                size += len(data)
-            if batch:
-                submit(batch)
-
-        for _ in range(window):
-            submit_next()
-        while futures:
-            f = futures.popleft()
-            results = [f] if isinstance(f, ImageResult) else f.result()
-            del f
-            for r in results:
-                handle(r)
-            submit_next()
+        _feed_cluster(client, model_bytes, settings, todo, handle, limit)
+    except (InputError, KeyboardInterrupt):
+        raise
+    except Exception as err:  # a lost scheduler or worker, a task that failed there, ...
+        raise InputError(f"the Dask cluster at {address} failed: {_one_line(err)}") from None
     finally:
-        client.close()
+        try:
+            client.close(timeout=10)
+        except Exception:
+            pass
+
+
+def _one_line(err: BaseException) -> str:
+    text = " ".join(str(err).split())
+    text = text if len(text) <= 200 else text[:197] + "..."
+    return f"{type(err).__name__}: {text}" if text else type(err).__name__
+
+
+def _feed_cluster(client, model_bytes: bytes, settings: dict, todo, handle, limit: int) -> None:
+    """The cluster run proper: at most a few tasks in flight, results handled in order."""
+    byte_limit = max_file_bytes(limit)
+    model_future = client.scatter(model_bytes, broadcast=True)
+    # at most `window` tasks in flight, each of up to CLUSTER_BATCH_IMAGES images; a handled
+    # future is dropped at once, so the cluster forgets its result and memory stays flat
+    # however long the run
+    window = max(2, 2 * len(client.scheduler_info().get("workers", {})))
+    futures = deque()  # a batch's future, or an image refused here, in the order of `todo`
+    it = iter(todo)
+
+    def submit(batch):
+        # the bytes travel by scatter, the task message carries only their key: Dask keeps a
+        # debugging log of recent task messages (distributed.admin.low-level-log-length),
+        # which would otherwise hold up to a thousand images in the client and the scheduler
+        data_future = client.scatter([batch], hash=False)[0]
+        futures.append(client.submit(scan_bytes_batch, model_future, settings, data_future,
+                                     pure=False))
+
+    def submit_next():
+        batch, size = [], 0
+        while len(batch) < CLUSTER_BATCH_IMAGES and size < CLUSTER_BATCH_BYTES:
+            try:
+                p, name = next(it)
+            except StopIteration:
+                break
+            reason = _too_large(p, limit)
+            if reason is None:
+                try:
+                    data = read_bytes(p, byte_limit)
+                except OSError as err:
+                    reason = _read_failure(p, err)
+            if reason is not None:  # keep the order: the batch so far goes first
+                if batch:
+                    submit(batch)
+                futures.append(ImageResult(name, np.zeros((0, 4)), np.zeros(0), error=reason))
+                return
+            batch.append((name, data))
+            size += len(data)
+        if batch:
+            submit(batch)
+
+    for _ in range(window):
+        submit_next()
+    while futures:
+        f = futures.popleft()
+        results = [f] if isinstance(f, ImageResult) else f.result()
+        del f
+        for r in results:
+            handle(r)
+        submit_next()

@@ -47,6 +47,8 @@ from detector.integral import integral_images
 __all__ = [
     "SHAPES",
     "SIGMA_FLOOR",
+    "MIN_WINDOW_SIDE",
+    "MAX_WINDOW_SIDE",
     "count_features",
     "enumerate_features",
     "random_pool",
@@ -66,6 +68,12 @@ CHANNEL_SHAPES = ("one-rectangle",) + SHAPES
 
 #: Smallest standard deviation (grey levels) used to normalise a patch, so flat patches stay finite.
 SIGMA_FLOOR = 1.0
+
+#: The sides a window may have, in pixels: what ``patchwood harvest --window`` accepts, and what a
+#: model or patch bank file must hold (a larger window is refused on loading, before anything is
+#: allocated for it).
+MIN_WINDOW_SIDE = 4
+MAX_WINDOW_SIDE = 512
 
 # shape -> (blocks across, blocks down, ((block column, block row, weight), ...))
 _LAYOUTS = {

@@ -26,6 +26,7 @@ import numpy as np
 from detector import npzfile
 from detector.boxes import iou
 from detector.errors import InputError
+from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.images import image_size, read_gray
 from detector.labels import ImageLabels
 
@@ -131,8 +132,9 @@ def parse_window(text: str) -> tuple[int, int]:
     if match is None:
         raise ValueError(f"window must look like 24x24, got {text!r}")
     w, h = int(match.group(1)), int(match.group(2))
-    if not (4 <= w <= 512 and 4 <= h <= 512):
-        raise ValueError(f"window sides must be 4..512 pixels, got {text!r}")
+    if not (MIN_WINDOW_SIDE <= w <= MAX_WINDOW_SIDE and MIN_WINDOW_SIDE <= h <= MAX_WINDOW_SIDE):
+        raise ValueError(f"window sides must be {MIN_WINDOW_SIDE}..{MAX_WINDOW_SIDE} pixels, got "
+                         f"{text!r}")
     return w, h
 
 
@@ -502,9 +504,11 @@ def save_bank(path, bank: PatchBank) -> None:
     )
 
 
-def load_bank(path) -> PatchBank:
-    """Read and validate a patch bank written by :func:`save_bank` (never unpickles)."""
-    a = npzfile.read_npz(path, kind="patch bank")
+def load_bank(path, data: bytes | None = None) -> PatchBank:
+    """Read and validate a patch bank written by :func:`save_bank` (never unpickles; declared
+    sizes are checked before any array data is read). With ``data``, the file's bytes are read
+    instead of ``path`` (which names them in messages)."""
+    a = npzfile.read_npz(path, kind="patch bank", spec=_bank_spec(), data=data)
     kind = a.get("kind")
     if kind is None or kind.dtype.kind != "U" or kind.ndim != 0 or str(kind) != "patch-bank":
         what = f"a {kind}" if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 else "no bank"
@@ -520,7 +524,10 @@ def load_bank(path) -> PatchBank:
     W, H = (int(v) for v in a["window"])
     p = a["patches"]
     n = len(p)
-    if W < 1 or H < 1 or p.shape[1:] != (H, W):
+    if not (MIN_WINDOW_SIDE <= W <= MAX_WINDOW_SIDE and MIN_WINDOW_SIDE <= H <= MAX_WINDOW_SIDE):
+        raise InputError(f"window {W}x{H} is outside the sides a window may have "
+                         f"({MIN_WINDOW_SIDE}..{MAX_WINDOW_SIDE} pixels)", path=path)
+    if p.shape[1:] != (H, W):
         raise InputError(f"patches of shape {p.shape[1:]} do not fit the window {W}x{H}", path=path)
     if n and (a["labels"].max() > 1 or a["kinds"].max() >= len(KIND_NAMES)):
         raise InputError("labels or kinds out of range", path=path)

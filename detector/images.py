@@ -12,6 +12,9 @@ array is the picture the way a viewer shows it, and label boxes refer to that pi
 
 Images above a size limit (100 megapixels, or ``PATCHWOOD_MAX_MEGAPIXELS``) are refused from their
 header, before any pixel is decoded; a folder scan counts them among the files it could not read.
+Only regular files are read (a named pipe or a device named like an image is refused before a
+byte is read, :func:`detector.files.open_regular`), and never more bytes than an image within the
+limit can take (:func:`max_file_bytes`).
 """
 
 from __future__ import annotations
@@ -28,6 +31,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import FileTooLargeError, display_name, open_regular, read_at_most
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 DEFAULT_MAX_PIXELS = 100_000_000
@@ -77,6 +81,9 @@ def _fail(reason: str, path) -> InputError:
 
 
 def _os_reason(err: OSError) -> str:
+    if isinstance(err, FileTooLargeError):
+        return (f"{err.strerror} (what an image of the size limit can take; set "
+                f"{MAX_MEGAPIXELS_VARIABLE} to raise it)")
     if isinstance(err, FileNotFoundError):
         return "no such file"
     if isinstance(err, IsADirectoryError):
@@ -300,6 +307,23 @@ def max_pixels_limit() -> int:
     return max(1, int(round(megapixels * 1e6)))
 
 
+#: What an image file may hold beyond its pixels (headers, colour profiles, EXIF, thumbnails).
+FILE_SLACK_BYTES = 64 * 2**20
+
+
+def max_file_bytes(max_pixels: int | None) -> int | None:
+    """The most bytes :func:`read_gray` reads from one file for images of up to ``max_pixels``:
+    8 bytes a pixel (16-bit samples, four channels, stored without compression) plus
+    ``FILE_SLACK_BYTES``; None for no limit. A larger file is refused before it is read.
+
+    >>> max_file_bytes(100_000_000)  # the default limit: 8 * 10**8 + 64 * 2**20
+    867108864
+    """
+    if max_pixels is None:
+        return None
+    return 8 * int(max_pixels) + FILE_SLACK_BYTES
+
+
 def _check_pixels(width: int, height: int, max_pixels: int | None, from_environment: bool,
                   path) -> None:
     if max_pixels is not None and width * height > max_pixels:
@@ -348,6 +372,18 @@ def _to_uint8(img: np.ndarray, depth_scaling: str) -> np.ndarray:
         values = np.nan_to_num(img.astype(np.float64), nan=0.0, posinf=1.0, neginf=0.0)
         return np.floor(np.clip(values, 0.0, 1.0) * 255.0 + 0.5).astype(np.uint8)
     return _stretch(img)
+
+
+def _read_options(max_pixels, depth_scaling: str):
+    """``(max_pixels as a number or None, whether it came from the environment)``; a bad
+    argument is a ValueError (a programming error, not bad input)."""
+    if depth_scaling not in ("shift", "range"):
+        raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
+    if isinstance(max_pixels, str):
+        if max_pixels != "auto":
+            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
+        return max_pixels_limit(), True
+    return max_pixels, False
 
 
 def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
@@ -404,27 +440,59 @@ def read_gray(path: str | os.PathLike, max_pixels: int | str | None = "auto",
     array([[60, 60, 60],
            [60, 60, 60]], dtype=uint8)
     """
-    if depth_scaling not in ("shift", "range"):
-        raise ValueError(f"depth_scaling must be 'shift' or 'range', not {depth_scaling!r}")
-    from_environment = isinstance(max_pixels, str)
-    if from_environment:
-        if max_pixels != "auto":
-            raise ValueError(f"max_pixels must be an int, None or 'auto', not {max_pixels!r}")
-        max_pixels = max_pixels_limit()
+    max_pixels, from_environment = _read_options(max_pixels, depth_scaling)
+    limit = max_file_bytes(max_pixels)
     try:
-        with open(path, "rb") as fh:
+        with open_regular(path, limit) as fh:
             probe = _probe(fh)  # the header only: a huge image is refused before it is read
-            if probe.width is not None:
-                if probe.width == 0 or probe.height == 0:
-                    raise _fail(f"the header gives a size of {probe.width} x {probe.height} "
-                                "pixels", path)
-                _check_pixels(probe.width, probe.height, max_pixels, from_environment, path)
+            _check_probe(probe, max_pixels, from_environment, path)
             fh.seek(0)
-            data = fh.read()
+            data = read_at_most(fh, limit)
+            if limit is not None and len(data) > limit:
+                raise FileTooLargeError(path, limit)
     except OSError as err:
         raise _fail(_os_reason(err), path) from None
     except MemoryError:
         raise _fail("not enough memory to read it", path) from None
+    return _decode(data, probe, max_pixels, from_environment, depth_scaling, path)
+
+
+def _check_probe(probe: _Probe, max_pixels, from_environment: bool, path) -> None:
+    if probe.width is not None:
+        if probe.width == 0 or probe.height == 0:
+            raise _fail(f"the header gives a size of {probe.width} x {probe.height} pixels",
+                        path)
+        _check_pixels(probe.width, probe.height, max_pixels, from_environment, path)
+
+
+def decode_gray(data: bytes, name: str, max_pixels: int | str | None = "auto",
+                depth_scaling: str = "shift") -> np.ndarray:
+    """:func:`read_gray` of an image's bytes (a file sent to a cluster worker, say): the same
+    checks, the same pixels, and messages that name ``name``.
+
+    Examples
+    --------
+    >>> import cv2
+    >>> ok, png = cv2.imencode(".png", np.full((2, 3), 7, np.uint8))
+    >>> decode_gray(png.tobytes(), "frame.png").tolist()
+    [[7, 7, 7], [7, 7, 7]]
+    >>> decode_gray(b"GIF89a", "old.gif")
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: old.gif: cannot read image: not a PNG, JPEG, BMP or TIFF file (unrecognised content)
+    """
+    max_pixels, from_environment = _read_options(max_pixels, depth_scaling)
+    data = bytes(data)
+    limit = max_file_bytes(max_pixels)
+    if limit is not None and len(data) > limit:
+        raise _fail(_os_reason(FileTooLargeError(name, limit)), name)
+    probe = _probe(io.BytesIO(data))
+    _check_probe(probe, max_pixels, from_environment, name)
+    return _decode(data, probe, max_pixels, from_environment, depth_scaling, name)
+
+
+def _decode(data: bytes, probe: _Probe, max_pixels, from_environment: bool, depth_scaling: str,
+            path) -> np.ndarray:
     if not data:
         raise _fail("the file is empty (0 bytes)", path)
     if probe.truncated:
@@ -518,7 +586,7 @@ def header_size(path: str | os.PathLike) -> tuple[int, int] | None:
     True
     """
     try:
-        with open(path, "rb") as fh:
+        with open_regular(path) as fh:
             probe = _probe(fh)
     except OSError as err:
         raise _fail(_os_reason(err), path) from None
@@ -531,17 +599,22 @@ def _is_image_name(name: str) -> bool:
     return name.lower().endswith(IMAGE_SUFFIXES)
 
 
-def list_images(paths) -> tuple[list[tuple[str, str]], int]:
+def list_images(paths, failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
     """Find the image files among files and folders, in a fixed order.
 
     Folders are walked recursively; files and sub-folders whose names start with a dot are left
     out (they are not counted). Image files are recognised by their suffix (``IMAGE_SUFFIXES``,
-    any letter case).
+    any letter case). Whether a file can be read is the reader's business: a named pipe called
+    ``x.png`` is listed, and :func:`read_gray` refuses it.
 
     Parameters
     ----------
     paths : str, os.PathLike, or sequence of them
         Image files and folders.
+    failures : list, optional
+        Where to note folders that cannot be read (no permission, vanished while listed): as
+        ``(display_name + "/", reason)``, so that a scan lists them among its failures. Without
+        it, such a folder is an :class:`InputError`; it is never skipped silently.
 
     Returns
     -------
@@ -549,15 +622,16 @@ def list_images(paths) -> tuple[list[tuple[str, str]], int]:
         ``path`` opens the file. ``display_name`` is what the detections CSV writes in its
         ``image`` column: for a file found in a folder, its path relative to that folder with
         forward slashes (so that a scan of ``test/images`` matches ``test/labels.csv``); for a
-        file given by itself, the path as given. Each folder's images are sorted by display name;
-        the folders and files keep the order given.
+        file given by itself, the path as given. Bytes of a name that are not UTF-8 are written
+        ``%XX`` (:func:`detector.files.display_name`). Each folder's images are sorted by display
+        name; the folders and files keep the order given.
     skipped : int
         Files with other suffixes (in the folders, or given by themselves) that were left out.
 
     Raises
     ------
     InputError
-        A path that does not exist.
+        A path that does not exist; a folder that cannot be read, when ``failures`` is not given.
 
     Examples
     --------
@@ -578,7 +652,17 @@ def list_images(paths) -> tuple[list[tuple[str, str]], int]:
         text = os.fspath(given)
         if os.path.isdir(text):
             names = []
-            for folder, dirs, files in os.walk(text):
+
+            def unreadable(err: OSError, top=text):
+                where = err.filename if err.filename is not None else top
+                rel = os.path.relpath(where, top)
+                shown = display_name(os.fspath(top) if rel == "." else rel.replace(os.sep, "/"))
+                reason = f"cannot read the folder: {_os_reason(err)}"
+                if failures is None:
+                    raise InputError(reason, path=display_name(where))
+                failures.append((shown.rstrip("/") + "/", reason))
+
+            for folder, dirs, files in os.walk(text, onerror=unreadable):
                 dirs[:] = [d for d in dirs if not d.startswith(".")]
                 rel_folder = os.path.relpath(folder, text)
                 for name in files:
@@ -590,10 +674,10 @@ def list_images(paths) -> tuple[list[tuple[str, str]], int]:
                     rel = name if rel_folder == "." else os.path.join(rel_folder, name)
                     names.append((rel.replace(os.sep, "/"), os.path.join(folder, name)))
             for display, full in sorted(names):
-                found.append((full, display))
+                found.append((full, display_name(display)))
         elif os.path.exists(text):
             if _is_image_name(text):
-                found.append((text, text))
+                found.append((text, display_name(text)))
             else:
                 skipped += 1
         else:

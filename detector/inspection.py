@@ -30,11 +30,11 @@ from __future__ import annotations
 
 import math
 import os
-import uuid
 
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import write_bytes
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -839,7 +839,7 @@ def render_top_features(features, importances, indices, window, background=None,
 
 
 def write_png(path, image: np.ndarray) -> None:
-    """Write an RGB uint8 picture as PNG, atomically (a temporary file, then one rename).
+    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.files.write_bytes`).
 
     Examples
     --------
@@ -856,15 +856,4 @@ def write_png(path, image: np.ndarray) -> None:
     ok, data = cv2.imencode(".png", np.ascontiguousarray(image[:, :, ::-1]))
     if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
         raise InputError("cannot encode the picture", path=path)
-    path = os.fspath(path)
-    folder, base = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(folder, f".{base}.{uuid.uuid4().hex[:8]}.part")
-    try:
-        with open(tmp, "wb") as fh:
-            fh.write(data.tobytes())
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise InputError(f"cannot write the picture ({exc.strerror or exc})", path=path) from None
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    write_bytes(path, data.tobytes())

@@ -13,8 +13,9 @@ Writers
 -------
 :func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv`,
 :func:`write_detections_coco` and :func:`write_detections_coco_results` (the COCO results list,
-with the image and category ids of a COCO labels file: :func:`coco_result_ids`). Each writes to a temporary file beside the target and renames it
-into place, so an interrupted run never leaves a half-written file.
+with the image and category ids of a COCO labels file: :func:`coco_result_ids`). Each writes
+through :func:`detector.files.atomic_write` (a temporary file beside the target, synced and
+renamed into place), so an interrupted run never leaves a half-written file.
 
 Every problem in a file raises :class:`detector.errors.InputError` with a one-line message that
 names the file and, for CSV, the 1-based line number (the header is line 1; a UTF-8 byte order
@@ -33,13 +34,12 @@ import math
 import os
 import posixpath
 import re
-import uuid
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write, read_bytes
 
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
@@ -185,11 +185,16 @@ def _error(message: str, path, rec: _Record | None = None) -> InputError:
     return InputError(rec.where + message, path=path, line=rec.line)
 
 
+#: The most bytes a labels or detections file may hold (COCO's largest published annotation
+#: file, instances_train2017.json, is about 450 MB).
+TEXT_MAX_BYTES = 2 * 2**30
+
+
 def _read_text(path) -> str:
-    """The file as text: UTF-8, an optional byte order mark dropped."""
+    """The file as text: UTF-8, an optional byte order mark dropped. Only a regular file is read,
+    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.files.read_bytes`)."""
     try:
-        with open(path, "rb") as fh:
-            data = fh.read()
+        data = read_bytes(path, max_bytes=TEXT_MAX_BYTES)
     except OSError as err:
         reason = "no such file" if isinstance(err, FileNotFoundError) else (
             err.strerror or str(err))
@@ -265,9 +270,35 @@ def _check_score(score: float, path, rec: _Record, text: str | None = None) -> N
         raise _error(f"score must be a number in 0..1, found {shown}", path, rec)
 
 
+def normalise_image_name(name: str) -> str:
+    """An image name the way the labels readers hold it: surrounding spaces dropped, forward
+    slashes, no ``.`` or repeated separators (a name that cannot be normalised is returned as it
+    is). Detections keep their names exactly; scoring matches them to labels by this form.
+
+    >>> normalise_image_name(" ./belt\\\\a.png ")
+    'belt/a.png'
+    """
+    try:
+        return _normalise_image(name, inside_folder=False)
+    except ValueError:
+        return name
+
+
+def _exact_image(name: str) -> str:
+    """A detections file's image name, kept exactly as written (RFC 4180: spaces are part of a
+    field), so that names round-trip through the file; only an empty name or a NUL is refused."""
+    if not name.strip():
+        raise ValueError("the image name is empty")
+    if "\x00" in name:
+        raise ValueError("the image name contains a NUL character")
+    return name
+
+
 def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
                  with_score: bool) -> tuple[list[_Record], bool]:
-    """Rows of a CSV with ``columns`` as validated records; also whether a label column exists."""
+    """Rows of a CSV with ``columns`` as validated records; also whether a label column exists.
+    Labels' image names are normalised (:func:`normalise_image_name`); a detections file's
+    (``with_score``) are kept exactly."""
     reader = csv.reader(io.StringIO(text, newline=""), strict=False)
     header: list[str] | None = None
     header_line = 1
@@ -310,7 +341,8 @@ def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
         raw = row[index["image"]]
         if raw not in names:
             try:
-                names[raw] = _normalise_image(raw, inside_folder)
+                names[raw] = (_exact_image(raw) if with_score
+                              else _normalise_image(raw, inside_folder))
             except ValueError as err:
                 raise _error(str(err), path, rec) from None
         rec.image = names[raw]
@@ -749,8 +781,11 @@ def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetection
       ``loadRes`` reads), together with ``images``: the COCO labels file that lists the images
       (or a dict of image id to file name). Every image listed there counts as scanned.
 
-    Image names get forward slashes; unlike labels, absolute paths are allowed (a file scanned
-    by itself keeps the path as given). Detections keep their file order within each image.
+    A CSV's image names are kept exactly as written (spaces, backslashes and all: RFC 4180 counts
+    spaces as part of a field), so a name written by :func:`write_detections_csv` reads back the
+    same; :func:`normalise_image_name` gives the form labels use. COCO names get forward slashes.
+    Unlike labels, absolute paths are allowed (a file scanned by itself keeps the path as given).
+    Detections keep their file order within each image.
 
     Parameters
     ----------
@@ -804,34 +839,48 @@ def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetection
 # writers
 
 
+class _CsvWriter:
+    """``csv.writer`` rows with RFC 4180 quoting, ``\n`` line ends."""
+
+    def __init__(self, fh):
+        self.fh = fh
+
+    def writerow(self, fields) -> None:
+        self.fh.write(csv_line(fields))
+
+    def writerows(self, rows) -> None:
+        for row in rows:
+            self.writerow(row)
+
+
+def csv_line(fields) -> str:
+    """One CSV line as the project writes them (RFC 4180): fields joined by commas, a field that
+    holds a comma, a double quote, a carriage return or a line feed put in double quotes (with its
+    quotes doubled), and a line feed at the end. Unlike Python 3.11's ``csv.writer`` with
+    ``lineterminator="\\n"``, a lone carriage return in a field (a legal file-name character) is
+    quoted too, so the reader does not take it for a line end.
+
+    >>> csv_line(["a\\rb.png", 'say "hi" twice', " x,y ", 1.5])
+    '"a\\rb.png","say ""hi"" twice"," x,y ",1.5\\n'
+    """
+    out = []
+    for field in fields:
+        text = str(field)
+        if any(c in text for c in ',"\r\n'):
+            text = '"' + text.replace('"', '""') + '"'
+        out.append(text)
+    return ",".join(out) + "\n"
+
+
+def csv_writer(fh) -> _CsvWriter:
+    """A writer of :func:`csv_line` rows on ``fh`` (``writerow``, ``writerows``)."""
+    return _CsvWriter(fh)
+
+
 def _number(v: float) -> str:
     """Shortest text that reads back to the same float64 ('112' for 112.0, '64.5' for 64.5)."""
     v = float(v)
     return str(int(v)) if v.is_integer() and abs(v) < 2**53 else repr(v)
-
-
-@contextmanager
-def _replacing(path, newline: str | None = ""):
-    """Write to a temporary file beside ``path``, then rename it into place."""
-    path = os.fspath(path)
-    folder, base = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(folder, f".{base}.{os.getpid()}-{uuid.uuid4().hex[:8]}.part")
-    try:
-        fh = open(tmp, "x", newline=newline, encoding="utf-8")
-    except OSError as err:
-        reason = "its folder does not exist" if isinstance(err, FileNotFoundError) else (
-            err.strerror or str(err))
-        raise InputError(f"cannot write the file: {reason}", path=path) from None
-    try:
-        with fh:
-            yield fh
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
@@ -853,8 +902,8 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
     """
     with_label = any(c for it in items for c in it.classes)
     header = list(LABEL_COLUMNS) + (["label"] if with_label else [])
-    with _replacing(path) as fh:
-        w = csv.writer(fh, lineterminator="\n")
+    with atomic_write(path, "w", newline="") as fh:
+        w = csv_writer(fh)
         w.writerow(header)
         for it in items:
             if len(it.boxes) == 0:
@@ -934,7 +983,7 @@ def write_coco(path: str | os.PathLike, items: list[ImageLabels],
     doc = {"images": _coco_image_entries(list(merged), image_sizes, None),
            "annotations": annotations,
            "categories": [{"id": cid, "name": name} for name, cid in category_ids.items()]}
-    with _replacing(path, newline=None) as fh:
+    with atomic_write(path, "w") as fh:
         json.dump(doc, fh, ensure_ascii=False)
         fh.write("\n")
 
@@ -973,8 +1022,8 @@ def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) 
     a.png,0,0,24,24,0.25
     b.png,,,,,
     """
-    with _replacing(path) as fh:
-        w = csv.writer(fh, lineterminator="\n")
+    with atomic_write(path, "w", newline="") as fh:
+        w = csv_writer(fh)
         w.writerow(DETECTION_COLUMNS)
         for image, boxes, scores in _merged_detections(items):
             if len(boxes) == 0:
@@ -1035,7 +1084,7 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
     doc.update({"images": _coco_image_entries([m[0] for m in merged], image_sizes, image_ids),
                 "annotations": annotations,
                 "categories": [{"id": 1, "name": category}]})
-    with _replacing(path, newline=None) as fh:
+    with atomic_write(path, "w") as fh:
         json.dump(doc, fh, ensure_ascii=False)
         fh.write("\n")
 
@@ -1172,6 +1221,6 @@ def write_detections_coco_results(path: str | os.PathLike, items: list[ImageDete
         for box, score in zip(boxes, scores):
             results.append({"image_id": image_id, "category_id": category_id,
                             "bbox": _bbox(box)[0], "score": float(score)})
-    with _replacing(path, newline=None) as fh:
+    with atomic_write(path, "w") as fh:
         json.dump(results, fh, ensure_ascii=False)
         fh.write("\n")

@@ -46,6 +46,7 @@ import numpy as np
 
 from detector import npzfile
 from detector.errors import InputError
+from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores)
 
@@ -414,10 +415,10 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     --------
     >>> import tempfile
     >>> p = os.path.join(tempfile.mkdtemp(), "m.npz")
-    >>> m = Model((2, 2), np.array([[[0, 0, 1, 2, -1], [1, 0, 1, 2, 1]] + [[0] * 5] * 2], np.int32),
+    >>> m = Model((4, 4), np.array([[[0, 0, 2, 4, -1], [2, 0, 2, 4, 1]] + [[0] * 5] * 2], np.int32),
     ...           [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged")
     >>> save_model(p, m); load_model(p).window
-    (2, 2)
+    (4, 4)
     """
     arrays = model_arrays(model)
     validate_model(dict(arrays), path)
@@ -438,6 +439,11 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
     width, height = (int(v) for v in a["window"])
     if width < 1 or height < 1:
         raise InputError(f"model window {width}x{height} is empty", path=path)
+    if not (MIN_WINDOW_SIDE <= width <= MAX_WINDOW_SIDE
+            and MIN_WINDOW_SIDE <= height <= MAX_WINDOW_SIDE):
+        raise InputError(f"model window {width}x{height} is outside the sides a window may have "
+                         f"({MIN_WINDOW_SIDE}..{MAX_WINDOW_SIDE} pixels, as harvest allows)",
+                         path=path)
     nf = a["node_features"]
     if nf.min() < 0 or nf.max() >= n_features:
         raise InputError(f"model node feature index out of range (0..{n_features - 1}): "
@@ -523,13 +529,14 @@ def _shown(value) -> str:
     return text if len(text) <= 40 else text[:37] + "..."
 
 
-def load_model(path: str | os.PathLike) -> Model:
+def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
     """Read and validate a model file; every problem is one :class:`InputError` naming the file.
 
     Refuses: a file that is not an ``.npz`` archive or is truncated or damaged, object arrays
     (never unpickled), a patch bank or other file given instead of a model, an unknown format
     version, missing arrays, wrong dtypes or shapes, inconsistent tree sizes, node feature indices
-    out of range, rectangles outside the window, non-finite thresholds or leaf values.
+    out of range, rectangles outside the window, non-finite thresholds or leaf values. With
+    ``data``, the file's bytes are read instead of ``path`` (which names them in messages).
 
     Examples
     --------
@@ -538,7 +545,7 @@ def load_model(path: str | os.PathLike) -> Model:
     ...
     detector.errors.InputError: no/such/model.npz: no such model file
     """
-    a = npzfile.read_npz(path, kind="model")
+    a = npzfile.read_npz(path, kind="model", spec=MODEL_SPEC, data=data)
     kind = a.get("kind")
     if kind is not None and kind.dtype.kind == "U" and kind.ndim == 0 and str(kind) != "model":
         if str(kind) == "patch-bank":

@@ -2,14 +2,16 @@
 
 Writing
     :func:`save_npz` writes a deterministic zip archive (sorted entry names, fixed entry time
-    1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through a temporary file
-    in the same folder and an atomic :func:`os.replace`, so a crash never leaves a half-written file
-    at the destination. The same arrays always give the same bytes (for one zlib version).
+    1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through
+    :func:`detector.files.atomic_write`, so a crash never leaves a half-written file at the
+    destination. The same arrays always give the same bytes (for one zlib version).
 
 Reading
-    :func:`read_npz` opens an archive without ever unpickling (object arrays are refused before their
-    data is read), and :func:`check_arrays` validates the arrays against a spec (dtype, number of
-    dimensions, fixed sizes and sizes shared between arrays). :func:`load_npz` does both. Every
+    :func:`read_npz` opens an archive without ever unpickling: it reads every array's ``.npy`` header
+    first and refuses object arrays, sizes that disagree with a spec or with each other, and more
+    than ``MAX_ARRAY_BYTES`` of declared data, before any array data is read or memory set aside;
+    :func:`check_arrays` validates the arrays against a spec (dtype, number of dimensions, fixed
+    sizes and sizes shared between arrays). :func:`load_npz` does both. Every
     problem, whatever the damage to the file, becomes one :class:`detector.errors.InputError` whose
     message names the file: ``numpy.load(path, allow_pickle=False)`` opens the files too.
 """
@@ -20,7 +22,6 @@ import hashlib
 import io
 import os
 import struct
-import tempfile
 import warnings
 import zipfile
 import zlib
@@ -29,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write, open_regular
 
 __all__ = ["ArraySpec", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
 
@@ -107,7 +109,7 @@ def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:
     ValueError
         An array has an object dtype (it could only be stored by pickling).
     InputError
-        The destination folder does not exist or cannot be written.
+        The destination cannot be written (its folder does not exist, the disk is full, ...).
 
     Examples
     --------
@@ -125,39 +127,29 @@ def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:
             raise ValueError(f"array {name!r} has an object dtype; it cannot be stored without pickle")
         payload[name] = _npy_bytes(arr)
 
-    folder = os.path.dirname(os.path.abspath(path))
-    if not os.path.isdir(folder):
-        raise InputError("the folder to write into does not exist", path=path)
-    try:
-        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".part", dir=folder)
-    except OSError as exc:
-        raise InputError(f"cannot write here ({exc.strerror or exc})", path=path) from None
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-                for name, data in payload.items():
-                    info = zipfile.ZipInfo(name + ".npy", date_time=ZIP_EPOCH)
-                    info.compress_type = zipfile.ZIP_DEFLATED
-                    info.create_system = 3
-                    info.external_attr = 0o644 << 16
-                    zf.writestr(info, data, compresslevel=6)
-            fh.flush()
-            os.fsync(fh.fileno())
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    with atomic_write(path) as fh:
+        with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+            for name, data in payload.items():
+                info = zipfile.ZipInfo(name + ".npy", date_time=ZIP_EPOCH)
+                info.compress_type = zipfile.ZIP_DEFLATED
+                info.create_system = 3
+                info.external_attr = 0o644 << 16
+                zf.writestr(info, data, compresslevel=6)
 
 
-def _read_header(buf: bytearray) -> tuple[tuple, bool, np.dtype, int]:
+#: The most bytes of array data one model or patch bank file may declare, all arrays together
+#: (as stored, uncompressed). The arrays' headers are read and checked against this, and against
+#: each other (:class:`ArraySpec`), before any array data is read or any memory set aside for it.
+#: A bank of a million 24 x 24 patches holds about 0.6 GB.
+MAX_ARRAY_BYTES = 4 * 2**30
+
+#: The most bytes of ``.npy`` header read from an entry (numpy writes headers of a few hundred).
+_MAX_HEADER_BYTES = 1 << 16
+
+
+def _read_header(buf) -> tuple[tuple, bool, np.dtype, int]:
     """Parse the ``.npy`` header at the start of ``buf`` (no data is touched)."""
-    head = io.BytesIO(bytes(buf[: 1 << 17]))
+    head = io.BytesIO(bytes(buf[: _MAX_HEADER_BYTES + 12]))
     version = np.lib.format.read_magic(head)
     # numpy parses the header with ast.literal_eval: damaged text can make Python warn (an invalid
     # escape sequence, say) on stderr; the damage is reported as an InputError instead
@@ -172,12 +164,64 @@ def _read_header(buf: bytearray) -> tuple[tuple, bool, np.dtype, int]:
     return shape, fortran, dtype, head.tell()
 
 
-def _read_member(zf: zipfile.ZipFile, info: zipfile.ZipInfo, size_on_disk: int, path: str, kind: str):
-    name = info.filename[:-4]
+@dataclass(frozen=True)
+class _Layout:
+    """What an entry's ``.npy`` header declares."""
+
+    shape: tuple
+    fortran: bool
+    dtype: np.dtype
+    offset: int  # header bytes before the data
+
+    @property
+    def nbytes(self) -> int:
+        count = 1
+        for s in self.shape:
+            count *= int(s)
+        return count * self.dtype.itemsize
+
+
+def _entry_name(info: zipfile.ZipInfo) -> str:
+    return info.filename[:-4]
+
+
+def _check_entry(info: zipfile.ZipInfo, size_on_disk: int, path: str, kind: str) -> None:
+    name = _entry_name(info)
     if info.flag_bits & 0x1:
         raise InputError(f"not a readable {kind} file: entry {name!r} is encrypted", path=path)
     if info.compress_size > size_on_disk or info.file_size > _MAX_DEFLATE_RATIO * info.compress_size + 4096:
         raise InputError(f"damaged {kind} file: entry {name!r} declares an impossible size", path=path)
+
+
+def _read_layout(zf: zipfile.ZipFile, info: zipfile.ZipInfo, path: str, kind: str) -> _Layout:
+    """Read and check an entry's ``.npy`` header only (a few hundred bytes decompressed)."""
+    name = _entry_name(info)
+    with zf.open(info) as fh:
+        prefix = fh.read(min(info.file_size, _MAX_HEADER_BYTES + 12))
+    try:
+        shape, fortran, dtype, offset = _read_header(prefix)
+    except Exception as exc:  # numpy's header parser on untrusted bytes: any failure means damage
+        detail = " ".join(str(exc).split())[:80] or type(exc).__name__
+        raise InputError(f"damaged {kind} file: array {name!r} has a bad header ({detail})", path=path) from None
+    if dtype.hasobject:
+        raise InputError(
+            f"refused {kind} file: array {name!r} holds Python objects (patchwood never unpickles)",
+            path=path,
+        )
+    if any(int(s) < 0 for s in shape):
+        raise InputError(f"damaged {kind} file: array {name!r} has a negative size", path=path)
+    layout = _Layout(tuple(int(s) for s in shape), bool(fortran), dtype, offset)
+    if dtype.itemsize == 0 or info.file_size - offset != layout.nbytes:
+        raise InputError(
+            f"damaged {kind} file: array {name!r} has {info.file_size - offset} data bytes for shape "
+            f"{tuple(shape)} of {dtype}",
+            path=path,
+        )
+    return layout
+
+
+def _read_data(zf: zipfile.ZipFile, info: zipfile.ZipInfo, layout: _Layout, path: str, kind: str):
+    name = _entry_name(info)
     buf = bytearray(info.file_size)
     with zf.open(info) as fh:
         view = memoryview(buf)
@@ -189,38 +233,32 @@ def _read_member(zf: zipfile.ZipFile, info: zipfile.ZipInfo, size_on_disk: int, 
             got += n
         if got != len(buf) or fh.read(1):
             raise InputError(f"damaged {kind} file: entry {name!r} is truncated", path=path)
-    try:
-        shape, fortran, dtype, offset = _read_header(buf)
-    except Exception as exc:  # numpy's header parser on untrusted bytes: any failure means damage
-        detail = " ".join(str(exc).split())[:80] or type(exc).__name__
-        raise InputError(f"damaged {kind} file: array {name!r} has a bad header ({detail})", path=path) from None
-    if dtype.hasobject:
-        raise InputError(
-            f"refused {kind} file: array {name!r} holds Python objects (patchwood never unpickles)",
-            path=path,
-        )
-    if any(int(s) < 0 for s in shape):
-        raise InputError(f"damaged {kind} file: array {name!r} has a negative size", path=path)
-    count = int(np.prod(shape, dtype=np.int64)) if shape else 1
-    if dtype.itemsize == 0 or len(buf) - offset != count * dtype.itemsize:
-        raise InputError(
-            f"damaged {kind} file: array {name!r} has {len(buf) - offset} data bytes for shape "
-            f"{tuple(shape)} of {dtype}",
-            path=path,
-        )
-    arr = np.frombuffer(buf, dtype=dtype, count=count, offset=offset)
-    return arr.reshape(shape, order="F" if fortran else "C")
+    count = layout.nbytes // layout.dtype.itemsize
+    arr = np.frombuffer(buf, dtype=layout.dtype, count=count, offset=layout.offset)
+    return arr.reshape(layout.shape, order="F" if layout.fortran else "C")
 
 
-def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarray]:
-    """Read every array of an ``.npz`` archive, never unpickling.
+def read_npz(path: str | os.PathLike, kind: str = "model", spec: dict | None = None,
+             max_bytes: int | None = MAX_ARRAY_BYTES, data: bytes | None = None) -> dict[str, np.ndarray]:
+    """Read every array of an ``.npz`` archive, never unpickling, checking what the arrays'
+    headers declare before any array data is read.
 
     Parameters
     ----------
     path : str or os.PathLike
-        The archive.
+        The archive (a regular file: :func:`detector.files.open_regular`).
     kind : str, default="model"
         What the file should be ("model", "patch bank"), used in messages.
+    spec : dict of str to ArraySpec, optional
+        Checked against the headers of the arrays present (dtype, dimensions, fixed sizes and
+        sizes shared between arrays, as :func:`check_arrays` does), so that an array declaring a
+        size its companions contradict is refused before its data is read. Missing arrays are
+        left to :func:`check_arrays`.
+    max_bytes : int or None, default=MAX_ARRAY_BYTES
+        The most bytes of array data the file may declare, all arrays together.
+    data : bytes, optional
+        The file's bytes (a model sent to a cluster worker, say), read instead of ``path``, which
+        then only names them in messages.
 
     Returns
     -------
@@ -230,8 +268,9 @@ def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarr
     Raises
     ------
     InputError
-        Missing file, not a zip archive, truncated or damaged entries, an entry that is not an
-        ``.npy`` array, duplicate names, or an object array (refused before its data is read).
+        Missing file, not a regular file, not a zip archive, truncated or damaged entries, an
+        entry that is not an ``.npy`` array, duplicate names, an object array, declared sizes that
+        disagree with the spec or exceed ``max_bytes`` (all refused before array data is read).
 
     Examples
     --------
@@ -240,30 +279,48 @@ def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarr
     >>> save_npz(p, {"a": np.eye(2, dtype=np.float32)})
     >>> read_npz(p)["a"].tolist()
     [[1.0, 0.0], [0.0, 1.0]]
+    >>> read_npz(p, max_bytes=15)
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: ...x.npz: model file declares 16 bytes of arrays, more than the limit of 15
     """
     path = os.fspath(path)
-    if not os.path.exists(path):
-        raise InputError(f"no such {kind} file", path=path)
-    if os.path.isdir(path):
-        raise InputError(f"is a folder, not a {kind} file", path=path)
+    if data is None:
+        if not os.path.exists(path):
+            raise InputError(f"no such {kind} file", path=path)
+        if os.path.isdir(path):
+            raise InputError(f"is a folder, not a {kind} file", path=path)
     try:
-        size = os.path.getsize(path)
-        if size == 0:
-            raise InputError(f"not a {kind} file: the file is empty (0 bytes)", path=path)
-        if not zipfile.is_zipfile(path):
-            raise InputError(f"not a {kind} file (not an .npz archive, or truncated)", path=path)
-        out: dict[str, np.ndarray] = {}
-        with zipfile.ZipFile(path, "r") as zf:
-            for info in zf.infolist():
-                if not info.filename.endswith(".npy") or len(info.filename) == 4:
-                    raise InputError(
-                        f"not a {kind} file: unexpected entry {info.filename!r} in the archive", path=path
-                    )
-                name = info.filename[:-4]
-                if name in out:
-                    raise InputError(f"damaged {kind} file: entry {name!r} appears twice", path=path)
-                out[name] = _read_member(zf, info, size, path, kind)
-        return out
+        with (open_regular(path) if data is None else io.BytesIO(data)) as fh:
+            size = fh.seek(0, io.SEEK_END)
+            fh.seek(0)
+            if size == 0:
+                raise InputError(f"not a {kind} file: the file is empty (0 bytes)", path=path)
+            if not zipfile.is_zipfile(fh):
+                raise InputError(f"not a {kind} file (not an .npz archive, or truncated)", path=path)
+            fh.seek(0)
+            with zipfile.ZipFile(fh, "r") as zf:
+                entries: dict[str, zipfile.ZipInfo] = {}
+                for info in zf.infolist():
+                    if not info.filename.endswith(".npy") or len(info.filename) == 4:
+                        raise InputError(
+                            f"not a {kind} file: unexpected entry {info.filename!r} in the archive", path=path
+                        )
+                    name = _entry_name(info)
+                    if name in entries:
+                        raise InputError(f"damaged {kind} file: entry {name!r} appears twice", path=path)
+                    _check_entry(info, size, path, kind)
+                    entries[name] = info
+                layouts = {name: _read_layout(zf, info, path, kind) for name, info in entries.items()}
+                total = sum(layout.nbytes for layout in layouts.values())
+                if max_bytes is not None and total > max_bytes:
+                    raise InputError(f"{kind} file declares {total:,} bytes of arrays, more than "
+                                     f"the limit of {max_bytes:,}", path=path)
+                if spec:
+                    _check_layouts({n: (v.dtype, v.shape) for n, v in layouts.items()}, spec,
+                                   path, kind, require=False)
+                return {name: _read_data(zf, entries[name], layouts[name], path, kind)
+                        for name in entries}
     except InputError:
         raise
     except _READ_ERRORS as exc:
@@ -271,13 +328,53 @@ def read_npz(path: str | os.PathLike, kind: str = "model") -> dict[str, np.ndarr
         raise InputError(f"damaged or not a {kind} file ({detail})", path=path) from None
 
 
-def _dtype_ok(arr: np.ndarray, want: str) -> bool:
+def _dtype_ok(dtype: np.dtype, want: str) -> bool:
     if want == "str":
-        return arr.dtype.kind == "U"
+        return dtype.kind == "U"
     if want == "integer":
-        return arr.dtype.kind in "iu"
+        return dtype.kind in "iu"
     want_dt = np.dtype(want)
-    return arr.dtype.kind == want_dt.kind and arr.dtype.itemsize == want_dt.itemsize
+    return dtype.kind == want_dt.kind and dtype.itemsize == want_dt.itemsize
+
+
+def _check_layouts(layouts: dict, spec: dict, path, kind: str, require: bool = True) -> dict[str, int]:
+    """Check ``{name: (dtype, shape)}`` against ``spec``; returns the named sizes."""
+    sizes: dict[str, int] = {}
+    where: dict[str, str] = {}
+    for name, s in spec.items():
+        if name not in layouts:
+            if s.required and require:
+                raise InputError(f"not a complete {kind} file: array {name!r} is missing", path=path)
+            continue
+        dtype, shape = layouts[name]
+        if not _dtype_ok(dtype, s.dtype):
+            raise InputError(
+                f"{kind} array {name!r} has dtype {dtype}; expected {s.dtype}", path=path
+            )
+        if len(shape) != len(s.shape):
+            raise InputError(
+                f"{kind} array {name!r} has {len(shape)} dimensions; expected {len(s.shape)}", path=path
+            )
+        for axis, (got, want) in enumerate(zip(shape, s.shape)):
+            if want is None:
+                continue
+            if isinstance(want, int):
+                if got != want:
+                    raise InputError(
+                        f"{kind} array {name!r} has size {got} along axis {axis}; expected {want}",
+                        path=path,
+                    )
+            elif want in sizes:
+                if got != sizes[want]:
+                    raise InputError(
+                        f"{kind} array {name!r} has size {got} along axis {axis}, but array "
+                        f"{where[want]!r} says {sizes[want]}",
+                        path=path,
+                    )
+            else:
+                sizes[want] = int(got)
+                where[want] = name
+    return sizes
 
 
 def check_arrays(
@@ -313,43 +410,10 @@ def check_arrays(
     >>> check_arrays({"a": np.zeros((3, 2), np.int32), "b": np.zeros(3, np.float32)}, spec, "x.npz")
     {'N': 3}
     """
-    sizes: dict[str, int] = {}
-    where: dict[str, str] = {}
-    for name, s in spec.items():
-        if name not in arrays:
-            if s.required:
-                raise InputError(f"not a complete {kind} file: array {name!r} is missing", path=path)
-            continue
-        arr = arrays[name]
-        if not _dtype_ok(arr, s.dtype):
-            raise InputError(
-                f"{kind} array {name!r} has dtype {arr.dtype}; expected {s.dtype}", path=path
-            )
-        if not arr.dtype.isnative:
-            arr = arrays[name] = arr.astype(arr.dtype.newbyteorder("="))
-        if arr.ndim != len(s.shape):
-            raise InputError(
-                f"{kind} array {name!r} has {arr.ndim} dimensions; expected {len(s.shape)}", path=path
-            )
-        for axis, (got, want) in enumerate(zip(arr.shape, s.shape)):
-            if want is None:
-                continue
-            if isinstance(want, int):
-                if got != want:
-                    raise InputError(
-                        f"{kind} array {name!r} has size {got} along axis {axis}; expected {want}",
-                        path=path,
-                    )
-            elif want in sizes:
-                if got != sizes[want]:
-                    raise InputError(
-                        f"{kind} array {name!r} has size {got} along axis {axis}, but array "
-                        f"{where[want]!r} says {sizes[want]}",
-                        path=path,
-                    )
-            else:
-                sizes[want] = int(got)
-                where[want] = name
+    sizes = _check_layouts({n: (a.dtype, a.shape) for n, a in arrays.items()}, spec, path, kind)
+    for name in spec:
+        if name in arrays and not arrays[name].dtype.isnative:
+            arrays[name] = arrays[name].astype(arrays[name].dtype.newbyteorder("="))
     return sizes
 
 
@@ -385,7 +449,7 @@ def load_npz(
     >>> load_npz(p, {"a": ArraySpec("uint8", (None, 3))}, kind="patch bank")["a"].shape
     (2, 3)
     """
-    arrays = read_npz(path, kind=kind)
+    arrays = read_npz(path, kind=kind, spec=spec)
     if spec:
         check_arrays(arrays, spec, path, kind=kind)
     return arrays
@@ -404,7 +468,7 @@ def file_sha256(path: str | os.PathLike) -> str:
     """
     h = hashlib.sha256()
     try:
-        with open(path, "rb") as fh:
+        with open_regular(path) as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
                 h.update(block)
     except OSError as exc:

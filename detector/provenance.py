@@ -102,13 +102,13 @@ def scan_record(model_path, model, settings, inputs=(), threshold_from=None) -> 
 def write_provenance(detections_path, record: dict, images: int) -> dict:
     """Write the side file of ``detections_path`` (atomically), with the detections file's name,
     SHA-256 and image count added to ``record``; returns the record written."""
-    from detector.labels import _replacing
+    from detector.files import atomic_write
     from detector.npzfile import file_sha256
 
     full = dict(record, detections={"file": Path(detections_path).name,
                                     "sha256": file_sha256(detections_path),
                                     "images": int(images)})
-    with _replacing(provenance_path(detections_path), newline=None) as fh:
+    with atomic_write(provenance_path(detections_path), "w") as fh:
         json.dump(full, fh, indent=2, ensure_ascii=False, allow_nan=False)
         fh.write("\n")
     return full

@@ -28,7 +28,6 @@ import math
 import os
 import posixpath
 import re
-import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from urllib.parse import quote
@@ -36,6 +35,7 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write, read_bytes, same_file, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
 from detector.npzfile import file_sha256
 from detector.provenance import describe_settings, provenance_of
@@ -313,7 +313,7 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
     >>> sorted(inputs.ground_truth), inputs.detections
     (['a.png', 'b.png'], {})
     """
-    from detector.labels import read_detections, read_labels
+    from detector.labels import normalise_image_name, read_detections, read_labels
 
     labels = read_labels(labels_path, label=label)
     if len(labels) == 0:
@@ -333,7 +333,15 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
                              "COCO labels file that defines those ids", path=detections_path)
         found = read_detections(detections_path, images=labels_path if labels_json else None)
     ground_truth = {it.image: it.boxes for it in labels}
-    detections = {d.image: (d.boxes, d.scores) for d in found}
+    detections = {}
+    for d in found:  # names as labels hold them (a detections file keeps them exactly)
+        name = normalise_image_name(d.image)
+        if name in detections:
+            boxes, scores = detections[name]
+            detections[name] = (np.concatenate([boxes, d.boxes]),
+                                np.concatenate([scores, d.scores]))
+        else:
+            detections[name] = (d.boxes, d.scores)
     check_image_names(list(detections), list(ground_truth), detections_path)
     return ScoreInputs(detections=detections, ground_truth=ground_truth,
                        detections_path=os.fspath(detections_path),
@@ -534,6 +542,10 @@ def _summary_text(summary: dict) -> str:
     return "{\n" + ",\n".join(lines) + "\n}\n"
 
 
+#: The most bytes :func:`threshold_from_summary` reads (a summary.json is a few kilobytes).
+SUMMARY_MAX_BYTES = 16 * 2**20
+
+
 def threshold_from_summary(path) -> float:
     """The recommended score threshold stored in a ``summary.json`` written by ``score`` (see
     :func:`read_summary_point`, which also gives the provenance of the scored detections).
@@ -579,8 +591,7 @@ def read_summary_point(path) -> tuple[float, dict | None]:
     from detector.provenance import _check_record
 
     try:
-        with open(path, "rb") as fh:
-            data = fh.read()
+        data = read_bytes(path, max_bytes=SUMMARY_MAX_BYTES)
     except OSError as err:
         reason = "no such file" if isinstance(err, FileNotFoundError) else (
             err.strerror or str(err))
@@ -725,15 +736,8 @@ def _figure(width=5.4, height=4.2):
 
 
 def _save(fig, path) -> None:
-    path = os.fspath(path)
-    folder, base = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(folder, f".{base}.{uuid.uuid4().hex[:8]}.part.png")
-    try:
-        fig.savefig(tmp, format="png", metadata={"Software": None})
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    with atomic_write(path) as fh:
+        fig.savefig(fh, format="png", metadata={"Software": None})
 
 
 def _nothing_to_draw(ax, text: str) -> None:
@@ -1053,8 +1057,7 @@ def _write_png(path, image: np.ndarray) -> None:
     ok, data = cv2.imencode(".png", image)
     if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
         raise InputError("cannot encode the picture", path=path)
-    with open(path, "wb") as fh:
-        fh.write(data.tobytes())
+    write_bytes(path, data.tobytes())
 
 
 def _image_boxes(name, detections, ground_truth, iou_threshold):
@@ -1176,6 +1179,22 @@ def check_report_folder(report_dir, force: bool = False) -> None:
                          path=path)
 
 
+def _check_inputs_outside_report(out_dir: Path, inputs) -> None:
+    """Refuse (even with --force) an input that is one of the files the report writes or
+    removes: ``report.html`` given as the labels, say."""
+    if not out_dir.is_dir():
+        return
+    own = [out_dir / name for name in REPORT_FILES]
+    gallery = out_dir / "gallery"
+    if gallery.is_dir():
+        own += [entry for entry in gallery.iterdir() if _GALLERY_FILE.fullmatch(entry.name)]
+    for given in inputs:
+        for target in own:
+            if same_file(target, given):
+                raise InputError(f"the report would replace its own input ({os.fspath(given)}); "
+                                 "choose another report folder", path=target)
+
+
 def _clear_old_report(out_dir: Path) -> None:
     """With --force: remove the report's own files of an earlier run, nothing else."""
     gallery = out_dir / "gallery"
@@ -1183,17 +1202,6 @@ def _clear_old_report(out_dir: Path) -> None:
         for entry in gallery.iterdir():
             if entry.is_file() and _GALLERY_FILE.fullmatch(entry.name):
                 entry.unlink()
-
-
-def _write_text(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.part")
-    try:
-        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 def write_report(report_dir, evaluation: Evaluation, point: dict, detections: dict | None = None,
@@ -1265,8 +1273,8 @@ def write_report(report_dir, evaluation: Evaluation, point: dict, detections: di
     summary = build_summary(evaluation, point, inputs, notes,
                             errors=errors if errors is not evaluation else None,
                             provenance=provenance, warnings=warnings)
-    _write_text(out / "summary.json", _summary_text(summary))
-    _write_text(out / "report.html", _html(summary, evaluation, galleries, errors))
+    write_text(out / "summary.json", _summary_text(summary))
+    write_text(out / "report.html", _html(summary, evaluation, galleries, errors))
     return summary
 
 
@@ -1346,6 +1354,7 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     """
     out = Path(report_dir)
     check_report_folder(out, force)  # before any work: refuse early
+    _check_inputs_outside_report(out, (detections_path, labels_path))
     p_target = _check_target("precision", target_precision)
     r_target = _check_target("recall", target_recall)
     if p_target is not None and r_target is not None:

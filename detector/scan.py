@@ -28,6 +28,7 @@ import numpy as np
 
 from detector import _kernels
 from detector.boxes import nms
+from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
 from detector.harvest import window_box_to_object_box
 from detector.integral import integral_image, squared_integral_image
@@ -432,14 +433,21 @@ def kernel_cutoff(model, threshold: float) -> float:
 #: (1.065x on the demo's 320 x 240 frames, 1.04x at 640 x 480; ``benchmarks/scan.py`` frames).
 INT32_PIXELS = (2**31 - 1) // 255
 
+#: Above that, as uint32 while 255 * pixels < 2**32 (up to 16.8 megapixels: the padded frame of
+#: an 8-megapixel camera picture, say), half the memory of float64 again; float64 beyond.
+UINT32_PIXELS = (2**32 - 1) // 255
+
 
 def integral_dtype(height: int, width: int):
     """dtype of the integral image :func:`frame_integrals` gives an 8-bit frame of this size.
 
-    >>> integral_dtype(480, 640).__name__, integral_dtype(3000, 4000).__name__
-    ('int32', 'float64')
+    >>> [integral_dtype(h, w).__name__ for h, w in [(480, 640), (3000, 4000), (5000, 4000)]]
+    ['int32', 'uint32', 'float64']
     """
-    return np.int32 if height * width <= INT32_PIXELS else np.float64
+    pixels = height * width
+    if pixels <= INT32_PIXELS:
+        return np.int32
+    return np.uint32 if pixels <= UINT32_PIXELS else np.float64
 
 
 def frame_integrals(gray: np.ndarray, out=None):
@@ -450,7 +458,10 @@ def frame_integrals(gray: np.ndarray, out=None):
     about 2**40), so float64 holds them exactly and the kernel multiplies without converting.
     For 8-bit frames ``cv2.integral2`` builds both in one pass (a tenth of the time of two numpy
     cumulative sums); other dtypes go through :mod:`detector.integral`. Both give the same
-    numbers (tests/test_scan.py).
+    numbers (tests/test_scan.py). A uint32 integral image is computed by OpenCV as int32, whose
+    additions wrap around past 2**31 - 1 (two's complement), and read as uint32: exact while the
+    sums stay below 2**32. The last sum is checked against the frame's total; were an OpenCV
+    build to saturate instead, the frame falls back to float64 sums.
 
     ``out``, optional: two arrays of shape ``(height + 1, width + 1)`` and those dtypes to write
     into. Reusing them from frame to frame saves most of the time: fresh memory of this size comes
@@ -464,13 +475,19 @@ def frame_integrals(gray: np.ndarray, out=None):
 
         shape = (gray.shape[0] + 1, gray.shape[1] + 1)
         dtype = integral_dtype(*gray.shape)
-        depth = cv2.CV_32S if dtype == np.int32 else cv2.CV_64F
+        depth = cv2.CV_64F if dtype == np.float64 else cv2.CV_32S
+        gray = np.ascontiguousarray(gray)
         if (out is not None and out[0].shape == shape and out[0].dtype == dtype
                 and out[1].shape == shape and out[1].dtype == np.float64):
-            ii, sq = cv2.integral2(np.ascontiguousarray(gray), sum=out[0], sqsum=out[1],
-                                   sdepth=depth, sqdepth=cv2.CV_64F)
+            target = out[0].view(np.int32) if dtype == np.uint32 else out[0]
+            ii, sq = cv2.integral2(gray, sum=target, sqsum=out[1], sdepth=depth,
+                                   sqdepth=cv2.CV_64F)
         else:
-            ii, sq = cv2.integral2(np.ascontiguousarray(gray), sdepth=depth, sqdepth=cv2.CV_64F)
+            ii, sq = cv2.integral2(gray, sdepth=depth, sqdepth=cv2.CV_64F)
+        if dtype == np.uint32:
+            ii = ii.view(np.uint32)
+            if int(ii[-1, -1]) != int(gray.sum(dtype=np.uint64)):  # pragma: no cover
+                return (integral_image(gray).ravel().astype(np.float64), sq.ravel())
         return ii.ravel(), sq.ravel()
     return (integral_image(gray).ravel().astype(np.float64),
             squared_integral_image(gray).ravel().astype(np.float64))
@@ -523,9 +540,11 @@ class _Workspace(threading.local):
         :func:`channel_frame_integrals`."""
         shape = (gray_shape[0] + 1, gray_shape[1] + 1)
         if self.shape != (planes,) + shape:
-            self.shape = (planes,) + shape
+            self.shape = None
+            self.integrals = None  # the old tables go before the new ones are filled
             table = (planes,) + shape if planes > 1 else shape
             self.integrals = (np.empty(table, integral_dtype(*gray_shape)), np.empty(shape))
+            self.shape = (planes,) + shape
         return self.integrals
 
     def padded(self, gray, pad):
@@ -547,6 +566,50 @@ class _Workspace(threading.local):
             self.outputs = (np.empty(n, np.int64), np.empty(n, np.int64), np.empty(n, np.float64),
                             np.empty(n, np.int64))
         return self.outputs
+
+
+def enlarged_size(shape, up: float) -> tuple[int, int]:
+    """``(width, height)`` of a frame of ``shape`` (rows, columns) enlarged ``up`` times, as
+    ``cv2.resize`` with ``fx = fy = up`` rounds it.
+
+    >>> enlarged_size((240, 320), 20.0)
+    (6400, 4800)
+    """
+    return int(round(shape[1] * up)), int(round(shape[0] * up))
+
+
+def check_enlargement(shape, up: float, min_object=None) -> None:
+    """Refuse, before anything is allocated, to enlarge a frame beyond the readers' size limit.
+
+    An object smaller than the window is looked for by enlarging the frame (``min_object`` below
+    the window's object size); the enlarged frame must stay within the limit
+    :func:`detector.images.read_gray` applies to images (100 megapixels, or
+    ``PATCHWOOD_MAX_MEGAPIXELS``), since the scan's memory grows with its pixels
+    (README, "Memory").
+
+    Raises
+    ------
+    InputError
+        One line: the enlargement, the sizes and the limit.
+
+    Examples
+    --------
+    >>> check_enlargement((240, 320), 2.0)          # 640 x 480: fine
+    >>> check_enlargement((3000, 4000), 20.0, 1.0)
+    Traceback (most recent call last):
+    ...
+    detector.errors.InputError: --min-object 1 enlarges this 4000 x 3000 image 20 times, to 80000 x 60000 pixels, more than the limit of 100,000,000 pixels (PATCHWOOD_MAX_MEGAPIXELS); look for larger objects or cut the image into parts
+    """
+    from detector.images import MAX_MEGAPIXELS_VARIABLE, max_pixels_limit
+
+    limit = max_pixels_limit()
+    width, height = enlarged_size(shape, up)
+    if width * height > limit:
+        what = "" if min_object is None else f"--min-object {min_object:g} "
+        raise InputError(f"{what}enlarges this {shape[1]} x {shape[0]} image {up:g} times, to "
+                         f"{width} x {height} pixels, more than the limit of {limit:,} pixels "
+                         f"({MAX_MEGAPIXELS_VARIABLE}); look for larger objects or cut the image "
+                         "into parts")
 
 
 def split_bounds(thresholds) -> np.ndarray:
@@ -766,6 +829,7 @@ class Engine:
             import cv2
 
             up = 1.0 / lo
+            check_enlargement(gray.shape, up, self.settings.min_object)
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
         grid = self._grid((iw, ih), up)

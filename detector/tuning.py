@@ -22,7 +22,6 @@ engine finds on images the model never saw, not the accuracy of the classifier o
 
 from __future__ import annotations
 
-import csv
 import math
 import os
 import shlex
@@ -32,9 +31,11 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import atomic_write
 from detector.evaluate import evaluate
 from detector.features import count_features
 from detector.harvest import PatchBank, harvest
+from detector.labels import csv_writer
 from detector.images import read_gray
 from detector.scan import Engine, ScanSettings
 
@@ -551,17 +552,14 @@ def _row(record: TrialRecord) -> list:
 def write_trials_csv(path, records, folds: int) -> None:
     """Write one row per trial (see :func:`trials_columns`); AP values with 6 decimals.
 
-    Written to a temporary file and moved into place, so an interrupted run leaves either the
+    Written through :func:`detector.files.atomic_write`, so an interrupted run leaves either the
     previous complete file or the new one.
     """
-    path = os.fspath(path)
-    tmp = f"{path}.part"
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh, lineterminator="\n")
+    with atomic_write(path, "w", newline="") as fh:
+        w = csv_writer(fh)
         w.writerow(trials_columns(folds))
         for r in records:
             w.writerow(_row(r))
-    os.replace(tmp, path)
 
 
 _LOG_PARAMETERS = ("trees", "pool", "features_per_node")
@@ -623,14 +621,8 @@ def plot_trials(path, records, modes=("bagged", "boosted")) -> None:
                       markeredgecolor="black", linestyle="none", label="best trial")]
     fig.legend(handles=handles, loc="upper center", ncol=2, frameon=False)
     fig.subplots_adjust(left=0.07, right=0.98, bottom=0.09, top=0.9, hspace=0.35, wspace=0.08)
-    path = os.fspath(path)
-    tmp = f"{path}.part.png"
-    try:
-        fig.savefig(tmp, format="png", metadata={"Software": None})
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    with atomic_write(path) as fh:
+        fig.savefig(fh, format="png", metadata={"Software": None})
 
 
 def train_command(values: dict, bank_path, model_path, seed: int = 0, mine_rounds: int = 0,

@@ -15,6 +15,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
+from detector.files import write_bytes
 from detector.labels import ImageLabels, write_labels_csv
 from synthetic_images.render import FRAME_LIMITS, render_frame
 
@@ -96,7 +97,7 @@ def _write_split(folder: Path, frames: int, seq: np.random.SeedSequence, size: t
         ok, png = cv2.imencode(".png", frame.image)
         if not ok:  # pragma: no cover - cv2 encodes any uint8 2-D array
             raise InputError("could not encode the frame as PNG", path=images / name)
-        (images / name).write_bytes(png.tobytes())
+        write_bytes(images / name, png.tobytes())
         written.add(name)
         items.append(ImageLabels(image=name, boxes=frame.boxes, classes=["nut"] * len(frame.boxes)))
         nuts += len(frame.boxes)

@@ -465,6 +465,43 @@ def test_detections_round_trip(tmp_path, items, fmt):
         assert np.all(np.diff(g.scores) <= 0)
 
 
+# names a file system allows and a CSV must carry exactly: surrounding spaces, commas, quotes,
+# backslashes, line breaks, and the %XX a name that is not UTF-8 is written with
+_awkward_name = st.text(alphabet=st.sampled_from(list(' a,"\'\\\r\n\t%E9./ü')), min_size=1,
+                        max_size=12).filter(lambda t: t.strip()).map(lambda t: t + ".png")
+
+
+@FUZZ
+@given(names=st.lists(_awkward_name, min_size=1, max_size=5, unique=True), data=st.data())
+def test_detections_csv_names_round_trip_exactly(tmp_path, names, data):
+    """A detections CSV gives back every image name exactly as written (RFC 4180: spaces are part
+    of a field; the writer quotes commas, quotes and line breaks), so that --resume finds the
+    images already done; scoring matches labels by normalise_image_name instead."""
+    boxes = [np.array(data.draw(st.lists(_box, max_size=2))).reshape(-1, 4) for _ in names]
+    items = [ImageDetections(name, b, np.linspace(1.0, 0.5, len(b)))
+             for name, b in zip(names, boxes)]
+    path = tmp_path / "detections.csv"
+    write_detections_csv(path, items)
+    got = read_detections(path)
+    assert [d.image for d in got] == names
+    path.read_bytes().decode("utf-8")  # valid UTF-8
+
+
+def test_scoring_matches_detection_names_the_way_labels_are_read(tmp_path):
+    """Labels normalise names (' ./belt\\a.png ' is 'belt/a.png'); detections keep them exactly,
+    and the score matches them by the same normal form, merging names that agree on it."""
+    from detector.report import read_score_inputs
+
+    labels = _csv(tmp_path, "image,x,y,width,height\nbelt/a.png,0,0,10,10\n")
+    found = _csv(tmp_path, "image,x,y,width,height,score\n"
+                           "./belt\\a.png,0,0,10,10,0.9\n"
+                           " belt/a.png ,20,0,10,10,0.4\n", "detections.csv")
+    assert [d.image for d in read_detections(found)] == ["./belt\\a.png", " belt/a.png "]
+    inputs = read_score_inputs(found, labels)
+    assert list(inputs.detections) == ["belt/a.png"]
+    assert inputs.detections["belt/a.png"][1].tolist() == [0.9, 0.4]
+
+
 @FUZZ
 @given(text=st.text(alphabet=st.sampled_from(list("ab.png/\\,\"'\r\n\t 0123456789-+eEnaifx\x00é")),
                     max_size=120),

@@ -92,7 +92,8 @@ def test_save_npz_replaces_atomically_and_cleans_up(tmp_path, monkeypatch):
         raise OSError("disk full")
 
     monkeypatch.setattr(zipfile.ZipFile, "writestr", broken)
-    with pytest.raises(OSError, match="disk full"):
+    # a write error is one InputError naming the file (detector.files.atomic_write)
+    with pytest.raises(InputError, match="keep.npz: cannot write the file: disk full"):
         npzfile.save_npz(path, {"a": np.arange(5)})
     assert path.read_bytes() == before
     assert sorted(os.listdir(tmp_path)) == ["keep.npz"]  # no temporary file left behind

@@ -23,10 +23,18 @@ model/bank  truncated, empty, not an archive, unknown format version, wrong dtyp
 outputs     an existing --out (or report/audit/inspect/tune/synth folder files) without --force,
             for every command that writes
 options     bad option values exit 2
+hostile     named pipes and /dev/zero among the images, a 1 GiB file, names that are not
+            UTF-8, names that must survive --resume, a --min-object that would enlarge past the
+            limit, outputs onto inputs (scan, train, harvest, score), two runs on one output, the
+            failures side file, a bank declaring a million patches, a model with a 100000 x
+            100000 window, temporary files of killed runs, a full disk, bad --cluster addresses,
+            an unreadable folder, and the one atomic writer (a source check and its behaviour)
 fuzzing     hypothesis: the label reader on arbitrary bytes, CSV-like text and COCO-like JSON;
             the model loader on damaged copies of a real model file, on replaced arrays and on
             hand-edited metadata (it loads, and the model scans a frame and summarises itself,
-            or it gives one InputError naming the file)
+            or it gives one InputError naming the file); every reader (images, labels, COCO,
+            detections, bank, model, from damaged bytes) loads or raises InputError within a
+            memory limit
 
 References: OpenCV (``cv2.imdecode`` with ``IMREAD_GRAYSCALE``, ``cv2.cvtColor``) for how 16-bit
 and RGBA pixels become 8-bit gray; Pillow (scikit-image's imaging dependency:
@@ -42,10 +50,12 @@ import csv
 import io
 import json
 import os
+import re
 import shutil
 import struct
 import subprocess
 import sys
+import time
 import zipfile
 import zlib
 from pathlib import Path
@@ -1023,3 +1033,634 @@ def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
         assert report_lines(model_report(model))
     else:  # refused: only for the values the scan uses
         assert {"margin", "score_temperature"} & set(changes)
+
+
+# ---------------------------------------------------------------------------------------------
+# hostile and faulty inputs: no hang, no unbounded read, no lost file
+
+
+def _run_cli(*args, timeout=180, env=None, prelude=""):
+    """``patchwood ARGS...`` in a real process (``prelude``: Python run first, in that process):
+    (exit status, stdout, stderr). The timeout turns a hang into a failure, not a stuck suite."""
+    code = (prelude + "\nimport sys\nfrom cli.main import run\n"
+            "sys.argv = ['patchwood'] + sys.argv[1:]\nrun()\n")
+    done = subprocess.run([sys.executable, "-c", code, *[os.fspath(a) for a in args]], cwd=REPO,
+                          capture_output=True, timeout=timeout, env=env)
+    return done.returncode, done.stdout.decode("utf-8"), done.stderr.decode("utf-8")
+
+
+def _one_frame(trained) -> bytes:
+    return sorted((trained.test / "images").glob("*.png"))[0].read_bytes()
+
+
+def _failures(out: Path) -> dict:
+    with open(failures_path(out), newline="", encoding="utf-8") as fh:
+        return {row["image"]: row["reason"] for row in csv.DictReader(fh)}
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes are POSIX")
+def test_named_pipes_and_devices_are_listed_never_read(trained, tmp_path):
+    """A named pipe called fifo.png (opening it to read waits for a writer: forever) and a link
+    z.png to /dev/zero (a read never ends) in a scanned folder, and the pipe given by itself:
+    each is a listed failure, the other image is scanned, the run ends. A real process under a
+    timeout, so that a regression fails instead of hanging the suite."""
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    (folder / "good.png").write_bytes(_one_frame(trained))
+    os.mkfifo(folder / "fifo.png")
+    if os.path.exists("/dev/zero"):
+        os.symlink("/dev/zero", folder / "z.png")
+    out = tmp_path / "d.csv"
+    code, stdout, err = _run_cli("scan", trained.model, folder, folder / "fifo.png", "--out", out)
+    assert code == 0 and "Traceback" not in err, (stdout, err)
+    failures = _failures(out)
+    pipe = "cannot read image: not a regular file (a named pipe)"
+    assert failures["fifo.png"] == pipe and failures[str(folder / "fifo.png")] == pipe
+    if os.path.exists("/dev/zero"):
+        assert failures["z.png"] == "cannot read image: not a regular file (a character device)"
+    assert f"  fifo.png: {pipe}" in stdout
+    assert [d.image for d in read_detections(out)] == ["good.png"]
+    # the labels reader refuses a pipe too, in one line
+    os.mkfifo(tmp_path / "labels.csv")
+    code, _, err = _run_cli("harvest", folder, tmp_path / "labels.csv", "--out",
+                            tmp_path / "bank.npz")
+    assert code == 1
+    one_line_error(err, f"{tmp_path / 'labels.csv'}: cannot read the file: not a regular file "
+                        "(a named pipe)")
+
+
+def test_reads_are_bounded_by_the_size_limit(trained, tmp_path, monkeypatch, capsys):
+    """A 1 GiB (sparse) file named big.png is refused from its size, nothing of it read; the
+    limit is 8 bytes a pixel of PATCHWOOD_MAX_MEGAPIXELS (1 megapixel here) plus 64 MiB:
+    8 * 10**6 + 67,108,864 = 75,108,864 bytes. tracemalloc traces every buffer Python and numpy
+    allocate: the run's peak stays far below what reading the file would take."""
+    import tracemalloc
+
+    from detector.files import FileTooLargeError, read_bytes
+
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    (folder / "good.png").write_bytes(_one_frame(trained))
+    with open(folder / "big.png", "wb") as fh:
+        fh.truncate(2**30)
+    monkeypatch.setenv("PATCHWOOD_MAX_MEGAPIXELS", "1")
+    out = tmp_path / "d.csv"
+    tracemalloc.start()
+    try:
+        code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder,
+                                      "--out", out)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert code == 0 and err.count("\n") <= 1, (stdout, err)
+    assert _failures(out)["big.png"].startswith(
+        "cannot read image: the file is larger than the limit of 75,108,864 bytes")
+    assert peak < 2**28, peak  # 256 MiB, against the 1 GiB file
+    # a file whose size says nothing (a /proc file reports 0 bytes) is still read only up to the
+    # limit + 1 byte and refused
+    if os.path.exists("/proc/self/status"):
+        with pytest.raises(FileTooLargeError, match="larger than the limit of 16 bytes"):
+            read_bytes("/proc/self/status", max_bytes=16)
+        assert read_bytes("/proc/self/status", max_bytes=1 << 20).startswith(b"Name:")
+
+
+def test_file_names_that_are_not_utf8_are_written_escaped(trained, tmp_path, monkeypatch,
+                                                          capsys):
+    """Names with bytes that are not UTF-8 (Latin-1 'é' as 0xE9, a folder with 0xFF) are scanned
+    and written with %XX for those bytes: the detections and failures files stay UTF-8, the other
+    images' results are kept, --resume and --draw work with the same names."""
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    frame = _one_frame(trained)
+    (folder / "plain.png").write_bytes(frame)
+    try:
+        with open(os.fsencode(folder) + b"/caf\xe9 1.png", "wb") as fh:
+            fh.write(frame)
+        os.mkdir(os.fsencode(folder) + b"/sub\xff")
+        with open(os.fsencode(folder) + b"/sub\xff/x.png", "wb") as fh:
+            fh.write(b"not a picture")
+    except (OSError, UnicodeError):
+        pytest.skip("this file system refuses names that are not UTF-8")
+    out, drawn = tmp_path / "d.csv", tmp_path / "drawn"
+    code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder, "--out",
+                                  out, "--threshold", "0.1", "--draw", drawn)
+    assert code == 0 and err.count("\n") <= 1, (stdout, err)
+    out.read_bytes().decode("utf-8")  # strict: valid UTF-8
+    found = {d.image: d for d in read_detections(out)}
+    assert sorted(found) == ["caf%E9 1.png", "plain.png"]
+    np.testing.assert_array_equal(found["caf%E9 1.png"].scores, found["plain.png"].scores)
+    assert len(found["plain.png"].scores) > 0
+    assert _failures(out) == {"sub%FF/x.png": "cannot read image: not a PNG, JPEG, BMP or TIFF "
+                                              "file (unrecognised content)"}
+    assert "  sub%FF/x.png: cannot read image" in stdout
+    assert (drawn / "caf%E9 1.png").is_file()
+    # resume: drop the last image's rows and continue: the same file again
+    whole = out.read_bytes()
+    lines = whole.decode("utf-8").splitlines(keepends=True)
+    out.write_text("".join(line for line in lines if not line.startswith("plain.png")))
+    code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder, "--out",
+                                  out, "--threshold", "0.1", "--resume")
+    assert code == 0 and "(+1 kept from the earlier run)" in stdout, (stdout, err)
+    assert out.read_bytes() == whole
+
+
+def test_names_round_trip_through_resume(trained, tmp_path, monkeypatch, capsys):
+    """File names with a leading or trailing space, a comma, quotes, a backslash, a line break:
+    an interrupted run continued with --resume writes exactly the file a clean run writes, with
+    each image under its own name once."""
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    frames = sorted((trained.test / "images").glob("*.png"))
+    names = [" lead.png", "trail .png", "a,b.png", 'say "q".png', "back\\slash.png",
+             "two\nlines.png", "plain.png"]
+    for k, name in enumerate(names):
+        (folder / name).write_bytes(frames[k % len(frames)].read_bytes())
+    clean, resumed = tmp_path / "clean.csv", tmp_path / "resumed.csv"
+    args = ["scan", trained.model, folder, "--threshold", "0.1"]
+    assert patchwood(monkeypatch, capsys, *args, "--out", clean)[0] == 0
+    listed = [d.image for d in read_detections(clean)]
+    assert sorted(listed) == sorted(names)  # every name exactly, once
+    # the first three images done, the run interrupted: continue it
+    from detector.labels import write_detections_csv
+    write_detections_csv(resumed, read_detections(clean)[:3])
+    code, stdout, err = patchwood(monkeypatch, capsys, *args, "--out", resumed, "--resume")
+    assert code == 0 and "(+3 kept from the earlier run)" in stdout, (stdout, err)
+    assert resumed.read_bytes() == clean.read_bytes()
+
+
+def test_a_small_min_object_cannot_enlarge_past_the_size_limit(trained, tmp_path, monkeypatch,
+                                                               capsys):
+    """--min-object 1 with the model's 24 x 24 window (margin 0.1: objects of 24 / 1.2 = 20
+    pixels) enlarges a frame 20 times: a 4000 x 3000 image would become 80000 x 60000 pixels
+    (4.8 gigapixels); it is a listed failure, refused before anything is allocated, and so is
+    a 320 x 240 frame (6400 x 4800 = 30.72 megapixels) under a limit of 10 megapixels."""
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    (folder / "big.png").write_bytes(encode(".png", np.full((3000, 4000), 90, np.uint8)))
+    out = tmp_path / "d.csv"
+    code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder, "--out",
+                                  out, "--min-object", "1")
+    assert code == 1 and "Traceback" not in err, (stdout, err)  # no image could be scanned
+    reason = ("--min-object 1 enlarges this 4000 x 3000 image 20 times, to 80000 x 60000 pixels, "
+              "more than the limit of 100,000,000 pixels (PATCHWOOD_MAX_MEGAPIXELS); look for "
+              "larger objects or cut the image into parts")
+    assert _failures(out) == {"big.png": reason}
+    assert f"  big.png: {reason}" in stdout
+    monkeypatch.setenv("PATCHWOOD_MAX_MEGAPIXELS", "10")
+    small = tmp_path / "small.png"
+    small.write_bytes(_one_frame(trained))
+    code, stdout, _ = patchwood(monkeypatch, capsys, "scan", trained.model, small, "--out",
+                                tmp_path / "s.csv", "--min-object", "1")
+    assert code == 1 and "to 6400 x 4800 pixels, more than the limit of 10,000,000" in stdout
+
+
+def test_an_output_is_never_one_of_the_inputs(trained, tmp_path, monkeypatch, capsys):
+    """--force replaces an earlier output, never an input: scan onto an image it scans (or onto
+    the model, through a link), train onto its bank, harvest onto its labels or an image; the
+    input is untouched."""
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    image = folder / "a.png"
+    image.write_bytes(_one_frame(trained))
+    bank, labels = tmp_path / "bank.npz", tmp_path / "labels.csv"
+    shutil.copy(trained.bank, bank)
+    shutil.copy(trained.train / "labels.csv", labels)
+    link = tmp_path / "model-link.csv"
+    os.symlink(trained.model, link)
+    labelled = trained.train / "images" / sorted(it.image for it in trained.labels)[0]
+    cases = [
+        (["scan", trained.model, folder, "--out", image, "--force"], image,
+         "the output is one of the images to scan (a.png)"),
+        (["scan", trained.model, folder, "--out", link, "--force"], trained.model,
+         "the output is the model file"),
+        (["train", bank, "--out", bank, "--force", "--trees", "2"], bank,
+         "the model is an input of this command"),
+        (["train", bank, "--out", tmp_path / "m.npz", "--save-bank", bank, "--force"], bank,
+         "the patch bank is an input of this command"),
+        (["harvest", trained.train / "images", labels, "--out", labels, "--force"], labels,
+         "the patch bank is an input of this command"),
+    ]
+    copy = tmp_path / "labelled copy"
+    shutil.copytree(trained.train / "images", copy)
+    cases.append((["harvest", copy, labels, "--out", copy / labelled.name, "--force"],
+                  copy / labelled.name, "the patch bank is an input of this command"))
+    for args, kept, message in cases:
+        before = kept.read_bytes()
+        line = fails(monkeypatch, capsys, 1, *args)
+        assert message in line, line
+        assert kept.read_bytes() == before
+
+
+def test_two_runs_never_write_one_output(trained, tmp_path, monkeypatch, capsys):
+    """While one run holds the output (a real second process here, holding the lock a scan
+    takes), a scan to the same file refuses at once, in one line naming the first run, and
+    writes nothing; when the first run ends, the output is free again."""
+    out = tmp_path / "d.csv"
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys, time\nfrom detector.files import output_lock\n"
+         "with output_lock(sys.argv[1], 'patchwood scan (the first run)'):\n"
+         "    print('locked', flush=True)\n    time.sleep(300)\n", str(out)],
+        cwd=REPO, stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        line = fails(monkeypatch, capsys, 1, "scan", trained.model, trained.test / "images",
+                     "--out", out, "--force")
+        assert line.startswith(f"error: {out}: another run is writing this output (process "
+                               f"{holder.pid} since "), line
+        assert "patchwood scan (the first run)" in line
+        assert not out.exists() and not failures_path(out).exists()
+    finally:
+        holder.kill()
+        holder.wait()
+        holder.stdout.close()
+    code, _, _ = patchwood(monkeypatch, capsys, "scan", trained.model, trained.test / "images",
+                           "--out", out)
+    assert code == 0 and out.exists()
+    assert not any(p.name.endswith(".lock") for p in tmp_path.iterdir())  # removed at the end
+
+
+def test_the_failures_side_file_follows_the_outputs_rule(trained, tmp_path, monkeypatch, capsys):
+    """An existing DETECTIONS.failures.csv is not replaced without --force (or --resume), even when
+    the detections file itself is gone."""
+    out = tmp_path / "d.csv"
+    side = failures_path(out)
+    side.write_text("image,reason\nlast week.png,kept for the record\n")
+    line = fails(monkeypatch, capsys, 1, "scan", trained.model, trained.test / "images", "--out",
+                 out)
+    assert line == (f"error: {side}: the failures side file of this output exists; add --force "
+                    "to replace it or --resume to continue the run")
+    assert side.read_text() == "image,reason\nlast week.png,kept for the record\n"
+    assert not out.exists()
+    code, _, _ = patchwood(monkeypatch, capsys, "scan", trained.model, trained.test / "images",
+                           "--out", out, "--force")
+    assert code == 0 and not side.exists()  # replaced: this run had no failures
+
+
+def _zip(members) -> bytes:
+    """A zip archive (PKWARE APPNOTE 6.3, deflate) from ``(name, raw deflate data, crc, size)``,
+    built by hand so that a member can be compressed in repeated pieces."""
+    local, central = bytearray(), bytearray()
+    for name, data, crc, size in members:
+        name = name.encode()
+        offset = len(local)
+        head = struct.pack("<IHHHHHIIIHH", 0x04034B50, 20, 0, 8, 0, 0x21, crc, len(data), size,
+                           len(name), 0)
+        local += head + name + data
+        central += struct.pack("<IHHHHHHIIIHHHHHII", 0x02014B50, 20, 20, 0, 8, 0, 0x21, crc,
+                               len(data), size, len(name), 0, 0, 0, 0, 0, offset) + name
+    end = struct.pack("<IHHHHIIH", 0x06054B50, 0, 0, len(members), len(members), len(central),
+                      len(local), 0)
+    return bytes(local + central + end)
+
+
+def _deflated(parts) -> tuple[bytes, int, int]:
+    """Raw deflate of the concatenated ``parts`` ((bytes, repeat) pairs), its CRC-32 and size.
+    After a full flush the compressor starts afresh, so the same input gives the same bytes:
+    one megabyte of zeros is compressed once and its output repeated."""
+    out, crc, size = bytearray(), 0, 0
+    for data, repeat in parts:
+        c = zlib.compressobj(9, zlib.DEFLATED, -15)
+        piece = c.compress(data) + c.flush(zlib.Z_FULL_FLUSH)
+        for _ in range(repeat):
+            out += piece
+            crc = zlib.crc32(data, crc)
+            size += len(data)
+    out += zlib.compressobj(9, zlib.DEFLATED, -15).flush(zlib.Z_FINISH)
+    return bytes(out), crc, size
+
+
+def test_a_bank_declaring_a_million_patches_is_refused_from_its_headers(trained, tmp_path,
+                                                                       monkeypatch, capsys):
+    """A bank whose 'patches' entry declares (1000000, 24, 24) (576 MB of zeros, 0.56 MB
+    compressed, a valid archive) beside the real labels: refused from the arrays' headers, in
+    one line, before any array data is read (tracemalloc's peak stays far below 576 MB)."""
+    import tracemalloc
+
+    arrays = npzfile.read_npz(trained.bank, kind="patch bank")
+    header = io.BytesIO()
+    np.lib.format.write_array_header_1_0(header, {"descr": "|u1", "fortran_order": False,
+                                                  "shape": (1000000, 24, 24)})
+    members = [("patches.npy", *_deflated([(header.getvalue(), 1), (bytes(2**20), 549),
+                                           (bytes(576000000 - 549 * 2**20), 1)]))]
+    for name, value in sorted(arrays.items()):
+        if name != "patches":
+            buf = io.BytesIO()
+            np.lib.format.write_array(buf, value, allow_pickle=False)
+            members.append((name + ".npy", *_deflated([(buf.getvalue(), 1)])))
+    bank = tmp_path / "crafted bank.npz"
+    bank.write_bytes(_zip(members))
+    assert bank.stat().st_size < 2**20
+    with zipfile.ZipFile(bank) as zf:  # a valid archive: the reference reader finds no damage
+        assert zf.getinfo("patches.npy").file_size == len(header.getvalue()) + 576000000
+    tracemalloc.start()
+    try:
+        line = fails(monkeypatch, capsys, 1, "train", bank, "--out", tmp_path / "m.npz")
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    n = len(arrays["labels"])
+    assert line == (f"error: {bank}: patch bank array 'labels' has size {n} along axis 0, but "
+                    "array 'patches' says 1000000")
+    assert peak < 2**27, peak  # 128 MiB
+    assert not (tmp_path / "m.npz").exists()
+
+
+def test_a_model_with_a_window_harvest_would_refuse_is_refused(trained, tmp_path, monkeypatch,
+                                                               capsys):
+    """A model claiming a 100000 x 100000 window (its rectangles inside it): refused on loading,
+    by every command, instead of inspect allocating the window's picture (74.5 GiB)."""
+    path = _replaced(trained.model, tmp_path / "huge window.npz",
+                     window=lambda w: np.array([100000, 100000], np.int32))
+    for args in (["inspect", path, "--out", tmp_path / "pictures"],
+                 ["scan", path, trained.test / "images", "--out", tmp_path / "d.csv"]):
+        line = fails(monkeypatch, capsys, 1, *args)
+        assert line == (f"error: {path}: model window 100000x100000 is outside the sides a "
+                        "window may have (4..512 pixels, as harvest allows)")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["huge window.npz"]
+
+
+def test_a_killed_runs_temporary_files_are_removed_by_the_next(trained, tmp_path, monkeypatch,
+                                                               capsys):
+    """Temporary files a killed harvest left beside its bank (a process that no longer exists;
+    an earlier version's scheme, untouched for two hours) go when a later harvest writes that
+    bank; a live writer's (a process that exists) and other files' stay."""
+    gone = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True).stdout.strip()
+    alive = os.getppid()
+    bank = tmp_path / "bank.npz"
+    stale = [f".bank.npz.{gone}-0123abcd.part", ".bank.npz.k3j_9x2q.part"]
+    kept = [f".bank.npz.{alive}-89abcdef.part", f".other.npz.{gone}-0123abcd.part", "notes.part"]
+    for name in stale + kept:
+        (tmp_path / name).write_bytes(b"half a bank")
+    two_hours_ago = time.time() - 7200
+    os.utime(tmp_path / ".bank.npz.k3j_9x2q.part", (two_hours_ago, two_hours_ago))
+    code, _, err = patchwood(monkeypatch, capsys, "harvest", trained.train / "images",
+                             trained.train / "labels.csv", "--out", bank, "--copies", "0",
+                             "--negatives-per-image", "2")
+    assert code == 0, err
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(kept + ["bank.npz"])
+
+
+def test_a_full_disk_is_one_line_naming_the_file(trained, tmp_path, monkeypatch, capsys):
+    """A write that fails for want of space ends scan, harvest and score with one line naming the
+    file they were writing, and leaves no temporary file. Harvest in a real process under a
+    file-size limit (RLIMIT_FSIZE: the write fails as on a full disk, with EFBIG instead of
+    ENOSPC); scan and score with the sync of their writes failing with ENOSPC itself."""
+    bank = tmp_path / "bank.npz"
+    limit = ("import resource, signal\nsignal.signal(signal.SIGXFSZ, signal.SIG_IGN)\n"
+             "resource.setrlimit(resource.RLIMIT_FSIZE, (2000, 2000))\n")
+    code, _, err = _run_cli("harvest", trained.train / "images", trained.train / "labels.csv",
+                            "--out", bank, prelude=limit)
+    assert code == 1, err
+    # the closing line of the progress bar ("harvesting: 12/12 images in 0.7 s (...)") comes first
+    err = "".join(line for line in err.splitlines(keepends=True)
+                  if not re.match(r"[a-z ]+: [0-9]+(/[0-9]+)? [a-z]+ in [0-9.]+ s ", line))
+    assert one_line_error(err) == f"error: {bank}: cannot write the file: File too large"
+    assert list(tmp_path.iterdir()) == []
+
+    def full(fd):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(os, "fsync", full)
+    out = tmp_path / "full.csv"
+    line = fails(monkeypatch, capsys, 1, "scan", trained.model, trained.test / "images", "--out",
+                 out)
+    assert line == f"error: {out}: cannot write the file: No space left on device"
+    found = _detections(trained, tmp_path)
+    line = fails(monkeypatch, capsys, 1, "score", found, trained.test / "labels.csv", "--report",
+                 tmp_path / "report")
+    assert re.fullmatch(f"error: {re.escape(str(tmp_path / 'report'))}/[^/]+: cannot write the "
+                        "file: No space left on device", line), line
+    assert [p.name for p in tmp_path.rglob("*") if p.is_file()] == ["detections.csv"]
+
+
+@pytest.mark.parametrize("address", ["not a url", "http://10.0.0.5:8786", "tcp://host:99999"])
+def test_a_bad_cluster_address_is_one_line_at_once(trained, tmp_path, monkeypatch, capsys,
+                                                   address):
+    line = fails(monkeypatch, capsys, 1, "scan", trained.model, trained.test / "images",
+                 "--out", tmp_path / "d.csv", "--cluster", address)
+    assert line == (f"error: --cluster {address!r} is not a scheduler address; give "
+                    "PROTOCOL://HOST:PORT, e.g. tcp://10.0.0.5:8786")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_folder_that_cannot_be_read_is_a_listed_failure(trained, tmp_path, monkeypatch,
+                                                          capsys):
+    """A subfolder without read permission is listed among the failures like a file (for root,
+    whom permissions do not stop, the listing is made to fail the way it fails for others)."""
+    folder = tmp_path / "frames"
+    locked = folder / "locked"
+    locked.mkdir(parents=True)
+    (folder / "a.png").write_bytes(_one_frame(trained))
+    (locked / "b.png").write_bytes(_one_frame(trained))
+    locked.chmod(0)
+    try:
+        if os.access(locked, os.R_OK):  # root
+            real = os.scandir
+
+            def scandir(path="."):
+                if os.path.realpath(path) == os.path.realpath(locked):
+                    raise PermissionError(13, "Permission denied", os.fspath(path))
+                return real(path)
+
+            monkeypatch.setattr(os, "scandir", scandir)
+        out = tmp_path / "d.csv"
+        code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder,
+                                      "--out", out)
+    finally:
+        locked.chmod(0o755)
+    assert code == 0 and err.count("\n") <= 1, (stdout, err)
+    assert _failures(out) == {"locked/": "cannot read the folder: permission denied"}
+    assert "  locked/: cannot read the folder: permission denied" in stdout
+    assert [d.image for d in read_detections(out)] == ["a.png"]
+
+
+def test_every_file_is_written_through_the_one_atomic_writer():
+    """No module writes a file by itself: opening for writing, renaming into place, temporary
+    files and encoders that write to a path live only in detector/files.py (the writer every
+    other module calls; it syncs, renames and cleans up)."""
+    patterns = [r"os\.replace\(", r"os\.rename\(", r"\.rename\(", r"mkstemp", r"NamedTemporaryFile",
+                r"\.tofile\(", r"cv2\.imwrite\(", r"\.write_text\(", r"\.write_bytes\(",
+                r"open\([^)]*[\"'][wax]b?\+?[\"']", r"savefig\((?!fh)", r"np\.savez?",
+                r"\.to_csv\("]
+    offenders = []
+    for folder in ("detector", "cli", "synthetic_images"):
+        for path in sorted((REPO / folder).glob("*.py")):
+            if path.name == "files.py":
+                continue
+            for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+                code = line.split("#")[0]
+                if code.lstrip().startswith(">>>") or code.lstrip().startswith("..."):
+                    continue  # docstring examples make their own inputs
+                if any(re.search(p, code) for p in patterns):
+                    offenders.append(f"{path.relative_to(REPO)}:{n}: {line.strip()}")
+    assert offenders == []
+
+
+def test_the_atomic_writer_leaves_the_old_file_or_the_new(tmp_path):
+    """A failure half-way (the report's PNG writer here: matplotlib raising mid-save) leaves the
+    destination as it was and no temporary file; success replaces it in one step, with the
+    permissions the umask gives a new file."""
+    from detector.files import atomic_write, write_text
+    from detector.report import _figure, _save
+
+    path = tmp_path / "plot.png"
+    path.write_bytes(b"last week's plot")
+    fig = _figure()
+    fig.add_subplot().plot([0, 1], [0, 1])
+
+    class Broken(Exception):
+        pass
+
+    with pytest.raises(Broken):
+        with atomic_write(path) as fh:
+            fig.savefig(fh, format="png")
+            raise Broken
+    assert path.read_bytes() == b"last week's plot"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["plot.png"]
+    _save(fig, path)
+    assert path.read_bytes().startswith(b"\x89PNG\r\n\x1a\n")
+    umask = os.umask(0)
+    os.umask(umask)
+    write_text(tmp_path / "new.txt", "x\n")
+    assert (tmp_path / "new.txt").stat().st_mode & 0o777 == 0o666 & ~umask
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["new.txt", "plot.png"]
+
+
+# ---------------------------------------------------------------------------------------------
+# every reader, fuzzed: it loads, or it raises the one input error, within a memory limit
+
+#: The most memory one fuzzed input may make a reader allocate (traced by tracemalloc: every
+#: buffer Python and numpy allocate, the arrays OpenCV returns included). The images are read
+#: under a limit of 2 megapixels, so that a header claiming a large picture within the limit
+#: stays below it too.
+FUZZ_MEMORY = 64 * 2**20
+FUZZ_PIXELS = 2_000_000
+
+
+@pytest.fixture(scope="module")
+def reader_seeds(model_members):
+    """A valid input of every reader, small, for the fuzzer to damage."""
+    from detector.harvest import PatchBank
+
+    rng = np.random.default_rng(3)
+    picture = rng.integers(0, 256, (20, 28), dtype=np.uint8)
+    bank = PatchBank(window=(12, 12), patches=rng.integers(0, 256, (3, 12, 12), dtype=np.uint8),
+                     labels=np.array([1, 0, 0], np.uint8), kinds=np.array([0, 2, 2], np.uint8),
+                     image_index=np.zeros(3, np.int32), images=["a.png"],
+                     boxes=np.ones((3, 4), np.float32),
+                     augmentation=np.tile(np.array([0, 0, 1, 0, 0, 1, 0], np.float32), (3, 1)),
+                     metadata={"margin": 0.1})
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w") as zf:  # save_bank's layout, without touching the disk
+        from detector.harvest import BANK_FORMAT_VERSION
+        arrays = {"format_version": np.array(BANK_FORMAT_VERSION, np.int64),
+                  "kind": np.array("patch-bank"), "window": np.array(bank.window, np.int32),
+                  "patches": bank.patches, "labels": bank.labels, "kinds": bank.kinds,
+                  "image_index": bank.image_index, "images": np.array(bank.images),
+                  "boxes": bank.boxes, "augmentation": bank.augmentation,
+                  "metadata": np.array(json.dumps(bank.metadata))}
+        for name, value in arrays.items():
+            member = io.BytesIO()
+            np.lib.format.write_array(member, value, allow_pickle=False)
+            zf.writestr(name + ".npy", member.getvalue(), compress_type=zipfile.ZIP_DEFLATED)
+    return {
+        "png": encode(".png", picture), "jpeg": encode(".jpg", picture),
+        "bmp": encode(".bmp", picture), "tiff": encode(".tif", picture.astype(np.uint16)),
+        "labels csv": b"image,x,y,width,height,label\na.png,1,2,3,4,nut\nb.png,,,,,\n",
+        "labels json": json.dumps({"images": [{"id": 1, "file_name": "a.png", "width": 28,
+                                               "height": 20}],
+                                   "annotations": [{"id": 1, "image_id": 1,
+                                                    "bbox": [1, 2, 3, 4], "category_id": 1}],
+                                   "categories": [{"id": 1, "name": "nut"}]}).encode(),
+        "detections csv": b"image,x,y,width,height,score\na.png,1,2,3,4,0.5\nb.png,,,,,\n",
+        "bank": buf.getvalue(),
+        "model": model_members[0],
+    }
+
+
+def _read(kind: str, data: bytes, folder: Path):
+    """Read ``data`` with the reader of ``kind``: images and npz files from bytes, text files
+    from a file holding them (the readers of text take paths)."""
+    from detector.harvest import load_bank
+    from detector.images import decode_gray
+
+    if kind in ("png", "jpeg", "bmp", "tiff"):
+        return decode_gray(data, f"fuzz.{kind}", max_pixels=FUZZ_PIXELS)
+    if kind == "bank":
+        return load_bank("fuzz bank.npz", data=data)
+    if kind == "model":
+        return load_model("fuzz model.npz", data=data)
+    path = folder / ("fuzz.json" if kind == "labels json" else "fuzz.csv")
+    path.write_bytes(data)
+    if kind == "detections csv":
+        return read_detections(path)
+    return read_labels(path)
+
+
+@st.composite
+def damaged_bytes(draw, seed: bytes):
+    """``seed`` damaged the ways files get damaged or forged: bytes flipped, the end cut off,
+    bytes inserted, a 16- or 32-bit field (a size, a count, an offset) set to an extreme value,
+    or nothing of the seed at all."""
+    raw = bytearray(seed)
+    how = draw(st.sampled_from(["flip", "cut", "insert", "field", "random"]))
+    if how == "random":
+        return draw(st.binary(max_size=600))
+    if how == "flip":
+        for _ in range(draw(st.integers(1, 8))):
+            raw[draw(st.integers(0, len(raw) - 1))] = draw(st.integers(0, 255))
+    elif how == "cut":
+        raw = raw[: draw(st.integers(0, len(raw) - 1))]
+    elif how == "insert":
+        at = draw(st.integers(0, len(raw)))
+        raw[at:at] = draw(st.binary(min_size=1, max_size=64))
+    else:
+        width = draw(st.sampled_from([2, 4]))
+        at = draw(st.integers(0, max(0, len(raw) - width)))
+        value = draw(st.sampled_from([0, 1, 2**(8 * width) - 1, 2**(8 * width - 1),
+                                      2**(8 * width - 2) + 7]))
+        raw[at:at + width] = value.to_bytes(width, draw(st.sampled_from(["little", "big"])))
+    return bytes(raw)
+
+
+@settings(max_examples=120, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(data=st.data())
+def test_fuzz_every_reader_loads_or_raises_input_error_within_memory(tmp_path, reader_seeds,
+                                                                     data):
+    """Images from bytes (PNG, JPEG, BMP, TIFF), labels CSV, COCO JSON, a detections CSV, a
+    patch bank and a model (from bytes): whatever the damage, the reader returns, or raises
+    detector.errors.InputError with one line, never anything else, and never allocates more
+    than FUZZ_MEMORY on the way."""
+    import tracemalloc
+
+    kind = data.draw(st.sampled_from(sorted(reader_seeds)))
+    raw = data.draw(damaged_bytes(reader_seeds[kind]))
+    tracemalloc.start()
+    try:
+        try:
+            _read(kind, raw, tmp_path)
+        except InputError as err:
+            assert "\n" not in str(err) and str(err).strip(), str(err)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < FUZZ_MEMORY, (kind, peak)
+
+
+def test_a_report_never_replaces_its_inputs(trained, tmp_path, monkeypatch, capsys):
+    """score --force replaces an earlier report's files, never its own input: labels named
+    summary.json in the report folder stay as they are."""
+    report = tmp_path / "report"
+    report.mkdir()
+    labels = report / "summary.json"
+    shutil.copy(trained.test / "labels.csv", labels)
+    before = labels.read_bytes()
+    line = fails(monkeypatch, capsys, 1, "score", _detections(trained, tmp_path), labels,
+                 "--report", report, "--force")
+    assert line == (f"error: {labels}: the report would replace its own input ({labels}); "
+                    "choose another report folder")
+    assert labels.read_bytes() == before and sorted(p.name for p in report.iterdir()) == [
+        "summary.json"]

@@ -560,15 +560,18 @@ def test_frame_integrals_equal_the_project_integrals(h, w, seed):
 
 
 def test_integral_image_switches_to_float64_where_int32_would_overflow(monkeypatch):
-    """An all-white frame one pixel above the int32 limit gets float64 sums; at the limit, int32.
-    (The limit is lowered here so that the frames stay small; the arithmetic is the same:
-    255 * pixels against 2**31 - 1.)"""
+    """An all-white frame one pixel above the int32 limit gets uint32 sums, one above the uint32
+    limit float64 sums; at the limits, int32 and uint32. (The limits are lowered here so that the
+    frames stay small; the arithmetic is the same: 255 * pixels against 2**31 - 1, 2**32 - 1.)"""
     from detector import scan
     from detector.integral import integral_image
 
     assert scan.INT32_PIXELS * 255 <= 2**31 - 1 < (scan.INT32_PIXELS + 1) * 255
+    assert scan.UINT32_PIXELS * 255 <= 2**32 - 1 < (scan.UINT32_PIXELS + 1) * 255
     monkeypatch.setattr(scan, "INT32_PIXELS", 12 * 10)
-    for h, w, dtype in [(12, 10, np.int32), (11, 11, np.float64)]:
+    monkeypatch.setattr(scan, "UINT32_PIXELS", 12 * 12)
+    for h, w, dtype in [(12, 10, np.int32), (11, 11, np.uint32), (12, 12, np.uint32),
+                        (13, 12, np.float64)]:
         gray = np.full((h, w), 255, np.uint8)
         ii, _ = scan.frame_integrals(gray)
         assert ii.dtype == dtype
@@ -597,19 +600,41 @@ def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
         np.testing.assert_array_equal(got.scores, want.scores)
 
 
-def test_scan_gives_the_same_with_float64_sums(bagged, monkeypatch):
-    """Frames above the int32 limit are scanned on float64 sums: the same windows and scores."""
+@pytest.mark.parametrize("limits, dtype", [((100, 100), np.float64), ((100, 10**9), np.uint32)])
+def test_scan_gives_the_same_with_float64_and_uint32_sums(bagged, monkeypatch, limits, dtype):
+    """Frames above the int32 limit are scanned on uint32 sums, above the uint32 limit on float64
+    sums: the same windows and scores, by the compiled kernel and by its numpy twin."""
     from detector import scan
 
     gray = frame(seed=6)
     want = every_window(bagged, threshold=0.2).candidates(gray)
-    monkeypatch.setattr(scan, "INT32_PIXELS", 100)
+    monkeypatch.setattr(scan, "INT32_PIXELS", limits[0])
+    monkeypatch.setattr(scan, "UINT32_PIXELS", limits[1])
     engine = every_window(bagged, threshold=0.2)
-    assert engine._work.tables(gray.shape)[0].dtype == np.float64
-    got = engine.candidates(gray)
-    np.testing.assert_array_equal(got[0], want[0])
-    np.testing.assert_array_equal(got[1], want[1])
-    assert got[2:] == want[2:]
+    assert engine._work.tables(gray.shape)[0].dtype == dtype
+    for use_numpy in (False, True):
+        got = engine.candidates(gray, use_numpy=use_numpy)
+        np.testing.assert_array_equal(got[0], want[0])
+        np.testing.assert_allclose(got[1], want[1], rtol=0, atol=1e-9 if use_numpy else 0)
+        assert got[2:] == want[2:]
+
+
+def test_uint32_integral_images_hold_sums_past_two_to_the_31():
+    """A frame whose pixel sum passes 2**31 (a white 2,920 x 2,960 frame with a noisy band of 20
+    rows: about 255 * 8.64 million - 20 * 2,960 * 127.5 = 2.196e9) but stays below 2**32 gets a
+    uint32 integral image, equal to numpy's exact int64 cumulative sums (the check that
+    OpenCV's int32 additions wrap around), in a reused buffer and in a fresh one."""
+    from detector.scan import INT32_PIXELS, UINT32_PIXELS, frame_integrals
+
+    gray = np.full((2920, 2960), 255, np.uint8)
+    gray[1000:1020] = np.random.default_rng(5).integers(0, 256, (20, 2960), dtype=np.uint8)
+    assert INT32_PIXELS < gray.size <= UINT32_PIXELS and 2**31 < int(gray.sum()) < 2**32
+    exact = np.zeros((2921, 2961), np.int64)
+    exact[1:, 1:] = gray.astype(np.int64).cumsum(0).cumsum(1)
+    for out in ((np.full((2921, 2961), 7, np.uint32), np.zeros((2921, 2961))), None):
+        ii, sq = frame_integrals(gray, out)
+        assert ii.dtype == np.uint32
+        np.testing.assert_array_equal(ii.reshape(2921, 2961), exact)
 
 
 # ------------------------------------------------------------------ non-integer scales, slowly
