@@ -2,6 +2,8 @@
 
     .venv/bin/python benchmarks/train.py                # 5,000 object + 25,000 background 24x24
     .venv/bin/python benchmarks/train.py --objects 1000 --background 5000 --jobs 1
+    .venv/bin/python benchmarks/train.py --objects 3000 --background 17000 --pool 10000 \
+        --mode boosted --trees 300 --compare-growers 2   # the two growers, taking turns
 
 Renders a synthetic bank of the demo scenario's kind (hex-nut-like object patches; belt texture,
 edges, washers, square nuts and cut-off nuts as background), trains ``PatchClassifier`` with
@@ -57,6 +59,7 @@ from sklearn.tree import DecisionTreeClassifier  # noqa: E402
 
 from detector import features  # noqa: E402
 from detector.classifier import PatchClassifier  # noqa: E402
+from detector.forest import bin_columns, grow_forest, quantile_cuts  # noqa: E402
 
 
 def _grid(size):
@@ -169,6 +172,35 @@ def order_check(patches, labels, pool_size, trees, seed=0):
     return float(np.median(times["fortran"])), float(np.median(times["c"]))
 
 
+def grower_turns(patches, labels, args):
+    """Seconds growing the same forest on the same bins with each grower, the two taking turns.
+
+    The pool values are computed and binned once (256 quantile bins, as ``fit`` does); then
+    ``--compare-growers`` turns each grow the whole forest with the histogram grower and with
+    scikit-learn's tree learners. Returns ``{grower: [seconds per turn]}``.
+    """
+    h, w = patches.shape[1:]
+    pool = features.random_pool(w, h, min(args.pool, features.count_features(w, h)), random_state=args.seed)
+    values = features.evaluate_features(pool, patches, transpose=True)
+    cuts, n_cuts = quantile_cuts(values.T, 256, random_state=args.seed)
+    bin_columns(values.T, cuts, n_cuts, n_jobs=args.jobs)
+    inputs = {"histogram": values.astype(np.uint8).T, "sklearn": values.T}
+    # compile the kernels outside the timed region
+    grow_forest(inputs["histogram"][:50], labels[:50], n_trees=1, grower="histogram", random_state=0)
+    seconds = {"histogram": [], "sklearn": []}
+    for turn in range(args.compare_growers):
+        for grower in ("histogram", "sklearn"):
+            start = time.perf_counter()
+            grow_forest(inputs[grower], labels, mode=args.mode, n_trees=args.trees, depth=args.depth,
+                        random_state=args.seed, n_jobs=args.jobs, grower=grower)
+            seconds[grower].append(time.perf_counter() - start)
+        print(f"turn {turn + 1}: growing {args.trees} {args.mode} trees: histogram "
+              f"{seconds['histogram'][-1]:.1f} s, sklearn {seconds['sklearn'][-1]:.1f} s, sklearn / "
+              f"histogram = {seconds['sklearn'][-1] / seconds['histogram'][-1]:.1f}x "
+              f"(load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)", flush=True)
+    return seconds
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--objects", type=int, default=5000)
@@ -180,6 +212,11 @@ def main(argv=None):
     ap.add_argument("--mode", default="bagged", choices=("bagged", "boosted"))
     ap.add_argument("--jobs", type=int, default=2, help="threads growing bagged trees")
     ap.add_argument("--max-bins", type=int, default=256, help="0 grows on the feature values themselves")
+    ap.add_argument("--grower", choices=("histogram", "sklearn"), default="histogram",
+                    help="how fit grows the trees on the bins (default %(default)s)")
+    ap.add_argument("--compare-growers", type=int, default=0, metavar="TURNS",
+                    help="instead of fit: grow the forest on the same bins with each grower, "
+                         "taking turns TURNS times")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--order-check-patches", type=int, default=6000,
                     help="patches for the Fortran/C comparison (0 skips it)")
@@ -195,9 +232,17 @@ def main(argv=None):
           f"{args.size}x{args.size}, rendered in {time.perf_counter() - start:.1f} s")
     # compile the numba kernels outside the timed region
     features.evaluate_features(features.random_pool(args.size, args.size, 8, random_state=0), patches[:4])
+    if args.compare_growers:
+        seconds = grower_turns(patches, labels, args)
+        ratios = np.array(seconds["sklearn"]) / np.array(seconds["histogram"])
+        print(f"growing, median of {args.compare_growers} turns: histogram "
+              f"{np.median(seconds['histogram']):.1f} s, sklearn {np.median(seconds['sklearn']):.1f} s; "
+              f"sklearn / histogram per turn {', '.join(f'{r:.1f}x' for r in ratios)}")
+        return
 
     clf = PatchClassifier(n_trees=args.trees, depth=args.depth, mode=args.mode, pool=args.pool,
-                          max_bins=args.max_bins or None, random_state=args.seed, n_jobs=args.jobs)
+                          max_bins=args.max_bins or None, grower=args.grower, random_state=args.seed,
+                          n_jobs=args.jobs)
     rss_before = peak_rss_gb()
     if not args.no_tracemalloc:
         tracemalloc.start()
@@ -213,6 +258,7 @@ def main(argv=None):
     tm = clf.timings_
     print(f"fit: {fit_seconds:.1f} s total (goal <= 60 s): evaluate pool {tm['evaluate_seconds']:.1f} s, "
           f"grow {tm['grow_seconds']:.1f} s ({args.trees} trees, {args.jobs} thread(s), "
+          f"{args.grower if args.max_bins else 'sklearn on values'}, "
           f"{tm['grow_seconds'] / args.trees * 1e3:.0f} ms per tree), calibrate {tm['calibrate_seconds']:.2f} s; "
           f"CPU {fit_cpu:.1f} s (load average at the end {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
     print(f"memory: peak RSS {rss_peak:.2f} GB (goal <= 3 GB; {rss_before:.2f} GB before fit), "
