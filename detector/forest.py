@@ -1317,21 +1317,34 @@ def grow_forest(
         return (*flatten_tree(est, depth), est)
 
     def store(t, grown):
-        f, thr, lv, m, extra = grown
+        """Keep tree t; return the leaf of every sample it was grown on (-1 for the others), when
+        the grower knows them."""
+        f, thr, lv, m, extra = grown[:5]
         node_features[t], node_thresholds[t], leaf_values[t], split_mask[t] = f, thr, lv, m
         if grower == "histogram":
             for feature, gain in extra:
                 importances[feature] += gain / n
-            return
+            return grown[5]
         root_weight = extra.tree_.weighted_n_node_samples[0]
         importances[:] += extra.tree_.compute_feature_importances(normalize=False) * root_weight / n
         if estimators is not None:
             estimators.append(extra)
 
-    def one_tree_leaves(t):
-        single = FlatForest(mode, node_features[t : t + 1], node_thresholds[t : t + 1],
-                            leaf_values[t : t + 1], split_mask[t : t + 1])
-        return forest_leaves(single, X)[:, 0]
+    def tree_leaves(t, rows):
+        """Leaf of tree t reached by each of ``rows`` (as :func:`forest_leaves`, for one tree)."""
+        node = np.zeros(rows.size, np.intp)
+        for _ in range(depth):
+            node = 2 * node + 1 + (X[rows, node_features[t][node]] > node_thresholds[t][node])
+        return node - n_nodes
+
+    def leaf_values_of(t, known):
+        """Tree t's leaf value for every sample; ``known`` holds the leaves the grower saw."""
+        leaves = np.full(n, -1, np.intp) if known is None else known
+        missing = np.flatnonzero(leaves < 0)
+        if missing.size:
+            leaves = leaves.copy()
+            leaves[missing] = tree_leaves(t, missing)
+        return leaf_values[t][leaves]
 
     oob_error = None
     if mode == "bagged":
@@ -1353,9 +1366,9 @@ def grow_forest(
             results = pool.map(fit_one, range(n_trees)) if pool else map(fit_one, range(n_trees))
             for t, (grown, counts) in enumerate(results):
                 store(t, grown)
-                out = counts == 0
-                if out.any():
-                    oob_sum[out] += leaf_values[t][one_tree_leaves(t)[out]]
+                out = np.flatnonzero(counts == 0)
+                if out.size:
+                    oob_sum[out] += leaf_values[t][tree_leaves(t, out)]
                     oob_count[out] += 1
                 if in_bag is not None:
                     in_bag[t] = counts
@@ -1381,10 +1394,10 @@ def grow_forest(
                 stage_weight[chosen] = weights[chosen]
             else:
                 stage_weight = weights
-            store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree))
+            known = store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree))
             if in_bag is not None:
                 in_bag[t] = stage_weight > 0
-            f_t = leaf_values[t][one_tree_leaves(t)].astype(np.float64)
+            f_t = leaf_values_of(t, known).astype(np.float64)
             weights = weights * np.exp(-signed * f_t)
             weights /= weights.mean()
             # keep every weight above a floor: after hundreds of stages the easy patches' weights

@@ -82,11 +82,14 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
     split_mask : bool (2**depth - 1,)
     gains : list of (feature, weighted impurity decrease)
         One entry per split, in heap order.
+    leaf_of : intp (N,)
+        The leaf each sample of positive weight ends in (below a leaf above the last level: the
+        first of its equal leaves); -1 for samples of weight 0.
 
     Examples
     --------
     >>> bins = np.array([[0, 0, 3, 3], [1, 2, 1, 2]], np.uint8)
-    >>> f, thr, leaves, mask, gains = grow_histogram_tree(
+    >>> f, thr, leaves, mask, gains, leaf_of = grow_histogram_tree(
     ...     bins, np.ones(4), np.array([0., 0., 1., 1.]), criterion=1, depth=1,
     ...     features_per_node=2, rng=np.random.default_rng(0))
     >>> f.tolist(), thr.tolist(), leaves.tolist(), gains   # 1 bit of information on 4 samples
@@ -100,6 +103,7 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
     leaves = np.zeros(n_nodes + 1, np.float32)
     mask = np.zeros(n_nodes, bool)
     gains = []
+    leaf_of = np.full(weight.shape[0], -1, np.intp)
     hist_w = np.empty(_k.N_BINS, np.float64)
     hist_s = np.empty(_k.N_BINS, np.float64)
     root = np.flatnonzero(weight > 0).astype(np.int64)
@@ -114,6 +118,7 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
         for i, samples, (w, s, q) in level:
             if i >= n_nodes:  # a leaf of the last level
                 leaves[i - n_nodes] = s / w
+                leaf_of[samples] = i - n_nodes
                 continue
             impurity = _impurity(criterion, w, s, q)
             found = None
@@ -143,6 +148,7 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
                 span = 1 << (depth - ((i + 1).bit_length() - 1))
                 first = (i + 1) * span - (n_nodes + 1)
                 leaves[first : first + span] = s / w
+                leaf_of[samples] = first
                 continue
             features[i] = f
             thresholds[i] = left_bin / 2.0 + right_bin / 2.0
@@ -151,5 +157,5 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
             below.append((2 * i + 1, left, left_sums))
             below.append((2 * i + 2, right, right_sums))
         level = below
-    return features, thresholds, leaves, mask, gains
+    return features, thresholds, leaves, mask, gains, leaf_of
 

@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from detector import _tree_kernels as K
-from detector.forest import bin_columns, forest_leaves, grow_forest, quantile_cuts, thresholds_from_bins
+from detector.forest import FlatForest, bin_columns, forest_leaves, grow_forest, quantile_cuts, thresholds_from_bins
 from detector.histogram_trees import COMPILED, NUMPY, grow_histogram_tree
 
 
@@ -193,9 +193,16 @@ def test_compiled_grower_equals_its_numpy_twin(seed, n, f, n_bins, depth, criter
     kw = dict(criterion=criterion, depth=depth, features_per_node=min(fpn, f))
     a = grow_histogram_tree(bins, weight, target, rng=np.random.default_rng(seed), kernels=COMPILED, **kw)
     b = grow_histogram_tree(bins, weight, target, rng=np.random.default_rng(seed), kernels=NUMPY, **kw)
-    for x, z in zip(a[:4], b[:4]):
+    for x, z in zip(a[:4] + a[5:], b[:4] + b[5:]):
         np.testing.assert_array_equal(x, z)
     assert a[4] == b[4]
+    # the leaves the grower reports are the ones the flat tree sends its samples to (by value:
+    # below a leaf above the last level all leaves are equal)
+    weighted = weight > 0
+    flat = FlatForest("bagged", a[0][None], a[1][None], a[2][None], a[3][None])
+    reached = forest_leaves(flat, bins.T)[:, 0]
+    np.testing.assert_array_equal(a[2][a[5][weighted]], a[2][reached[weighted]])
+    assert (a[5][~weighted] == -1).all()
     # with every feature a candidate, the root's split is the best one there is
     if a[3][0] and fpn >= f:
         gain = a[4][0][1]
@@ -228,7 +235,7 @@ def test_a_worked_entropy_split():
     (bins 1 2 1 2). Root entropy 1 bit; the split leaves two pure halves: gain 4 x 1 = 4 (weighted
     by the 4 samples), threshold (0 + 3) / 2 = 1.5, leaves 0 and 1."""
     bins = np.array([[0, 0, 3, 3], [1, 2, 1, 2]], np.uint8)
-    f, thr, leaves, mask, gains = grow_histogram_tree(
+    f, thr, leaves, mask, gains, _ = grow_histogram_tree(
         bins, np.ones(4), np.array([0.0, 0, 1, 1]), criterion=K.ENTROPY, depth=2,
         features_per_node=2, rng=np.random.default_rng(0))
     assert f.tolist() == [0, 0, 0] and thr.tolist() == [1.5, 0, 0] and mask.tolist() == [True, False, False]
