@@ -32,22 +32,21 @@ _LN2 = math.log(2.0)
 
 
 @numba.njit(cache=True, nogil=True)
+def _entropy_bits(w, s):
+    """Entropy in bits of a side holding weight ``w``, of which ``s`` is class 1."""
+    h = 0.0
+    c = s / w
+    if c > 0.0:
+        h -= c * (math.log(c) / _LN2)
+    c = (w - s) / w
+    if c > 0.0:
+        h -= c * (math.log(c) / _LN2)
+    return h
+
+
+@numba.njit(cache=True, nogil=True)
 def _entropy_proxy(w_l, s_l, w_r, s_r):
-    h_l = 0.0
-    c = s_l / w_l
-    if c > 0.0:
-        h_l -= c * (math.log(c) / _LN2)
-    c = (w_l - s_l) / w_l
-    if c > 0.0:
-        h_l -= c * (math.log(c) / _LN2)
-    h_r = 0.0
-    c = s_r / w_r
-    if c > 0.0:
-        h_r -= c * (math.log(c) / _LN2)
-    c = (w_r - s_r) / w_r
-    if c > 0.0:
-        h_r -= c * (math.log(c) / _LN2)
-    return -w_r * h_r - w_l * h_l
+    return -w_r * _entropy_bits(w_r, s_r) - w_l * _entropy_bits(w_l, s_l)
 
 
 @numba.njit(cache=True, nogil=True)

@@ -1,6 +1,8 @@
 """Forests of shallow trees over a feature pool, flattened into arrays the scanning engine reads.
 
-Two ways of growing them, both on scikit-learn's exact tree learners (``splitter="best"``):
+Two ways of growing them, with scikit-learn's exact tree learners (``splitter="best"``) or, on
+binned features, the compiled histogram grower that grows the same trees
+(:mod:`detector.histogram_trees`; ``grow_forest(grower="histogram")``):
 
 ``mode="bagged"``
     The random forest ("Random Forests", Machine Learning 45, 2001): every tree is grown on a
@@ -35,7 +37,9 @@ Binned growing (optional)
     :func:`bin_columns`; the approach of histogram-based tree learners such as LightGBM, Ke et al.,
     NIPS 2017, and scikit-learn's HistGradientBoosting) leaves at most 256 distinct values per
     column, and :func:`thresholds_from_bins` turns the trees' bin-index thresholds back into feature
-    values: the exported tree sends a feature value left exactly when its bin goes left.
+    values: the exported tree sends a feature value left exactly when its bin goes left. On bins,
+    the histogram grower (``grower="histogram"``) replaces the sort by one pass that adds every
+    sample into its bin, and a scan over the 256 bins, per node and candidate feature.
 
 Early exit (soft cascade; Bourdev and Brandt, CVPR 2005)
     The running score after tree ``t`` is ``s_t = s_{t-1} + leaf_values[t, leaf]`` (``s_0 = 0``;
