@@ -1265,7 +1265,8 @@ def grow_forest(
     n_jobs : int, optional
         Threads growing bagged trees at once (scikit-learn's tree builder and the histogram
         grower's compiled loops release the GIL);
-        None means 1, -1 all cores. Boosting is sequential.
+        None means 1, -1 all cores. Boosting is sequential; there the histogram grower's threads
+        share each node's candidate features instead.
     keep_estimators : bool, default=False
         Keep the scikit-learn trees (``grower="sklearn"``) and the per-tree sample counts (for
         tests and inspection).
@@ -1309,12 +1310,13 @@ def grow_forest(
     estimators = [] if keep_estimators else None
     in_bag = np.zeros((n_trees, n), np.int32) if keep_estimators else None
 
-    def grow_one(tree_ss, weight, target, criterion, learner):
+    def grow_one(tree_ss, weight, target, criterion, learner, executor=None):
         """One tree on the chosen route: (features, thresholds, leaves, split mask, importance
         gains or the scikit-learn tree)."""
         if grower == "histogram":
             return grow_histogram_tree(bins, weight, target, criterion=criterion, depth=depth,
-                                       features_per_node=fpn, rng=np.random.default_rng(tree_ss))
+                                       features_per_node=fpn, rng=np.random.default_rng(tree_ss),
+                                       executor=executor, parts=_n_jobs(n_jobs))
         est = learner(splitter="best", max_depth=depth, max_features=fpn,
                       random_state=int(tree_ss.generate_state(1)[0]))
         est.fit(X, target if criterion == SQUARED_ERROR else y, sample_weight=weight, check_input=False)
@@ -1390,6 +1392,8 @@ def grow_forest(
         squared_tree = partial(DecisionTreeRegressor, criterion="squared_error")
         weights = np.ones(n, np.float64)
         n_sub = max(1, int(round(fraction * n)))
+        # boosting is sequential: the histogram grower's threads share each node's candidates
+        node_pool = ThreadPoolExecutor(_n_jobs(n_jobs)) if grower == "histogram" and _n_jobs(n_jobs) > 1 else None
         for t in range(n_trees):
             sub_ss, tree_ss = children[t].spawn(2)
             if n_sub < n:
@@ -1398,7 +1402,7 @@ def grow_forest(
                 stage_weight[chosen] = weights[chosen]
             else:
                 stage_weight = weights
-            known = store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree))
+            known = store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree, node_pool))
             if in_bag is not None:
                 in_bag[t] = stage_weight > 0
             f_t = leaf_values_of(t, known).astype(np.float64)
@@ -1410,6 +1414,8 @@ def grow_forest(
             np.maximum(weights, BOOST_WEIGHT_FLOOR, out=weights)
             if progress is not None:
                 progress(t + 1, n_trees)
+        if node_pool is not None:
+            node_pool.shutdown()
 
     return FlatForest(
         mode=mode,

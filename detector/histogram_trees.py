@@ -52,8 +52,24 @@ def _impurity(criterion, w, s, q):
     return float(h)
 
 
+def _split_in_parts(split, executor, parts, bins, samples, weight, target, candidates, criterion, w, s,
+                    scratch):
+    """:func:`best_split` over every candidate, the candidates cut into ``parts`` consecutive runs
+    examined at once on ``executor``'s threads. Their results combine in candidate order, a later
+    run's best winning only when strictly better, which is what one run over all of them does."""
+    runs = np.array_split(candidates, parts)
+    results = list(executor.map(
+        lambda k: split(bins, samples, weight, target, runs[k], runs[k].size, criterion, w, s, *scratch[k]),
+        range(parts)))
+    best = results[0]
+    for r in results[1:]:
+        if r[0] > best[0]:
+            best = r
+    return (best[0], best[1], best[2], best[3], sum(r[4] for r in results), sum(r[5] for r in results))
+
+
 def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_node, rng,
-                        kernels=COMPILED):
+                        kernels=COMPILED, executor=None, parts=1):
     """Grow one complete tree of depth ``depth`` on binned features.
 
     Parameters
@@ -72,6 +88,10 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
         Draws the candidate features of every node.
     kernels : tuple
         :data:`COMPILED` or :data:`NUMPY` (the twin, for tests).
+    executor : concurrent.futures.Executor, optional
+        With ``parts > 1``: threads that examine ``parts`` runs of a node's candidates at once
+        (the compiled loops release the GIL); the tree does not depend on it.
+    parts : int, default=1
 
     Returns
     -------
@@ -104,11 +124,10 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
     mask = np.zeros(n_nodes, bool)
     gains = []
     leaf_of = np.full(weight.shape[0], -1, np.intp)
-    hist_w = np.empty(_k.N_BINS, np.float64)
-    hist_s = np.empty(_k.N_BINS, np.float64)
     root = np.flatnonzero(weight > 0).astype(np.int64)
-    node_w = np.empty(root.size, np.float64)
-    node_s = np.empty(root.size, np.float64)
+    parts = max(1, min(int(parts), features_per_node)) if executor is not None else 1
+    scratch = [(np.empty(_k.N_BINS), np.empty(_k.N_BINS), np.empty(root.size), np.empty(root.size))
+               for _ in range(parts)]
     everything = np.arange(n_features, dtype=np.int64)
     # level by level in heap order; a node's samples (None below a leaf), and its sums
     level = [(0, root, sums(root, weight, target))]
@@ -124,13 +143,16 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
             found = None
             if samples.size >= 2 and impurity > EPSILON:
                 candidates = rng.choice(n_features, features_per_node, replace=False).astype(np.int64)
-                found = split(bins, samples, weight, target, candidates, features_per_node, criterion,
-                              w, s, hist_w, hist_s, node_w, node_s)
+                if parts > 1:
+                    found = _split_in_parts(split, executor, parts, bins, samples, weight, target,
+                                            candidates, criterion, w, s, scratch)
+                else:
+                    found = split(bins, samples, weight, target, candidates, features_per_node,
+                                  criterion, w, s, *scratch[0])
                 if found[5] == 0 and features_per_node < n_features:
                     # every drawn feature is constant here: draw on until one is not
                     rest = rng.permutation(np.setdiff1d(everything, candidates, assume_unique=True))
-                    found = split(bins, samples, weight, target, rest, 1, criterion, w, s,
-                                  hist_w, hist_s, node_w, node_s)
+                    found = split(bins, samples, weight, target, rest, 1, criterion, w, s, *scratch[0])
                 if found[1] < 0:
                     found = None
             if found is not None:

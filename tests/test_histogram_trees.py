@@ -7,6 +7,8 @@ candidate at every node (``features_per_node`` = all), no random draw is involve
 routes must grow the same trees: same features, same thresholds, same leaf values (float32).
 """
 
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -138,6 +140,9 @@ def test_same_seed_same_forest_whatever_the_threads():
     np.testing.assert_array_equal(a.importances, b.importances)
     assert a.oob_error == b.oob_error
     assert not np.array_equal(a.node_features, c.node_features)
+    # boosting: the threads share each node's candidates, in runs combined in candidate order
+    kw = dict(mode="boosted", n_trees=8, depth=2, grower="histogram", random_state=3)
+    _assert_same_forest(grow_forest(Xb, y, n_jobs=1, **kw), grow_forest(Xb, y, n_jobs=3, **kw))
 
 
 def test_bad_input_for_the_histogram_grower():
@@ -193,9 +198,13 @@ def test_compiled_grower_equals_its_numpy_twin(seed, n, f, n_bins, depth, criter
     kw = dict(criterion=criterion, depth=depth, features_per_node=min(fpn, f))
     a = grow_histogram_tree(bins, weight, target, rng=np.random.default_rng(seed), kernels=COMPILED, **kw)
     b = grow_histogram_tree(bins, weight, target, rng=np.random.default_rng(seed), kernels=NUMPY, **kw)
-    for x, z in zip(a[:4] + a[5:], b[:4] + b[5:]):
-        np.testing.assert_array_equal(x, z)
-    assert a[4] == b[4]
+    with ThreadPoolExecutor(2) as pool:  # candidates in runs on threads: the same tree
+        c = grow_histogram_tree(bins, weight, target, rng=np.random.default_rng(seed), executor=pool,
+                                parts=3, **kw)
+    for other in (b, c):
+        for x, z in zip(a[:4] + a[5:], other[:4] + other[5:]):
+            np.testing.assert_array_equal(x, z)
+        assert a[4] == other[4]
     # the leaves the grower reports are the ones the flat tree sends its samples to (by value:
     # below a leaf above the last level all leaves are equal)
     weighted = weight > 0
