@@ -54,6 +54,9 @@ MAX_ORDERING_BACKGROUND = 5000
 EXIT_ORDER_ROUNDS = 2
 #: The tree order is made for a scan at this score threshold (``ScanSettings``' default).
 ORDER_LEVEL = 0.5
+#: Pool features evaluated and binned at a time for the histogram grower (their float32 values
+#: take ``4 * VALUE_BLOCK * N`` bytes; the bins of the whole pool ``P * N``).
+VALUE_BLOCK = 1024
 
 
 def calibration_count(n_objects: int) -> int:
@@ -323,16 +326,16 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         grow_patches = patches[grow]
         grow_y = y[grow]
 
-        # (P, N) C-ordered, so X = values.T is Fortran-ordered: contiguous pool columns
-        values = _features.evaluate_features(pool, grow_patches, normalize=bool(self.normalize),
-                                             transpose=True)
-        grower = "sklearn"
-        if self.max_bins is not None:
-            cuts, n_cuts = quantile_cuts(values.T, int(self.max_bins), random_state=bin_ss)
-            bin_columns(values.T, cuts, n_cuts, n_jobs=self.n_jobs)
-            grower = self.grower
-            if grower == "histogram":  # bin indices as bytes: a quarter of the memory
-                values = values.astype(np.uint8)
+        grower = "sklearn" if self.max_bins is None else self.grower
+        if grower == "histogram":
+            values, cuts = self._binned_values(pool, grow_patches, bin_ss)
+        else:
+            # (P, N) C-ordered, so X = values.T is Fortran-ordered: contiguous pool columns
+            values = _features.evaluate_features(pool, grow_patches, normalize=bool(self.normalize),
+                                                 transpose=True)
+            if self.max_bins is not None:
+                cuts, n_cuts = quantile_cuts(values.T, int(self.max_bins), random_state=bin_ss)
+                bin_columns(values.T, cuts, n_cuts, n_jobs=self.n_jobs)
         evaluated = time.perf_counter()
         forest = grow_forest(
             values.T, grow_y, mode=self.mode, n_trees=int(self.n_trees), depth=int(self.depth),
@@ -447,6 +450,25 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         total = imp.sum()
         self.feature_importances_ = imp / total if total > 0 else np.full(len(imp), 1.0 / len(imp))
         return self
+
+    def _binned_values(self, pool, patches, bin_ss):
+        """Bin indices of the pool's values, uint8 (P, N), and the cuts (P, W), computed
+        ``VALUE_BLOCK`` features at a time: the float32 values of the whole pool never exist at
+        once. The same bins as binning the whole matrix: every feature's values and cuts are its
+        own, and the cuts' sample rows depend only on N and the seed."""
+        n_pool, n = len(pool), len(patches)
+        bins = np.empty((n_pool, n), np.uint8)
+        cuts = None
+        for a in range(0, n_pool, VALUE_BLOCK):
+            b = min(n_pool, a + VALUE_BLOCK)
+            block = _features.evaluate_features(pool[a:b], patches, normalize=bool(self.normalize),
+                                                transpose=True)
+            block_cuts, n_cuts = quantile_cuts(block.T, int(self.max_bins), random_state=bin_ss)
+            bin_columns(block.T, block_cuts, n_cuts, n_jobs=self.n_jobs)
+            if cuts is None:
+                cuts = np.empty((n_pool, block_cuts.shape[1]), np.float32)
+            bins[a:b], cuts[a:b] = block, block_cuts
+        return bins, cuts
 
     def _raw(self, patches) -> np.ndarray:
         check_is_fitted(self, "model_")

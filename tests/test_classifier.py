@@ -124,6 +124,20 @@ def test_both_growers_classify_well(mode):
     assert sk.model_.metadata["parameters"]["grower"] == "sklearn"
 
 
+def test_pool_values_binned_in_blocks_equal_the_whole_pool_binned(monkeypatch):
+    """The histogram route evaluates and bins the pool a block of features at a time; the model
+    must not depend on the block size (each feature's values and cuts are its own)."""
+    import detector.classifier as classifier
+
+    patches, y = _patches(seed=6)
+    kw = dict(n_trees=8, pool=300, mode="boosted", random_state=2)
+    whole = PatchClassifier(**kw).fit(patches, y)
+    monkeypatch.setattr(classifier, "VALUE_BLOCK", 7)
+    blocks = PatchClassifier(**kw).fit(patches, y)
+    for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
+        np.testing.assert_array_equal(getattr(blocks.model_, name), getattr(whole.model_, name))
+
+
 @pytest.mark.parametrize(
     "params, message",
     [
