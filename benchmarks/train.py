@@ -2,6 +2,8 @@
 
     .venv/bin/python benchmarks/train.py                # 5,000 object + 25,000 background 24x24
     .venv/bin/python benchmarks/train.py --objects 1000 --background 5000 --jobs 1
+    .venv/bin/python benchmarks/train.py --objects 3000 --background 17000 --pool 10000 \
+        --mode boosted --trees 300 --compare-growers 2   # the two growers, taking turns
 
 Renders a synthetic bank of the demo scenario's kind (hex-nut-like object patches; belt texture,
 edges, washers, square nuts and cut-off nuts as background), trains ``PatchClassifier`` with
@@ -17,22 +19,31 @@ default settings (200 trees of depth 2, a pool of 20,000 features), and prints:
 
 Goals (2-core machine): fit at most 60 s and at most 3 GB peak.
 
-Measured here (2 cores shared with other work, load average about 1.8; numpy 2.4, scikit-learn 1.9):
+Measured here (2 cores shared with other work, load average about 1.8; numpy 2.4, scikit-learn 1.9;
+the histogram column: this version, load average 0.6-1.8, ``--order-check-patches 0``):
 
-=====================================  ==========  ==========
-``benchmarks/train.py`` (defaults)     binned      exact
-                                       (256 bins)  (``--max-bins 0``)
-=====================================  ==========  ==========
-fit, wall seconds                      55.6        126.8
-  pool values (+ binning)              12.8        5.9
-  growing 200 trees, 2 threads         42.2        120.2
-peak RSS, GB                           2.85        2.77
-tracemalloc peak during fit, GB        2.56        2.47
-OOB error                              0.0257      0.0256
-ROC AUC, fresh 1000 + 5000 patches     0.9945      0.9945
-=====================================  ==========  ==========
+=====================================  ==========  ==========  ==========
+``benchmarks/train.py`` (defaults)     histogram   binned,     exact
+                                       grower      sklearn     (``--max-bins 0``)
+                                       (default)   (256 bins)
+=====================================  ==========  ==========  ==========
+fit, wall seconds                      31.2        55.6        126.8
+  pool values (+ binning)              21.5        12.8        5.9
+  growing 200 trees, 2 threads         5.2         42.2        120.2
+peak RSS, GB                           1.43        2.85        2.77
+tracemalloc peak during fit, GB        1.20        2.56        2.47
+OOB error                              0.0254      0.0257      0.0256
+ROC AUC, fresh 1000 + 5000 patches     0.9947      0.9945      0.9945
+=====================================  ==========  ==========  ==========
 
-The pool matrix (29,500 x 20,000 float32) is 2.36 GB, so fit holds about 1.1 times it at its peak.
+The pool matrix (29,500 x 20,000 float32) is 2.36 GB, so the scikit-learn routes hold about 1.1 times
+it at their peak; the histogram route bins it 2,048 features at a time into bytes (0.59 GB).
+The pool values took 12.8 s in the older run and 21.5 s in this one; binning the whole matrix at
+once measured the same as the blocks here (5.8-5.9 s for 6,144 features), so the difference is
+the machine's drift or an older version, not the blocks.
+Growers taking turns (``--objects 3000 --background 17000 --pool 10000 --mode boosted --trees 300
+--compare-growers 2``, load average 1.3-1.9): histogram 3.9 and 2.4 s, sklearn 86.9 and 84.9 s
+(22.4x, 35.0x).
 Column order, 6,000 patches: Fortran 204 ms per tree, C 237 ms (C / Fortran = 1.16).
 """
 
@@ -57,6 +68,7 @@ from sklearn.tree import DecisionTreeClassifier  # noqa: E402
 
 from detector import features  # noqa: E402
 from detector.classifier import PatchClassifier  # noqa: E402
+from detector.forest import bin_columns, grow_forest, quantile_cuts  # noqa: E402
 
 
 def _grid(size):
@@ -169,6 +181,35 @@ def order_check(patches, labels, pool_size, trees, seed=0):
     return float(np.median(times["fortran"])), float(np.median(times["c"]))
 
 
+def grower_turns(patches, labels, args):
+    """Seconds growing the same forest on the same bins with each grower, the two taking turns.
+
+    The pool values are computed and binned once (256 quantile bins, as ``fit`` does); then
+    ``--compare-growers`` turns each grow the whole forest with the histogram grower and with
+    scikit-learn's tree learners. Returns ``{grower: [seconds per turn]}``.
+    """
+    h, w = patches.shape[1:]
+    pool = features.random_pool(w, h, min(args.pool, features.count_features(w, h)), random_state=args.seed)
+    values = features.evaluate_features(pool, patches, transpose=True)
+    cuts, n_cuts = quantile_cuts(values.T, 256, random_state=args.seed)
+    bin_columns(values.T, cuts, n_cuts, n_jobs=args.jobs)
+    inputs = {"histogram": values.astype(np.uint8).T, "sklearn": values.T}
+    # compile the kernels outside the timed region
+    grow_forest(inputs["histogram"][:50], labels[:50], n_trees=1, grower="histogram", random_state=0)
+    seconds = {"histogram": [], "sklearn": []}
+    for turn in range(args.compare_growers):
+        for grower in ("histogram", "sklearn"):
+            start = time.perf_counter()
+            grow_forest(inputs[grower], labels, mode=args.mode, n_trees=args.trees, depth=args.depth,
+                        random_state=args.seed, n_jobs=args.jobs, grower=grower)
+            seconds[grower].append(time.perf_counter() - start)
+        print(f"turn {turn + 1}: growing {args.trees} {args.mode} trees: histogram "
+              f"{seconds['histogram'][-1]:.1f} s, sklearn {seconds['sklearn'][-1]:.1f} s, sklearn / "
+              f"histogram = {seconds['sklearn'][-1] / seconds['histogram'][-1]:.1f}x "
+              f"(load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)", flush=True)
+    return seconds
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--objects", type=int, default=5000)
@@ -180,6 +221,11 @@ def main(argv=None):
     ap.add_argument("--mode", default="bagged", choices=("bagged", "boosted"))
     ap.add_argument("--jobs", type=int, default=2, help="threads growing bagged trees")
     ap.add_argument("--max-bins", type=int, default=256, help="0 grows on the feature values themselves")
+    ap.add_argument("--grower", choices=("histogram", "sklearn"), default="histogram",
+                    help="how fit grows the trees on the bins (default %(default)s)")
+    ap.add_argument("--compare-growers", type=int, default=0, metavar="TURNS",
+                    help="instead of fit: grow the forest on the same bins with each grower, "
+                         "taking turns TURNS times")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--order-check-patches", type=int, default=6000,
                     help="patches for the Fortran/C comparison (0 skips it)")
@@ -195,9 +241,17 @@ def main(argv=None):
           f"{args.size}x{args.size}, rendered in {time.perf_counter() - start:.1f} s")
     # compile the numba kernels outside the timed region
     features.evaluate_features(features.random_pool(args.size, args.size, 8, random_state=0), patches[:4])
+    if args.compare_growers:
+        seconds = grower_turns(patches, labels, args)
+        ratios = np.array(seconds["sklearn"]) / np.array(seconds["histogram"])
+        print(f"growing, median of {args.compare_growers} turns: histogram "
+              f"{np.median(seconds['histogram']):.1f} s, sklearn {np.median(seconds['sklearn']):.1f} s; "
+              f"sklearn / histogram per turn {', '.join(f'{r:.1f}x' for r in ratios)}")
+        return
 
     clf = PatchClassifier(n_trees=args.trees, depth=args.depth, mode=args.mode, pool=args.pool,
-                          max_bins=args.max_bins or None, random_state=args.seed, n_jobs=args.jobs)
+                          max_bins=args.max_bins or None, grower=args.grower, random_state=args.seed,
+                          n_jobs=args.jobs)
     rss_before = peak_rss_gb()
     if not args.no_tracemalloc:
         tracemalloc.start()
@@ -213,6 +267,7 @@ def main(argv=None):
     tm = clf.timings_
     print(f"fit: {fit_seconds:.1f} s total (goal <= 60 s): evaluate pool {tm['evaluate_seconds']:.1f} s, "
           f"grow {tm['grow_seconds']:.1f} s ({args.trees} trees, {args.jobs} thread(s), "
+          f"{args.grower if args.max_bins else 'sklearn on values'}, "
           f"{tm['grow_seconds'] / args.trees * 1e3:.0f} ms per tree), calibrate {tm['calibrate_seconds']:.2f} s; "
           f"CPU {fit_cpu:.1f} s (load average at the end {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
     print(f"memory: peak RSS {rss_peak:.2f} GB (goal <= 3 GB; {rss_before:.2f} GB before fit), "

@@ -397,7 +397,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         raise InputError("folder for the output does not exist", path=out.parent)
     with output_lock(out):
         return _scan_locked(model, model_path, paths, out, settings, jobs, cluster, resume, force,
-                            draw_dir, fmt, batch_images, batch_seconds, progress, on_image, limit)
+                            draw_dir, fmt, batch_images, batch_seconds, progress, on_image, limit,
+                            labels, label, threshold_from)
 
 
 def check_cluster_address(address: str) -> str:
@@ -442,7 +443,7 @@ def _check_not_an_input(out: Path, model_path, listed) -> None:
 
 def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, resume, force,
                  draw_dir, fmt, batch_images, batch_seconds, progress, on_image,
-                 limit) -> RunSummary:
+                 limit, labels, label, threshold_from) -> RunSummary:
     """:func:`scan_paths` once it holds the output's lock."""
     if out.exists() and not (force or resume):
         raise InputError("output exists; add --force to replace it or --resume to continue it",

@@ -1,6 +1,8 @@
 """Forests of shallow trees over a feature pool, flattened into arrays the scanning engine reads.
 
-Two ways of growing them, both on scikit-learn's exact tree learners (``splitter="best"``):
+Two ways of growing them, with scikit-learn's exact tree learners (``splitter="best"``) or, on
+binned features, the compiled histogram grower that grows the same trees
+(:mod:`detector.histogram_trees`; ``grow_forest(grower="histogram")``):
 
 ``mode="bagged"``
     The random forest ("Random Forests", Machine Learning 45, 2001): every tree is grown on a
@@ -35,7 +37,9 @@ Binned growing (optional)
     :func:`bin_columns`; the approach of histogram-based tree learners such as LightGBM, Ke et al.,
     NIPS 2017, and scikit-learn's HistGradientBoosting) leaves at most 256 distinct values per
     column, and :func:`thresholds_from_bins` turns the trees' bin-index thresholds back into feature
-    values: the exported tree sends a feature value left exactly when its bin goes left.
+    values: the exported tree sends a feature value left exactly when its bin goes left. On bins,
+    the histogram grower (``grower="histogram"``) replaces the sort by one pass that adds every
+    sample into its bin, and a scan over the 256 bins, per node and candidate feature.
 
 Early exit (soft cascade; Bourdev and Brandt, CVPR 2005)
     The running score after tree ``t`` is ``s_t = s_{t-1} + leaf_values[t, leaf]`` (``s_0 = 0``;
@@ -51,10 +55,14 @@ import numbers
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
+from functools import partial
 
 import numba
 import numpy as np
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
+
+from detector._tree_kernels import ENTROPY, SQUARED_ERROR
+from detector.histogram_trees import grow_histogram_tree
 
 __all__ = [
     "FlatForest",
@@ -81,9 +89,11 @@ __all__ = [
     "bin_columns_numpy",
     "thresholds_from_bins",
     "MODES",
+    "GROWERS",
 ]
 
 MODES = ("bagged", "boosted")
+GROWERS = ("sklearn", "histogram")
 MAX_DEPTH = 12
 
 
@@ -1155,7 +1165,7 @@ def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
     X = np.asarray(X)
     if X.ndim != 2:
         raise ValueError(f"X must be 2-D (patches x features), got shape {X.shape}")
-    if X.dtype != np.float32 or not (X.flags.f_contiguous or X.flags.c_contiguous):
+    if X.dtype not in (np.float32, np.uint8) or not (X.flags.f_contiguous or X.flags.c_contiguous):
         X = np.asfortranarray(X, dtype=np.float32)
     n, n_features = X.shape
     y = np.asarray(y)
@@ -1183,9 +1193,22 @@ def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
         raise ValueError(f"sample_fraction must be in (0, 1], got {sample_fraction!r}")
     if n_features < 1:
         raise ValueError("X has no feature columns")
-    if not _check_finite(X):
+    if X.dtype != np.uint8 and not _check_finite(X):
         raise ValueError("X holds non-finite feature values")
     return X, y, int(n_trees), int(depth), features_per_node, float(sample_fraction)
+
+
+def _as_bins(X) -> np.ndarray:
+    """Bin indices ``X`` (N, F) as the histogram grower reads them: uint8 (F, N), C-contiguous."""
+    if X.dtype == np.uint8:
+        return np.ascontiguousarray(X.T)
+    bins = np.empty((X.shape[1], X.shape[0]), np.uint8)
+    for a in range(0, X.shape[1], 256):  # blocks of columns bound the temporaries
+        block = X[:, a : a + 256].T
+        if not ((block >= 0) & (block <= 255) & (block == np.floor(block))).all():
+            raise ValueError("the histogram grower needs bin indices 0..255 (see bin_columns)")
+        bins[a : a + 256] = block
+    return bins
 
 
 def _n_jobs(n_jobs) -> int:
@@ -1209,6 +1232,7 @@ def grow_forest(
     progress=None,
     n_jobs: int | None = None,
     keep_estimators: bool = False,
+    grower: str = "sklearn",
 ) -> FlatForest:
     """Grow a bagged or boosted forest of shallow trees and flatten it.
 
@@ -1239,10 +1263,19 @@ def grow_forest(
     progress : callable(done, total), optional
         Called after every tree.
     n_jobs : int, optional
-        Threads growing bagged trees at once (scikit-learn's tree builder releases the GIL);
-        None means 1, -1 all cores. Boosting is sequential.
+        Threads growing bagged trees at once (scikit-learn's tree builder and the histogram
+        grower's compiled loops release the GIL);
+        None means 1, -1 all cores. Boosting is sequential; there the histogram grower's threads
+        share each node's candidate features instead.
     keep_estimators : bool, default=False
-        Keep the scikit-learn trees and the per-tree sample counts (for tests and inspection).
+        Keep the scikit-learn trees (``grower="sklearn"``) and the per-tree sample counts (for
+        tests and inspection).
+    grower : {"sklearn", "histogram"}, default="sklearn"
+        ``"sklearn"``: scikit-learn's exact tree learners on any feature values. ``"histogram"``:
+        the compiled histogram grower (:mod:`detector.histogram_trees`), for bin indices 0..255
+        (``X`` of uint8, or of float32 holding such integers, as :func:`bin_columns` leaves it);
+        the same trees as scikit-learn's on those bins up to the random choice of features, and
+        many times faster. Thresholds stay on bin indices (:func:`thresholds_from_bins`).
 
     Returns
     -------
@@ -1256,10 +1289,17 @@ def grow_forest(
     >>> bool(f.oob_error < 0.2), int(np.argmax(f.importances)) in (2, 4)
     (True, True)
     """
+    if grower not in GROWERS:
+        raise ValueError(f"grower must be one of {GROWERS}, got {grower!r}")
     X, y, n_trees, depth, fpn, fraction = _validate(
         X, y, mode, n_trees, depth, features_per_node, sample_fraction
     )
     n, n_features = X.shape
+    if grower == "histogram":
+        bins = _as_bins(X)
+        X = bins.T  # (N, F) view for the leaf look-ups below
+    elif X.dtype == np.uint8:
+        X = np.asfortranarray(X, dtype=np.float32)
     children = seed_sequence(random_state).spawn(n_trees)
     n_nodes = (1 << depth) - 1
     node_features = np.zeros((n_trees, n_nodes), np.int32)
@@ -1270,36 +1310,59 @@ def grow_forest(
     estimators = [] if keep_estimators else None
     in_bag = np.zeros((n_trees, n), np.int32) if keep_estimators else None
 
-    def store(t, est):
-        f, thr, lv, m = flatten_tree(est, depth)
-        node_features[t], node_thresholds[t], leaf_values[t], split_mask[t] = f, thr, lv, m
-        root_weight = est.tree_.weighted_n_node_samples[0]
-        importances[:] += est.tree_.compute_feature_importances(normalize=False) * root_weight / n
-        if estimators is not None:
-            estimators.append(est)
+    def grow_one(tree_ss, weight, target, criterion, learner, executor=None):
+        """One tree on the chosen route: (features, thresholds, leaves, split mask, importance
+        gains or the scikit-learn tree)."""
+        if grower == "histogram":
+            return grow_histogram_tree(bins, weight, target, criterion=criterion, depth=depth,
+                                       features_per_node=fpn, rng=np.random.default_rng(tree_ss),
+                                       executor=executor, parts=_n_jobs(n_jobs))
+        est = learner(splitter="best", max_depth=depth, max_features=fpn,
+                      random_state=int(tree_ss.generate_state(1)[0]))
+        est.fit(X, target if criterion == SQUARED_ERROR else y, sample_weight=weight, check_input=False)
+        return (*flatten_tree(est, depth), est)
 
-    def one_tree_leaves(t):
-        single = FlatForest(mode, node_features[t : t + 1], node_thresholds[t : t + 1],
-                            leaf_values[t : t + 1], split_mask[t : t + 1])
-        return forest_leaves(single, X)[:, 0]
+    def store(t, grown):
+        """Keep tree t; return the leaf of every sample it was grown on (-1 for the others), when
+        the grower knows them."""
+        f, thr, lv, m, extra = grown[:5]
+        node_features[t], node_thresholds[t], leaf_values[t], split_mask[t] = f, thr, lv, m
+        if grower == "histogram":
+            for feature, gain in extra:
+                importances[feature] += gain / n
+            return grown[5]
+        root_weight = extra.tree_.weighted_n_node_samples[0]
+        importances[:] += extra.tree_.compute_feature_importances(normalize=False) * root_weight / n
+        if estimators is not None:
+            estimators.append(extra)
+
+    def tree_leaves(t, rows):
+        """Leaf of tree t reached by each of ``rows`` (as :func:`forest_leaves`, for one tree)."""
+        node = np.zeros(rows.size, np.intp)
+        for _ in range(depth):
+            node = 2 * node + 1 + (X[rows, node_features[t][node]] > node_thresholds[t][node])
+        return node - n_nodes
+
+    def leaf_values_of(t, known):
+        """Tree t's leaf value for every sample; ``known`` holds the leaves the grower saw."""
+        leaves = np.full(n, -1, np.intp) if known is None else known
+        missing = np.flatnonzero(leaves < 0)
+        if missing.size:
+            leaves = leaves.copy()
+            leaves[missing] = tree_leaves(t, missing)
+        return leaf_values[t][leaves]
 
     oob_error = None
     if mode == "bagged":
         n_draw = max(1, int(round(fraction * n)))
+        classes = y.astype(np.float64)
+        entropy_tree = partial(DecisionTreeClassifier, criterion="entropy")
 
         def fit_one(t):
             boot_ss, tree_ss = children[t].spawn(2)
             draws = np.random.default_rng(boot_ss).integers(0, n, n_draw)
             counts = np.bincount(draws, minlength=n)
-            est = DecisionTreeClassifier(
-                criterion="entropy",
-                splitter="best",
-                max_depth=depth,
-                max_features=fpn,
-                random_state=int(tree_ss.generate_state(1)[0]),
-            )
-            est.fit(X, y, sample_weight=counts.astype(np.float64), check_input=False)
-            return est, counts
+            return grow_one(tree_ss, counts.astype(np.float64), classes, ENTROPY, entropy_tree), counts
 
         oob_sum = np.zeros(n, np.float64)
         oob_count = np.zeros(n, np.int64)
@@ -1307,11 +1370,11 @@ def grow_forest(
         pool = ThreadPoolExecutor(max_workers=workers) if workers > 1 else None
         try:
             results = pool.map(fit_one, range(n_trees)) if pool else map(fit_one, range(n_trees))
-            for t, (est, counts) in enumerate(results):
-                store(t, est)
-                out = counts == 0
-                if out.any():
-                    oob_sum[out] += leaf_values[t][one_tree_leaves(t)[out]]
+            for t, (grown, counts) in enumerate(results):
+                store(t, grown)
+                out = np.flatnonzero(counts == 0)
+                if out.size:
+                    oob_sum[out] += leaf_values[t][tree_leaves(t, out)]
                     oob_count[out] += 1
                 if in_bag is not None:
                     in_bag[t] = counts
@@ -1326,8 +1389,11 @@ def grow_forest(
             oob_error = float(np.mean(predicted != (y[seen] == 1)))
     else:
         signed = np.where(y == 1, 1.0, -1.0)
+        squared_tree = partial(DecisionTreeRegressor, criterion="squared_error")
         weights = np.ones(n, np.float64)
         n_sub = max(1, int(round(fraction * n)))
+        # boosting is sequential: the histogram grower's threads share each node's candidates
+        node_pool = ThreadPoolExecutor(_n_jobs(n_jobs)) if grower == "histogram" and _n_jobs(n_jobs) > 1 else None
         for t in range(n_trees):
             sub_ss, tree_ss = children[t].spawn(2)
             if n_sub < n:
@@ -1336,18 +1402,10 @@ def grow_forest(
                 stage_weight[chosen] = weights[chosen]
             else:
                 stage_weight = weights
-            est = DecisionTreeRegressor(
-                criterion="squared_error",
-                splitter="best",
-                max_depth=depth,
-                max_features=fpn,
-                random_state=int(tree_ss.generate_state(1)[0]),
-            )
-            est.fit(X, signed, sample_weight=stage_weight, check_input=False)
-            store(t, est)
+            known = store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree, node_pool))
             if in_bag is not None:
                 in_bag[t] = stage_weight > 0
-            f_t = leaf_values[t][one_tree_leaves(t)].astype(np.float64)
+            f_t = leaf_values_of(t, known).astype(np.float64)
             weights = weights * np.exp(-signed * f_t)
             weights /= weights.mean()
             # keep every weight above a floor: after hundreds of stages the easy patches' weights
@@ -1356,6 +1414,8 @@ def grow_forest(
             np.maximum(weights, BOOST_WEIGHT_FLOOR, out=weights)
             if progress is not None:
                 progress(t + 1, n_trees)
+        if node_pool is not None:
+            node_pool.shutdown()
 
     return FlatForest(
         mode=mode,

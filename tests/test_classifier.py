@@ -109,6 +109,35 @@ def test_same_seed_same_model_and_progress():
     assert not np.array_equal(a.model_.features, c.model_.features)
 
 
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_both_growers_classify_well(mode):
+    """The default histogram grower and the scikit-learn route it is tested against
+    (tests/test_histogram_trees.py holds their trees equal where no random draw is involved; on
+    these easy patches many features separate the classes equally well, so the draw order decides
+    which one a node takes and the trees differ)."""
+    patches, y = _patches(seed=5)
+    kw = dict(n_trees=10, pool=60, depth=2, mode=mode, random_state=3)
+    ours = PatchClassifier(**kw).fit(patches, y)
+    sk = PatchClassifier(grower="sklearn", **kw).fit(patches, y)
+    assert (ours.predict(patches) == y).mean() > 0.9 and (sk.predict(patches) == y).mean() > 0.9
+    assert ours.model_.metadata["parameters"]["grower"] == "histogram"
+    assert sk.model_.metadata["parameters"]["grower"] == "sklearn"
+
+
+def test_pool_values_binned_in_blocks_equal_the_whole_pool_binned(monkeypatch):
+    """The histogram route evaluates and bins the pool a block of features at a time; the model
+    must not depend on the block size (each feature's values and cuts are its own)."""
+    import detector.classifier as classifier
+
+    patches, y = _patches(seed=6)
+    kw = dict(n_trees=8, pool=300, mode="boosted", random_state=2)
+    whole = PatchClassifier(**kw).fit(patches, y)
+    monkeypatch.setattr(classifier, "VALUE_BLOCK", 7)
+    blocks = PatchClassifier(**kw).fit(patches, y)
+    for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
+        np.testing.assert_array_equal(getattr(blocks.model_, name), getattr(whole.model_, name))
+
+
 @pytest.mark.parametrize(
     "params, message",
     [
@@ -119,6 +148,7 @@ def test_same_seed_same_model_and_progress():
         (dict(exit_recall=1.5), "exit_recall must be a number in (0, 1]"),
         (dict(pool=2.5), "pool must be an integer >= 1"),
         (dict(max_bins=1), "max_bins must be an integer 2..256"),
+        (dict(grower="fast"), "grower must be one of sklearn, histogram"),
     ],
 )
 def test_bad_parameters_are_refused_at_fit(params, message):
