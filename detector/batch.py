@@ -202,7 +202,7 @@ def draw_folder(images_dir, detections: dict, draw_dir, threshold: float = 0.0) 
         ok, buf = cv2.imencode(".png", draw_detections(gray, boxes[keep], scores[keep],
                                                        title=f"score >= {threshold:g}"))
         if ok:
-            buf.tofile(str(dst))
+            write_bytes(dst, buf.tobytes())
             drawn += 1
     return drawn
 

@@ -523,7 +523,7 @@ def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarr
 
 def _square_totals(patches) -> np.ndarray:
     """Sum of the squared pixels of every patch (exact for integers), as float64."""
-    flat = patches.reshape(len(patches), -1)
+    flat = patches.reshape(len(patches), int(np.prod(patches.shape[1:])))  # N may be 0
     exact = np.int64 if np.issubdtype(flat.dtype, np.integer) or flat.dtype == np.bool_ \
         else np.float64
     return np.einsum("ij,ij->i", flat, flat, dtype=exact).astype(np.float64)

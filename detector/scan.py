@@ -826,10 +826,18 @@ class Engine:
         lo, _ = self.object_scale_range()
         up = 1.0
         if lo < 1.0:
+            up = 1.0 / lo
+            if self.settings.min_object is None:
+                # the labelled sizes' enlargement is a default: it shrinks to fit the size limit
+                # (the smallest objects are then not looked for) instead of failing the image
+                from detector.images import max_pixels_limit
+
+                fits = math.sqrt(max_pixels_limit() / float(gray.size))
+                up = max(1.0, min(up, math.floor(fits * 1000) / 1000))
+            check_enlargement(gray.shape, up, self.settings.min_object)
+        if up > 1.0:
             import cv2
 
-            up = 1.0 / lo
-            check_enlargement(gray.shape, up, self.settings.min_object)
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
         ih, iw = gray.shape
         grid = self._grid((iw, ih), up)

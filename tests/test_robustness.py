@@ -1154,14 +1154,36 @@ def test_file_names_that_are_not_utf8_are_written_escaped(trained, tmp_path, mon
                                               "file (unrecognised content)"}
     assert "  sub%FF/x.png: cannot read image" in stdout
     assert (drawn / "caf%E9 1.png").is_file()
-    # resume: drop the last image's rows and continue: the same file again
+    # resume: a run stopped after its first image, continued: the same file again
     whole = out.read_bytes()
-    lines = whole.decode("utf-8").splitlines(keepends=True)
-    out.write_text("".join(line for line in lines if not line.startswith("plain.png")))
+    interrupted_scan(trained.model, folder, out, 1, threshold=0.1)
     code, stdout, err = patchwood(monkeypatch, capsys, "scan", trained.model, folder, "--out",
                                   out, "--threshold", "0.1", "--resume")
     assert code == 0 and "(+1 kept from the earlier run)" in stdout, (stdout, err)
     assert out.read_bytes() == whole
+
+
+def interrupted_scan(model, folder, out, after: int, **settings):
+    """A real run of the folder (``detector.batch.scan_paths``, writing after every image) stopped
+    after ``after`` images, as a killed run leaves it: a detections file and the provenance side
+    file that describes it, which --resume checks."""
+    from detector.batch import scan_paths
+    from detector.scan import ScanSettings
+
+    class Stop(KeyboardInterrupt):
+        pass
+
+    seen = []
+
+    def stop(result):
+        seen.append(result.image)
+        if len(seen) == after:
+            raise Stop()
+
+    with pytest.raises(Stop):
+        scan_paths(model, [folder], out, settings=ScanSettings(**settings), batch_images=1,
+                   force=True, on_image=stop)
+    assert len(read_detections(out)) == after
 
 
 def test_names_round_trip_through_resume(trained, tmp_path, monkeypatch, capsys):
@@ -1181,8 +1203,7 @@ def test_names_round_trip_through_resume(trained, tmp_path, monkeypatch, capsys)
     listed = [d.image for d in read_detections(clean)]
     assert sorted(listed) == sorted(names)  # every name exactly, once
     # the first three images done, the run interrupted: continue it
-    from detector.labels import write_detections_csv
-    write_detections_csv(resumed, read_detections(clean)[:3])
+    interrupted_scan(trained.model, folder, resumed, 3, threshold=0.1)
     code, stdout, err = patchwood(monkeypatch, capsys, *args, "--out", resumed, "--resume")
     assert code == 0 and "(+3 kept from the earlier run)" in stdout, (stdout, err)
     assert resumed.read_bytes() == clean.read_bytes()
