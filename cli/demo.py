@@ -15,7 +15,7 @@ from detector.labels import read_detections, read_labels
 from detector.model import save_model
 from detector.report import score_files, summary_table
 from detector.scan import ScanSettings
-from detector.training import train_with_mining
+from detector.training import DEFAULT_MINE_ROUNDS, mining_params, train_with_mining
 from synthetic_images import render_scenario
 
 #: What the demo writes inside its folder (and may replace with --force).
@@ -30,7 +30,7 @@ def demo(
     trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
     mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
     pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
-    mine_rounds: int = typer.Option(1, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images."),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images (as `patchwood train`: the models before the last grow a quarter of the trees)."),
     jobs: int = typer.Option(2, "--jobs", min=1, max=64, help="Threads for growing and processes for scanning."),
     force: bool = typer.Option(False, "--force", help="Replace what an earlier demo wrote in --out (other files there are left alone)."),
 ) -> None:
@@ -81,7 +81,7 @@ def demo(
 
     model, clf, _ = train_with_mining(
         bank, params, rounds=mine_rounds, images_dir=train_dir / "images", items=train_labels.items,
-        settings=ScanSettings(), bank_path=bank_path,
+        settings=ScanSettings(), bank_path=bank_path, mine_params=mining_params(params),
         progress_factory=lambda d, n: progress_bar("      " + d, n, "trees" if d.startswith("growing") else "images"),
         report=report)
     model_path = out / "model.npz"
