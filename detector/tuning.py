@@ -269,11 +269,14 @@ def fold_average_precision(fold: FoldData, params: dict, *, settings: ScanSettin
         All-point average precision at IoU 0.5 (:func:`detector.evaluate.evaluate`); nan when
         the held-out images hold no object.
     """
-    from detector.training import train_with_mining
+    from detector.training import mining_params, train_with_mining
 
+    # the mining models are the cheaper ones `patchwood train` grows, so that the train line
+    # printed for the best trial trains what the trial measured
     model, _, _ = train_with_mining(
         fold.bank, params, rounds=int(mine_rounds), images_dir=fold.images_dir,
-        items=fold.train_items, settings=_scan_settings(settings, mining_threshold))
+        items=fold.train_items, settings=_scan_settings(settings, mining_threshold),
+        mine_params=mining_params(params))
     engine = Engine(model, _scan_settings(settings, EVALUATION_THRESHOLD))
     detections, truth = {}, {}
     for it in fold.test_items:
