@@ -70,9 +70,12 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     """
     settings = settings or ScanSettings()
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
-    # the default exits keep every calibration object whatever the threshold, so a false alarm a
-    # scan could report does not escape mining by exiting early here
-    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None}))
+    # the exits for the mining threshold, not the scan's loosest: mining wants windows that reach
+    # it, and the loosest exits made mining and the final check most of training's time. A false
+    # alarm may exit before reaching the threshold as an object would not (the exits are calibrated
+    # on objects); mining then misses it this round. Cross-data benchmark (coins, horses,
+    # coin-crops): training 53/52/31 s -> 33/42/27 s, AP50 0.704/0.538/0.717 -> 0.730/0.554/0.708.
+    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": low.threshold}))
     W, H = engine.window
     patches, boxes, names, scores = [], [], [], []
     dets, gts = {}, {}

@@ -167,13 +167,14 @@ def test_mining_round(scenario, cli_env, tmp_path):
 
 def first_round_recount(bank, test, settings, trees=10):
     """The first mining round's false alarms per image and recall, counted again: the first model
-    is the plain model with the same seed; scan the mining frames with the loosest exits (as
-    mining scans) and match with detector.evaluate (IoU 0.5)."""
+    is the plain model with the same seed; scan the mining frames with the exits for the mining
+    threshold 0.3 (as mining scans) and match with detector.evaluate (IoU 0.5)."""
     first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
                                                  n_jobs=1), bank_path=bank)
-    engine = Engine(first, settings)
+    engine = Engine(first, ScanSettings(**{**settings.__dict__,
+                                          "exit_level": min(0.3, settings.threshold)}))
     items = read_labels(test / "labels.csv", images_dir=test / "images").items
     dets = {}
     for it in items:
