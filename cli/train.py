@@ -15,7 +15,7 @@ from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import (DEFAULT_MINE_ROUNDS, mining_params, mining_source,
+from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params, mining_source,
                                 train_with_mining)
 
 
@@ -29,12 +29,12 @@ def train(
     ctx: typer.Context,
     bank: Path = typer.Argument(..., help="Patch bank from `patchwood harvest`."),
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
-    trees: int = typer.Option(200, "--trees", min=1, max=10000, help="Number of trees."),
-    depth: int = typer.Option(2, "--depth", min=1, max=8, help="Depth of every tree."),
-    mode: str = typer.Option("boosted", "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
-    pool: int = typer.Option(20000, "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
+    trees: int = typer.Option(DEFAULT_TRAIN["trees"], "--trees", min=1, max=10000, help="Number of trees."),
+    depth: int = typer.Option(DEFAULT_TRAIN["depth"], "--depth", min=1, max=8, help="Depth of every tree."),
+    mode: str = typer.Option(DEFAULT_TRAIN["mode"], "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
+    pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
-    sample_fraction: float = typer.Option(1.0, "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
+    sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
     exit_recall: float = typer.Option(0.995, "--exit-recall", min=0.5, max=1.0, help="Share of held-out object patches that must survive every early exit."),
     channels: str = typer.Option("grey", "--channels", help="Features the pool draws: grey (rectangle differences of the grey image) or gradient (half of the pool as rectangles and rectangle differences over the gradient magnitude and six orientation channels)."),
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),

@@ -15,6 +15,7 @@ from detector.files import write_text
 from detector.harvest import save_bank
 from detector.labels import read_labels
 from detector.scan import ScanSettings
+from detector.training import DEFAULT_MINE_ROUNDS
 from detector.tuning import (SearchSpace, describe, plot_trials, prepare_folds, search,
                              train_command, write_trials_csv)
 
@@ -81,7 +82,7 @@ def tune(
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     copies: int = typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
     negatives_per_image: int = typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image."),
-    mine_rounds: int = typer.Option(0, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds inside every fold, on that fold's training images only."),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds inside every fold, on that fold's training images only (as many as train mines by default; the models before the last grow a quarter of the trees, as train's do)."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=4.0, help="Ratio between neighbouring scales of the held-out scans."),
     stride: float = typer.Option(2.0, "--stride", min=1.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
     min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, in pixels."),

@@ -48,7 +48,7 @@ class MiningRound:
 
 def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_image: int = 20,
          per_round: int = 4000, max_iou: float = 0.3, mining_threshold: float = 0.3,
-         progress=None) -> MiningRound:
+         progress=None, count_only: bool = False) -> MiningRound:
     """Scan labelled images and collect the highest-scoring windows that overlap no labelled box.
 
     Parameters
@@ -67,15 +67,18 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     mining_threshold : float
         Windows scoring at least this are mining candidates (below the detection threshold, so a
         round also hardens the model against near misses).
+    count_only : bool
+        Only count false alarms and recall at ``settings.threshold``, with the exits for that
+        threshold (``exit_level``), and collect no patches: the check of a final model, several
+        times faster than a mining scan (on the cross-data benchmark's horses, 4.4 s against
+        14.6 s for 80 images).
     """
     settings = settings or ScanSettings()
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
-    # the exits for the mining threshold, not the scan's loosest: mining wants windows that reach
-    # it, and the loosest exits made mining and the final check most of training's time. A false
-    # alarm may exit before reaching the threshold as an object would not (the exits are calibrated
-    # on objects); mining then misses it this round. Cross-data benchmark (coins, horses,
-    # coin-crops): training 53/52/31 s -> 33/42/27 s, AP50 0.704/0.538/0.717 -> 0.730/0.554/0.708.
-    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": low.threshold}))
+    # the default exits keep every calibration object whatever the threshold, so a false alarm a
+    # scan could report does not escape mining by exiting early here
+    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None}) if not count_only
+                    else ScanSettings(**{**settings.__dict__, "exit_level": settings.threshold}))
     W, H = engine.window
     patches, boxes, names, scores = [], [], [], []
     dets, gts = {}, {}
@@ -87,6 +90,10 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
                                                 image_size=size)
         dets[it.image] = (found, found_scores)
         gts[it.image] = it.boxes
+        if count_only:
+            if progress is not None:
+                progress(i + 1, len(items))
+            continue
         # diverse candidates: looser suppression than detection, then away from every object
         cand, cand_scores, cand_windows = engine.detections(wboxes, raw, nms_iou=0.5,
                                                             image_size=size, windows=True)

@@ -47,6 +47,11 @@ def bank_to_xy(bank: PatchBank):
     return bank.patches, bank.labels.astype(np.int64)
 
 
+#: ``patchwood train``'s model parameters unless told otherwise, in tune's words (``tune`` starts
+#: its search here). ``features_per_node`` None is the square root of the pool.
+DEFAULT_TRAIN = {"trees": 200, "depth": 2, "mode": "boosted", "pool": 20000,
+                 "features_per_node": None, "sample_fraction": 1.0}
+
 #: Hard-negative mining rounds of ``patchwood train`` unless told otherwise (chosen on the
 #: cross-data benchmark, ``benchmarks/cross_data.py``; README, "Speed and accuracy").
 DEFAULT_MINE_ROUNDS = 2
@@ -142,7 +147,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
             break
         with bar(f"mining round {r + 1}" if r < rounds else "checking final model", len(items)) as up:
             found = mine(model, images_dir, items, settings=settings, per_image=per_image,
-                         per_round=per_round, progress=up)
+                         per_round=per_round, progress=up, count_only=r == rounds)
         history.append({"round": r, "false_alarms_per_image": found.false_alarms_per_image,
                         "recall": found.recall, "added": 0 if r == rounds else len(found.patches)})
         if report is not None:

@@ -363,6 +363,33 @@ class SearchSpace:
             raise InputError(f"modes: choose from {', '.join(MODES)}, got {', '.join(modes) or 'none'}")
         return self
 
+    def start(self, defaults: dict | None = None) -> dict:
+        """``patchwood train``'s defaults moved into the ranges: the first trial, so the search
+        starts where a user who does not tune would be (``defaults`` default
+        :data:`detector.training.DEFAULT_TRAIN`; features per node, None there, is the square root of
+        the pool, as training has it).
+
+        >>> SearchSpace().start()
+        {'trees': 200, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 141, 'sample_fraction': 1.0}
+        >>> SearchSpace(trees=(5, 50), depth=(3, 4), modes=("bagged",), pool=(100, 400),
+        ...             features_per_node=(10, 300), sample_fraction=(0.3, 0.5)).start()
+        {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 20, 'sample_fraction': 0.5}
+        """
+        from detector.training import DEFAULT_TRAIN
+
+        d = dict(DEFAULT_TRAIN if defaults is None else defaults)
+
+        def clip(value, pair):
+            return min(max(value, pair[0]), pair[1])
+
+        pool = int(clip(d["pool"], self.pool))
+        per_node = d["features_per_node"] or max(1, round(math.sqrt(pool)))
+        return {"trees": int(clip(d["trees"], self.trees)), "depth": int(clip(d["depth"], self.depth)),
+                "mode": d["mode"] if d["mode"] in self.modes else tuple(self.modes)[0],
+                "pool": pool,
+                "features_per_node": int(clip(per_node, self.features_per_node)),
+                "sample_fraction": float(clip(d["sample_fraction"], self.sample_fraction))}
+
     def suggest(self, trial) -> dict:
         """Draw one parameter set from an Optuna trial (the values as drawn, before capping)."""
         return {
@@ -445,7 +472,8 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
            settings: ScanSettings | None = None, mine_rounds: int = 0,
            mining_threshold: float = MINING_THRESHOLD, exit_recall: float = 0.995,
            n_jobs=None, on_trial=None) -> SearchResult:
-    """Bayesian search (Optuna's seeded TPE sampler) for the parameters of best mean AP50.
+    """Bayesian search (Optuna's seeded TPE sampler) for the parameters of best mean AP50. The first
+    trial is ``patchwood train``'s defaults moved into the ranges (:meth:`SearchSpace.start`).
 
     Parameters
     ----------
@@ -498,6 +526,7 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
     try:
         study = optuna.create_study(direction="maximize",
                                     sampler=optuna.samplers.TPESampler(seed=int(seed)))
+        study.enqueue_trial(space.start())  # the first trial: train's defaults (within the ranges)
         result = SearchResult()
         while True:
             if trials is not None and len(result.trials) >= int(trials):

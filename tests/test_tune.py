@@ -283,8 +283,10 @@ def test_search_space_check_names_the_bad_range():
 def test_tune_command_writes_trials_plot_and_a_working_train_line(scenario, tmp_path, monkeypatch):
     images, labels, items = scenario
     monkeypatch.chdir(tmp_path)
+    # without mining, so the printed line's model can be compared array by array with train_model
     result = CliRunner().invoke(tune_app(), [os.fspath(images), os.fspath(labels), "--out", "search",
-                                             "--trials", "2", "--seed", str(SEED), *TINY_OPTIONS])
+                                             "--trials", "2", "--seed", str(SEED), *TINY_OPTIONS,
+                                             "--mine-rounds", "0"])
     assert result.exit_code == 0, result.output
     out = tmp_path / "search"
 
@@ -383,3 +385,32 @@ def test_bad_range_is_a_one_line_usage_error(scenario, tmp_path, monkeypatch, ca
     assert code == 2 and stderr.strip().count("\n") == 0
     assert "--trees takes a value or a range LOW..HIGH of whole numbers" in stderr
     assert not (tmp_path / "x").exists()
+
+
+def test_tune_starts_at_train_defaults_and_mines_as_train_does(scenario, tmp_path, monkeypatch):
+    """By default every fold mines as many rounds as train does, the first trial is train's
+    defaults moved into the ranges (SearchSpace.start), and the printed train line mines those
+    rounds on the images tune harvested (recorded in its bank)."""
+    from detector.training import DEFAULT_MINE_ROUNDS
+
+    images, labels, _ = scenario
+    monkeypatch.chdir(tmp_path)
+    result = CliRunner().invoke(tune_app(), [os.fspath(images), os.fspath(labels), "--out", "search",
+                                             "--trials", "2", "--seed", str(SEED), *TINY_OPTIONS])
+    assert result.exit_code == 0, result.output
+    with open(tmp_path / "search" / "trials.csv", newline="") as fh:
+        first = next(r for r in csv.DictReader(fh))
+    # train's defaults (200 trees, depth 2, boosted, pool 20000, sample fraction 1) clipped into
+    # TINY: 10 trees, depth 2, boosted, pool 300 (or fewer: the window's features), per node 16
+    # (sqrt(300) = 17.3 -> 17, clipped to 16), sample fraction 1.0
+    assert (int(float(first["trees"])), int(float(first["depth"])), first["mode"]) == (10, 2, "boosted")
+    assert int(float(first["features_per_node"])) == 16
+    assert float(first["sample_fraction"]) == 1.0
+    best = json.loads((tmp_path / "search" / "best.json").read_text())
+    argv = shlex.split(best["train_command"])
+    assert argv[argv.index("--mine-rounds") + 1] == str(DEFAULT_MINE_ROUNDS)
+    trained = CliRunner().invoke(cli_main.app, argv[1:])
+    assert trained.exit_code == 0, trained.output
+    model = load_model(tmp_path / "search" / "model.npz")
+    assert [h["round"] for h in model.metadata["mining"]] == list(range(DEFAULT_MINE_ROUNDS + 1))
+    assert model.metadata["parameters"]["n_trees"] == best["parameters"]["trees"]
