@@ -96,7 +96,7 @@ def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: i
     >>> c.shape, bool((c[0] == p[0]).all())
     ((4, 4, 4), True)
     """
-    from detector.harvest import crop_region
+    from detector.geometry import crop_region
 
     patches = np.asarray(patches, dtype=np.uint8)
     n, h, w = patches.shape

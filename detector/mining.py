@@ -10,9 +10,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from detector.boxes import iou
+from detector.geometry import iou
 from detector.evaluate import evaluate
-from detector.harvest import crop_region
+from detector.geometry import crop_region
 from detector.images import read_gray
 from detector.scan import Engine, ScanSettings
 

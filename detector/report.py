@@ -1076,7 +1076,7 @@ def _nearest_scores(misses, detections) -> None:
     """Give each miss the highest score of any detection in the file overlapping it (IoU > 0),
     also those below the operating point's threshold: a miss just below it reads differently
     from one no window came near."""
-    from detector.boxes import iou
+    from detector.geometry import iou
 
     for m in misses:
         boxes, scores = detections.get(m.image, (np.zeros((0, 4)), np.zeros(0)))

@@ -27,10 +27,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector import _kernels
-from detector.boxes import nms
+from detector.geometry import nms
 from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
-from detector.harvest import window_box_to_object_box
+from detector.geometry import window_box_to_object_box
 from detector.integral import integral_image, squared_integral_image
 
 

@@ -51,7 +51,7 @@ class Mutation:
 MUTATIONS = (
     Mutation(
         "M2", "NMS visits tied scores in quicksort order instead of a stable order",
-        "detector/boxes.py",
+        "detector/geometry.py",
         'order = np.argsort(-s, kind="stable").astype(np.int64)',
         'order = np.argsort(-s, kind="quicksort").astype(np.int64)',
         ("tests/test_boxes.py",)),

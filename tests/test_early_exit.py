@@ -62,7 +62,7 @@ def test_hand_worked_order():
 
 
 def test_misaligned_copies_follow_crop_region():
-    from detector.harvest import crop_region
+    from detector.geometry import crop_region
 
     # crop_region itself: scale 1 and a whole-pixel shift reduce to an edge-padded slice
     # (reference: numpy edge padding)

@@ -16,7 +16,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from detector.classifier import PatchClassifier
-from detector.harvest import harvest, window_box_to_object_box
+from detector.geometry import window_box_to_object_box
+from detector.harvest import harvest
 from detector.labels import read_labels
 from detector.model import Model
 from detector.scan import (Engine, ScanSettings, clip_boxes, detection_scores, final_scores,
@@ -123,7 +124,7 @@ def test_scan_equals_candidates_then_detections(model, settings):
     certain: a bagged score is never below the cutoff 0, so at threshold 0 without early exit
     every window is a candidate, every image has at least one detection, and the suppression
     meets ties for certain: every window of the flat frame (the last image) sees the same pixels
-    and so has the same score; their order (window order, as detector.boxes.nms visits them) is
+    and so has the same score; their order (window order, as detector.geometry.nms visits them) is
     checked too."""
     rng = np.random.default_rng(8)
     images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
