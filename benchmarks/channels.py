@@ -75,7 +75,7 @@ def main(argv=None) -> int:
         clf = PatchClassifier(n_trees=args.trees, pool=4000, mode="boosted", random_state=0,
                               channels=channels)
         models[channels] = clf.fit(bank.patches, bank.labels,
-                                   metadata={"margin": bank.margin}).model_
+                                   margin=bank.margin).model_
     engines = {name: Engine(m, ScanSettings(min_object=20.0, max_object=200.0))
                for name, m in models.items()}
     results = {name: e.scan(gray) for name, e in engines.items()}

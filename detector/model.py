@@ -7,7 +7,8 @@ One ``.npz`` archive (written by :func:`detector.npzfile.save_npz`, deterministi
 =====================  =================  =====================================================
 array                  dtype, shape       meaning
 =====================  =================  =====================================================
-``format_version``     int64, ()          1, or 2 when the file holds ``feature_channels``
+``format_version``     int64, ()          3 (files of versions 1 and 2 are read too, see
+                                          :func:`load_model`)
 ``kind``               str, ()            ``"model"``
 ``window``             int32, (2,)        window width and height in pixels
 ``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
@@ -27,9 +28,20 @@ array                  dtype, shape       meaning
 ``feature_importances``  float64, (F,)    summed impurity decrease per feature (optional)
 ``mode``               str, ()            ``"bagged"`` or ``"boosted"``
 ``normalize``          bool, ()           per-window contrast normalisation of the features
+``margin``             float64, ()        context margin of the patches, a fraction of the object
+                                          box on every side: the scan reports the window shrunk
+                                          by it
+``score_temperature``  float64, ()        temperature of the boosted score (> 0; 1 for bagged)
+``exit_min_sigma``     float64, ()        the contrast gate: windows whose grey-level standard
+                                          deviation is below it are dropped before any tree
 ``metadata``           str, ()            JSON: parameters, bank hash, training figures, date,
-                                          library versions
+                                          library versions (only reported: nothing the scan
+                                          computes with)
 =====================  =================  =====================================================
+
+Versions 1 (grey features) and 2 (with ``feature_channels``) kept ``margin``,
+``score_temperature`` and ``exit_min_sigma`` in the metadata JSON; :func:`load_model` converts
+them to the typed values of version 3.
 
 See :mod:`detector.forest` for the tree layout, the running score and the final score.
 """
@@ -54,12 +66,17 @@ __all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "
            "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
            "metadata_sha256"]
 
-FORMAT_VERSION = 1
-#: Files with channel features (``feature_channels``) are version 2, so that a patchwood that
-#: does not know channels refuses them instead of scanning their features as grey ones; grey-only
-#: models are still written as version 1, byte for byte as before.
+#: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
+#: arrays instead of metadata JSON.
+FORMAT_VERSION = 3
+#: Files with channel features (``feature_channels``) are version 2 or later, so that a patchwood
+#: that does not know channels refuses them instead of scanning their features as grey ones.
 CHANNELS_FORMAT_VERSION = 2
-READ_VERSIONS = (FORMAT_VERSION, CHANNELS_FORMAT_VERSION)
+#: The versions before 3, whose scan settings :func:`load_model` takes from the metadata.
+METADATA_SETTINGS_VERSIONS = (1, CHANNELS_FORMAT_VERSION)
+READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, FORMAT_VERSION)
+#: The scan settings: model array (and metadata key before version 3) -> default.
+SCAN_SETTINGS = {"margin": 0.0, "score_temperature": 1.0, "exit_min_sigma": 0.0}
 
 MODEL_SPEC = {
     "format_version": npzfile.ArraySpec("integer", ()),
@@ -76,6 +93,9 @@ MODEL_SPEC = {
     "feature_importances": npzfile.ArraySpec("float64", ("F",), required=False),
     "mode": npzfile.ArraySpec("str", ()),
     "normalize": npzfile.ArraySpec("bool", ()),
+    "margin": npzfile.ArraySpec("float64", (), required=False),
+    "score_temperature": npzfile.ArraySpec("float64", (), required=False),
+    "exit_min_sigma": npzfile.ArraySpec("float64", (), required=False),
     "metadata": npzfile.ArraySpec("str", ()),
 }
 
@@ -145,6 +165,15 @@ class Model:
         Exits for scans at a given score threshold or above (see :meth:`exits_for`).
     feature_channels : ndarray of int8, shape (F,), optional
         The channel each feature reads (:mod:`detector.channels`); None (or all 0): grey only.
+    margin : float >= 0
+        Context margin of the training patches, a fraction of the object box on every side: the
+        scan reports a window shrunk by it (:func:`detector.geometry.window_box_to_object_box`).
+    temperature : float > 0
+        Temperature of the boosted score (:func:`detector.cascade.fit_temperature`; 1.0 for
+        bagged forests).
+    exit_min_sigma : float >= 0
+        The contrast gate: windows whose grey-level standard deviation is below it are dropped
+        before any tree (0 = no gate; always 0 without contrast normalisation).
 
     Examples
     --------
@@ -167,6 +196,9 @@ class Model:
     exit_levels: np.ndarray | None = None
     exit_table: np.ndarray | None = None
     feature_channels: np.ndarray | None = None
+    margin: float = 0.0
+    temperature: float = 1.0
+    exit_min_sigma: float = 0.0
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -191,10 +223,19 @@ class Model:
             if len(channels) != len(self.features):
                 raise ValueError("feature_channels needs one channel per feature")
             self.feature_channels = channels if channels.any() else None
+        self.margin, self.temperature = float(self.margin), float(self.temperature)
+        self.exit_min_sigma = float(self.exit_min_sigma) if self.normalize else 0.0
+        if not (math.isfinite(self.margin) and self.margin >= 0):
+            raise ValueError(f"margin must be a number >= 0, got {self.margin!r}")
+        if not (math.isfinite(self.temperature) and self.temperature > 0):
+            raise ValueError(f"temperature must be a number > 0, got {self.temperature!r}")
+        if not (math.isfinite(self.exit_min_sigma) and self.exit_min_sigma >= 0):
+            raise ValueError(f"exit_min_sigma must be a number >= 0, got {self.exit_min_sigma!r}")
 
     @classmethod
     def from_forest(cls, window, pool, forest: FlatForest, exit_thresholds=None, *, normalize=True,
-                    metadata=None, pool_channels=None) -> "Model":
+                    metadata=None, pool_channels=None, margin: float = 0.0,
+                    temperature: float = 1.0, exit_min_sigma: float = 0.0) -> "Model":
         """Model from a forest grown on a feature pool: keeps only the features the trees use.
 
         Parameters
@@ -207,13 +248,17 @@ class Model:
             Default ``-inf`` (never exit).
         normalize : bool
         metadata : dict, optional
+        pool_channels : ndarray of int8, shape (P,), optional
+        margin, temperature, exit_min_sigma : float
+            The scan settings (see :class:`Model`).
         """
         used, small = forest.reindex()
         exits = np.full(small.n_trees, -np.inf, np.float32) if exit_thresholds is None else exit_thresholds
         channels = None if pool_channels is None else np.asarray(pool_channels)[used]
         return cls(window, np.asarray(pool)[used], small.node_features, small.node_thresholds,
                    small.leaf_values, exits, small.mode, normalize, dict(metadata or {}),
-                   small.importances, feature_channels=channels)
+                   small.importances, feature_channels=channels, margin=margin,
+                   temperature=temperature, exit_min_sigma=exit_min_sigma)
 
     def exits_for(self, threshold: float) -> np.ndarray:
         """The exit thresholds for a scan that keeps scores of at least ``threshold``.
@@ -277,11 +322,6 @@ class Model:
                            self.temperature)
 
     @property
-    def temperature(self) -> float:
-        """Temperature of the boosted score (1.0 when the file has none)."""
-        return float(self.metadata.get("score_temperature", 1.0))
-
-    @property
     def object_sizes(self) -> dict | None:
         """What the training labels said about object sizes (see
         :func:`detector.harvest.object_sizes`): ``smallest``, ``median`` and ``largest`` shorter
@@ -291,12 +331,6 @@ class Model:
         if all(_is_real(sizes.get(k)) and sizes[k] > 0 for k in ("smallest", "largest")):
             return sizes
         return None
-
-    @property
-    def exit_min_sigma(self) -> float:
-        """The contrast gate: windows whose grey-level standard deviation is below it are dropped
-        before any tree (0 = no gate: models without one, or without contrast normalisation)."""
-        return float(self.metadata.get("exit_min_sigma", 0.0)) if self.normalize else 0.0
 
     def summary(self) -> list[str]:
         """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.
@@ -331,7 +365,7 @@ class Model:
             text += (f"; tighter exits for scan thresholds from {float(self.exit_levels[0]):g} "
                      f"to {float(self.exit_levels[-1]):g}")
         lines.append(text)
-        gate = _real(md.get("exit_min_sigma"))
+        gate = self.exit_min_sigma
         if gate:
             lines.append(f"contrast gate: windows with a grey-level standard deviation below "
                          f"{gate:.1f} are dropped before any tree")
@@ -385,8 +419,7 @@ def metadata_sha256(model: Model) -> str:
 def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
-        "format_version": np.array(FORMAT_VERSION if model.feature_channels is None
-                                   else CHANNELS_FORMAT_VERSION, dtype=np.int64),
+        "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
         "kind": np.array("model"),
         "window": np.array(model.window, dtype=np.int32),
         "features": model.features,
@@ -396,6 +429,9 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
         "exit_thresholds": model.exit_thresholds,
         "mode": np.array(model.mode),
         "normalize": np.array(model.normalize, dtype=bool),
+        "margin": np.array(model.margin, dtype=np.float64),
+        "score_temperature": np.array(model.temperature, dtype=np.float64),
+        "exit_min_sigma": np.array(model.exit_min_sigma, dtype=np.float64),
         "metadata": np.array(metadata_text(model)),
     }
     if model.feature_importances is not None:
@@ -425,8 +461,9 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     npzfile.save_npz(path, arrays)
 
 
-def validate_model(a: dict[str, np.ndarray], path) -> dict:
-    """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata."""
+def validate_model(a: dict[str, np.ndarray], path) -> tuple[dict, dict]:
+    """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata and the scan
+    settings (:data:`SCAN_SETTINGS`: from the arrays, or from the metadata before version 3)."""
     sizes = npzfile.check_arrays(a, MODEL_SPEC, path, kind="model")
     t, nodes, leaves, n_features = sizes["T"], sizes["nodes"], sizes["leaves"], sizes["F"]
     if t < 1:
@@ -498,23 +535,30 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
         leaves = a["leaf_values"]
         if leaves.min() < 0 or leaves.max() > 1:
             raise InputError("bagged model leaf values must be object fractions in 0..1", path=path)
-    # the two metadata values the scan computes with (the rest is only reported)
-    margin = metadata.get("margin", 0.0)
+    # the values the scan computes with (the rest of the metadata is only reported)
+    version = int(a["format_version"])
+    if version in METADATA_SETTINGS_VERSIONS:
+        where, settings = "metadata", {k: metadata.pop(k, v) for k, v in SCAN_SETTINGS.items()}
+    else:
+        missing = [k for k in SCAN_SETTINGS if k not in a]
+        if missing:
+            raise InputError(f"model array {missing[0]!r} is missing (format version {version} "
+                             "needs it)", path=path)
+        where, settings = "array", {k: a[k].item() for k in SCAN_SETTINGS}
+    margin, temperature, gate = (settings[k] for k in SCAN_SETTINGS)
     if not _is_real(margin) or margin < 0:
-        raise InputError(f"model metadata 'margin' must be a number >= 0, got {_shown(margin)}",
+        raise InputError(f"model {where} 'margin' must be a number >= 0, got {_shown(margin)}",
                          path=path)
     if min(width, height) / (1.0 + 2.0 * margin) < 1.0:
-        raise InputError(f"model metadata 'margin' {margin:g} leaves less than one pixel of the "
+        raise InputError(f"model {where} 'margin' {margin:g} leaves less than one pixel of the "
                          f"object in the {width}x{height} window", path=path)
-    temperature = metadata.get("score_temperature", 1.0)
     if not _is_real(temperature) or temperature <= 0:
-        raise InputError("model metadata 'score_temperature' must be a number > 0, got "
+        raise InputError(f"model {where} 'score_temperature' must be a number > 0, got "
                          f"{_shown(temperature)}", path=path)
-    gate = metadata.get("exit_min_sigma", 0.0)
     if not _is_real(gate) or gate < 0:
-        raise InputError("model metadata 'exit_min_sigma' must be a number >= 0, got "
+        raise InputError(f"model {where} 'exit_min_sigma' must be a number >= 0, got "
                          f"{_shown(gate)}", path=path)
-    return metadata
+    return metadata, settings
 
 
 def _is_real(value) -> bool:
@@ -560,10 +604,10 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
     if version.ndim != 0 or version.dtype.kind not in "iu":
         raise InputError("model array 'format_version' must be one integer", path=path)
     if int(version) not in READ_VERSIONS:
-        raise InputError(f"unsupported model format version {int(version)} "
-                         f"(this patchwood reads {' and '.join(map(str, READ_VERSIONS))})",
-                         path=path)
-    metadata = validate_model(a, path)
+        raise InputError(f"unsupported model format version {int(version)} (this patchwood reads "
+                         f"{', '.join(map(str, READ_VERSIONS[:-1]))} and {READ_VERSIONS[-1]}; "
+                         "train the model again with `patchwood train`)", path=path)
+    metadata, settings = validate_model(a, path)
     return Model(
         window=tuple(int(v) for v in a["window"]),
         features=a["features"],
@@ -578,4 +622,7 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
         exit_levels=a.get("exit_levels"),
         exit_table=a.get("exit_table"),
         feature_channels=a.get("feature_channels"),
+        margin=settings["margin"],
+        temperature=settings["score_temperature"],
+        exit_min_sigma=settings["exit_min_sigma"],
     )

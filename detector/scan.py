@@ -707,7 +707,7 @@ class Engine:
         self.model = model
         self.settings = settings or ScanSettings()
         self.window = tuple(int(v) for v in model.window)
-        self.margin = float(model.metadata.get("margin", 0.0))
+        self.margin = float(model.margin)
         # the plans hold the features in the order the trees first use them (see first_use_order)
         order, node_features = first_use_order(model.node_features, len(model.features))
         self.features = np.asarray(model.features)[order]

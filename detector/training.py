@@ -31,9 +31,8 @@ def train_model(bank: PatchBank, params: dict, bank_path=None, progress=None):
                          "again with --negatives-per-image or --near-negatives above 0)",
                          path=bank_path)
     clf = PatchClassifier(**params)
-    clf.fit(bank.patches, bank.labels, progress=progress)
+    clf.fit(bank.patches, bank.labels, progress=progress, margin=float(bank.margin))
     model = clf.model_
-    model.metadata["margin"] = float(bank.margin)
     model.metadata["bank"] = {
         "sha256": npzfile.file_sha256(bank_path) if bank_path is not None else None,
         "counts": bank.counts(),

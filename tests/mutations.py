@@ -54,7 +54,7 @@ MUTATIONS = (
         "detector/geometry.py",
         'order = np.argsort(-s, kind="stable").astype(np.int64)',
         'order = np.argsort(-s, kind="quicksort").astype(np.int64)',
-        ("tests/test_boxes.py",)),
+        ("tests/test_geometry.py",)),
     Mutation(
         "M3", "Model.exits_for picks the row of the next exit level up",
         "detector/model.py",
@@ -70,7 +70,7 @@ MUTATIONS = (
         ("tests/test_scan.py", "-k", "scale")),
     Mutation(
         "M6", "score temperature fitted with an unbalanced log-loss",
-        "detector/forest.py",
+        "detector/cascade.py",
         "return (np.logaddexp(0.0, -2.0 * o / t).mean() + np.logaddexp(0.0, 2.0 * b / t).mean()) / 2",
         "return (np.logaddexp(0.0, -2.0 * o / t).sum() + np.logaddexp(0.0, 2.0 * b / t).sum()) / "
         "(len(o) + len(b))",
@@ -83,7 +83,7 @@ MUTATIONS = (
         ("tests/test_temperature.py",)),
     Mutation(
         "E1", "early exit: exit_kept gives up one calibration object more than the budget",
-        "detector/forest.py",
+        "detector/cascade.py",
         "budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))",
         "budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)) + 1, max(n - 1, 0))",
         ("tests/test_early_exit.py", "tests/test_forest.py")),
@@ -95,19 +95,19 @@ MUTATIONS = (
         ("tests/test_early_exit.py",)),
     Mutation(
         "E3", "early exit: the any-threshold exits calibrated only on the objects scoring 0.5 or more",
-        "detector/classifier.py",
+        "detector/cascade.py",
         "running[exit_kept(running, bg_running[past_gate], recall, lost)].min(axis=0))",
         "running[at][exit_kept(running[at], bg_running[past_gate], recall, lost[at])].min(axis=0))",
         ("tests/test_early_exit.py",)),
     Mutation(
         "E4", "early exit: a level's exit row keeps only the objects scoring above the level, not at it",
-        "detector/forest.py",
+        "detector/cascade.py",
         "sel = fin >= np.float32(level)",
         "sel = fin > np.float32(level)",
         ("tests/test_early_exit.py",)),
     Mutation(
         "G1", "contrast gate: the variance fraction applied to the standard deviation",
-        "detector/forest.py",
+        "detector/cascade.py",
         "return float(sig[kept_objects(final_scores, exit_recall)].min() * math.sqrt(variance_fraction))",
         "return float(sig[kept_objects(final_scores, exit_recall)].min() * variance_fraction)",
         ("tests/test_early_exit.py",)),
@@ -119,7 +119,7 @@ MUTATIONS = (
         ("tests/test_scan.py", "-k", "gate")),
     Mutation(
         "G3", "contrast gate: calibrated on the sample standard deviation (n - 1), not the scan's",
-        "detector/classifier.py",
+        "detector/cascade.py",
         "var = (flat * flat).sum(axis=1) / area - mean * mean",
         "var = ((flat * flat).sum(axis=1) - area * mean * mean) / (area - 1)",
         ("tests/test_early_exit.py",)),

@@ -171,7 +171,7 @@ def bank(tmp_path_factory):
 def channel_model(request, bank):
     clf = PatchClassifier(n_trees=20, pool=2000, mode=request.param, random_state=0,
                           channels="gradient")
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     model = clf.model_
     assert model.feature_channels is not None and (model.feature_channels > 0).sum() >= 5
     return model
@@ -282,7 +282,7 @@ def test_channel_model_file_round_trip(channel_model, tmp_path):
     path = tmp_path / "channels.npz"
     save_model(path, channel_model)
     with np.load(path, allow_pickle=False) as npz:
-        assert int(npz["format_version"]) == CHANNELS_FORMAT_VERSION
+        assert int(npz["format_version"]) == FORMAT_VERSION >= CHANNELS_FORMAT_VERSION
         assert npz["feature_channels"].dtype == np.int8
     loaded = load_model(path)
     np.testing.assert_array_equal(loaded.feature_channels, channel_model.feature_channels)
@@ -294,12 +294,12 @@ def test_channel_model_file_round_trip(channel_model, tmp_path):
 
 
 def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
-    """A grey-only model is written as before channels existed (format 1, no feature_channels),
+    """A grey-only model is written without feature_channels,
     loads with no channels, and its scan reads the one-plane integral image."""
     clf = PatchClassifier(n_trees=10, pool=800, random_state=0).fit(
-        bank.patches, bank.labels, metadata={"margin": bank.margin})
+        bank.patches, bank.labels, margin=bank.margin)
     same = PatchClassifier(n_trees=10, pool=800, random_state=0, channels="grey").fit(
-        bank.patches, bank.labels, metadata={"margin": bank.margin})
+        bank.patches, bank.labels, margin=bank.margin)
     arrays = model_arrays(clf.model_)
     assert int(arrays["format_version"]) == FORMAT_VERSION and "feature_channels" not in arrays
     for name, value in model_arrays(same.model_).items():

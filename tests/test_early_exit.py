@@ -4,10 +4,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from detector.classifier import PatchClassifier, misaligned_copies
-from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
-                             exit_kept, float32_thresholds, kept_objects,
-                             order_for_early_exit, trees_evaluated)
+from detector.cascade import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
+                              exit_kept, kept_objects, misaligned_copies, order_for_early_exit,
+                              trees_evaluated)
+from detector.classifier import PatchClassifier
+from detector.forest import float32_thresholds
 from detector.model import Model
 from shared import calibration_copies, top_bright
 
@@ -111,7 +112,7 @@ def test_fitted_exit_keeps_every_kept_calibration_copy():
     # ... nor by the contrast gate: every copy's standard deviation (numpy's population std of its
     # pixels) is at least the gate, and the gate is sqrt(0.5) of the lowest one (all are kept)
     sig = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1)
-    gate = m.metadata["exit_min_sigma"]
+    gate = m.exit_min_sigma
     assert gate == pytest.approx(np.sqrt(0.5) * sig.min(), rel=1e-12)
     assert (sig >= gate).all()
 
@@ -232,7 +233,7 @@ def test_fitted_exit_gives_up_at_most_its_budget():
         m = clf.model_
         cal = calibration_copies(clf, patches)
         run = m.running_scores(cal)
-        gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
+        gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.exit_min_sigma
         rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
         fin = final_score(m.mode, run[:, -1], m.n_trees, m.temperature)
         for level, row in rows:
@@ -247,7 +248,7 @@ def test_fitted_exit_gives_up_at_most_its_budget():
 def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed):
     """The compiled greedy loop gives exactly the order of the plain-numpy one, ties included
     (leaves take few values, so many trees drop as many windows)."""
-    from detector.forest import _order_for_early_exit_numpy
+    from detector.cascade import _order_for_early_exit_numpy
 
     rng = np.random.default_rng(seed)
     o = rng.integers(-2, 3, (n_obj, t)) * 0.25
@@ -293,7 +294,7 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
     every level and between levels: ``Model.exits_for(c)`` gives it, and a scan given
     ``exit_level=c`` uses it, whether its own threshold is c or 0. The windows kept, and the
     trees they cost, show which row the compiled scan used."""
-    from detector.forest import EXIT_LEVELS
+    from detector.cascade import EXIT_LEVELS
     from detector.scan import Engine, ScanSettings
 
     levels = np.array(EXIT_LEVELS, np.float32)

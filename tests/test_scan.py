@@ -38,7 +38,7 @@ def bank(tmp_path_factory):
 
 def _fit(bank, mode):
     clf = PatchClassifier(n_trees=20, pool=2000, mode=mode, random_state=0)
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     return clf.model_
 
 
@@ -98,7 +98,7 @@ def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit
     from detector import _kernels
 
     clf = PatchClassifier(n_trees=12, pool=1500, depth=depth, mode="boosted", random_state=2)
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     engine = every_window(clf.model_, early_exit=early_exit, threshold=0.3)
     gray = frame(4)
     b1, r1, w1, t1 = engine.candidates(gray)
@@ -481,9 +481,9 @@ def test_contrast_gate_drops_exactly_the_flat_windows(model):
     gray = frame(9)
     gated = copy.deepcopy(model)
     gated.exit_thresholds[:] = -np.inf  # early exit on, but the gate is its only exit
-    gated.metadata["exit_min_sigma"] = 30.0  # well inside the frame's range of window contrasts
+    gated.exit_min_sigma = 30.0  # well inside the frame's range of window contrasts
     plain = copy.deepcopy(gated)
-    plain.metadata["exit_min_sigma"] = 0.0
+    plain.exit_min_sigma = 0.0
     b0, r0, w0, t0 = every_window(plain, threshold=0.0, early_exit=True).candidates(gray)
     b1, r1, w1, t1 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray)
     b2, r2, _, t2 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray, use_numpy=True)

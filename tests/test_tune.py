@@ -201,7 +201,7 @@ def test_objective_equals_direct_computation(scenario, folds):
     for train_idx, test_idx in image_folds(items, FOLDS, SEED):
         keep = np.isin(bank.image_index, train_idx)
         model = PatchClassifier(**PARAMS).fit(bank.patches[keep], bank.labels[keep]).model_
-        model.metadata["margin"] = bank.margin  # the scan reports the box inside the window
+        model.margin = bank.margin  # the scan reports the box inside the window
         # ... and looks for the labelled object sizes the harvest recorded
         model.metadata["bank"] = {"harvest": {"object_sizes": bank.metadata["object_sizes"]}}
         engine = Engine(model, ScanSettings(threshold=EVALUATION_THRESHOLD))
