@@ -22,7 +22,7 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from detector.channels import N_CHANNELS  # noqa: E402
+from detector.features import N_CHANNELS  # noqa: E402
 from detector.classifier import PatchClassifier  # noqa: E402
 from detector.harvest import harvest  # noqa: E402
 from detector.labels import read_labels  # noqa: E402

@@ -70,7 +70,7 @@ from synthetic_images import render_frame, render_scenario  # noqa: E402
 FRAME_MS_GOAL = 15.0
 RATIO_GOAL = 1000.0
 
-from detector.features import skimage_coordinates  # noqa: E402
+from detector.features._rectangles import skimage_coordinates  # noqa: E402
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
 

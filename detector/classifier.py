@@ -19,7 +19,7 @@ from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.utils.validation import check_is_fitted
 
 from detector import features as _features
-from detector.channels import CHOICES as CHANNEL_CHOICES
+from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.errors import InputError
 from detector.cascade import calibrate, calibration_count
 from detector.forest import (GROWERS, MAX_DEPTH, MODES, bin_columns, final_score, grow_forest,

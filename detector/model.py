@@ -14,7 +14,7 @@ array                  dtype, shape       meaning
 ``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
                                           features the trees use (unused slots all zero)
 ``feature_channels``   int8, (F,)         the channel each feature reads (0 grey, 1..7 the
-                                          gradient channels of :mod:`detector.channels`);
+                                          gradient channels of :mod:`detector.features`);
                                           absent: all grey (format 1; optional)
 ``node_features``      int32, (T, 2**D-1) index into ``features``, heap order
 ``node_thresholds``    float32, (T, 2**D-1)  go left when ``value <= threshold``
@@ -164,7 +164,7 @@ class Model:
     exit_table : ndarray of float32, shape (L, T), optional
         Exits for scans at a given score threshold or above (see :meth:`exits_for`).
     feature_channels : ndarray of int8, shape (F,), optional
-        The channel each feature reads (:mod:`detector.channels`); None (or all 0): grey only.
+        The channel each feature reads (:mod:`detector.features`); None (or all 0): grey only.
     margin : float >= 0
         Context margin of the training patches, a fraction of the object box on every side: the
         scan reports a window shrunk by it (:func:`detector.geometry.window_box_to_object_box`).
@@ -512,7 +512,7 @@ def validate_model(a: dict[str, np.ndarray], path) -> tuple[dict, dict]:
         if np.isnan(table).any() or np.isposinf(table).any():
             raise InputError("model exit table must be finite or -inf", path=path)
     if "feature_channels" in a:
-        from detector.channels import N_CHANNELS
+        from detector.features import N_CHANNELS
 
         channels = a["feature_channels"]
         if channels.min() < 0 or channels.max() >= N_CHANNELS:

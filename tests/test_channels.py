@@ -1,4 +1,4 @@
-"""Gradient channels and channel features (detector.channels; Integral Channel Features, Dollár, Tu,
+"""Gradient channels and channel features (detector.features; Integral Channel Features, Dollár, Tu,
 Perona and Belongie, BMVC 2009): the channel images against numpy references, the compiled
 integral images against their numpy twin, channel feature values against the numpy twin, the
 scan of channel models against its numpy twin and against the classifier on patches cut by hand,
@@ -16,12 +16,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from detector.channels import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
+from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
                                gradient_channels, orientation_bins, patch_channels)
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
-                               random_pool)
+from detector.features import channel_pool, evaluate_features, evaluate_features_numpy, random_pool
 from detector.harvest import harvest
 from detector.labels import read_labels
 from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \

@@ -533,8 +533,9 @@ def test_split_bounds_reproduce_float32_comparison(t, others, steps):
 @given(st.integers(1, 40), st.integers(1, 40), st.integers(0, 2**32 - 1))
 @settings(max_examples=40, deadline=None)
 def test_frame_integrals_equal_the_project_integrals(h, w, seed):
-    """cv2.integral2 (the scan's fast path for 8-bit frames) == detector.integral, exactly."""
-    from detector.integral import integral_image, squared_integral_image
+    """cv2.integral2 (the scan's fast path for 8-bit frames) == detector.features.integral_image,
+    exactly."""
+    from detector.features import integral_image, squared_integral_image
     from detector.scan import frame_integrals
 
     gray = np.random.default_rng(seed).integers(0, 256, (h, w), dtype=np.uint8)
@@ -565,7 +566,7 @@ def test_integral_image_switches_to_float64_where_int32_would_overflow(monkeypat
     limit float64 sums; at the limits, int32 and uint32. (The limits are lowered here so that the
     frames stay small; the arithmetic is the same: 255 * pixels against 2**31 - 1, 2**32 - 1.)"""
     from detector import scan
-    from detector.integral import integral_image
+    from detector.features import integral_image
 
     assert scan.INT32_PIXELS * 255 <= 2**31 - 1 < (scan.INT32_PIXELS + 1) * 255
     assert scan.UINT32_PIXELS * 255 <= 2**32 - 1 < (scan.UINT32_PIXELS + 1) * 255
