@@ -103,7 +103,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         feature values. None grows on the feature values themselves (with scikit-learn).
     grower : {"histogram", "sklearn"}, default="histogram"
         How trees grow on the bins: the compiled histogram grower
-        (:mod:`detector.histogram_trees`), or scikit-learn's tree learners, the reference it is
+        (:mod:`detector.forest`), or scikit-learn's tree learners, the reference it is
         tested against (the same trees up to the random choice of features at each node).
         Ignored when ``max_bins`` is None.
     random_state : None, int or numpy generator

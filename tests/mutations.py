@@ -77,7 +77,7 @@ MUTATIONS = (
         ("tests/test_temperature.py",)),
     Mutation(
         "M7", "final_score ignores the temperature",
-        "detector/forest.py",
+        "detector/forest/_flat.py",
         "return 1.0 / (1.0 + np.exp(-2.0 * total / float(temperature)))",
         "return 1.0 / (1.0 + np.exp(-2.0 * total))",
         ("tests/test_temperature.py",)),
