@@ -34,7 +34,7 @@ Baseline, assembled from general-purpose libraries:
   that violate the margin (decision value at least -1; the windows a hinge-loss SVM learns from,
   Felzenszwalb et al., PAMI 2010) after non-maximum suppression at IoU 0.5, drop those whose box has
   IoU 0.3 or more with a labelled nut, keep at most 20 per frame and 4,000 in all (the caps of
-  ``detector.mining.mine``), cut them out as 24 x 24 patches the way the bank's patches are cut
+  ``detector.training.mine``), cut them out as 24 x 24 patches the way the bank's patches are cut
   (``detector.harvest.crop_region``), add them as background and train again.
 * scan: an image pyramid over the same scales as patchwood's (``detector.scan.scales_for`` from
   the same object-size range, step 1.2): each level is the frame resized by 1/scale with

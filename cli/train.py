@@ -15,8 +15,7 @@ from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import (DEFAULT_MINE_ROUNDS, mining_params, mining_source,
-                                train_with_mining)
+from detector.training import DEFAULT_MINE_ROUNDS, mining_params, mining_source, train_with_mining
 
 
 #: Options that only shape hard-negative mining (parameter name -> option).

@@ -64,7 +64,7 @@ MUTATIONS = (
         ("tests/test_early_exit.py",)),
     Mutation(
         "M5", "scaled rectangles divided by the nominal area s*s*A instead of their rounded area",
-        "detector/scan.py",
+        "detector/scan/_engine.py",
         "scaled_area = ((x1 - x0) * (y1 - y0)).astype(np.float64)",
         "scaled_area = base_area * scale * scale",
         ("tests/test_scan.py", "-k", "scale")),
@@ -89,7 +89,7 @@ MUTATIONS = (
         ("tests/test_early_exit.py", "tests/test_forest.py")),
     Mutation(
         "E2", "early exit: the compiled scan drops a window whose running score equals the exit",
-        "detector/_kernels.py",
+        "detector/scan/_kernels.py",
         "k += np.int64(s >= low and s + rest >= cutoff)",
         "k += np.int64(s > low and s + rest >= cutoff)",
         ("tests/test_early_exit.py",)),
@@ -113,7 +113,7 @@ MUTATIONS = (
         ("tests/test_early_exit.py",)),
     Mutation(
         "G2", "contrast gate: the scan compares the window variance with the gate unsquared",
-        "detector/scan.py",
+        "detector/scan/_engine.py",
         "self.min_var = gate * gate if gate > 0 else -np.inf",
         "self.min_var = gate if gate > 0 else -np.inf",
         ("tests/test_scan.py", "-k", "gate")),

@@ -70,7 +70,7 @@ from PIL import Image, ImageOps
 
 import cli.main
 from detector import npzfile
-from detector.batch import failures_path
+from detector.scan import failures_path
 from detector.errors import InputError
 from detector.evaluate import evaluate
 from detector.harvest import harvest, load_bank, save_bank
@@ -1165,10 +1165,10 @@ def test_file_names_that_are_not_utf8_are_written_escaped(trained, tmp_path, mon
 
 
 def interrupted_scan(model, folder, out, after: int, **settings):
-    """A real run of the folder (``detector.batch.scan_paths``, writing after every image) stopped
+    """A real run of the folder (``detector.scan.scan_paths``, writing after every image) stopped
     after ``after`` images, as a killed run leaves it: a detections file and the provenance side
     file that describes it, which --resume checks."""
-    from detector.batch import scan_paths
+    from detector.scan import scan_paths
     from detector.scan import ScanSettings
 
     class Stop(KeyboardInterrupt):

@@ -95,7 +95,7 @@ def test_compiled_scan_equals_numpy_twin(model, early_exit):
 def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit):
     """Depths other than 2 take the kernel's general tree walk; a 160 x 160 frame at stride 2
     spans several chunks of windows (more than the kernel's CHUNK of 1,024 at scale 1)."""
-    from detector import _kernels
+    from detector.scan import _kernels
 
     clf = PatchClassifier(n_trees=12, pool=1500, depth=depth, mode="boosted", random_state=2)
     clf.fit(bank.patches, bank.labels, margin=bank.margin)
@@ -565,7 +565,7 @@ def test_integral_image_switches_to_float64_where_int32_would_overflow(monkeypat
     """An all-white frame one pixel above the int32 limit gets uint32 sums, one above the uint32
     limit float64 sums; at the limits, int32 and uint32. (The limits are lowered here so that the
     frames stay small; the arithmetic is the same: 255 * pixels against 2**31 - 1, 2**32 - 1.)"""
-    from detector import scan
+    from detector.scan import _engine as scan
     from detector.features import integral_image
 
     assert scan.INT32_PIXELS * 255 <= 2**31 - 1 < (scan.INT32_PIXELS + 1) * 255
@@ -606,7 +606,7 @@ def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
 def test_scan_gives_the_same_with_float64_and_uint32_sums(bagged, monkeypatch, limits, dtype):
     """Frames above the int32 limit are scanned on uint32 sums, above the uint32 limit on float64
     sums: the same windows and scores, by the compiled kernel and by its numpy twin."""
-    from detector import scan
+    from detector.scan import _engine as scan
 
     gray = frame(seed=6)
     want = every_window(bagged, threshold=0.2).candidates(gray)
@@ -626,7 +626,8 @@ def test_uint32_integral_images_hold_sums_past_two_to_the_31():
     rows: about 255 * 8.64 million - 20 * 2,960 * 127.5 = 2.196e9) but stays below 2**32 gets a
     uint32 integral image, equal to numpy's exact int64 cumulative sums (the check that
     OpenCV's int32 additions wrap around), in a reused buffer and in a fresh one."""
-    from detector.scan import INT32_PIXELS, UINT32_PIXELS, frame_integrals
+    from detector.scan import frame_integrals
+    from detector.scan._engine import INT32_PIXELS, UINT32_PIXELS
 
     gray = np.full((2920, 2960), 255, np.uint8)
     gray[1000:1020] = np.random.default_rng(5).integers(0, 256, (20, 2960), dtype=np.uint8)

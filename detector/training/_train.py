@@ -125,7 +125,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
     from contextlib import nullcontext
 
     from detector.harvest import KIND_MINED
-    from detector.mining import mine
+    from detector.training._mining import mine
 
     def bar(description, total):
         if progress_factory is None:

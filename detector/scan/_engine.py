@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from detector import _kernels
+from detector.scan import _kernels
 from detector.geometry import nms
 from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
@@ -41,7 +41,7 @@ def _round(v):
 
 @dataclass
 class ScalePlan:
-    """What the kernel needs for one scale (see :mod:`detector._kernels`)."""
+    """What the kernel needs for one scale (see :mod:`detector.scan`)."""
 
     scale: float
     window: tuple[int, int]  # scaled window width, height in pixels
@@ -299,7 +299,7 @@ def skipped_sizes_note(model, settings) -> str | None:
 @dataclass
 class FramePlan:
     """Every scale's windows and plan for one image size: per scale for reading and for the numpy
-    twin, and stacked for :func:`detector._kernels.scan_frame`, which scans them all in one call.
+    twin, and stacked for :func:`detector.scan._kernels.scan_frame`, which scans them all in one call.
     Window positions are in the image padded by ``pad`` pixels on every side."""
 
     scales: list  # [(ScalePlan, xs, ys)] of the scales that have windows
@@ -889,7 +889,7 @@ class Engine:
 
         The same as :meth:`candidates` followed by :meth:`detections` with the image's size (the
         numpy route takes that way, and the tests hold the two equal), but the compiled route turns
-        the windows kept into detections in one compiled call (:func:`detector._kernels.finish`):
+        the windows kept into detections in one compiled call (:func:`detector.scan._kernels.finish`):
         the two dozen numpy calls of that way cost a tenth of a small frame's scan.
         """
         if use_numpy:
@@ -964,7 +964,7 @@ def clip_boxes(boxes, image_size) -> np.ndarray:
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
                      offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
                      exit_thresholds, cutoff, bound, out_x, out_y, out_score):
-    """Plain-numpy twin of :func:`detector._kernels.scan_scale` (same arguments, same results),
+    """Plain-numpy twin of :func:`detector.scan._kernels.scan_scale` (same arguments, same results),
     vectorised over all windows of the scale. For tests and as a readable reference."""
     gx, gy = np.meshgrid(xs, ys)  # row-major: y outer, x inner, as in the kernel
     gx, gy = gx.ravel(), gy.ravel()
