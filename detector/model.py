@@ -60,10 +60,10 @@ from detector import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
-                             forest_running_scores)
+                             forest_running_scores, tree_depth)
 
-__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model",
-           "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
+__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe",
+           "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
            "metadata_sha256"]
 
 #: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
@@ -283,11 +283,11 @@ class Model:
 
     @property
     def n_trees(self) -> int:
-        return int(self.node_features.shape[0])
+        return len(self.node_features)
 
     @property
     def depth(self) -> int:
-        return int(self.node_features.shape[1] + 1).bit_length() - 1
+        return tree_depth(self.node_features)
 
     @property
     def forest(self) -> FlatForest:
@@ -333,7 +333,8 @@ class Model:
         return None
 
     def summary(self) -> list[str]:
-        """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.
+        """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank
+        (the facts of :func:`describe`).
 
         Examples
         --------
@@ -342,30 +343,30 @@ class Model:
         >>> m.summary()[0]
         'window: 24 x 24 pixels (width x height)'
         """
-        md = _mapping(self.metadata)  # a hand-edited file may hold anything: show what makes sense
+        d = describe(self)
         kind = "random forest (bagged)" if self.mode == "bagged" else "Gentle AdaBoost (boosted)"
         lines = [
-            f"window: {self.window[0]} x {self.window[1]} pixels (width x height)",
-            f"trees: {self.n_trees} of depth {self.depth}, {kind}",
+            f"window: {d['window']['width']} x {d['window']['height']} pixels (width x height)",
+            f"trees: {d['trees']} of depth {d['depth']}, {kind}",
         ]
-        pool = _real(md.get("pool_drawn")) or _real(_mapping(md.get("parameters")).get("pool"))
-        used = f"features used: {len(self.features)}"
+        pool = d["pool"]
+        used = f"features used: {d['features_used']}"
         lines.append(used + (f" of a pool of {_plain(pool)}" if pool else "") +
-                     f" ({'contrast-normalised' if self.normalize else 'raw'} values)")
-        oob = _real(md.get("oob_error"))
+                     f" ({'contrast-normalised' if d['normalize'] else 'raw'} values)")
+        oob = d["training"]["oob_error"]
         lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
-        active = np.isfinite(self.exit_thresholds).sum()
-        cal = _mapping(md.get("calibration"))
-        text = f"early exit: {active} of {self.n_trees} trees have an exit threshold"
+        ee = d["early_exit"]
+        cal = ee["calibration"]
+        text = f"early exit: {ee['trees_with_exit']} of {d['trees']} trees have an exit threshold"
         recall = _real(cal.get("exit_recall"))
         if recall is not None:
             text += (f", calibrated for recall {_plain(recall)} on "
                      f"{_plain(_real(cal.get('objects')) or 0)} held-out objects")
-        if self.exit_levels is not None and len(self.exit_levels):
-            text += (f"; tighter exits for scan thresholds from {float(self.exit_levels[0]):g} "
-                     f"to {float(self.exit_levels[-1]):g}")
+        if ee["levels"]:
+            text += (f"; tighter exits for scan thresholds from {ee['levels'][0]:g} "
+                     f"to {ee['levels'][-1]:g}")
         lines.append(text)
-        gate = self.exit_min_sigma
+        gate = d["scan"]["exit_min_sigma"]
         if gate:
             lines.append(f"contrast gate: windows with a grey-level standard deviation below "
                          f"{gate:.1f} are dropped before any tree")
@@ -376,11 +377,75 @@ class Model:
                 f"mean trees evaluated per window: objects {objects:.1f}, "
                 f"background {math.nan if background is None else background:.1f}"
             )
-        bank = md.get("bank_sha256") or _mapping(md.get("bank")).get("sha256")
-        date = md.get("date")
+        bank = d["training"]["bank_sha256"]
+        date = d["training"]["date"]
         lines.append(f"trained: {date if isinstance(date, str) and date else 'unknown date'}"
                      + (f", bank sha256 {bank[:12]}" if isinstance(bank, str) and bank else ""))
         return lines
+
+
+def describe(model: Model) -> dict:
+    """The facts of a model a person checks first, as one JSON-ready dict: the one describer that
+    :meth:`Model.summary` (and ``patchwood inspect``'s report) show.
+
+    Returns
+    -------
+    dict
+        ``window`` (``width``, ``height``), ``mode``, ``method``, ``trees``, ``depth``, ``splits``
+        (real split nodes), ``features_used``, ``pool``, ``features_per_node``, ``normalize``,
+        ``scan`` (the typed values the scan computes with: ``margin``, ``score_temperature``,
+        ``exit_min_sigma``), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
+        ``levels``, ``calibration``: the calibration record as stored) and ``training``
+        (``date``, ``parameters``, ``bank_sha256``, ``bank_counts``, ``patches``, ``oob_error``,
+        ``mining``, ``versions``). A hand-edited metadata record may hold anything: what does not
+        make sense is None or empty.
+
+    Examples
+    --------
+    >>> m = Model((24, 24), np.zeros((1, 4, 5), np.int32), [[0]], [[0.0]], [[0.0, 1.0]],
+    ...           [-np.inf], "bagged", metadata={"date": "2025-01-02", "oob_error": "?"})
+    >>> d = describe(m)
+    >>> d["trees"], d["depth"], d["splits"], d["early_exit"]["trees_with_exit"]
+    (1, 1, 1, 0)
+    >>> d["training"]["oob_error"], d["scan"]
+    (None, {'margin': 0.0, 'score_temperature': 1.0, 'exit_min_sigma': 0.0})
+    """
+    md = _mapping(model.metadata)
+    params = _mapping(md.get("parameters"))
+    bank = _mapping(md.get("bank"))
+    exits = np.isfinite(model.exit_thresholds)
+    levels = [] if model.exit_levels is None else [float(v) for v in model.exit_levels]
+    versions = md.get("versions")
+    return _jsonable({
+        "window": {"width": int(model.window[0]), "height": int(model.window[1])},
+        "mode": model.mode,
+        "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
+        "trees": model.n_trees,
+        "depth": model.depth,
+        "splits": int(model.forest.split_mask.sum()),
+        "features_used": int(len(model.features)),
+        "pool": _real(md.get("pool_drawn")) or _real(params.get("pool")),
+        "features_per_node": md.get("features_per_node", params.get("features_per_node")),
+        "normalize": bool(model.normalize),
+        "scan": {"margin": model.margin, "score_temperature": model.temperature,
+                 "exit_min_sigma": model.exit_min_sigma},
+        "early_exit": {
+            "trees_with_exit": int(exits.sum()),
+            "first_exit_after_tree": int(np.argmax(exits)) + 1 if exits.any() else None,
+            "levels": levels,
+            "calibration": _mapping(md.get("calibration")),
+        },
+        "training": {
+            "date": md.get("date"),
+            "parameters": params,
+            "bank_sha256": md.get("bank_sha256") or bank.get("sha256"),
+            "bank_counts": bank.get("counts"),
+            "patches": md.get("patches"),
+            "oob_error": _real(md.get("oob_error")),
+            "mining": md.get("mining") if isinstance(md.get("mining"), list) else [],
+            "versions": versions if isinstance(versions, dict) else {},
+        },
+    })
 
 
 def _mapping(value) -> dict:

@@ -59,7 +59,7 @@ from detector.forest._binning import (bin_columns, bin_columns_numpy, quantile_c
                                       quantile_cuts_numpy, thresholds_from_bins)
 from detector.forest._flat import (MAX_DEPTH, MODES, FlatForest, final_score, flatten_tree,
                                    float32_thresholds, forest_leaf_scores, forest_leaves,
-                                   forest_running_scores, forest_score)
+                                   forest_running_scores, forest_score, tree_depth)
 from detector.forest._growing import (GROWERS, forest_oob_scores, grow_forest, oob_scores,
                                       seed_sequence)
 from detector.forest._histogram import grow_histogram_tree
@@ -69,5 +69,5 @@ __all__ = [
     "forest_leaf_scores", "forest_running_scores", "forest_score", "final_score", "seed_sequence",
     "quantile_cuts", "quantile_cuts_numpy", "bin_columns", "bin_columns_numpy",
     "thresholds_from_bins", "forest_oob_scores", "oob_scores", "grow_histogram_tree", "MODES",
-    "GROWERS", "MAX_DEPTH",
+    "GROWERS", "MAX_DEPTH", "tree_depth",
 ]

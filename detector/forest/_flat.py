@@ -11,7 +11,7 @@ from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 __all__ = [
     "MODES", "MAX_DEPTH", "FlatForest", "float32_thresholds", "flatten_tree", "forest_leaves",
-    "forest_leaf_scores", "forest_running_scores", "final_score", "forest_score",
+    "forest_leaf_scores", "forest_running_scores", "final_score", "forest_score", "tree_depth",
 ]
 
 MODES = ("bagged", "boosted")
@@ -89,7 +89,7 @@ class FlatForest:
 
     @property
     def depth(self) -> int:
-        return int(self.node_features.shape[1] + 1).bit_length() - 1
+        return tree_depth(self.node_features)
 
     def reindex(self) -> tuple[np.ndarray, "FlatForest"]:
         """The columns the trees use, and the forest re-indexed into them.
@@ -118,6 +118,15 @@ class FlatForest:
         nf = np.minimum(nf, used.size - 1)
         imp = None if self.importances is None else np.asarray(self.importances)[used]
         return used, replace(self, node_features=nf, importances=imp, estimators=None, in_bag=None)
+
+
+def tree_depth(node_features: np.ndarray) -> int:
+    """The depth ``D`` of flat trees from their ``(T, 2**D - 1)`` node array.
+
+    >>> tree_depth(np.zeros((5, 7), np.int32))
+    3
+    """
+    return int(node_features.shape[1] + 1).bit_length() - 1
 
 
 def _infer_split_mask(flat: FlatForest) -> np.ndarray:
