@@ -23,11 +23,12 @@ The forest itself is never changed here: the caller applies ``Cascade.order`` to
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 
 from detector.forest import final_score, float32_thresholds
 from detector.geometry import crop_region
@@ -48,6 +49,9 @@ __all__ = [
     "order_for_early_exit",
     "trees_evaluated",
 ]
+
+#: What seeds a random draw here (as scikit-learn's ``random_state``).
+RandomState = int | np.random.SeedSequence | np.random.Generator | None
 
 #: Fraction of object patches held out from growing to calibrate the early exit ...
 CALIBRATION_FRACTION = 0.1
@@ -79,8 +83,8 @@ def calibration_count(n_objects: int) -> int:
     return int(n_cal)
 
 
-def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: int = 8,
-                      random_state=None) -> np.ndarray:
+def misaligned_copies(patches: ArrayLike, shift: float = 1.0, scale: float = 1.1, copies: int = 8,
+                      random_state: RandomState = None) -> np.ndarray:
     """Every patch as the scan's nearest window may see it: the patch itself, then ``copies``
     copies shifted by up to ``shift`` pixels along x and y and scaled by up to ``scale`` either way
     (uniform shifts, log-uniform scales: where an object falls between the scan's grid points and
@@ -109,7 +113,7 @@ def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: i
     return out.reshape(n * (copies + 1), h, w)
 
 
-def window_sigma(patches) -> np.ndarray:
+def window_sigma(patches: ArrayLike) -> np.ndarray:
     """Grey-level standard deviation of each patch, as the scan computes it for a window
     (population variance from the exact integer sums of the pixels and of their squares).
 
@@ -126,7 +130,7 @@ def window_sigma(patches) -> np.ndarray:
     return np.sqrt(np.maximum(var, 0.0))
 
 
-def fit_temperature(object_totals, background_totals) -> float:
+def fit_temperature(object_totals: ArrayLike, background_totals: ArrayLike) -> float:
     """Temperature scaling of the boosted score (Guo et al., ICML 2017, "On Calibration of Modern
     Neural Networks"): the ``T >= 1`` that minimises the class-balanced log-loss of
     ``1 / (1 + exp(-2 F / T))`` on object and background patches.
@@ -161,8 +165,9 @@ def fit_temperature(object_totals, background_totals) -> float:
     return 1.0 if t < 1.0 + 1e-3 else round(t, 6)
 
 
-def calibrate_exit(running_scores, exit_recall: float = 0.995, background=None,
-                   lost=None) -> np.ndarray:
+def calibrate_exit(running_scores: ArrayLike, exit_recall: float = 0.995,
+                   background: ArrayLike | None = None,
+                   lost: ArrayLike | None = None) -> np.ndarray:
     """Early-exit thresholds from the running scores of held-out object patches.
 
     At most ``floor((1 - exit_recall) * N)`` objects are set aside (:func:`exit_kept`: the ones
@@ -211,7 +216,8 @@ def calibrate_exit(running_scores, exit_recall: float = 0.995, background=None,
 EXIT_SEARCH_TREES = 64
 
 
-def exit_kept(running_scores, background_running=None, exit_recall: float = 0.995, lost=None,
+def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = None,
+              exit_recall: float = 0.995, lost: ArrayLike | None = None,
               search_trees: int = EXIT_SEARCH_TREES) -> np.ndarray:
     """Which calibration objects the early exit keeps (a boolean mask): all but at most
     ``floor((1 - exit_recall) * N)``, given up where that lets background windows exit soonest.
@@ -347,8 +353,10 @@ def _exit_earlier(b, first, cols, bounds, out):
 EXIT_LEVELS = (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95)
 
 
-def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.995,
-                         levels=EXIT_LEVELS, background=None, lost=None):
+def calibrate_exit_table(running_scores: ArrayLike, final_scores: ArrayLike,
+                         exit_recall: float = 0.995, levels: Sequence[float] = EXIT_LEVELS,
+                         background: ArrayLike | None = None,
+                         lost: ArrayLike | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Exit thresholds for scans at given score thresholds (direct backward pruning).
 
     A scan at score threshold ``c`` reports only windows that end at ``c`` or above, so its exits
@@ -393,7 +401,7 @@ def calibrate_exit_table(running_scores, final_scores, exit_recall: float = 0.99
             np.asarray(rows, np.float32).reshape(len(rows), t))
 
 
-def kept_objects(final_scores, exit_recall: float = 0.995) -> np.ndarray:
+def kept_objects(final_scores: ArrayLike, exit_recall: float = 0.995) -> np.ndarray:
     """Indices of the calibration objects the early exit promises to keep: all but the
     ``floor((1 - exit_recall) * N)`` with the lowest final score (at least one is kept).
 
@@ -416,7 +424,7 @@ def kept_objects(final_scores, exit_recall: float = 0.995) -> np.ndarray:
 CONTRAST_GATE_VARIANCE_FRACTION = 0.5
 
 
-def calibrate_contrast_gate(sigmas, final_scores, exit_recall: float = 0.995,
+def calibrate_contrast_gate(sigmas: ArrayLike, final_scores: ArrayLike, exit_recall: float = 0.995,
                             variance_fraction: float = CONTRAST_GATE_VARIANCE_FRACTION) -> float:
     """The lowest grey-level standard deviation a window may have and still be scored.
 
@@ -454,7 +462,8 @@ def calibrate_contrast_gate(sigmas, final_scores, exit_recall: float = 0.995,
     return float(sig[kept_objects(final_scores, exit_recall)].min() * math.sqrt(variance_fraction))
 
 
-def order_for_early_exit(object_leaves, background_leaves, exit_recall: float = 0.995) -> np.ndarray:
+def order_for_early_exit(object_leaves: ArrayLike, background_leaves: ArrayLike,
+                         exit_recall: float = 0.995) -> np.ndarray:
     """A tree order that drops background windows as early as the exit rule allows.
 
     The final score is a sum over trees, so any order gives the same scores; only the early exit
@@ -582,7 +591,7 @@ def _order_for_early_exit_numpy(object_leaves, background_leaves, exit_recall: f
     return np.asarray(order, dtype=np.int64)
 
 
-def trees_evaluated(running_scores, exit_thresholds) -> np.ndarray:
+def trees_evaluated(running_scores: ArrayLike, exit_thresholds: ArrayLike) -> np.ndarray:
     """How many trees each window evaluates before it exits (T when it never exits).
 
     Examples
@@ -630,7 +639,8 @@ class Cascade:
 
 def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, objects: np.ndarray,
               background: np.ndarray, *, exit_recall: float = 0.995, shift: float = 1.0,
-              scale: float = 1.1, contrast_gate: bool = True, random_state=None) -> Cascade:
+              scale: float = 1.1, contrast_gate: bool = True,
+              random_state: RandomState = None) -> Cascade:
     """Calibrate the early exit of a grown forest.
 
     Parameters

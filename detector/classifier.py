@@ -15,6 +15,7 @@ import numbers
 import time
 
 import numpy as np
+from numpy.typing import ArrayLike
 from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.utils.validation import check_is_fitted
 
@@ -38,7 +39,7 @@ CHANNEL_SHARE = 0.5
 VALUE_BLOCK = 2048
 
 
-def check_patches(patches, window=None) -> np.ndarray:
+def check_patches(patches: ArrayLike, window: tuple[int, int] | None = None) -> np.ndarray:
     """Validate grey patches: a (N, height, width) array of grey levels 0..255 -> uint8.
 
     Parameters

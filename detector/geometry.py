@@ -14,12 +14,13 @@ import math
 import cv2
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 
 __all__ = ["as_boxes", "box_area", "iou", "iou_one_to_many", "nms", "crop_region",
            "window_box_to_object_box", "object_box_to_window_box"]
 
 
-def as_boxes(boxes) -> np.ndarray:
+def as_boxes(boxes: ArrayLike) -> np.ndarray:
     """Return ``boxes`` as a float64 array of shape ``(K, 4)``.
 
     Parameters
@@ -51,7 +52,7 @@ def as_boxes(boxes) -> np.ndarray:
     return a.reshape(-1, 4)
 
 
-def box_area(boxes) -> np.ndarray:
+def box_area(boxes: ArrayLike) -> np.ndarray:
     """Continuous area ``width * height`` of each box.
 
     Parameters
@@ -71,7 +72,7 @@ def box_area(boxes) -> np.ndarray:
     return b[:, 2] * b[:, 3]
 
 
-def iou(a, b) -> np.ndarray:
+def iou(a: ArrayLike, b: ArrayLike) -> np.ndarray:
     """Intersection over union of every box in ``a`` with every box in ``b``.
 
     The intersection width is ``min(xa + wa, xb + wb) - max(xa, xb)`` (zero when negative), the
@@ -108,7 +109,7 @@ def iou(a, b) -> np.ndarray:
     return out
 
 
-def iou_one_to_many(box, boxes) -> np.ndarray:
+def iou_one_to_many(box: ArrayLike, boxes: ArrayLike) -> np.ndarray:
     """Intersection over union of one box with each of ``boxes``.
 
     Parameters
@@ -133,7 +134,7 @@ def iou_one_to_many(box, boxes) -> np.ndarray:
     return iou(box[None, :], boxes)[0]
 
 
-def nms(boxes, scores, iou_threshold: float = 0.3) -> np.ndarray:
+def nms(boxes: ArrayLike, scores: ArrayLike, iou_threshold: float = 0.3) -> np.ndarray:
     """Greedy non-maximum suppression.
 
     Boxes are visited in descending score; a box is kept when its IoU with every box kept before it
@@ -244,7 +245,8 @@ def _nms_numpy(boxes, order, iou_threshold):
     return np.asarray(keep, dtype=np.int64)
 
 
-def crop_region(image: np.ndarray, center, size, window, angle: float = 0.0,
+def crop_region(image: np.ndarray, center: tuple[float, float], size: tuple[float, float],
+                window: tuple[int, int], angle: float = 0.0,
                 mirror: bool = False) -> np.ndarray:
     """Cut a (possibly rotated) region of ``size=(width, height)`` around ``center`` and resize it
     to ``window=(W, H)`` with area averaging. Pixels outside the image repeat the border.
@@ -289,7 +291,8 @@ def crop_region(image: np.ndarray, center, size, window, angle: float = 0.0,
     return np.ascontiguousarray(region, dtype=np.uint8)
 
 
-def window_box_to_object_box(x, y, w, h, margin: float):
+def window_box_to_object_box(x: float, y: float, w: float, h: float,
+                             margin: float) -> tuple[float, float, float, float]:
     """The object box a window stands for: the window shrunk by the context margin.
 
     >>> window_box_to_object_box(0.0, 0.0, 12.0, 12.0, 0.25)
@@ -300,7 +303,8 @@ def window_box_to_object_box(x, y, w, h, margin: float):
     return x + (w - bw) / 2.0, y + (h - bh) / 2.0, bw, bh
 
 
-def object_box_to_window_box(x, y, w, h, margin: float):
+def object_box_to_window_box(x: float, y: float, w: float, h: float,
+                             margin: float) -> tuple[float, float, float, float]:
     """The window that stands for an object box: the box grown by the context margin."""
     ww, wh = w * (1.0 + 2.0 * margin), h * (1.0 + 2.0 * margin)
     return x - (ww - w) / 2.0, y - (wh - h) / 2.0, ww, wh

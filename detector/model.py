@@ -526,7 +526,7 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     npzfile.save_npz(path, arrays)
 
 
-def validate_model(a: dict[str, np.ndarray], path) -> tuple[dict, dict]:
+def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[dict, dict]:
     """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata and the scan
     settings (:data:`SCAN_SETTINGS`: from the arrays, or from the metadata before version 3)."""
     sizes = npzfile.check_arrays(a, MODEL_SPEC, path, kind="model")
