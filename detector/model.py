@@ -34,14 +34,17 @@ array                  dtype, shape       meaning
 ``score_temperature``  float64, ()        temperature of the boosted score (> 0; 1 for bagged)
 ``exit_min_sigma``     float64, ()        the contrast gate: windows whose grey-level standard
                                           deviation is below it are dropped before any tree
+``object_range``       float64, (2,)      shorter side of the smallest and the largest labelled
+                                          training object, pixels: the object sizes a scan looks
+                                          for by default (optional)
 ``metadata``           str, ()            JSON: parameters, bank hash, training figures, date,
                                           library versions (only reported: nothing the scan
                                           computes with)
 =====================  =================  =====================================================
 
 Versions 1 (grey features) and 2 (with ``feature_channels``) kept ``margin``,
-``score_temperature`` and ``exit_min_sigma`` in the metadata JSON; :func:`load_model` converts
-them to the typed values of version 3.
+``score_temperature`` and ``exit_min_sigma`` in the metadata JSON (and the object range in the
+bank's harvest record there); :func:`load_model` converts them to the typed values of version 3.
 
 See :mod:`detector.forest` for the tree layout, the running score and the final score.
 """
@@ -96,6 +99,7 @@ MODEL_SPEC = {
     "margin": npzfile.ArraySpec("float64", (), required=False),
     "score_temperature": npzfile.ArraySpec("float64", (), required=False),
     "exit_min_sigma": npzfile.ArraySpec("float64", (), required=False),
+    "object_range": npzfile.ArraySpec("float64", (2,), required=False),
     "metadata": npzfile.ArraySpec("str", ()),
 }
 
@@ -174,6 +178,9 @@ class Model:
     exit_min_sigma : float >= 0
         The contrast gate: windows whose grey-level standard deviation is below it are dropped
         before any tree (0 = no gate; always 0 without contrast normalisation).
+    object_range : ndarray of float64, shape (2,), optional
+        Shorter side of the smallest and the largest labelled training object in pixels (see
+        :func:`detector.harvest.object_sizes`): what a scan looks for by default. None: unknown.
 
     Examples
     --------
@@ -199,6 +206,7 @@ class Model:
     margin: float = 0.0
     temperature: float = 1.0
     exit_min_sigma: float = 0.0
+    object_range: np.ndarray | None = None
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -231,6 +239,11 @@ class Model:
             raise ValueError(f"temperature must be a number > 0, got {self.temperature!r}")
         if not (math.isfinite(self.exit_min_sigma) and self.exit_min_sigma >= 0):
             raise ValueError(f"exit_min_sigma must be a number >= 0, got {self.exit_min_sigma!r}")
+        if self.object_range is not None:
+            self.object_range = np.asarray(self.object_range, dtype=np.float64).reshape(2)
+            if not _object_range_ok(self.object_range):
+                raise ValueError("object_range must be two sizes > 0, the smaller first, "
+                                 f"got {self.object_range.tolist()}")
 
     @classmethod
     def from_forest(cls, window, pool, forest: FlatForest, exit_thresholds=None, *, normalize=True,
@@ -323,14 +336,14 @@ class Model:
 
     @property
     def object_sizes(self) -> dict | None:
-        """What the training labels said about object sizes (see
-        :func:`detector.harvest.object_sizes`): ``smallest``, ``median`` and ``largest`` shorter
-        side in pixels; None for a model whose bank did not record them."""
-        harvest = _mapping(_mapping(self.metadata.get("bank")).get("harvest"))
-        sizes = _mapping(harvest.get("object_sizes"))
-        if all(_is_real(sizes.get(k)) and sizes[k] > 0 for k in ("smallest", "largest")):
-            return sizes
-        return None
+        """The object sizes a scan looks for by default: ``smallest`` and ``largest`` shorter side
+        of the training objects (:attr:`object_range`) and ``window_object_side``, the object
+        side the window itself holds at scale 1 (its shorter side less the context margin), in
+        pixels; None for a model that does not know its objects' sizes."""
+        if self.object_range is None:
+            return None
+        return {"smallest": float(self.object_range[0]), "largest": float(self.object_range[1]),
+                "window_object_side": min(self.window) / (1.0 + 2.0 * self.margin)}
 
     def summary(self) -> list[str]:
         """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank
@@ -394,7 +407,7 @@ def describe(model: Model) -> dict:
         ``window`` (``width``, ``height``), ``mode``, ``method``, ``trees``, ``depth``, ``splits``
         (real split nodes), ``features_used``, ``pool``, ``features_per_node``, ``normalize``,
         ``scan`` (the typed values the scan computes with: ``margin``, ``score_temperature``,
-        ``exit_min_sigma``), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
+        ``exit_min_sigma``, ``object_range``), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
         ``levels``, ``calibration``: the calibration record as stored) and ``training``
         (``date``, ``parameters``, ``bank_sha256``, ``bank_counts``, ``patches``, ``oob_error``,
         ``mining``, ``versions``). A hand-edited metadata record may hold anything: what does not
@@ -408,7 +421,7 @@ def describe(model: Model) -> dict:
     >>> d["trees"], d["depth"], d["splits"], d["early_exit"]["trees_with_exit"]
     (1, 1, 1, 0)
     >>> d["training"]["oob_error"], d["scan"]
-    (None, {'margin': 0.0, 'score_temperature': 1.0, 'exit_min_sigma': 0.0})
+    (None, {'margin': 0.0, 'score_temperature': 1.0, 'exit_min_sigma': 0.0, 'object_range': None})
     """
     md = _mapping(model.metadata)
     params = _mapping(md.get("parameters"))
@@ -428,7 +441,7 @@ def describe(model: Model) -> dict:
         "features_per_node": md.get("features_per_node", params.get("features_per_node")),
         "normalize": bool(model.normalize),
         "scan": {"margin": model.margin, "score_temperature": model.temperature,
-                 "exit_min_sigma": model.exit_min_sigma},
+                 "exit_min_sigma": model.exit_min_sigma, "object_range": model.object_range},
         "early_exit": {
             "trees_with_exit": int(exits.sum()),
             "first_exit_after_tree": int(np.argmax(exits)) + 1 if exits.any() else None,
@@ -503,6 +516,8 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
         arrays["feature_importances"] = model.feature_importances
     if model.feature_channels is not None:
         arrays["feature_channels"] = model.feature_channels
+    if model.object_range is not None:
+        arrays["object_range"] = model.object_range
     if model.exit_levels is not None:
         arrays["exit_levels"] = model.exit_levels
         arrays["exit_table"] = model.exit_table
@@ -604,12 +619,22 @@ def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[d
     version = int(a["format_version"])
     if version in METADATA_SETTINGS_VERSIONS:
         where, settings = "metadata", {k: metadata.pop(k, v) for k, v in SCAN_SETTINGS.items()}
+        # the bank's record of the labelled sizes (a hand-edited one that makes no sense: unknown)
+        sizes = _mapping(_mapping(_mapping(metadata.get("bank")).get("harvest")).get("object_sizes"))
+        pair = [sizes.get("smallest"), sizes.get("largest")]
+        settings["object_range"] = (np.array(pair, np.float64)
+                                    if all(_is_real(v) for v in pair)
+                                    and _object_range_ok(np.array(pair, np.float64)) else None)
     else:
         missing = [k for k in SCAN_SETTINGS if k not in a]
         if missing:
             raise InputError(f"model array {missing[0]!r} is missing (format version {version} "
                              "needs it)", path=path)
         where, settings = "array", {k: a[k].item() for k in SCAN_SETTINGS}
+        settings["object_range"] = a.get("object_range")
+        if settings["object_range"] is not None and not _object_range_ok(settings["object_range"]):
+            raise InputError("model array 'object_range' must hold two sizes > 0, the smaller "
+                             "first", path=path)
     margin, temperature, gate = (settings[k] for k in SCAN_SETTINGS)
     if not _is_real(margin) or margin < 0:
         raise InputError(f"model {where} 'margin' must be a number >= 0, got {_shown(margin)}",
@@ -624,6 +649,11 @@ def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[d
         raise InputError(f"model {where} 'exit_min_sigma' must be a number >= 0, got "
                          f"{_shown(gate)}", path=path)
     return metadata, settings
+
+
+def _object_range_ok(pair: np.ndarray) -> bool:
+    """Two finite sizes > 0, the smaller first."""
+    return bool(np.isfinite(pair).all() and pair[0] > 0 and pair[0] <= pair[1])
 
 
 def _is_real(value) -> bool:
@@ -690,4 +720,5 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
         margin=settings["margin"],
         temperature=settings["score_temperature"],
         exit_min_sigma=settings["exit_min_sigma"],
+        object_range=settings["object_range"],
     )

@@ -225,6 +225,8 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
         (dict(margin=np.array(np.nan)), "model array 'margin' must be a number >= 0, got NaN"),
         (dict(margin=np.array(6.0)), "model array 'margin' 6 leaves less than one pixel of the object"),
         (dict(margin=None), "model array 'margin' is missing (format version 3 needs it)"),
+        (dict(object_range=np.array([30.0, 6.0])), "model array 'object_range' must hold two sizes > 0, the smaller first"),
+        (dict(object_range=np.array([0.0, 6.0])), "model array 'object_range' must hold two sizes > 0"),
         (dict(score_temperature=np.array(2.0, np.float32)), "model array 'score_temperature' has dtype float32; expected float64"),
     ],
 )
@@ -301,6 +303,17 @@ def test_older_formats_are_converted(model_file, tmp_path, version):
         assert (float(npz["margin"]), float(npz["score_temperature"])) == (0.25, 1.5)
     defaults = load_model(_older_file(model_file, tmp_path, version))  # keys absent: defaults
     assert (defaults.margin, defaults.temperature) == (new.margin, new.temperature)
+    assert defaults.object_range is None and defaults.object_sizes is None
+    # the labelled sizes the bank recorded (harvest.object_sizes) become the object range; the
+    # window's own object side follows from window and margin: 12 / (1 + 2 * 0.25) = 8
+    sized = load_model(_older_file(model_file, tmp_path, version, margin=0.25, bank={
+        "harvest": {"object_sizes": {"smallest": 6.0, "median": 9.0, "largest": 30.0,
+                                     "window_object_side": 8.0}}}))
+    assert sized.object_range.tolist() == [6.0, 30.0]
+    assert sized.object_sizes == {"smallest": 6.0, "largest": 30.0, "window_object_side": 8.0}
+    odd = load_model(_older_file(model_file, tmp_path, version, bank={
+        "harvest": {"object_sizes": {"smallest": "small", "largest": 30.0}}}))
+    assert odd.object_range is None  # a record that makes no sense: sizes unknown, as before
 
 
 @pytest.mark.parametrize("name, value, message", [

@@ -204,7 +204,8 @@ def test_objective_equals_direct_computation(scenario, folds):
         model = PatchClassifier(**PARAMS).fit(bank.patches[keep], bank.labels[keep]).model_
         model.margin = bank.margin  # the scan reports the box inside the window
         # ... and looks for the labelled object sizes the harvest recorded
-        model.metadata["bank"] = {"harvest": {"object_sizes": bank.metadata["object_sizes"]}}
+        sizes = bank.metadata["object_sizes"]
+        model.object_range = np.array([sizes["smallest"], sizes["largest"]])
         engine = Engine(model, ScanSettings(threshold=EVALUATION_THRESHOLD))
         dets, truth = {}, {}
         for i in test_idx:

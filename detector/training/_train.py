@@ -38,6 +38,9 @@ def train_model(bank: PatchBank, params: dict, bank_path=None, progress=None):
         "counts": bank.counts(),
         "harvest": {k: v for k, v in bank.metadata.items() if k != "counts"},
     }
+    sizes = bank.metadata.get("object_sizes")
+    if isinstance(sizes, dict) and sizes.get("smallest") and sizes.get("largest"):
+        model.object_range = np.array([sizes["smallest"], sizes["largest"]], np.float64)
     return model, clf
 
 
