@@ -390,3 +390,36 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
         assert len(dropped) <= int(np.floor(0.1 * n + 1e-9)), (mode, c, len(dropped), n)
         given_up += len(dropped)
     assert given_up > 0  # the exits do spend their budget here: the bound is not idle
+
+
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_calibrate_is_what_fit_applies(mode):
+    """``cascade.calibrate`` run again on a fitted forest (its trees already in the fitted order):
+    the gate and the temperature depend only on final scores, so they are the fitted model's
+    (the temperature the balanced fit on the calibration copies' and the background's totals);
+    the order is a permutation of the trees and its exits keep the calibration copies the
+    budget allows; without calibration objects the trees stay as grown, with no exit at all."""
+    from detector.cascade import calibrate, fit_temperature
+    from detector.forest import seed_sequence
+
+    patches, y = top_bright(3, 60, 120, spread=60, lift=150)
+    clf = PatchClassifier(n_trees=12, pool=400, mode=mode, random_state=0).fit(patches, y)
+    m = clf.model_
+    cal = calibration_copies(clf, patches)
+    background = patches[np.setdiff1d(np.flatnonzero(y == 0), clf.calibration_indices_)]
+    exit_ss = seed_sequence(0).spawn(6)[4]
+    again = calibrate(m.leaf_scores, mode, patches[clf.calibration_indices_], background,
+                      random_state=exit_ss)
+    assert sorted(again.order.tolist()) == list(range(m.n_trees))
+    assert again.min_sigma == m.exit_min_sigma and again.report["objects"] == 15  # 60 / 4
+    totals = m.running_scores(cal)[:, -1], m.running_scores(background)[:, -1]
+    assert again.temperature == m.temperature == (fit_temperature(*totals) if mode == "boosted"
+                                                  else 1.0)
+    # the exits of the returned order keep every calibration copy the budget keeps
+    run = m.running_scores(cal)[:, again.order]
+    kept = trees_evaluated(run, again.exit_thresholds) == m.n_trees
+    assert kept.mean() >= 0.995 - 1.0 / len(cal)
+    # without calibration objects: no exits, no gate, temperature 1, the trees as grown
+    none = calibrate(m.leaf_scores, mode, patches[:0], background, random_state=exit_ss)
+    assert none.order.tolist() == list(range(m.n_trees)) and np.isneginf(none.exit_thresholds).all()
+    assert (none.min_sigma, none.temperature, none.exit_levels) == (0.0, 1.0, None)
