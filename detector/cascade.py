@@ -26,10 +26,10 @@ import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
-import numba
 import numpy as np
 from numpy.typing import ArrayLike
 
+from detector._cascade_kernels import exit_earlier, greedy_order
 from detector.forest import final_score, float32_thresholds
 from detector.geometry import crop_region
 
@@ -314,39 +314,17 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
             if not len(changed):
                 continue
             bounds = new[changed].astype(np.float64)
-            saved = float(_exit_earlier(b, first, changed, bounds, None))
+            saved = float(exit_earlier(b, first, changed, bounds, None))
             gain = saved / len(group)
             if saved > 0 and (best is None or gain > best[0]):
                 best = (gain, group, new, changed, bounds)
         if best is None:
             break
         _, group, exits, changed, bounds = best
-        _exit_earlier(b, first, changed, bounds, first)
+        exit_earlier(b, first, changed, bounds, first)
         keep[group] = False
         budget -= len(group)
     return keep if evaluations(keep) < evaluations(plain) else plain
-
-
-@numba.njit(cache=True, nogil=True)
-def _exit_earlier(b, first, cols, bounds, out):
-    """Tree evaluations saved when the exits after trees ``cols`` (rising) rise to ``bounds``: a
-    window that now leaves after tree ``first[j]`` leaves after the first of ``cols`` before that
-    where its running score is below the new bound. With ``out``, the new exit trees are written
-    there (it may be ``first`` itself)."""
-    saved = 0
-    for j in range(b.shape[0]):
-        f = first[j]
-        for q in range(cols.shape[0]):
-            c = cols[q]
-            if c >= f:
-                break
-            if b[j, c] < bounds[q]:
-                saved += f - c
-                f = c
-                break
-        if out is not None:
-            out[j] = f
-    return saved
 
 
 #: Score thresholds that get exit thresholds of their own (see :func:`calibrate_exit_table`).
@@ -495,7 +473,7 @@ def order_for_early_exit(object_leaves: ArrayLike, background_leaves: ArrayLike,
     o, b = _ordering_inputs(object_leaves, background_leaves, exit_recall)
     if o is None:
         return np.arange(np.shape(object_leaves)[1])
-    return _greedy_order(np.ascontiguousarray(o), np.ascontiguousarray(b))
+    return greedy_order(np.ascontiguousarray(o), np.ascontiguousarray(b))
 
 
 def _ordering_inputs(object_leaves, background_leaves, exit_recall):
@@ -507,58 +485,6 @@ def _ordering_inputs(object_leaves, background_leaves, exit_recall):
         return None, None
     n_drop = min(int(np.floor((1.0 - exit_recall) * len(o) + 1e-9)), len(o) - 1)
     return o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]], b
-
-
-@numba.njit(cache=True, nogil=True)
-def _greedy_order(o, b):
-    """The loop of :func:`order_for_early_exit` (the same sums in the same order as its numpy
-    form, so the same order; tests/test_early_exit.py holds them equal)."""
-    n_o, T = o.shape
-    n_b = b.shape[0]
-    o_sum = np.zeros(n_o)
-    b_sum = np.zeros(n_b)
-    live = np.arange(n_b)
-    n_live = n_b
-    used = np.zeros(T, np.bool_)
-    order = np.empty(T, np.int64)
-    thr = np.empty(T)
-    for step in range(T):
-        for t in range(T):  # exit threshold each remaining tree would get
-            if used[t]:
-                continue
-            m = np.inf
-            for i in range(n_o):
-                v = o_sum[i] + o[i, t]
-                if v < m:
-                    m = v
-            thr[t] = m
-        best = -1
-        best_drop = -1
-        for t in range(T):  # the first of the trees that drop the most living background
-            if used[t]:
-                continue
-            d = 0
-            for q in range(n_live):
-                j = live[q]
-                if b_sum[j] + b[j, t] < thr[t]:
-                    d += 1
-            if d > best_drop:
-                best_drop = d
-                best = t
-        order[step] = best
-        used[best] = True
-        for i in range(n_o):
-            o_sum[i] += o[i, best]
-        for j in range(n_b):
-            b_sum[j] += b[j, best]
-        k = 0
-        for q in range(n_live):
-            j = live[q]
-            if not b_sum[j] < thr[best]:
-                live[k] = j
-                k += 1
-        n_live = k
-    return order
 
 
 def _order_for_early_exit_numpy(object_leaves, background_leaves, exit_recall: float = 0.995):
