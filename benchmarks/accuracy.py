@@ -26,7 +26,7 @@ from detector.evaluate import evaluate, fppi_at_recall
 from detector.harvest import KIND_MINED, harvest
 from detector.images import read_gray
 from detector.labels import read_labels
-from detector.mining import mine
+from detector.training import mine
 from detector.scan import MAX_OVERHANG, Engine, ScanSettings
 from detector.training import train_model
 from synthetic_images import render_scenario

@@ -34,7 +34,7 @@ Baseline, assembled from general-purpose libraries:
   that violate the margin (decision value at least -1; the windows a hinge-loss SVM learns from,
   Felzenszwalb et al., PAMI 2010) after non-maximum suppression at IoU 0.5, drop those whose box has
   IoU 0.3 or more with a labelled nut, keep at most 20 per frame and 4,000 in all (the caps of
-  ``detector.mining.mine``), cut them out as 24 x 24 patches the way the bank's patches are cut
+  ``detector.training.mine``), cut them out as 24 x 24 patches the way the bank's patches are cut
   (``detector.harvest.crop_region``), add them as background and train again.
 * scan: an image pyramid over the same scales as patchwood's (``detector.scan.scales_for`` from
   the same object-size range, step 1.2): each level is the frame resized by 1/scale with
@@ -45,7 +45,7 @@ Baseline, assembled from general-purpose libraries:
   a correlation of the block grid with the weights. Windows scoring at least -1 are mapped back
   to frame pixels, shrunk to object boxes by the bank's margin
   (``detector.harvest.window_box_to_object_box``, as patchwood's scan does) and thinned by greedy
-  non-maximum suppression at IoU 0.3 (``detector.boxes.nms``, as patchwood). The score of a
+  non-maximum suppression at IoU 0.3 (``detector.geometry.nms``, as patchwood). The score of a
   detection is its SVM decision value.
 
   Where training and scanning differ: skimage sets the gradient of an image's outer pixel ring to
@@ -124,9 +124,8 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from detector.boxes import iou, nms  # noqa: E402
-from detector.harvest import (crop_region, object_box_to_window_box,  # noqa: E402
-                              window_box_to_object_box)
+from detector.geometry import (crop_region, iou, nms, object_box_to_window_box,  # noqa: E402
+                               window_box_to_object_box)
 from detector.scan import scales_for  # noqa: E402
 
 AP_GOAL = "patchwood AP50 >= baseline AP50"

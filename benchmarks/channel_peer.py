@@ -18,7 +18,7 @@
   grid; the paper's approximated pyramid (channels extrapolated between octaves) is not used, the
   channels are computed at every scale. Windows are mapped to frame boxes, shrunk by the patch
   bank's context margin and thinned by greedy non-maximum suppression at IoU 0.3
-  (``detector.boxes.nms``), as the HOG peer's (``benchmarks/baseline.py``, whose pyramid, box and
+  (``detector.geometry.nms``), as the HOG peer's (``benchmarks/baseline.py``, whose pyramid, box and
   mining helpers this module reuses).
 
 Where training and scanning differ: a training patch's channels are computed on the patch alone

@@ -22,12 +22,12 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from detector.channels import N_CHANNELS  # noqa: E402
+from detector.features import N_CHANNELS  # noqa: E402
 from detector.classifier import PatchClassifier  # noqa: E402
 from detector.harvest import harvest  # noqa: E402
 from detector.labels import read_labels  # noqa: E402
-from detector.scan import (Engine, ScanSettings, channel_frame_integrals,  # noqa: E402
-                           frame_integrals, integral_dtype)
+from detector.scan import (Engine, ScanSettings, channel_frame_integrals, frame_integrals,
+                           integral_dtype)  # noqa: E402
 from synthetic_images import render_frame, render_scenario  # noqa: E402
 
 
@@ -75,7 +75,7 @@ def main(argv=None) -> int:
         clf = PatchClassifier(n_trees=args.trees, pool=4000, mode="boosted", random_state=0,
                               channels=channels)
         models[channels] = clf.fit(bank.patches, bank.labels,
-                                   metadata={"margin": bank.margin}).model_
+                                   margin=bank.margin).model_
     engines = {name: Engine(m, ScanSettings(min_object=20.0, max_object=200.0))
                for name, m in models.items()}
     results = {name: e.scan(gray) for name, e in engines.items()}

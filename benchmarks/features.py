@@ -45,13 +45,9 @@ from skimage.transform import integral_image as skimage_integral_image  # noqa: 
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from detector.features import (  # noqa: E402
-    evaluate_features,
-    evaluate_features_numpy,
-    random_pool,
-)
+from detector.features import evaluate_features, evaluate_features_numpy, random_pool  # noqa: E402
 
-from detector.features import skimage_coordinates  # noqa: E402
+from detector.features._rectangles import skimage_coordinates  # noqa: E402
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
 

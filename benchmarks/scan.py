@@ -17,7 +17,7 @@ or loads the numba kernels), windows per frame, mean trees per window, nanosecon
 tree-window; the same with the tighter exits for scans at 0.5 or above (``--exit-level 0.5``)
 and with every window inside the frame (``overhang=0``), each taking turns with the default, and
 with early exit off, for scale; images per second over a folder of 200
-rendered frames through :func:`detector.batch.scan_paths` with ``jobs=1`` and ``jobs=2`` (PNG
+rendered frames through :func:`detector.scan.scan_paths` with ``jobs=1`` and ``jobs=2`` (PNG
 decoding and writing the detections file included).
 
 Reference route: for each window, cut the patch, build its integral image with
@@ -58,7 +58,7 @@ from skimage.transform import integral_image as skimage_integral_image  # noqa: 
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from detector.batch import scan_paths  # noqa: E402
+from detector.scan import scan_paths  # noqa: E402
 from detector.features import SIGMA_FLOOR  # noqa: E402
 from detector.harvest import harvest  # noqa: E402
 from detector.labels import read_labels  # noqa: E402
@@ -70,7 +70,7 @@ from synthetic_images import render_frame, render_scenario  # noqa: E402
 FRAME_MS_GOAL = 15.0
 RATIO_GOAL = 1000.0
 
-from detector.features import skimage_coordinates  # noqa: E402
+from detector.features._rectangles import skimage_coordinates  # noqa: E402
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
 
@@ -270,7 +270,7 @@ def main(argv=None):
             cv2.imwrite(str(folder / f"frame_{i + 1:04d}.png"),
                         render_frame(args.seed * 100_000 + 1000 + i, 640, 480).image)
         print(f"\nfolder of {args.folder_frames} frames of 640 x 480 (rendered in "
-              f"{time.perf_counter() - start:.1f} s), detector.batch.scan_paths, same settings, "
+              f"{time.perf_counter() - start:.1f} s), detector.scan.scan_paths, same settings, "
               f"median of {args.repeats} runs (PNG decoding and the detections file included):")
         model_path = work / "model.npz"
         save_model(model_path, model)

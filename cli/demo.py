@@ -8,7 +8,7 @@ from pathlib import Path
 import typer
 
 from cli.common import echo, human_path, progress_bar
-from detector.batch import draw_folder, scan_paths
+from detector.scan import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
 from detector.labels import read_detections, read_labels

@@ -9,7 +9,7 @@ import typer
 
 from cli.common import (check_not_an_input, echo, given, human_path, progress_bar,
                         refuse_together, usage_error)
-from detector.batch import FORMATS, scan_paths
+from detector.scan import FORMATS, scan_paths
 from detector.scan import ScanSettings
 
 
@@ -72,7 +72,7 @@ def scan(
         usage_error("--exit-level chooses early exits; it has no effect with --no-early-exit")
     recorded = None
     if threshold_from is not None:
-        from detector.provenance import check_summary_model, settings_differences
+        from detector.scan import check_summary_model, settings_differences
         from detector.report import read_summary_point
 
         check_not_an_input(out, [threshold_from])

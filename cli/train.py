@@ -10,13 +10,13 @@ import typer
 
 from cli.common import (check_not_an_input, check_output_file, echo, given, human_path,
                         progress_bar, usage_error)
-from detector.channels import CHOICES as CHANNEL_CHOICES
+from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.harvest import load_bank, save_bank
 from detector.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
 from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params, mining_source,
-                                train_with_mining)
+                               train_with_mining)
 
 
 #: Options that only shape hard-negative mining (parameter name -> option).

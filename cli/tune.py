@@ -15,9 +15,8 @@ from detector.files import write_text
 from detector.harvest import save_bank
 from detector.labels import read_labels
 from detector.scan import ScanSettings
-from detector.training import DEFAULT_MINE_ROUNDS
-from detector.tuning import (SearchSpace, describe, plot_trials, prepare_folds, search,
-                             train_command, write_trials_csv)
+from detector.training import (DEFAULT_MINE_ROUNDS, SearchSpace, describe, plot_trials,
+                               prepare_folds, search, train_command, write_trials_csv)
 
 #: Files the command writes into --out.
 TRIALS_FILE = "trials.csv"

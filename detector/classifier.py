@@ -15,46 +15,20 @@ import numbers
 import time
 
 import numpy as np
+from numpy.typing import ArrayLike
 from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.utils.validation import check_is_fitted
 
 from detector import features as _features
-from detector.channels import CHOICES as CHANNEL_CHOICES
+from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.errors import InputError
-from detector.forest import (
-    GROWERS,
-    MAX_DEPTH,
-    MODES,
-    bin_columns,
-    calibrate_contrast_gate,
-    calibrate_exit_table,
-    exit_kept,
-    final_score,
-    float32_thresholds,
-    fit_temperature,
-    grow_forest,
-    order_for_early_exit,
-    quantile_cuts,
-    seed_sequence,
-    thresholds_from_bins,
-    trees_evaluated,
-)
+from detector.cascade import calibrate, calibration_count
+from detector.forest import (GROWERS, MAX_DEPTH, MODES, bin_columns, final_score, grow_forest,
+                             quantile_cuts, seed_sequence, thresholds_from_bins)
 from detector.model import Model, library_versions, training_date
 
-__all__ = ["PatchClassifier", "calibration_count", "check_patches"]
+__all__ = ["PatchClassifier", "check_patches"]
 
-#: Fraction of object patches held out from growing to calibrate the early exit ...
-CALIBRATION_FRACTION = 0.1
-#: ... but at least this many when there are four times as many object patches.
-CALIBRATION_MINIMUM = 20
-#: Background patches (at most) the tree ordering and the exit calibration look at.
-MAX_ORDERING_BACKGROUND = 5000
-#: Rounds of ordering the trees for the objects the exit keeps, then choosing those objects again
-#: (on the default model the second round lowered the trees a background window evaluates from
-#: 1.97 to 1.84 and a third changed nothing).
-EXIT_ORDER_ROUNDS = 2
-#: The tree order is made for a scan at this score threshold (``ScanSettings``' default).
-ORDER_LEVEL = 0.5
 #: With ``channels="gradient"``, the share of the pool drawn as channel features (the rest are
 #: grey rectangle differences, as without channels).
 CHANNEL_SHARE = 0.5
@@ -65,72 +39,7 @@ CHANNEL_SHARE = 0.5
 VALUE_BLOCK = 2048
 
 
-def calibration_count(n_objects: int) -> int:
-    """How many object patches to hold out for the early-exit calibration.
-
-    10 % of them, rounded up; at least 20 while that leaves three quarters for growing.
-
-    Examples
-    --------
-    >>> [calibration_count(n) for n in (0, 3, 40, 80, 100, 5000)]
-    [0, 0, 10, 20, 20, 500]
-    """
-    n_cal = math.ceil(CALIBRATION_FRACTION * n_objects)
-    if n_cal < CALIBRATION_MINIMUM:
-        n_cal = min(CALIBRATION_MINIMUM, n_objects // 4)
-    return int(n_cal)
-
-
-def misaligned_copies(patches, shift: float = 1.0, scale: float = 1.1, copies: int = 8,
-                      random_state=None) -> np.ndarray:
-    """Every patch as the scan's nearest window may see it: the patch itself, then ``copies``
-    copies shifted by up to ``shift`` pixels along x and y and scaled by up to ``scale`` either way
-    (uniform shifts, log-uniform scales: where an object falls between the scan's grid points and
-    scales). Pixels outside the patch repeat its border. Returns ``(N * (copies + 1), h, w)``,
-    the copies of each patch together, the patch first.
-
-    Examples
-    --------
-    >>> p = np.arange(16, dtype=np.uint8).reshape(1, 4, 4)
-    >>> c = misaligned_copies(p, 1.0, 1.0, copies=3, random_state=0)
-    >>> c.shape, bool((c[0] == p[0]).all())
-    ((4, 4, 4), True)
-    """
-    from detector.harvest import crop_region
-
-    patches = np.asarray(patches, dtype=np.uint8)
-    n, h, w = patches.shape
-    rng = np.random.default_rng(random_state)
-    out = np.empty((n, copies + 1, h, w), np.uint8)
-    out[:, 0] = patches
-    for i in range(n):
-        dx = rng.uniform(-shift, shift, copies)
-        dy = rng.uniform(-shift, shift, copies)
-        k = np.exp(rng.uniform(-np.log(scale), np.log(scale), copies))
-        for j in range(copies):
-            out[i, j + 1] = crop_region(patches[i], (w / 2 + dx[j], h / 2 + dy[j]),
-                                        (w * k[j], h * k[j]), (w, h))
-    return out.reshape(n * (copies + 1), h, w)
-
-
-def window_sigma(patches) -> np.ndarray:
-    """Grey-level standard deviation of each patch, as the scan computes it for a window
-    (population variance from the exact integer sums of the pixels and of their squares).
-
-    Examples
-    --------
-    >>> window_sigma(np.array([[[0, 2], [0, 2]], [[5, 5], [5, 5]]], np.uint8)).tolist()
-    [1.0, 0.0]
-    """
-    p = np.asarray(patches)
-    flat = p.reshape(len(p), -1).astype(np.int64)
-    area = float(flat.shape[1])
-    mean = flat.sum(axis=1) / area
-    var = (flat * flat).sum(axis=1) / area - mean * mean
-    return np.sqrt(np.maximum(var, 0.0))
-
-
-def check_patches(patches, window=None) -> np.ndarray:
+def check_patches(patches: ArrayLike, window: tuple[int, int] | None = None) -> np.ndarray:
     """Validate grey patches: a (N, height, width) array of grey levels 0..255 -> uint8.
 
     Parameters
@@ -195,7 +104,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         feature values. None grows on the feature values themselves (with scikit-learn).
     grower : {"histogram", "sklearn"}, default="histogram"
         How trees grow on the bins: the compiled histogram grower
-        (:mod:`detector.histogram_trees`), or scikit-learn's tree learners, the reference it is
+        (:mod:`detector.forest`), or scikit-learn's tree learners, the reference it is
         tested against (the same trees up to the random choice of features at each node).
         Ignored when ``max_bins`` is None.
     random_state : None, int or numpy generator
@@ -296,7 +205,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
                 raise InputError(f"{name} must be a number in (0, 1], got {v!r}")
 
-    def fit(self, patches, y, *, progress=None, metadata=None):
+    def fit(self, patches, y, *, progress=None, metadata=None, margin: float = 0.0):
         """Grow the forest on grey patches.
 
         Parameters
@@ -308,7 +217,11 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             Called after every tree.
         metadata : dict, optional
             Extra entries for the model's metadata, JSON-serialisable: for example ``bank_sha256``
-            (:func:`detector.npzfile.file_sha256` of the patch bank file) and the bank's ``margin``.
+            (:func:`detector.npzfile.file_sha256` of the patch bank file).
+        margin : float >= 0, default=0.0
+            The context margin the patches were cut with (the bank's ``margin``): the model's
+            :attr:`~detector.model.Model.margin`, with which the scan turns a window into the object
+            box it reports.
 
         Returns
         -------
@@ -326,6 +239,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         if y.min(initial=1) == y.max(initial=0):
             raise InputError("training needs both object (1) and background (0) patches")
         height, width = patches.shape[1:]
+        if isinstance(margin, bool) or not isinstance(margin, numbers.Real) or not margin >= 0.0:
+            raise InputError(f"margin must be a number >= 0, got {margin!r}")
+        margin = float(margin)
 
         # a sixth seed for the channel pool leaves the first five as they were without channels
         pool_ss, split_ss, forest_ss, bin_ss, exit_ss, channel_ss = \
@@ -376,68 +292,27 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         grown = time.perf_counter()
         used, small = forest.reindex()
 
-        model = Model(
+        grown_model = Model(
             window=(width, height), features=pool[used], node_features=small.node_features,
             node_thresholds=small.node_thresholds, leaf_values=small.leaf_values,
             exit_thresholds=np.full(small.n_trees, -np.inf, np.float32), mode=self.mode,
-            normalize=bool(self.normalize), feature_importances=small.importances,
+            normalize=bool(self.normalize),
             feature_channels=None if pool_channels is None else pool_channels[used],
         )
-        background = grow_patches[grow_y == 0]
-        # leaf values once; running scores in any tree order are their cumulative sums
-        bg_leaf = model.leaf_scores(background)
-        bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)
-        bg_sigma = window_sigma(background)
-        step = max(1, int(np.ceil(len(bg_running) / MAX_ORDERING_BACKGROUND)))
-        if len(held):
-            recall = float(self.exit_recall)
-            calibration = misaligned_copies(patches[held], float(self.exit_shift),
-                                            float(self.exit_scale), random_state=exit_ss)
-            cal_leaf = model.leaf_scores(calibration)
-            running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
-            cal_sigma = window_sigma(calibration)
-            gate = calibrate_contrast_gate(cal_sigma, running[:, -1], recall) if self.normalize else 0.0
-            lost = cal_sigma < gate  # dropped by the gate: they count against the exit's budget
-            # the background windows the exit calibration counts trees on: those of the ordering
-            # sample that pass the gate
-            past_gate = np.flatnonzero(bg_sigma >= gate)
-            past_gate = past_gate[past_gate % step == 0]
-            # reorder the trees so that background drops out early (same final scores), for the
-            # objects that a scan at the default threshold keeps (direct backward pruning, see
-            # calibrate_exit_table); which objects the exit gives up depends on the order, and
-            # the order on them: two rounds
-            temp = fit_temperature(running[:, -1], bg_running[:, -1]) if self.mode == "boosted" else 1.0
-            at = final_score(self.mode, running[:, -1], model.n_trees, temp) >= np.float32(ORDER_LEVEL)
-            if not at.any():
-                at[:] = True
-            keep = exit_kept(running[at], None, recall, lost[at])
-            for _ in range(EXIT_ORDER_ROUNDS):
-                order = order_for_early_exit(cal_leaf[at][keep].astype(np.float64),
-                                             bg_leaf[::step].astype(np.float64), 1.0)
-                model.node_features = model.node_features[order]
-                model.node_thresholds = model.node_thresholds[order]
-                model.leaf_values = model.leaf_values[order]
-                cal_leaf, bg_leaf = cal_leaf[:, order], bg_leaf[:, order]
-                running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
-                bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)
-                keep = exit_kept(running[at], bg_running[past_gate], recall, lost[at])
-            model.exit_thresholds = float32_thresholds(
-                running[exit_kept(running, bg_running[past_gate], recall, lost)].min(axis=0))
-            mean_objects = float(trees_evaluated(running, model.exit_thresholds).mean())
-        else:
-            mean_objects = None
-            gate = 0.0
-        bg_gated = bg_sigma < gate
-        mean_background = float(np.where(bg_gated, 0,
-                                         trees_evaluated(bg_running, model.exit_thresholds)).mean())
-        temperature = 1.0
-        if self.mode == "boosted" and len(held):
-            temperature = fit_temperature(running[:, -1], bg_running[:, -1])
-        if len(held):
-            model.exit_levels, model.exit_table = calibrate_exit_table(
-                running, final_score(self.mode, running[:, -1], model.n_trees, temperature),
-                recall, background=bg_running[past_gate], lost=lost)
-
+        cascade = calibrate(grown_model.leaf_scores, self.mode, patches[held],
+                            grow_patches[grow_y == 0], exit_recall=float(self.exit_recall),
+                            shift=float(self.exit_shift), scale=float(self.exit_scale),
+                            contrast_gate=bool(self.normalize), random_state=exit_ss)
+        order = cascade.order
+        model = Model(
+            window=(width, height), features=pool[used], node_features=small.node_features[order],
+            node_thresholds=small.node_thresholds[order], leaf_values=small.leaf_values[order],
+            exit_thresholds=cascade.exit_thresholds, mode=self.mode,
+            normalize=bool(self.normalize), feature_importances=small.importances,
+            exit_levels=cascade.exit_levels, exit_table=cascade.exit_table,
+            feature_channels=grown_model.feature_channels, margin=margin,
+            temperature=cascade.temperature, exit_min_sigma=cascade.min_sigma,
+        )
         model.metadata = {
             "kind": "model",
             "parameters": {k: v for k, v in self.get_params().items()
@@ -450,18 +325,17 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             "oob_error": forest.oob_error,
             "calibration": {
                 "exit_recall": float(self.exit_recall),
-                "objects": int(len(held)),
-                "copies_per_object": int(len(calibration) // len(held)) if len(held) else 0,
+                "objects": cascade.report["objects"],
+                "copies_per_object": cascade.report["copies_per_object"],
                 "shift": float(self.exit_shift),
                 "scale": float(self.exit_scale),
-                "mean_trees_objects": mean_objects,
-                "mean_trees_background": mean_background,
-                "contrast_gate_min_sigma": gate,
-                "background_dropped_by_contrast_gate": float(bg_gated.mean()) if len(bg_gated) else 0.0,
+                "mean_trees_objects": cascade.report["mean_trees_objects"],
+                "mean_trees_background": cascade.report["mean_trees_background"],
+                "contrast_gate_min_sigma": cascade.min_sigma,
+                "background_dropped_by_contrast_gate":
+                    cascade.report["background_dropped_by_contrast_gate"],
                 "background_source": "training background patches",
             },
-            "score_temperature": temperature,
-            "exit_min_sigma": gate,
             "date": training_date(),
             "versions": library_versions(),
         }

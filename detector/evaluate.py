@@ -41,7 +41,7 @@ from typing import Mapping
 
 import numpy as np
 
-from detector.boxes import as_boxes, iou
+from detector.geometry import as_boxes, iou
 from detector.errors import InputError
 
 __all__ = [

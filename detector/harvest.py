@@ -20,13 +20,12 @@ import os
 import re
 from dataclasses import dataclass, field
 
-import cv2
 import numpy as np
 
 from detector import npzfile
-from detector.boxes import iou
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
+from detector.geometry import crop_region, iou, object_box_to_window_box, window_box_to_object_box
 from detector.images import image_size, read_gray
 from detector.labels import ImageLabels
 
@@ -166,68 +165,6 @@ def object_sizes(boxes, window, margin: float) -> dict:
     return {"smallest": float(shorter.min()), "median": float(np.median(shorter)),
             "largest": float(shorter.max()), "window_object_side": float(side),
             "below_window": int(np.sum(shorter < side))}
-
-
-def crop_region(image: np.ndarray, center, size, window, angle: float = 0.0,
-                mirror: bool = False) -> np.ndarray:
-    """Cut a (possibly rotated) region of ``size=(width, height)`` around ``center`` and resize it
-    to ``window=(W, H)`` with area averaging. Pixels outside the image repeat the border.
-
-    The region is first warped at its own resolution (bilinear, only when rotated or at sub-pixel
-    position), then shrunk with ``cv2.INTER_AREA``.
-
-    >>> img = np.arange(100, dtype=np.uint8).reshape(10, 10)
-    >>> crop_region(img, (5.0, 5.0), (4, 4), (4, 4)).tolist()[0]
-    [33, 34, 35, 36]
-    """
-    W, H = window
-    rw = max(1, int(round(size[0])))
-    rh = max(1, int(round(size[1])))
-    cx, cy = float(center[0]), float(center[1])
-    # affine map from region pixel centres to image coordinates: rotate about the centre
-    a = math.radians(angle)
-    ca, sa = math.cos(a), math.sin(a)
-    sx, sy = size[0] / rw, size[1] / rh
-    # region pixel (u, v) centre -> offset from region centre
-    m = np.array(
-        [
-            [ca * sx, -sa * sy, 0.0],
-            [sa * sx, ca * sy, 0.0],
-        ]
-    )
-    ou, ov = (rw - 1) / 2.0, (rh - 1) / 2.0
-    m[0, 2] = cx - 0.5 - (m[0, 0] * ou + m[0, 1] * ov)
-    m[1, 2] = cy - 0.5 - (m[1, 0] * ou + m[1, 1] * ov)
-    region = cv2.warpAffine(
-        image,
-        m,
-        (rw, rh),
-        flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP,
-        borderMode=cv2.BORDER_REPLICATE,
-    )
-    if mirror:
-        region = region[:, ::-1]
-    if (rw, rh) != (W, H):
-        interp = cv2.INTER_AREA if rw >= W and rh >= H else cv2.INTER_LINEAR
-        region = cv2.resize(np.ascontiguousarray(region), (W, H), interpolation=interp)
-    return np.ascontiguousarray(region, dtype=np.uint8)
-
-
-def window_box_to_object_box(x, y, w, h, margin: float):
-    """The object box a window stands for: the window shrunk by the context margin.
-
-    >>> window_box_to_object_box(0.0, 0.0, 12.0, 12.0, 0.25)
-    (2.0, 2.0, 8.0, 8.0)
-    """
-    k = 1.0 + 2.0 * margin
-    bw, bh = w / k, h / k
-    return x + (w - bw) / 2.0, y + (h - bh) / 2.0, bw, bh
-
-
-def object_box_to_window_box(x, y, w, h, margin: float):
-    """The window that stands for an object box: the box grown by the context margin."""
-    ww, wh = w * (1.0 + 2.0 * margin), h * (1.0 + 2.0 * margin)
-    return x - (ww - w) / 2.0, y - (wh - h) / 2.0, ww, wh
 
 
 def _adjust(patch: np.ndarray, gain: float, bias: float) -> np.ndarray:

@@ -1057,7 +1057,7 @@ def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],
         The one category's name.
     info : dict, optional
         Written as the file's ``info`` object, first (COCO's place for what made a data set;
-        ``patchwood scan`` puts its provenance record there, see :mod:`detector.provenance`).
+        ``patchwood scan`` puts its provenance record there, see :mod:`detector.scan`).
 
     Examples
     --------

@@ -7,13 +7,14 @@ One ``.npz`` archive (written by :func:`detector.npzfile.save_npz`, deterministi
 =====================  =================  =====================================================
 array                  dtype, shape       meaning
 =====================  =================  =====================================================
-``format_version``     int64, ()          1, or 2 when the file holds ``feature_channels``
+``format_version``     int64, ()          3 (files of versions 1 and 2 are read too, see
+                                          :func:`load_model`)
 ``kind``               str, ()            ``"model"``
 ``window``             int32, (2,)        window width and height in pixels
 ``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
                                           features the trees use (unused slots all zero)
 ``feature_channels``   int8, (F,)         the channel each feature reads (0 grey, 1..7 the
-                                          gradient channels of :mod:`detector.channels`);
+                                          gradient channels of :mod:`detector.features`);
                                           absent: all grey (format 1; optional)
 ``node_features``      int32, (T, 2**D-1) index into ``features``, heap order
 ``node_thresholds``    float32, (T, 2**D-1)  go left when ``value <= threshold``
@@ -27,9 +28,23 @@ array                  dtype, shape       meaning
 ``feature_importances``  float64, (F,)    summed impurity decrease per feature (optional)
 ``mode``               str, ()            ``"bagged"`` or ``"boosted"``
 ``normalize``          bool, ()           per-window contrast normalisation of the features
+``margin``             float64, ()        context margin of the patches, a fraction of the object
+                                          box on every side: the scan reports the window shrunk
+                                          by it
+``score_temperature``  float64, ()        temperature of the boosted score (> 0; 1 for bagged)
+``exit_min_sigma``     float64, ()        the contrast gate: windows whose grey-level standard
+                                          deviation is below it are dropped before any tree
+``object_range``       float64, (2,)      shorter side of the smallest and the largest labelled
+                                          training object, pixels: the object sizes a scan looks
+                                          for by default (optional)
 ``metadata``           str, ()            JSON: parameters, bank hash, training figures, date,
-                                          library versions
+                                          library versions (only reported: nothing the scan
+                                          computes with)
 =====================  =================  =====================================================
+
+Versions 1 (grey features) and 2 (with ``feature_channels``) kept ``margin``,
+``score_temperature`` and ``exit_min_sigma`` in the metadata JSON (and the object range in the
+bank's harvest record there); :func:`load_model` converts them to the typed values of version 3.
 
 See :mod:`detector.forest` for the tree layout, the running score and the final score.
 """
@@ -48,18 +63,23 @@ from detector import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
-                             forest_running_scores)
+                             forest_running_scores, tree_depth)
 
-__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "save_model",
-           "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
+__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe",
+           "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
            "metadata_sha256"]
 
-FORMAT_VERSION = 1
-#: Files with channel features (``feature_channels``) are version 2, so that a patchwood that
-#: does not know channels refuses them instead of scanning their features as grey ones; grey-only
-#: models are still written as version 1, byte for byte as before.
+#: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
+#: arrays instead of metadata JSON.
+FORMAT_VERSION = 3
+#: Files with channel features (``feature_channels``) are version 2 or later, so that a patchwood
+#: that does not know channels refuses them instead of scanning their features as grey ones.
 CHANNELS_FORMAT_VERSION = 2
-READ_VERSIONS = (FORMAT_VERSION, CHANNELS_FORMAT_VERSION)
+#: The versions before 3, whose scan settings :func:`load_model` takes from the metadata.
+METADATA_SETTINGS_VERSIONS = (1, CHANNELS_FORMAT_VERSION)
+READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, FORMAT_VERSION)
+#: The scan settings: model array (and metadata key before version 3) -> default.
+SCAN_SETTINGS = {"margin": 0.0, "score_temperature": 1.0, "exit_min_sigma": 0.0}
 
 MODEL_SPEC = {
     "format_version": npzfile.ArraySpec("integer", ()),
@@ -76,6 +96,10 @@ MODEL_SPEC = {
     "feature_importances": npzfile.ArraySpec("float64", ("F",), required=False),
     "mode": npzfile.ArraySpec("str", ()),
     "normalize": npzfile.ArraySpec("bool", ()),
+    "margin": npzfile.ArraySpec("float64", (), required=False),
+    "score_temperature": npzfile.ArraySpec("float64", (), required=False),
+    "exit_min_sigma": npzfile.ArraySpec("float64", (), required=False),
+    "object_range": npzfile.ArraySpec("float64", (2,), required=False),
     "metadata": npzfile.ArraySpec("str", ()),
 }
 
@@ -144,7 +168,19 @@ class Model:
     exit_table : ndarray of float32, shape (L, T), optional
         Exits for scans at a given score threshold or above (see :meth:`exits_for`).
     feature_channels : ndarray of int8, shape (F,), optional
-        The channel each feature reads (:mod:`detector.channels`); None (or all 0): grey only.
+        The channel each feature reads (:mod:`detector.features`); None (or all 0): grey only.
+    margin : float >= 0
+        Context margin of the training patches, a fraction of the object box on every side: the
+        scan reports a window shrunk by it (:func:`detector.geometry.window_box_to_object_box`).
+    temperature : float > 0
+        Temperature of the boosted score (:func:`detector.cascade.fit_temperature`; 1.0 for
+        bagged forests).
+    exit_min_sigma : float >= 0
+        The contrast gate: windows whose grey-level standard deviation is below it are dropped
+        before any tree (0 = no gate; always 0 without contrast normalisation).
+    object_range : ndarray of float64, shape (2,), optional
+        Shorter side of the smallest and the largest labelled training object in pixels (see
+        :func:`detector.harvest.object_sizes`): what a scan looks for by default. None: unknown.
 
     Examples
     --------
@@ -167,6 +203,10 @@ class Model:
     exit_levels: np.ndarray | None = None
     exit_table: np.ndarray | None = None
     feature_channels: np.ndarray | None = None
+    margin: float = 0.0
+    temperature: float = 1.0
+    exit_min_sigma: float = 0.0
+    object_range: np.ndarray | None = None
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -191,10 +231,24 @@ class Model:
             if len(channels) != len(self.features):
                 raise ValueError("feature_channels needs one channel per feature")
             self.feature_channels = channels if channels.any() else None
+        self.margin, self.temperature = float(self.margin), float(self.temperature)
+        self.exit_min_sigma = float(self.exit_min_sigma) if self.normalize else 0.0
+        if not (math.isfinite(self.margin) and self.margin >= 0):
+            raise ValueError(f"margin must be a number >= 0, got {self.margin!r}")
+        if not (math.isfinite(self.temperature) and self.temperature > 0):
+            raise ValueError(f"temperature must be a number > 0, got {self.temperature!r}")
+        if not (math.isfinite(self.exit_min_sigma) and self.exit_min_sigma >= 0):
+            raise ValueError(f"exit_min_sigma must be a number >= 0, got {self.exit_min_sigma!r}")
+        if self.object_range is not None:
+            self.object_range = np.asarray(self.object_range, dtype=np.float64).reshape(2)
+            if not _object_range_ok(self.object_range):
+                raise ValueError("object_range must be two sizes > 0, the smaller first, "
+                                 f"got {self.object_range.tolist()}")
 
     @classmethod
     def from_forest(cls, window, pool, forest: FlatForest, exit_thresholds=None, *, normalize=True,
-                    metadata=None, pool_channels=None) -> "Model":
+                    metadata=None, pool_channels=None, margin: float = 0.0,
+                    temperature: float = 1.0, exit_min_sigma: float = 0.0) -> "Model":
         """Model from a forest grown on a feature pool: keeps only the features the trees use.
 
         Parameters
@@ -207,13 +261,17 @@ class Model:
             Default ``-inf`` (never exit).
         normalize : bool
         metadata : dict, optional
+        pool_channels : ndarray of int8, shape (P,), optional
+        margin, temperature, exit_min_sigma : float
+            The scan settings (see :class:`Model`).
         """
         used, small = forest.reindex()
         exits = np.full(small.n_trees, -np.inf, np.float32) if exit_thresholds is None else exit_thresholds
         channels = None if pool_channels is None else np.asarray(pool_channels)[used]
         return cls(window, np.asarray(pool)[used], small.node_features, small.node_thresholds,
                    small.leaf_values, exits, small.mode, normalize, dict(metadata or {}),
-                   small.importances, feature_channels=channels)
+                   small.importances, feature_channels=channels, margin=margin,
+                   temperature=temperature, exit_min_sigma=exit_min_sigma)
 
     def exits_for(self, threshold: float) -> np.ndarray:
         """The exit thresholds for a scan that keeps scores of at least ``threshold``.
@@ -238,11 +296,11 @@ class Model:
 
     @property
     def n_trees(self) -> int:
-        return int(self.node_features.shape[0])
+        return len(self.node_features)
 
     @property
     def depth(self) -> int:
-        return int(self.node_features.shape[1] + 1).bit_length() - 1
+        return tree_depth(self.node_features)
 
     @property
     def forest(self) -> FlatForest:
@@ -277,29 +335,19 @@ class Model:
                            self.temperature)
 
     @property
-    def temperature(self) -> float:
-        """Temperature of the boosted score (1.0 when the file has none)."""
-        return float(self.metadata.get("score_temperature", 1.0))
-
-    @property
     def object_sizes(self) -> dict | None:
-        """What the training labels said about object sizes (see
-        :func:`detector.harvest.object_sizes`): ``smallest``, ``median`` and ``largest`` shorter
-        side in pixels; None for a model whose bank did not record them."""
-        harvest = _mapping(_mapping(self.metadata.get("bank")).get("harvest"))
-        sizes = _mapping(harvest.get("object_sizes"))
-        if all(_is_real(sizes.get(k)) and sizes[k] > 0 for k in ("smallest", "largest")):
-            return sizes
-        return None
-
-    @property
-    def exit_min_sigma(self) -> float:
-        """The contrast gate: windows whose grey-level standard deviation is below it are dropped
-        before any tree (0 = no gate: models without one, or without contrast normalisation)."""
-        return float(self.metadata.get("exit_min_sigma", 0.0)) if self.normalize else 0.0
+        """The object sizes a scan looks for by default: ``smallest`` and ``largest`` shorter side
+        of the training objects (:attr:`object_range`) and ``window_object_side``, the object
+        side the window itself holds at scale 1 (its shorter side less the context margin), in
+        pixels; None for a model that does not know its objects' sizes."""
+        if self.object_range is None:
+            return None
+        return {"smallest": float(self.object_range[0]), "largest": float(self.object_range[1]),
+                "window_object_side": min(self.window) / (1.0 + 2.0 * self.margin)}
 
     def summary(self) -> list[str]:
-        """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank.
+        """Human-readable lines: window, mode, trees, features, OOB error, early exit, date, bank
+        (the facts of :func:`describe`).
 
         Examples
         --------
@@ -308,30 +356,30 @@ class Model:
         >>> m.summary()[0]
         'window: 24 x 24 pixels (width x height)'
         """
-        md = _mapping(self.metadata)  # a hand-edited file may hold anything: show what makes sense
+        d = describe(self)
         kind = "random forest (bagged)" if self.mode == "bagged" else "Gentle AdaBoost (boosted)"
         lines = [
-            f"window: {self.window[0]} x {self.window[1]} pixels (width x height)",
-            f"trees: {self.n_trees} of depth {self.depth}, {kind}",
+            f"window: {d['window']['width']} x {d['window']['height']} pixels (width x height)",
+            f"trees: {d['trees']} of depth {d['depth']}, {kind}",
         ]
-        pool = _real(md.get("pool_drawn")) or _real(_mapping(md.get("parameters")).get("pool"))
-        used = f"features used: {len(self.features)}"
+        pool = d["pool"]
+        used = f"features used: {d['features_used']}"
         lines.append(used + (f" of a pool of {_plain(pool)}" if pool else "") +
-                     f" ({'contrast-normalised' if self.normalize else 'raw'} values)")
-        oob = _real(md.get("oob_error"))
+                     f" ({'contrast-normalised' if d['normalize'] else 'raw'} values)")
+        oob = d["training"]["oob_error"]
         lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
-        active = np.isfinite(self.exit_thresholds).sum()
-        cal = _mapping(md.get("calibration"))
-        text = f"early exit: {active} of {self.n_trees} trees have an exit threshold"
+        ee = d["early_exit"]
+        cal = ee["calibration"]
+        text = f"early exit: {ee['trees_with_exit']} of {d['trees']} trees have an exit threshold"
         recall = _real(cal.get("exit_recall"))
         if recall is not None:
             text += (f", calibrated for recall {_plain(recall)} on "
                      f"{_plain(_real(cal.get('objects')) or 0)} held-out objects")
-        if self.exit_levels is not None and len(self.exit_levels):
-            text += (f"; tighter exits for scan thresholds from {float(self.exit_levels[0]):g} "
-                     f"to {float(self.exit_levels[-1]):g}")
+        if ee["levels"]:
+            text += (f"; tighter exits for scan thresholds from {ee['levels'][0]:g} "
+                     f"to {ee['levels'][-1]:g}")
         lines.append(text)
-        gate = _real(md.get("exit_min_sigma"))
+        gate = d["scan"]["exit_min_sigma"]
         if gate:
             lines.append(f"contrast gate: windows with a grey-level standard deviation below "
                          f"{gate:.1f} are dropped before any tree")
@@ -342,11 +390,75 @@ class Model:
                 f"mean trees evaluated per window: objects {objects:.1f}, "
                 f"background {math.nan if background is None else background:.1f}"
             )
-        bank = md.get("bank_sha256") or _mapping(md.get("bank")).get("sha256")
-        date = md.get("date")
+        bank = d["training"]["bank_sha256"]
+        date = d["training"]["date"]
         lines.append(f"trained: {date if isinstance(date, str) and date else 'unknown date'}"
                      + (f", bank sha256 {bank[:12]}" if isinstance(bank, str) and bank else ""))
         return lines
+
+
+def describe(model: Model) -> dict:
+    """The facts of a model a person checks first, as one JSON-ready dict: the one describer that
+    :meth:`Model.summary` (and ``patchwood inspect``'s report) show.
+
+    Returns
+    -------
+    dict
+        ``window`` (``width``, ``height``), ``mode``, ``method``, ``trees``, ``depth``, ``splits``
+        (real split nodes), ``features_used``, ``pool``, ``features_per_node``, ``normalize``,
+        ``scan`` (the typed values the scan computes with: ``margin``, ``score_temperature``,
+        ``exit_min_sigma``, ``object_range``), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
+        ``levels``, ``calibration``: the calibration record as stored) and ``training``
+        (``date``, ``parameters``, ``bank_sha256``, ``bank_counts``, ``patches``, ``oob_error``,
+        ``mining``, ``versions``). A hand-edited metadata record may hold anything: what does not
+        make sense is None or empty.
+
+    Examples
+    --------
+    >>> m = Model((24, 24), np.zeros((1, 4, 5), np.int32), [[0]], [[0.0]], [[0.0, 1.0]],
+    ...           [-np.inf], "bagged", metadata={"date": "2025-01-02", "oob_error": "?"})
+    >>> d = describe(m)
+    >>> d["trees"], d["depth"], d["splits"], d["early_exit"]["trees_with_exit"]
+    (1, 1, 1, 0)
+    >>> d["training"]["oob_error"], d["scan"]
+    (None, {'margin': 0.0, 'score_temperature': 1.0, 'exit_min_sigma': 0.0, 'object_range': None})
+    """
+    md = _mapping(model.metadata)
+    params = _mapping(md.get("parameters"))
+    bank = _mapping(md.get("bank"))
+    exits = np.isfinite(model.exit_thresholds)
+    levels = [] if model.exit_levels is None else [float(v) for v in model.exit_levels]
+    versions = md.get("versions")
+    return _jsonable({
+        "window": {"width": int(model.window[0]), "height": int(model.window[1])},
+        "mode": model.mode,
+        "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
+        "trees": model.n_trees,
+        "depth": model.depth,
+        "splits": int(model.forest.split_mask.sum()),
+        "features_used": int(len(model.features)),
+        "pool": _real(md.get("pool_drawn")) or _real(params.get("pool")),
+        "features_per_node": md.get("features_per_node", params.get("features_per_node")),
+        "normalize": bool(model.normalize),
+        "scan": {"margin": model.margin, "score_temperature": model.temperature,
+                 "exit_min_sigma": model.exit_min_sigma, "object_range": model.object_range},
+        "early_exit": {
+            "trees_with_exit": int(exits.sum()),
+            "first_exit_after_tree": int(np.argmax(exits)) + 1 if exits.any() else None,
+            "levels": levels,
+            "calibration": _mapping(md.get("calibration")),
+        },
+        "training": {
+            "date": md.get("date"),
+            "parameters": params,
+            "bank_sha256": md.get("bank_sha256") or bank.get("sha256"),
+            "bank_counts": bank.get("counts"),
+            "patches": md.get("patches"),
+            "oob_error": _real(md.get("oob_error")),
+            "mining": md.get("mining") if isinstance(md.get("mining"), list) else [],
+            "versions": versions if isinstance(versions, dict) else {},
+        },
+    })
 
 
 def _mapping(value) -> dict:
@@ -385,8 +497,7 @@ def metadata_sha256(model: Model) -> str:
 def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
-        "format_version": np.array(FORMAT_VERSION if model.feature_channels is None
-                                   else CHANNELS_FORMAT_VERSION, dtype=np.int64),
+        "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
         "kind": np.array("model"),
         "window": np.array(model.window, dtype=np.int32),
         "features": model.features,
@@ -396,12 +507,17 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
         "exit_thresholds": model.exit_thresholds,
         "mode": np.array(model.mode),
         "normalize": np.array(model.normalize, dtype=bool),
+        "margin": np.array(model.margin, dtype=np.float64),
+        "score_temperature": np.array(model.temperature, dtype=np.float64),
+        "exit_min_sigma": np.array(model.exit_min_sigma, dtype=np.float64),
         "metadata": np.array(metadata_text(model)),
     }
     if model.feature_importances is not None:
         arrays["feature_importances"] = model.feature_importances
     if model.feature_channels is not None:
         arrays["feature_channels"] = model.feature_channels
+    if model.object_range is not None:
+        arrays["object_range"] = model.object_range
     if model.exit_levels is not None:
         arrays["exit_levels"] = model.exit_levels
         arrays["exit_table"] = model.exit_table
@@ -425,8 +541,9 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     npzfile.save_npz(path, arrays)
 
 
-def validate_model(a: dict[str, np.ndarray], path) -> dict:
-    """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata."""
+def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[dict, dict]:
+    """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata and the scan
+    settings (:data:`SCAN_SETTINGS`: from the arrays, or from the metadata before version 3)."""
     sizes = npzfile.check_arrays(a, MODEL_SPEC, path, kind="model")
     t, nodes, leaves, n_features = sizes["T"], sizes["nodes"], sizes["leaves"], sizes["F"]
     if t < 1:
@@ -475,7 +592,7 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
         if np.isnan(table).any() or np.isposinf(table).any():
             raise InputError("model exit table must be finite or -inf", path=path)
     if "feature_channels" in a:
-        from detector.channels import N_CHANNELS
+        from detector.features import N_CHANNELS
 
         channels = a["feature_channels"]
         if channels.min() < 0 or channels.max() >= N_CHANNELS:
@@ -498,23 +615,45 @@ def validate_model(a: dict[str, np.ndarray], path) -> dict:
         leaves = a["leaf_values"]
         if leaves.min() < 0 or leaves.max() > 1:
             raise InputError("bagged model leaf values must be object fractions in 0..1", path=path)
-    # the two metadata values the scan computes with (the rest is only reported)
-    margin = metadata.get("margin", 0.0)
+    # the values the scan computes with (the rest of the metadata is only reported)
+    version = int(a["format_version"])
+    if version in METADATA_SETTINGS_VERSIONS:
+        where, settings = "metadata", {k: metadata.pop(k, v) for k, v in SCAN_SETTINGS.items()}
+        # the bank's record of the labelled sizes (a hand-edited one that makes no sense: unknown)
+        sizes = _mapping(_mapping(_mapping(metadata.get("bank")).get("harvest")).get("object_sizes"))
+        pair = [sizes.get("smallest"), sizes.get("largest")]
+        settings["object_range"] = (np.array(pair, np.float64)
+                                    if all(_is_real(v) for v in pair)
+                                    and _object_range_ok(np.array(pair, np.float64)) else None)
+    else:
+        missing = [k for k in SCAN_SETTINGS if k not in a]
+        if missing:
+            raise InputError(f"model array {missing[0]!r} is missing (format version {version} "
+                             "needs it)", path=path)
+        where, settings = "array", {k: a[k].item() for k in SCAN_SETTINGS}
+        settings["object_range"] = a.get("object_range")
+        if settings["object_range"] is not None and not _object_range_ok(settings["object_range"]):
+            raise InputError("model array 'object_range' must hold two sizes > 0, the smaller "
+                             "first", path=path)
+    margin, temperature, gate = (settings[k] for k in SCAN_SETTINGS)
     if not _is_real(margin) or margin < 0:
-        raise InputError(f"model metadata 'margin' must be a number >= 0, got {_shown(margin)}",
+        raise InputError(f"model {where} 'margin' must be a number >= 0, got {_shown(margin)}",
                          path=path)
     if min(width, height) / (1.0 + 2.0 * margin) < 1.0:
-        raise InputError(f"model metadata 'margin' {margin:g} leaves less than one pixel of the "
+        raise InputError(f"model {where} 'margin' {margin:g} leaves less than one pixel of the "
                          f"object in the {width}x{height} window", path=path)
-    temperature = metadata.get("score_temperature", 1.0)
     if not _is_real(temperature) or temperature <= 0:
-        raise InputError("model metadata 'score_temperature' must be a number > 0, got "
+        raise InputError(f"model {where} 'score_temperature' must be a number > 0, got "
                          f"{_shown(temperature)}", path=path)
-    gate = metadata.get("exit_min_sigma", 0.0)
     if not _is_real(gate) or gate < 0:
-        raise InputError("model metadata 'exit_min_sigma' must be a number >= 0, got "
+        raise InputError(f"model {where} 'exit_min_sigma' must be a number >= 0, got "
                          f"{_shown(gate)}", path=path)
-    return metadata
+    return metadata, settings
+
+
+def _object_range_ok(pair: np.ndarray) -> bool:
+    """Two finite sizes > 0, the smaller first."""
+    return bool(np.isfinite(pair).all() and pair[0] > 0 and pair[0] <= pair[1])
 
 
 def _is_real(value) -> bool:
@@ -560,10 +699,10 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
     if version.ndim != 0 or version.dtype.kind not in "iu":
         raise InputError("model array 'format_version' must be one integer", path=path)
     if int(version) not in READ_VERSIONS:
-        raise InputError(f"unsupported model format version {int(version)} "
-                         f"(this patchwood reads {' and '.join(map(str, READ_VERSIONS))})",
-                         path=path)
-    metadata = validate_model(a, path)
+        raise InputError(f"unsupported model format version {int(version)} (this patchwood reads "
+                         f"{', '.join(map(str, READ_VERSIONS[:-1]))} and {READ_VERSIONS[-1]}; "
+                         "train the model again with `patchwood train`)", path=path)
+    metadata, settings = validate_model(a, path)
     return Model(
         window=tuple(int(v) for v in a["window"]),
         features=a["features"],
@@ -578,4 +717,8 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
         exit_levels=a.get("exit_levels"),
         exit_table=a.get("exit_table"),
         feature_channels=a.get("feature_channels"),
+        margin=settings["margin"],
+        temperature=settings["score_temperature"],
+        exit_min_sigma=settings["exit_min_sigma"],
+        object_range=settings["object_range"],
     )

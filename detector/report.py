@@ -38,7 +38,7 @@ from detector.errors import InputError
 from detector.files import atomic_write, read_bytes, same_file, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
 from detector.npzfile import file_sha256
-from detector.provenance import describe_settings, provenance_of
+from detector.scan import describe_settings, provenance_of
 
 __all__ = [
     "BOX_STYLES",
@@ -487,7 +487,7 @@ def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = Non
         (:func:`at_threshold`): its counts, per-image rows and error lists go under
         ``at_operating_point``.
     provenance : dict, optional
-        The detections file's provenance record (:mod:`detector.provenance`): which model and
+        The detections file's provenance record (:mod:`detector.scan`): which model and
         settings made them. ``scan --threshold-from`` checks it.
     warnings : sequence of str
         Mismatches between the detections and the labels (:func:`name_mismatches`).
@@ -588,7 +588,7 @@ def read_summary_point(path) -> tuple[float, dict | None]:
     InputError
         As :func:`threshold_from_summary`, and for a provenance entry that is not a record.
     """
-    from detector.provenance import _check_record
+    from detector.scan._provenance import _check_record
 
     try:
         data = read_bytes(path, max_bytes=SUMMARY_MAX_BYTES)
@@ -1076,7 +1076,7 @@ def _nearest_scores(misses, detections) -> None:
     """Give each miss the highest score of any detection in the file overlapping it (IoU > 0),
     also those below the operating point's threshold: a miss just below it reads differently
     from one no window came near."""
-    from detector.boxes import iou
+    from detector.geometry import iou
 
     for m in misses:
         boxes, scores = detections.get(m.image, (np.zeros((0, 4)), np.zeros(0)))

@@ -52,7 +52,7 @@ def top_bright(seed, n_objects, n_background, spread, lift):
 def calibration_copies(clf, patches, random_state=0):
     """The early-exit calibration copies a fitted PatchClassifier made (as its ``fit`` draws them
     from its seed, with the default shift 1 and scale 1.1)."""
-    from detector.classifier import misaligned_copies
+    from detector.cascade import misaligned_copies
     from detector.forest import seed_sequence
 
     exit_ss = seed_sequence(random_state).spawn(5)[4]

@@ -4,7 +4,7 @@ References: ``skimage.feature.hog`` (the numpy twin of the block grid, and the w
 read from a frame's dense block grid, must equal it); ``sklearn.svm.LinearSVC.decision_function``
 (the correlation that scores every window at once must equal it window by window); pyramid
 arithmetic worked by hand in the comments; ``detector.evaluate.evaluate`` and
-``detector.boxes.iou`` (held to pycocotools in their own tests) for a small end-to-end run on
+``detector.geometry.iou`` (held to pycocotools in their own tests) for a small end-to-end run on
 bright squares.
 """
 
@@ -21,9 +21,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from skimage.feature import hog
 
-from detector.boxes import iou
+from detector.geometry import iou
 from detector.evaluate import evaluate
-from detector.harvest import harvest, window_box_to_object_box
+from detector.geometry import window_box_to_object_box
+from detector.harvest import harvest
 from detector.labels import ImageLabels
 
 FAST = settings(max_examples=40, deadline=None)

@@ -1,4 +1,4 @@
-"""Folder runs: `patchwood scan` and detector.batch.scan_paths.
+"""Folder runs: `patchwood scan` and detector.scan.scan_paths.
 
 What is checked, and against what:
 - the detections file holds, for every image, exactly what ``detector.scan.Engine.scan`` returns
@@ -30,7 +30,7 @@ import pytest
 from typer.testing import CliRunner
 
 import cli.main
-from detector.batch import DETECTION_COLOUR, failures_path, scan_paths
+from detector.scan import DETECTION_COLOUR, failures_path, scan_paths
 from detector.errors import InputError
 from detector.images import read_gray
 from detector.labels import read_detections
@@ -200,7 +200,7 @@ def test_every_detections_file_has_a_provenance_side_file(trained, folder, tmp_p
 
     import numba
 
-    from detector.provenance import provenance_of, provenance_path
+    from detector.scan import provenance_of, provenance_path
 
     model = trained / "model.npz"
     out = tmp_path / "daily.csv"
@@ -443,7 +443,7 @@ def test_interrupted_run_resumes_into_the_uninterrupted_file(trained, folder, re
         scan_paths(model, [folder], out, batch_images=2, on_image=interrupt_after_five)
     partial = read_detections(out)  # parses: a valid detections file
     assert_matches_engine(partial, reference, NAMES[:5])  # the images handled, each complete
-    from detector.provenance import provenance_of
+    from detector.scan import provenance_of
 
     record, _ = provenance_of(out)  # its side file describes it as it is
     assert record is not None and record["detections"]["images"] == 5

@@ -1,4 +1,4 @@
-"""Gradient channels and channel features (detector.channels; Integral Channel Features, Dollár, Tu,
+"""Gradient channels and channel features (detector.features; Integral Channel Features, Dollár, Tu,
 Perona and Belongie, BMVC 2009): the channel images against numpy references, the compiled
 integral images against their numpy twin, channel feature values against the numpy twin, the
 scan of channel models against its numpy twin and against the classifier on patches cut by hand,
@@ -16,12 +16,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from detector.channels import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
+from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
                                gradient_channels, orientation_bins, patch_channels)
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
-                               random_pool)
+from detector.features import channel_pool, evaluate_features, evaluate_features_numpy, random_pool
 from detector.harvest import harvest
 from detector.labels import read_labels
 from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \
@@ -171,7 +170,7 @@ def bank(tmp_path_factory):
 def channel_model(request, bank):
     clf = PatchClassifier(n_trees=20, pool=2000, mode=request.param, random_state=0,
                           channels="gradient")
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     model = clf.model_
     assert model.feature_channels is not None and (model.feature_channels > 0).sum() >= 5
     return model
@@ -282,7 +281,7 @@ def test_channel_model_file_round_trip(channel_model, tmp_path):
     path = tmp_path / "channels.npz"
     save_model(path, channel_model)
     with np.load(path, allow_pickle=False) as npz:
-        assert int(npz["format_version"]) == CHANNELS_FORMAT_VERSION
+        assert int(npz["format_version"]) == FORMAT_VERSION >= CHANNELS_FORMAT_VERSION
         assert npz["feature_channels"].dtype == np.int8
     loaded = load_model(path)
     np.testing.assert_array_equal(loaded.feature_channels, channel_model.feature_channels)
@@ -294,12 +293,12 @@ def test_channel_model_file_round_trip(channel_model, tmp_path):
 
 
 def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
-    """A grey-only model is written as before channels existed (format 1, no feature_channels),
+    """A grey-only model is written without feature_channels,
     loads with no channels, and its scan reads the one-plane integral image."""
     clf = PatchClassifier(n_trees=10, pool=800, random_state=0).fit(
-        bank.patches, bank.labels, metadata={"margin": bank.margin})
+        bank.patches, bank.labels, margin=bank.margin)
     same = PatchClassifier(n_trees=10, pool=800, random_state=0, channels="grey").fit(
-        bank.patches, bank.labels, metadata={"margin": bank.margin})
+        bank.patches, bank.labels, margin=bank.margin)
     arrays = model_arrays(clf.model_)
     assert int(arrays["format_version"]) == FORMAT_VERSION and "feature_channels" not in arrays
     for name, value in model_arrays(same.model_).items():

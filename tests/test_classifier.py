@@ -11,9 +11,9 @@ from skimage.data import lfw_subset
 from sklearn.base import clone
 from sklearn.model_selection import StratifiedKFold, cross_val_score
 
-from detector.classifier import PatchClassifier, calibration_count
+from detector.cascade import calibration_count, trees_evaluated
+from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.forest import trees_evaluated
 
 
 def _patches(n_objects=60, n_background=60, size=12, seed=0):
@@ -80,7 +80,7 @@ def test_early_exit_keeps_the_calibration_objects():
     held = clf.calibration_indices_
     assert len(held) == calibration_count(300) == 30 and (y[held] == 1).all()
     # the calibration set: every held-out object and 8 misaligned copies of it (seeded stream 5)
-    from detector.classifier import misaligned_copies
+    from detector.cascade import misaligned_copies
     from detector.forest import seed_sequence
 
     copies = misaligned_copies(patches[held], 1.0, 1.1, random_state=seed_sequence(0).spawn(5)[4])
@@ -195,8 +195,8 @@ def test_caller_metadata_reaches_the_model_file(tmp_path):
     save_npz(bank, {"patches": patches, "labels": y.astype(np.uint8)})
     digest = file_sha256(bank)
     clf = PatchClassifier(n_trees=4, pool=100, random_state=0).fit(
-        patches, y, metadata={"bank_sha256": digest, "margin": 0.1})
+        patches, y, metadata={"bank_sha256": digest}, margin=0.1)
     save_model(tmp_path / "m.npz", clf.model_)
     back = load_model(tmp_path / "m.npz")
-    assert back.metadata["bank_sha256"] == digest and back.metadata["margin"] == 0.1
+    assert back.metadata["bank_sha256"] == digest and back.margin == 0.1
     assert f"bank sha256 {digest[:12]}" in back.summary()[-1]

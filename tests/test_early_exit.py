@@ -4,10 +4,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from detector.classifier import PatchClassifier, misaligned_copies
-from detector.forest import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
-                             exit_kept, float32_thresholds, kept_objects,
-                             order_for_early_exit, trees_evaluated)
+from detector.cascade import (calibrate_contrast_gate, calibrate_exit, calibrate_exit_table,
+                              exit_kept, kept_objects, misaligned_copies, order_for_early_exit,
+                              trees_evaluated)
+from detector.classifier import PatchClassifier
+from detector.forest import float32_thresholds
 from detector.model import Model
 from shared import calibration_copies, top_bright
 
@@ -62,7 +63,7 @@ def test_hand_worked_order():
 
 
 def test_misaligned_copies_follow_crop_region():
-    from detector.harvest import crop_region
+    from detector.geometry import crop_region
 
     # crop_region itself: scale 1 and a whole-pixel shift reduce to an edge-padded slice
     # (reference: numpy edge padding)
@@ -111,7 +112,7 @@ def test_fitted_exit_keeps_every_kept_calibration_copy():
     # ... nor by the contrast gate: every copy's standard deviation (numpy's population std of its
     # pixels) is at least the gate, and the gate is sqrt(0.5) of the lowest one (all are kept)
     sig = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1)
-    gate = m.metadata["exit_min_sigma"]
+    gate = m.exit_min_sigma
     assert gate == pytest.approx(np.sqrt(0.5) * sig.min(), rel=1e-12)
     assert (sig >= gate).all()
 
@@ -232,7 +233,7 @@ def test_fitted_exit_gives_up_at_most_its_budget():
         m = clf.model_
         cal = calibration_copies(clf, patches)
         run = m.running_scores(cal)
-        gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.metadata["exit_min_sigma"]
+        gated = cal.reshape(len(cal), -1).astype(np.float64).std(axis=1) < m.exit_min_sigma
         rows = [(0.0, m.exit_thresholds)] + list(zip(m.exit_levels, m.exit_table))
         fin = final_score(m.mode, run[:, -1], m.n_trees, m.temperature)
         for level, row in rows:
@@ -247,7 +248,7 @@ def test_fitted_exit_gives_up_at_most_its_budget():
 def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed):
     """The compiled greedy loop gives exactly the order of the plain-numpy one, ties included
     (leaves take few values, so many trees drop as many windows)."""
-    from detector.forest import _order_for_early_exit_numpy
+    from detector.cascade import _order_for_early_exit_numpy
 
     rng = np.random.default_rng(seed)
     o = rng.integers(-2, 3, (n_obj, t)) * 0.25
@@ -293,7 +294,7 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
     every level and between levels: ``Model.exits_for(c)`` gives it, and a scan given
     ``exit_level=c`` uses it, whether its own threshold is c or 0. The windows kept, and the
     trees they cost, show which row the compiled scan used."""
-    from detector.forest import EXIT_LEVELS
+    from detector.cascade import EXIT_LEVELS
     from detector.scan import Engine, ScanSettings
 
     levels = np.array(EXIT_LEVELS, np.float32)
@@ -389,3 +390,36 @@ def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshol
         assert len(dropped) <= int(np.floor(0.1 * n + 1e-9)), (mode, c, len(dropped), n)
         given_up += len(dropped)
     assert given_up > 0  # the exits do spend their budget here: the bound is not idle
+
+
+@pytest.mark.parametrize("mode", ["bagged", "boosted"])
+def test_calibrate_is_what_fit_applies(mode):
+    """``cascade.calibrate`` run again on a fitted forest (its trees already in the fitted order):
+    the gate and the temperature depend only on final scores, so they are the fitted model's
+    (the temperature the balanced fit on the calibration copies' and the background's totals);
+    the order is a permutation of the trees and its exits keep the calibration copies the
+    budget allows; without calibration objects the trees stay as grown, with no exit at all."""
+    from detector.cascade import calibrate, fit_temperature
+    from detector.forest import seed_sequence
+
+    patches, y = top_bright(3, 60, 120, spread=60, lift=150)
+    clf = PatchClassifier(n_trees=12, pool=400, mode=mode, random_state=0).fit(patches, y)
+    m = clf.model_
+    cal = calibration_copies(clf, patches)
+    background = patches[np.setdiff1d(np.flatnonzero(y == 0), clf.calibration_indices_)]
+    exit_ss = seed_sequence(0).spawn(6)[4]
+    again = calibrate(m.leaf_scores, mode, patches[clf.calibration_indices_], background,
+                      random_state=exit_ss)
+    assert sorted(again.order.tolist()) == list(range(m.n_trees))
+    assert again.min_sigma == m.exit_min_sigma and again.report["objects"] == 15  # 60 / 4
+    totals = m.running_scores(cal)[:, -1], m.running_scores(background)[:, -1]
+    assert again.temperature == m.temperature == (fit_temperature(*totals) if mode == "boosted"
+                                                  else 1.0)
+    # the exits of the returned order keep every calibration copy the budget keeps
+    run = m.running_scores(cal)[:, again.order]
+    kept = trees_evaluated(run, again.exit_thresholds) == m.n_trees
+    assert kept.mean() >= 0.995 - 1.0 / len(cal)
+    # without calibration objects: no exits, no gate, temperature 1, the trees as grown
+    none = calibrate(m.leaf_scores, mode, patches[:0], background, random_state=exit_ss)
+    assert none.order.tolist() == list(range(m.n_trees)) and np.isneginf(none.exit_thresholds).all()
+    assert (none.min_sigma, none.temperature, none.exit_levels) == (0.0, 1.0, None)

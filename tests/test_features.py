@@ -14,16 +14,9 @@ from skimage.feature import haar_like_feature, haar_like_feature_coord
 from skimage.transform import integral_image as skimage_integral_image
 
 from detector.errors import InputError
-from detector.features import (
-    SHAPES,
-    count_features,
-    enumerate_features,
-    evaluate_features,
-    evaluate_features_numpy,
-    feature_corners,
-    random_pool,
-)
-from detector.integral import integral_images, squared_integral_images
+from detector.features import (SHAPES, count_features, enumerate_features, evaluate_features,
+                               evaluate_features_numpy, feature_corners, random_pool)
+from detector.features import integral_images, squared_integral_images
 
 # skimage's name for each of our shapes, and the weights of its rectangles in its own order
 # (found by fitting skimage 0.26's values to the rectangle sums: right minus left, bottom minus top,
@@ -457,7 +450,7 @@ def test_integral_inputs_out_and_transpose():
 
 
 def test_patches_are_evaluated_in_batches_with_the_same_values(monkeypatch):
-    import detector.features as module
+    import detector.features._rectangles as module
     patches = random_patches(250, 9, 8, seed=14)
     features = random_pool(9, 8, 70, random_state=14)
     whole = evaluate_features_numpy(features, patches)

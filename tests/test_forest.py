@@ -12,22 +12,11 @@ from hypothesis.extra import numpy as hnp
 from sklearn.metrics import roc_auc_score
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
-from detector.forest import (
-    FlatForest,
-    bin_columns,
-    bin_columns_numpy,
-    calibrate_exit,
-    flatten_tree,
-    float32_thresholds,
-    forest_leaves,
-    forest_running_scores,
-    forest_score,
-    grow_forest,
-    quantile_cuts,
-    quantile_cuts_numpy,
-    thresholds_from_bins,
-    trees_evaluated,
-)
+from detector.cascade import calibrate_exit, trees_evaluated
+from detector.forest import (FlatForest, bin_columns, bin_columns_numpy, flatten_tree,
+                             float32_thresholds, forest_leaves, forest_running_scores,
+                             forest_score, grow_forest, quantile_cuts, quantile_cuts_numpy,
+                             thresholds_from_bins)
 
 
 def _data(n=300, f=24, seed=0, ties=False):

@@ -3,7 +3,7 @@
 Outside references used here: OpenCV's ``cv2.resize(..., interpolation=cv2.INTER_AREA)`` on the plain
 array slice and ``numpy.pad(mode="edge")`` for the border; scikit-image's
 ``skimage.transform.downscale_local_mean`` for a whole-factor shrink; ``numpy.rot90`` and
-``[:, ::-1]`` for rotation and mirroring; ``detector.boxes.iou`` (held equal to pycocotools in
+``[:, ::-1]`` for rotation and mirroring; ``detector.geometry.iou`` (held equal to pycocotools in
 tests/test_boxes.py) beside an IoU coded by hand in this file; ``numpy.load(allow_pickle=False)``
 for the file format. Everything else is worked by hand in the comments.
 """
@@ -24,7 +24,7 @@ from typer.testing import CliRunner
 
 import cli.main
 from detector import npzfile
-from detector.boxes import iou
+from detector.geometry import iou
 from detector.errors import InputError
 from detector.harvest import (AUGMENTATION_COLUMNS, KIND_AUGMENTED, KIND_BACKGROUND, KIND_MINED,
                               KIND_OBJECT, PatchBank, crop_region, harvest, infer_window,

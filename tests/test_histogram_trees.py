@@ -14,9 +14,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from detector import _tree_kernels as K
-from detector.forest import FlatForest, bin_columns, forest_leaves, grow_forest, quantile_cuts, thresholds_from_bins
-from detector.histogram_trees import COMPILED, NUMPY, grow_histogram_tree
+from detector.forest import _tree_kernels as K
+from detector.forest import (FlatForest, bin_columns, forest_leaves, grow_forest, quantile_cuts,
+                             thresholds_from_bins)
+from detector.forest import grow_histogram_tree
+from detector.forest._histogram import COMPILED, NUMPY
 
 
 def _binned(n=2000, f=8, seed=0, max_bins=64):

@@ -13,14 +13,8 @@ from hypothesis.extra.numpy import arrays
 from skimage.transform import integral_image as skimage_integral_image
 
 from detector.errors import InputError
-from detector.integral import (
-    integral_image,
-    integral_images,
-    squared_integral_image,
-    squared_integral_images,
-    window_mean_var,
-    window_sum,
-)
+from detector.features import (integral_image, integral_images, squared_integral_image,
+                               squared_integral_images, window_mean_var, window_sum)
 
 SETTINGS = settings(max_examples=40, deadline=None)
 sides = st.integers(1, 24)

@@ -1,14 +1,15 @@
-"""Load: a folder of 1,000 small frames through :func:`detector.batch.scan_paths`.
+"""Load: a folder of 1,000 small frames through :func:`detector.scan.scan_paths`.
 
 What is checked, and against what:
 - one process, ``jobs=2`` and a dask.distributed ``LocalCluster`` of 2 workers write the very same
-  bytes (the promise of ``detector.batch``), with all 1,000 images listed and no failures; a sample
-  of images holds exactly what ``detector.scan.Engine.scan`` finds in that image read on its own;
+  bytes (the promise of ``detector.scan``'s folder runs), with all 1,000 images listed and no
+  failures; a sample of images holds exactly what ``detector.scan.Engine.scan`` finds in that
+  image read on its own;
 - memory stays flat: the resident set of the scanning process, sampled after every image, grows by
   less than retaining the frames would cost (the arithmetic is beside the bound), in each of the
   three runs (the cluster's scheduler and workers are threads of this process here);
 - a cluster run holds only the images in flight, never every image it has scanned: the
-  scheduler's tasks and the workers' results stay within the window ``detector.batch`` sends.
+  scheduler's tasks and the workers' results stay within the window the folder run sends.
 
 The frames are 160 x 160, the smallest side ``synthetic_images.render_frame`` draws: 200 rendered
 frames (every tenth without nuts) in five orientations each, so 1,000 different images for the
@@ -27,7 +28,7 @@ import distributed
 import numpy as np
 import pytest
 
-from detector.batch import failures_path, scan_paths
+from detector.scan import failures_path, scan_paths
 from detector.images import read_gray
 from detector.labels import read_detections
 from detector.model import load_model
@@ -154,8 +155,8 @@ def test_a_thousand_frames_scan_to_the_same_bytes_everywhere_and_memory_stays_fl
             f"(bound {GROWTH_BOUND / 1e6:.0f} MB; peak {samples.max() / 1e6:.0f} MB)")
 
 
-# The window of tasks in flight in detector.batch._run_on_cluster: max(2, 2 * workers), each with
-# its scattered batch of images (detector.batch.CLUSTER_BATCH_IMAGES of them at most).
+# The window of tasks in flight in detector.scan._batch._run_on_cluster: max(2, 2 * workers), each with
+# its scattered batch of images (detector.scan.CLUSTER_BATCH_IMAGES of them at most).
 IN_FLIGHT = 4
 
 
@@ -179,7 +180,7 @@ def test_a_cluster_run_holds_only_the_images_in_flight(model_file, tmp_path):
     # at most the tasks in flight with their batches and the scattered model, twice over for
     # releases still on their way: 2 * (2 * 4 + 1) = 18; keeping every batch would hold all 15
     # of them (120 images, 8 to a task) with their data by the end: 31
-    from detector.batch import CLUSTER_BATCH_IMAGES
+    from detector.scan import CLUSTER_BATCH_IMAGES
 
     assert 2 * -(-120 // CLUSTER_BATCH_IMAGES) + 1 > 2 * (2 * IN_FLIGHT + 1)  # the test can fail
     bound = 2 * (2 * IN_FLIGHT + 1)

@@ -198,7 +198,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
 @pytest.mark.parametrize(
     "change, message",
     [
-        (dict(format_version=np.array(3, np.int64)), "unsupported model format version 3 (this patchwood reads 1 and 2)"),
+        (dict(format_version=np.array(4, np.int64)), "unsupported model format version 4 (this patchwood reads 1, 2 and 3; train the model again with `patchwood train`)"),
         (dict(format_version=None), "not a model file: array 'format_version' is missing"),
         (dict(node_thresholds=None), "not a complete model file: array 'node_thresholds' is missing"),
         (dict(kind=np.array("patch-bank")), "this is a patch bank, not a model"),
@@ -220,7 +220,14 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
         (dict(exit_levels="above-one"), "model exit levels must be scores in 0..1, rising"),
         (dict(exit_table="nan"), "model exit table must be finite or -inf"),
         (dict(exit_table="one-short"), "model array 'exit_table' has size"),
-        (dict(metadata=np.array('{"exit_min_sigma": -1}')), "'exit_min_sigma' must be a number >= 0"),
+        (dict(exit_min_sigma=np.array(-1.0)), "model array 'exit_min_sigma' must be a number >= 0, got -1.0"),
+        (dict(score_temperature=np.array(0.0)), "model array 'score_temperature' must be a number > 0"),
+        (dict(margin=np.array(np.nan)), "model array 'margin' must be a number >= 0, got NaN"),
+        (dict(margin=np.array(6.0)), "model array 'margin' 6 leaves less than one pixel of the object"),
+        (dict(margin=None), "model array 'margin' is missing (format version 3 needs it)"),
+        (dict(object_range=np.array([30.0, 6.0])), "model array 'object_range' must hold two sizes > 0, the smaller first"),
+        (dict(object_range=np.array([0.0, 6.0])), "model array 'object_range' must hold two sizes > 0"),
+        (dict(score_temperature=np.array(2.0, np.float32)), "model array 'score_temperature' has dtype float32; expected float64"),
     ],
 )
 def test_load_refuses_each_bad_case(model_file, tmp_path, change, message):
@@ -262,6 +269,63 @@ def test_load_refuses_each_bad_case(model_file, tmp_path, change, message):
         load_model(bad)
     text = str(err.value)
     assert text.startswith(f"{bad}: ") and message in text and "\n" not in text
+
+
+def _older_file(model_file, tmp_path, version, **metadata):
+    """The model file as format ``version`` (1 or 2) wrote it: the scan settings in the metadata."""
+    arrays = npzfile.read_npz(model_file)
+    md = json.loads(str(arrays["metadata"]))
+    for name in ("margin", "score_temperature", "exit_min_sigma"):
+        md[name] = arrays.pop(name).item()
+    md.update(metadata)
+    arrays["metadata"] = np.array(json.dumps(md, sort_keys=True))
+    arrays["format_version"] = np.array(version, np.int64)
+    path = tmp_path / f"v{version}.npz"
+    npzfile.save_npz(path, arrays)
+    return path
+
+
+@pytest.mark.parametrize("version", [1, 2])
+def test_older_formats_are_converted(model_file, tmp_path, version):
+    """Versions 1 and 2 kept margin, temperature and contrast gate in the metadata JSON: they load
+    as the typed values, and saving writes version 3 with the same arrays and settings."""
+    new = load_model(model_file)
+    old = load_model(_older_file(model_file, tmp_path, version, margin=0.25, score_temperature=1.5,
+                                 exit_min_sigma=3.0))
+    assert (old.margin, old.temperature, old.exit_min_sigma) == (0.25, 1.5, 3.0)
+    assert not {"margin", "score_temperature", "exit_min_sigma"} & set(old.metadata)
+    assert old.metadata == new.metadata
+    np.testing.assert_array_equal(old.leaf_values, new.leaf_values)
+    np.testing.assert_array_equal(old.exit_thresholds, new.exit_thresholds)
+    save_model(tmp_path / "again.npz", old)
+    with np.load(tmp_path / "again.npz", allow_pickle=False) as npz:
+        assert int(npz["format_version"]) == FORMAT_VERSION
+        assert (float(npz["margin"]), float(npz["score_temperature"])) == (0.25, 1.5)
+    defaults = load_model(_older_file(model_file, tmp_path, version))  # keys absent: defaults
+    assert (defaults.margin, defaults.temperature) == (new.margin, new.temperature)
+    assert defaults.object_range is None and defaults.object_sizes is None
+    # the labelled sizes the bank recorded (harvest.object_sizes) become the object range; the
+    # window's own object side follows from window and margin: 12 / (1 + 2 * 0.25) = 8
+    sized = load_model(_older_file(model_file, tmp_path, version, margin=0.25, bank={
+        "harvest": {"object_sizes": {"smallest": 6.0, "median": 9.0, "largest": 30.0,
+                                     "window_object_side": 8.0}}}))
+    assert sized.object_range.tolist() == [6.0, 30.0]
+    assert sized.object_sizes == {"smallest": 6.0, "largest": 30.0, "window_object_side": 8.0}
+    odd = load_model(_older_file(model_file, tmp_path, version, bank={
+        "harvest": {"object_sizes": {"smallest": "small", "largest": 30.0}}}))
+    assert odd.object_range is None  # a record that makes no sense: sizes unknown, as before
+
+
+@pytest.mark.parametrize("name, value, message", [
+    ("exit_min_sigma", -1, "model metadata 'exit_min_sigma' must be a number >= 0, got -1"),
+    ("margin", "wide", "model metadata 'margin' must be a number >= 0, got \"wide\""),
+    ("score_temperature", 0, "model metadata 'score_temperature' must be a number > 0, got 0"),
+])
+def test_older_formats_check_their_metadata_settings(model_file, tmp_path, name, value, message):
+    path = _older_file(model_file, tmp_path, 1, **{name: value})
+    with pytest.raises(InputError) as err:
+        load_model(path)
+    assert str(err.value) == f"{path}: {message}"
 
 
 def test_load_refuses_a_patch_bank(tmp_path):

@@ -70,7 +70,7 @@ from PIL import Image, ImageOps
 
 import cli.main
 from detector import npzfile
-from detector.batch import failures_path
+from detector.scan import failures_path
 from detector.errors import InputError
 from detector.evaluate import evaluate
 from detector.harvest import harvest, load_bank, save_bank
@@ -596,8 +596,8 @@ def _damaged(kind: str, trained, folder: Path, marker: Path) -> tuple[Path, str]
         return path, f"not a {what} file (not an .npz archive, or truncated)"
     if case == "version":
         _replaced(src, path, format_version=lambda v: np.array(99, np.int64))
-        reads = "1 and 2" if model else "1"
-        return path, f"unsupported {what} format version 99 (this patchwood reads {reads})"
+        reads = "1, 2 and 3; train the model again" if model else "1)"
+        return path, f"unsupported {what} format version 99 (this patchwood reads {reads}"
     if case == "dtype":
         name, want = ("node_features", "int32") if model else ("patches", "uint8")
         _replaced(src, path, **{name: lambda v: v.astype(np.float32)})
@@ -615,14 +615,16 @@ def _damaged(kind: str, trained, folder: Path, marker: Path) -> tuple[Path, str]
     if case == "other-kind":
         shutil.copy(trained.bank if model else trained.model, path)
         return path, "this is a patch bank, not a model" if model else "not a patch bank"
+    if case == "margin" and model:  # a typed array since format 3
+        _replaced(src, path, margin=lambda v: np.array(-0.5))
+        return path, "model array 'margin' must be a number >= 0, got -0.5"
     if case == "margin":
         a = npzfile.read_npz(src)
         metadata = json.loads(str(a["metadata"]))
         metadata["margin"] = "wide"
         a["metadata"] = np.array(json.dumps(metadata))
         npzfile.save_npz(path, a)
-        return path, (f"{what} metadata 'margin' must be a number >= 0, got \"wide\"" if model
-                      else "metadata margin must be a number >= 0, got 'wide'")
+        return path, "metadata margin must be a number >= 0, got 'wide'"
     raise AssertionError(kind)
 
 
@@ -882,7 +884,7 @@ def model_members(tmp_path_factory):
     y = np.r_[np.ones(40, int), np.zeros(40, int)]
     clf = PatchClassifier(n_trees=3, depth=2, pool=200, mode="boosted", random_state=0)
     model = clf.fit(patches, y).model_
-    model.metadata["margin"] = 0.1
+    model.margin = 0.1
     path = tmp_path_factory.mktemp("fuzz model") / "model.npz"
     save_model(path, model)
     with zipfile.ZipFile(path) as zf:
@@ -946,7 +948,8 @@ def test_fuzz_model_loader_on_damaged_files(tmp_path, model_members, data):
 
 
 ARRAY_NAMES = ["window", "features", "node_features", "node_thresholds", "leaf_values",
-               "exit_thresholds", "format_version", "normalize", "mode", "metadata"]
+               "exit_thresholds", "format_version", "normalize", "mode", "metadata", "margin",
+               "score_temperature", "exit_min_sigma"]
 
 
 @st.composite
@@ -1015,8 +1018,9 @@ JSON_VALUES = st.recursive(
 @given(changes=st.dictionaries(st.sampled_from(METADATA_KEYS), JSON_VALUES, min_size=1,
                                max_size=3))
 def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
-    """A hand-edited metadata record: the two values the scan computes with are checked, the
-    rest is only shown, by the summary and by `patchwood inspect`, whatever its type."""
+    """A hand-edited metadata record is only shown, by the summary and by `patchwood inspect`,
+    whatever its type: the values the scan computes with are typed arrays (format 3), so the
+    model always loads and scans."""
     from detector.inspection import model_report, report_lines
 
     whole, _ = model_members
@@ -1029,10 +1033,7 @@ def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
     path = tmp_path / "edited.npz"
     npzfile.save_npz(path, arrays)
     model = _load_and_scan(path)
-    if model is not None:
-        assert report_lines(model_report(model))
-    else:  # refused: only for the values the scan uses
-        assert {"margin", "score_temperature"} & set(changes)
+    assert model is not None and report_lines(model_report(model))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1164,10 +1165,10 @@ def test_file_names_that_are_not_utf8_are_written_escaped(trained, tmp_path, mon
 
 
 def interrupted_scan(model, folder, out, after: int, **settings):
-    """A real run of the folder (``detector.batch.scan_paths``, writing after every image) stopped
+    """A real run of the folder (``detector.scan.scan_paths``, writing after every image) stopped
     after ``after`` images, as a killed run leaves it: a detections file and the provenance side
     file that describes it, which --resume checks."""
-    from detector.batch import scan_paths
+    from detector.scan import scan_paths
     from detector.scan import ScanSettings
 
     class Stop(KeyboardInterrupt):

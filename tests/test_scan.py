@@ -16,7 +16,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from detector.classifier import PatchClassifier
-from detector.harvest import harvest, window_box_to_object_box
+from detector.geometry import window_box_to_object_box
+from detector.harvest import harvest
 from detector.labels import read_labels
 from detector.model import Model
 from detector.scan import (Engine, ScanSettings, clip_boxes, detection_scores, final_scores,
@@ -37,7 +38,7 @@ def bank(tmp_path_factory):
 
 def _fit(bank, mode):
     clf = PatchClassifier(n_trees=20, pool=2000, mode=mode, random_state=0)
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     return clf.model_
 
 
@@ -94,10 +95,10 @@ def test_compiled_scan_equals_numpy_twin(model, early_exit):
 def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit):
     """Depths other than 2 take the kernel's general tree walk; a 160 x 160 frame at stride 2
     spans several chunks of windows (more than the kernel's CHUNK of 1,024 at scale 1)."""
-    from detector import _kernels
+    from detector.scan import _kernels
 
     clf = PatchClassifier(n_trees=12, pool=1500, depth=depth, mode="boosted", random_state=2)
-    clf.fit(bank.patches, bank.labels, metadata={"margin": bank.margin})
+    clf.fit(bank.patches, bank.labels, margin=bank.margin)
     engine = every_window(clf.model_, early_exit=early_exit, threshold=0.3)
     gray = frame(4)
     b1, r1, w1, t1 = engine.candidates(gray)
@@ -123,7 +124,7 @@ def test_scan_equals_candidates_then_detections(model, settings):
     certain: a bagged score is never below the cutoff 0, so at threshold 0 without early exit
     every window is a candidate, every image has at least one detection, and the suppression
     meets ties for certain: every window of the flat frame (the last image) sees the same pixels
-    and so has the same score; their order (window order, as detector.boxes.nms visits them) is
+    and so has the same score; their order (window order, as detector.geometry.nms visits them) is
     checked too."""
     rng = np.random.default_rng(8)
     images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
@@ -480,9 +481,9 @@ def test_contrast_gate_drops_exactly_the_flat_windows(model):
     gray = frame(9)
     gated = copy.deepcopy(model)
     gated.exit_thresholds[:] = -np.inf  # early exit on, but the gate is its only exit
-    gated.metadata["exit_min_sigma"] = 30.0  # well inside the frame's range of window contrasts
+    gated.exit_min_sigma = 30.0  # well inside the frame's range of window contrasts
     plain = copy.deepcopy(gated)
-    plain.metadata["exit_min_sigma"] = 0.0
+    plain.exit_min_sigma = 0.0
     b0, r0, w0, t0 = every_window(plain, threshold=0.0, early_exit=True).candidates(gray)
     b1, r1, w1, t1 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray)
     b2, r2, _, t2 = every_window(gated, threshold=0.0, early_exit=True).candidates(gray, use_numpy=True)
@@ -532,8 +533,9 @@ def test_split_bounds_reproduce_float32_comparison(t, others, steps):
 @given(st.integers(1, 40), st.integers(1, 40), st.integers(0, 2**32 - 1))
 @settings(max_examples=40, deadline=None)
 def test_frame_integrals_equal_the_project_integrals(h, w, seed):
-    """cv2.integral2 (the scan's fast path for 8-bit frames) == detector.integral, exactly."""
-    from detector.integral import integral_image, squared_integral_image
+    """cv2.integral2 (the scan's fast path for 8-bit frames) == detector.features.integral_image,
+    exactly."""
+    from detector.features import integral_image, squared_integral_image
     from detector.scan import frame_integrals
 
     gray = np.random.default_rng(seed).integers(0, 256, (h, w), dtype=np.uint8)
@@ -563,8 +565,8 @@ def test_integral_image_switches_to_float64_where_int32_would_overflow(monkeypat
     """An all-white frame one pixel above the int32 limit gets uint32 sums, one above the uint32
     limit float64 sums; at the limits, int32 and uint32. (The limits are lowered here so that the
     frames stay small; the arithmetic is the same: 255 * pixels against 2**31 - 1, 2**32 - 1.)"""
-    from detector import scan
-    from detector.integral import integral_image
+    from detector.scan import _engine as scan
+    from detector.features import integral_image
 
     assert scan.INT32_PIXELS * 255 <= 2**31 - 1 < (scan.INT32_PIXELS + 1) * 255
     assert scan.UINT32_PIXELS * 255 <= 2**32 - 1 < (scan.UINT32_PIXELS + 1) * 255
@@ -604,7 +606,7 @@ def test_one_engine_reuses_its_buffers_across_sizes_and_threads(bagged):
 def test_scan_gives_the_same_with_float64_and_uint32_sums(bagged, monkeypatch, limits, dtype):
     """Frames above the int32 limit are scanned on uint32 sums, above the uint32 limit on float64
     sums: the same windows and scores, by the compiled kernel and by its numpy twin."""
-    from detector import scan
+    from detector.scan import _engine as scan
 
     gray = frame(seed=6)
     want = every_window(bagged, threshold=0.2).candidates(gray)
@@ -624,7 +626,8 @@ def test_uint32_integral_images_hold_sums_past_two_to_the_31():
     rows: about 255 * 8.64 million - 20 * 2,960 * 127.5 = 2.196e9) but stays below 2**32 gets a
     uint32 integral image, equal to numpy's exact int64 cumulative sums (the check that
     OpenCV's int32 additions wrap around), in a reused buffer and in a fresh one."""
-    from detector.scan import INT32_PIXELS, UINT32_PIXELS, frame_integrals
+    from detector.scan import frame_integrals
+    from detector.scan._engine import INT32_PIXELS, UINT32_PIXELS
 
     gray = np.full((2920, 2960), 255, np.uint8)
     gray[1000:1020] = np.random.default_rng(5).integers(0, 256, (20, 2960), dtype=np.uint8)

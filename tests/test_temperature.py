@@ -2,7 +2,7 @@
 
 References: scikit-learn's ``LogisticRegression(class_weight="balanced", fit_intercept=False)``
 without penalty on the one input ``2F`` minimises the class-balanced log-loss of
-``1 / (1 + exp(-w 2F))``, so ``1 / w`` is the temperature :func:`detector.forest.fit_temperature`
+``1 / (1 + exp(-w 2F))``, so ``1 / w`` is the temperature :func:`detector.cascade.fit_temperature`
 must find (temperature scaling; Guo et al., ICML 2017); scikit-learn's own fitted regression trees
 (``DecisionTreeRegressor.predict``, kept by ``grow_forest(..., keep_estimators=True)``) give the
 boosted sum ``F`` without the project's flat export, and the scan's scores must be
@@ -17,9 +17,10 @@ import numpy as np
 import pytest
 from sklearn.linear_model import LogisticRegression
 
+from detector.cascade import fit_temperature
 from detector.classifier import PatchClassifier
 from detector.features import evaluate_features, random_pool
-from detector.forest import fit_temperature, grow_forest
+from detector.forest import grow_forest
 from detector.model import Model
 from detector.scan import Engine, ScanSettings
 from shared import calibration_copies, top_bright
@@ -73,7 +74,7 @@ def test_trained_temperature_is_the_balanced_fit_on_calibration_and_background()
     m = clf.model_
     objects = m.running_scores(calibration_copies(clf, patches))[:, -1]
     background = m.running_scores(patches[y == 0])[:, -1]
-    t = m.metadata["score_temperature"]
+    t = m.temperature
     assert t > 1.2
     assert t == pytest.approx(sklearn_temperature(objects, background), rel=2e-6, abs=0)
 
@@ -90,8 +91,7 @@ def test_boosted_scan_scores_follow_the_temperature_on_sklearn_sums():
     forest = grow_forest(X, y.astype(int), mode="boosted", n_trees=10, depth=2, random_state=0,
                          keep_estimators=True)
     temperature = 2.5
-    model = Model.from_forest((12, 12), pool, forest,
-                              metadata={"score_temperature": temperature})
+    model = Model.from_forest((12, 12), pool, forest, temperature=temperature)
     # a 60 x 60 frame: the first 25 patches (objects) and 11 backgrounds in a 6 x 6 mosaic of
     # 10 x 10 cells cut from them, so that windows see whole patches, parts and seams
     rng = np.random.default_rng(4)

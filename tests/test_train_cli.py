@@ -75,9 +75,12 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     assert oob and float(oob.group(1)) == round(100 * model.metadata["oob_error"], 2)
     assert text.splitlines()[-1] == f"wrote {human_path(out)}"
     assert "growing trees: 10/10 trees" in err  # the progress bar's closing line off a terminal
-    # metadata: the bank's hash (hashlib), its margin and the fixed date
+    # the bank's hash (hashlib), its margin and object sizes, and the fixed date
     assert model.metadata["bank"]["sha256"] == hashlib.sha256(bank.read_bytes()).hexdigest()
-    assert model.metadata["margin"] == load_bank(bank).margin == 0.1
+    assert model.margin == load_bank(bank).margin == 0.1
+    sizes = load_bank(bank).metadata["object_sizes"]  # the labelled sizes: the scan's default range
+    assert model.object_range.tolist() == [sizes["smallest"], sizes["largest"]]
+    assert model.object_sizes["window_object_side"] == sizes["window_object_side"]
     assert model.metadata["date"] == "1970-01-02"
     # the command trains what the library trains with the same parameters
     params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=None,

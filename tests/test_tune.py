@@ -1,4 +1,5 @@
-"""`patchwood tune` and detector.tuning on a tiny demo scenario (12 frames of hex nuts).
+"""`patchwood tune` and the tuning of detector.training on a tiny demo scenario (12 frames of hex
+nuts).
 
 References: the objective is checked against the computation it stands for, done here step by
 step with the library's parts (train on the fold's patches, scan the held-out frames, score with
@@ -35,9 +36,9 @@ from detector.labels import ImageLabels, read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model
-from detector.tuning import (EVALUATION_THRESHOLD, PARAMETERS, SearchSpace, bank_subset,
-                             classifier_params, evaluate_params, image_folds, prepare_folds,
-                             search, trials_columns)
+from detector.training import (EVALUATION_THRESHOLD, PARAMETERS, SearchSpace, bank_subset,
+                               classifier_params, evaluate_params, image_folds, prepare_folds,
+                               search, trials_columns)
 from synthetic_images import render_scenario
 
 SEED = 3
@@ -145,11 +146,11 @@ def test_fold_banks_hold_only_their_training_images(scenario, folds):
 
 
 def test_mining_inside_a_fold_scans_only_its_training_images(folds, monkeypatch):
-    import detector.mining
+    from detector.training import _mining
 
     _, fold_data = folds
     fold = fold_data[0]
-    real_mine = detector.mining.mine
+    real_mine = _mining.mine
     seen = []
 
     def spy(model, images_dir, items, **kwargs):
@@ -157,7 +158,7 @@ def test_mining_inside_a_fold_scans_only_its_training_images(folds, monkeypatch)
         seen.append(([it.image for it in items], list(found.images)))
         return found
 
-    monkeypatch.setattr(detector.mining, "mine", spy)
+    monkeypatch.setattr(_mining, "mine", spy)
     mean, per_fold = evaluate_params([fold], PARAMS, mine_rounds=1)
     assert len(seen) == 2  # round 1 and the check of the final model
     train = sorted(it.image for it in fold.train_items)
@@ -201,9 +202,10 @@ def test_objective_equals_direct_computation(scenario, folds):
     for train_idx, test_idx in image_folds(items, FOLDS, SEED):
         keep = np.isin(bank.image_index, train_idx)
         model = PatchClassifier(**PARAMS).fit(bank.patches[keep], bank.labels[keep]).model_
-        model.metadata["margin"] = bank.margin  # the scan reports the box inside the window
+        model.margin = bank.margin  # the scan reports the box inside the window
         # ... and looks for the labelled object sizes the harvest recorded
-        model.metadata["bank"] = {"harvest": {"object_sizes": bank.metadata["object_sizes"]}}
+        sizes = bank.metadata["object_sizes"]
+        model.object_range = np.array([sizes["smallest"], sizes["largest"]])
         engine = Engine(model, ScanSettings(threshold=EVALUATION_THRESHOLD))
         dets, truth = {}, {}
         for i in test_idx:

@@ -1,4 +1,5 @@
-"""Box geometry: areas, intersection over union, and greedy non-maximum suppression.
+"""Box and window geometry: areas, intersection over union, greedy non-maximum suppression, the
+window that stands for an object box (and back), and cutting a region out of an image.
 
 Boxes are float64 arrays of shape ``(K, 4)`` holding ``x, y, width, height`` in pixels, with
 ``x, y`` the top-left corner (the glossary's convention). Areas are continuous, ``width * height``,
@@ -8,13 +9,18 @@ convention of pycocotools' bounding-box IoU and of ``cv2.Rect2d``.
 
 from __future__ import annotations
 
+import math
+
+import cv2
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 
-__all__ = ["as_boxes", "box_area", "iou", "iou_one_to_many", "nms"]
+__all__ = ["as_boxes", "box_area", "iou", "iou_one_to_many", "nms", "crop_region",
+           "window_box_to_object_box", "object_box_to_window_box"]
 
 
-def as_boxes(boxes) -> np.ndarray:
+def as_boxes(boxes: ArrayLike) -> np.ndarray:
     """Return ``boxes`` as a float64 array of shape ``(K, 4)``.
 
     Parameters
@@ -46,7 +52,7 @@ def as_boxes(boxes) -> np.ndarray:
     return a.reshape(-1, 4)
 
 
-def box_area(boxes) -> np.ndarray:
+def box_area(boxes: ArrayLike) -> np.ndarray:
     """Continuous area ``width * height`` of each box.
 
     Parameters
@@ -66,7 +72,7 @@ def box_area(boxes) -> np.ndarray:
     return b[:, 2] * b[:, 3]
 
 
-def iou(a, b) -> np.ndarray:
+def iou(a: ArrayLike, b: ArrayLike) -> np.ndarray:
     """Intersection over union of every box in ``a`` with every box in ``b``.
 
     The intersection width is ``min(xa + wa, xb + wb) - max(xa, xb)`` (zero when negative), the
@@ -103,7 +109,7 @@ def iou(a, b) -> np.ndarray:
     return out
 
 
-def iou_one_to_many(box, boxes) -> np.ndarray:
+def iou_one_to_many(box: ArrayLike, boxes: ArrayLike) -> np.ndarray:
     """Intersection over union of one box with each of ``boxes``.
 
     Parameters
@@ -128,7 +134,7 @@ def iou_one_to_many(box, boxes) -> np.ndarray:
     return iou(box[None, :], boxes)[0]
 
 
-def nms(boxes, scores, iou_threshold: float = 0.3) -> np.ndarray:
+def nms(boxes: ArrayLike, scores: ArrayLike, iou_threshold: float = 0.3) -> np.ndarray:
     """Greedy non-maximum suppression.
 
     Boxes are visited in descending score; a box is kept when its IoU with every box kept before it
@@ -237,3 +243,68 @@ def _nms_numpy(boxes, order, iou_threshold):
         np.divide(inter, union, out=overlap, where=union > 0)
         order = rest[overlap <= iou_threshold]
     return np.asarray(keep, dtype=np.int64)
+
+
+def crop_region(image: np.ndarray, center: tuple[float, float], size: tuple[float, float],
+                window: tuple[int, int], angle: float = 0.0,
+                mirror: bool = False) -> np.ndarray:
+    """Cut a (possibly rotated) region of ``size=(width, height)`` around ``center`` and resize it
+    to ``window=(W, H)`` with area averaging. Pixels outside the image repeat the border.
+
+    The region is first warped at its own resolution (bilinear, only when rotated or at sub-pixel
+    position), then shrunk with ``cv2.INTER_AREA``.
+
+    >>> img = np.arange(100, dtype=np.uint8).reshape(10, 10)
+    >>> crop_region(img, (5.0, 5.0), (4, 4), (4, 4)).tolist()[0]
+    [33, 34, 35, 36]
+    """
+    W, H = window
+    rw = max(1, int(round(size[0])))
+    rh = max(1, int(round(size[1])))
+    cx, cy = float(center[0]), float(center[1])
+    # affine map from region pixel centres to image coordinates: rotate about the centre
+    a = math.radians(angle)
+    ca, sa = math.cos(a), math.sin(a)
+    sx, sy = size[0] / rw, size[1] / rh
+    # region pixel (u, v) centre -> offset from region centre
+    m = np.array(
+        [
+            [ca * sx, -sa * sy, 0.0],
+            [sa * sx, ca * sy, 0.0],
+        ]
+    )
+    ou, ov = (rw - 1) / 2.0, (rh - 1) / 2.0
+    m[0, 2] = cx - 0.5 - (m[0, 0] * ou + m[0, 1] * ov)
+    m[1, 2] = cy - 0.5 - (m[1, 0] * ou + m[1, 1] * ov)
+    region = cv2.warpAffine(
+        image,
+        m,
+        (rw, rh),
+        flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP,
+        borderMode=cv2.BORDER_REPLICATE,
+    )
+    if mirror:
+        region = region[:, ::-1]
+    if (rw, rh) != (W, H):
+        interp = cv2.INTER_AREA if rw >= W and rh >= H else cv2.INTER_LINEAR
+        region = cv2.resize(np.ascontiguousarray(region), (W, H), interpolation=interp)
+    return np.ascontiguousarray(region, dtype=np.uint8)
+
+
+def window_box_to_object_box(x: float, y: float, w: float, h: float,
+                             margin: float) -> tuple[float, float, float, float]:
+    """The object box a window stands for: the window shrunk by the context margin.
+
+    >>> window_box_to_object_box(0.0, 0.0, 12.0, 12.0, 0.25)
+    (2.0, 2.0, 8.0, 8.0)
+    """
+    k = 1.0 + 2.0 * margin
+    bw, bh = w / k, h / k
+    return x + (w - bw) / 2.0, y + (h - bh) / 2.0, bw, bh
+
+
+def object_box_to_window_box(x: float, y: float, w: float, h: float,
+                             margin: float) -> tuple[float, float, float, float]:
+    """The window that stands for an object box: the box grown by the context margin."""
+    ww, wh = w * (1.0 + 2.0 * margin), h * (1.0 + 2.0 * margin)
+    return x - (ww - w) / 2.0, y - (wh - h) / 2.0, ww, wh

@@ -1,6 +1,6 @@
-"""Compiled loop for the integral images of a frame's channels (:mod:`detector.channels`).
+"""Compiled loop for the integral images of a frame's channels (:mod:`detector.features`).
 
-The plain-numpy twin of :func:`channel_integrals` is :func:`detector.channels.channel_integrals_numpy`
+The plain-numpy twin of :func:`channel_integrals` is :func:`detector.features.channel_integrals_numpy`
 (cv2.Sobel, numpy and cv2.integral, plane by plane); ``tests/test_channels.py`` holds the two equal.
 One branch-free loop computes each pixel's central differences, its gradient magnitude and
 orientation bin (the loop vectorises), then each plane's integral image is built row by row (the
@@ -20,7 +20,7 @@ import numpy as np
 @numba.njit(cache=True, nogil=True, inline="always")
 def _gradient(gx, gy):
     """Magnitude (rounded, capped at 255) and orientation bin 0..5 of one gradient (int32), the
-    rules of :mod:`detector.channels` without a branch."""
+    rules of :mod:`detector.features` without a branch."""
     s = np.int32(1) - np.int32(2) * np.int32((gy < 0) | ((gy == 0) & (gx < 0)))
     gx = gx * s  # turned into the upper half-plane: the angle is in [0, 180)
     gy = gy * s
@@ -40,7 +40,7 @@ def _gradient(gx, gy):
 def channel_integrals(gray, out):
     """Integral images of the gradient channels of ``gray`` (uint8, H x W) into planes 1..7 of
     ``out`` ((8, H + 1, W + 1), int32 or float64): 1 the gradient magnitude, 2..7 the magnitude in
-    its orientation bin (see :mod:`detector.channels` for the exact rules). Plane 0 (the grey
+    its orientation bin (see :mod:`detector.features` for the exact rules). Plane 0 (the grey
     image's) is left to the caller."""
     h, w = gray.shape
     planes = out.shape[0]

@@ -26,12 +26,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from detector import _kernels
-from detector.boxes import nms
+from detector.scan import _kernels
+from detector.geometry import nms
 from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
-from detector.harvest import window_box_to_object_box
-from detector.integral import integral_image, squared_integral_image
+from detector.geometry import window_box_to_object_box
+from detector.features import integral_image, squared_integral_image
 
 
 def _round(v):
@@ -41,7 +41,7 @@ def _round(v):
 
 @dataclass
 class ScalePlan:
-    """What the kernel needs for one scale (see :mod:`detector._kernels`)."""
+    """What the kernel needs for one scale (see :mod:`detector.scan`)."""
 
     scale: float
     window: tuple[int, int]  # scaled window width, height in pixels
@@ -92,7 +92,7 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
     window still touch after scaling. A rectangle's pixel sum is divided by its own scaled pixel
     count (its mean is what is compared across scales).
 
-    ``channels`` (one per feature, 0 = grey; see :mod:`detector.channels`): a feature on channel
+    ``channels`` (one per feature, 0 = grey; see :mod:`detector.features`): a feature on channel
     c reads plane c of a stack of integral images ``plane`` cells apart (its offsets grow by
     ``c * plane``), subtracts no window mean (its const is 0), and its weights are multiplied by
     ``scale``: a gradient measured in image pixels is ``1 / scale`` of the same edge measured in
@@ -299,7 +299,7 @@ def skipped_sizes_note(model, settings) -> str | None:
 @dataclass
 class FramePlan:
     """Every scale's windows and plan for one image size: per scale for reading and for the numpy
-    twin, and stacked for :func:`detector._kernels.scan_frame`, which scans them all in one call.
+    twin, and stacked for :func:`detector.scan._kernels.scan_frame`, which scans them all in one call.
     Window positions are in the image padded by ``pad`` pixels on every side."""
 
     scales: list  # [(ScalePlan, xs, ys)] of the scales that have windows
@@ -457,7 +457,7 @@ def frame_integrals(gray: np.ndarray, out=None):
     The sums are integers below 2**53 for any image the readers accept (255**2 * 2**24 pixels is
     about 2**40), so float64 holds them exactly and the kernel multiplies without converting.
     For 8-bit frames ``cv2.integral2`` builds both in one pass (a tenth of the time of two numpy
-    cumulative sums); other dtypes go through :mod:`detector.integral`. Both give the same
+    cumulative sums); other dtypes go through :mod:`detector.features`. Both give the same
     numbers (tests/test_scan.py). A uint32 integral image is computed by OpenCV as int32, whose
     additions wrap around past 2**31 - 1 (two's complement), and read as uint32: exact while the
     sums stay below 2**32. The last sum is checked against the frame's total; were an OpenCV
@@ -494,7 +494,7 @@ def frame_integrals(gray: np.ndarray, out=None):
 
 
 def channel_frame_integrals(gray: np.ndarray, out=None):
-    """The integral images of a frame's :data:`detector.channels.N_CHANNELS` channels stacked as
+    """The integral images of a frame's :data:`detector.features.N_CHANNELS` channels stacked as
     planes in one flat table (grey first, then the gradient channels; each plane
     ``(height + 1) * (width + 1)`` cells, :func:`integral_dtype`), and the squared-integral image
     (float64), flattened: what the scan of a model with channel features reads.
@@ -504,8 +504,8 @@ def channel_frame_integrals(gray: np.ndarray, out=None):
     """
     import cv2
 
-    from detector._channel_kernels import channel_integrals
-    from detector.channels import N_CHANNELS
+    from detector.features._channel_kernels import channel_integrals
+    from detector.features import N_CHANNELS
 
     gray = np.asarray(gray)
     if gray.dtype != np.uint8:
@@ -707,7 +707,7 @@ class Engine:
         self.model = model
         self.settings = settings or ScanSettings()
         self.window = tuple(int(v) for v in model.window)
-        self.margin = float(model.metadata.get("margin", 0.0))
+        self.margin = float(model.margin)
         # the plans hold the features in the order the trees first use them (see first_use_order)
         order, node_features = first_use_order(model.node_features, len(model.features))
         self.features = np.asarray(model.features)[order]
@@ -849,7 +849,7 @@ class Engine:
         if self.channels is None:
             ii, sq = frame_integrals(gray, self._work.tables(gray.shape))
         else:
-            from detector.channels import N_CHANNELS
+            from detector.features import N_CHANNELS
 
             ii, sq = channel_frame_integrals(gray, self._work.tables(gray.shape, N_CHANNELS))
         out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
@@ -889,7 +889,7 @@ class Engine:
 
         The same as :meth:`candidates` followed by :meth:`detections` with the image's size (the
         numpy route takes that way, and the tests hold the two equal), but the compiled route turns
-        the windows kept into detections in one compiled call (:func:`detector._kernels.finish`):
+        the windows kept into detections in one compiled call (:func:`detector.scan._kernels.finish`):
         the two dozen numpy calls of that way cost a tenth of a small frame's scan.
         """
         if use_numpy:
@@ -964,7 +964,7 @@ def clip_boxes(boxes, image_size) -> np.ndarray:
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
                      offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
                      exit_thresholds, cutoff, bound, out_x, out_y, out_score):
-    """Plain-numpy twin of :func:`detector._kernels.scan_scale` (same arguments, same results),
+    """Plain-numpy twin of :func:`detector.scan._kernels.scan_scale` (same arguments, same results),
     vectorised over all windows of the scale. For tests and as a readable reference."""
     gx, gy = np.meshgrid(xs, ys)  # row-major: y outer, x inner, as in the kernel
     gx, gy = gx.ravel(), gy.ravel()

@@ -156,8 +156,8 @@ def channel_integrals(gray, dtype=np.int32, out=None) -> np.ndarray:
     """Integral images of all :data:`N_CHANNELS` channels of a grey frame, stacked as planes:
     ``(N_CHANNELS, H + 1, W + 1)`` of ``dtype`` (int32 while ``255 * H * W`` fits, else float64;
     exact integers either way). Plane 0 is the grey image's. One compiled pass
-    (:func:`detector._channel_kernels.channel_integrals`); :func:`channel_integrals_numpy` is its
-    twin.
+    (:func:`detector.features._channel_kernels.channel_integrals`); :func:`channel_integrals_numpy`
+    is its twin.
 
     Examples
     --------
@@ -165,7 +165,7 @@ def channel_integrals(gray, dtype=np.int32, out=None) -> np.ndarray:
     >>> t.shape, t[0, 1].tolist(), t[1, 1].tolist()     # m = 10, 20, 10 (border repeated)
     ((8, 2, 4), [0, 0, 10, 30], [0, 10, 30, 40])
     """
-    from detector._channel_kernels import channel_integrals as kernel
+    from detector.features._channel_kernels import channel_integrals as kernel
 
     gray = np.ascontiguousarray(gray, dtype=np.uint8)
     h, w = gray.shape

@@ -11,7 +11,7 @@ from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from pycocotools import mask as coco_mask
 
-from detector.boxes import _nms_numba, _nms_numpy, as_boxes, box_area, iou, iou_one_to_many, nms
+from detector.geometry import _nms_numba, _nms_numpy, as_boxes, box_area, iou, iou_one_to_many, nms
 
 FAST = settings(max_examples=40, deadline=None)
 

@@ -14,7 +14,7 @@ al., NIPS 2017, and scikit-learn's HistGradientBoosting). Per node, as scikit-le
   bin in the node cannot split it, and when every drawn feature is like that, more are drawn (in
   random order) until one can or none is left;
 * every split between two consecutive non-empty bins ``k < k'`` is scored by the criterion's proxy
-  (:mod:`detector._tree_kernels`); the largest wins, the first of equal ones in draw order;
+  (:mod:`detector.forest`); the largest wins, the first of equal ones in draw order;
 * the threshold on bin indices is ``(k + k') / 2``, scikit-learn's midpoint between the two values
   (:func:`detector.forest.thresholds_from_bins` maps it back to a feature value);
 * a leaf's value is the node's weighted mean target (the object fraction for classification);
@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from detector import _tree_kernels as _k
+from detector.forest import _tree_kernels as _k
 
 __all__ = ["grow_histogram_tree", "COMPILED", "NUMPY"]
 
@@ -81,7 +81,8 @@ def grow_histogram_tree(bins, weight, target, *, criterion, depth, features_per_
     target : ndarray of float64, shape (N,)
         0/1 class for ``ENTROPY``, the regression target for ``SQUARED_ERROR``.
     criterion : int
-        :data:`detector._tree_kernels.ENTROPY` or :data:`detector._tree_kernels.SQUARED_ERROR`.
+        :data:`detector.forest._tree_kernels.ENTROPY` or
+        :data:`detector.forest._tree_kernels.SQUARED_ERROR`.
     depth : int
     features_per_node : int
     rng : numpy.random.Generator

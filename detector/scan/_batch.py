@@ -31,8 +31,8 @@ from detector.labels import (ImageDetections, coco_result_ids, csv_writer, read_
                              write_detections_coco, write_detections_coco_results,
                              write_detections_csv)
 from detector.model import Model, load_model
-from detector.provenance import check_same_scan, scan_record, write_provenance
-from detector.scan import SCORE_DECIMALS, Engine, ScanSettings
+from detector.scan._provenance import check_same_scan, scan_record, write_provenance
+from detector.scan._engine import SCORE_DECIMALS, Engine, ScanSettings
 
 # the project's own marks for drawn detections (BGR): a warm amber box, its score on a dark tab
 DETECTION_COLOUR = (0, 176, 255)
@@ -322,7 +322,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     rewritten atomically after every batch of ``batch_images`` images or ``batch_seconds`` seconds
     (whichever comes first, and never so often that rewriting takes more than about a tenth of the
     run), and once more if the run is interrupted, so it always holds complete images only. Each
-    time, the provenance side file (:func:`detector.provenance.provenance_path`: the model's
+    time, the provenance side file (:func:`detector.scan.provenance_path`: the model's
     SHA-256 and metadata SHA-256, every scan setting, the inputs, the versions, the detections
     file's SHA-256) is rewritten after it; a COCO output also carries the record in its ``info``.
 
@@ -379,7 +379,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
         inputs with the same image name, a drawing folder among the inputs, a bad cluster
         address, a bad ``PATCHWOOD_MAX_MEGAPIXELS``, or a ``labels`` file that is not COCO JSON or
         lacks one of the images; with ``resume``, an output without a provenance side file, or
-        made with another model or other settings (:func:`detector.provenance.check_same_scan`).
+        made with another model or other settings (:func:`detector.scan.check_same_scan`).
     """
     settings = settings or ScanSettings()
     out = Path(out)

@@ -10,9 +10,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from detector.boxes import iou
 from detector.evaluate import evaluate
-from detector.harvest import crop_region
+from detector.geometry import crop_region, iou
 from detector.images import read_gray
 from detector.scan import Engine, ScanSettings
 

@@ -39,10 +39,10 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from detector._feature_kernels import CHUNK, TILE, evaluate_tiles
-from detector.channels import N_CHANNELS, patch_channels
+from detector.features._feature_kernels import CHUNK, TILE, evaluate_tiles
+from detector.features._channels import N_CHANNELS, patch_channels
 from detector.errors import InputError
-from detector.integral import integral_images
+from detector.features._integral import integral_images
 
 __all__ = [
     "SHAPES",
@@ -302,12 +302,12 @@ def random_pool(window_width, window_height, size, random_state=None, *,
 def channel_pool(window_width, window_height, size, random_state=None) -> tuple[np.ndarray,
                                                                               np.ndarray]:
     """A random pool of channel features: rectangles and rectangle differences on the gradient
-    channels 1..7 (:mod:`detector.channels`), for integral channel features (Dollár, Tu, Perona
+    channels 1..7 (:mod:`detector.features`), for integral channel features (Dollár, Tu, Perona
     and Belongie, BMVC 2009).
 
     Features are drawn uniformly from every placement of :data:`CHANNEL_SHAPES` inside the window
     less its outermost ring of pixels (whose gradient a patch alone cannot know; see
-    :mod:`detector.channels`), each on a channel drawn uniformly from 1..7.
+    :mod:`detector.features`), each on a channel drawn uniformly from 1..7.
 
     Returns
     -------
@@ -570,7 +570,7 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     patches : (N, h, w) array_like, optional
         Patches (uint8 or other integers; floats work too). Needed unless ``integrals`` is given.
     integrals : (N, h + 1, w + 1) ndarray, optional
-        Their integral images (:func:`detector.integral.integral_images`), when already at hand.
+        Their integral images (:func:`detector.features.integral_images`), when already at hand.
     squared : (N, h + 1, w + 1) ndarray, optional
         Their squared integral images; used only when normalising. Without them the patch
         statistics come from ``patches`` (or from the pixels the integral images encode).
@@ -582,7 +582,7 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
         Return ``(F, N)`` instead of ``(N, F)`` (feature columns contiguous, as a tree learner
         reading one feature over all patches prefers).
     channels : (F,) array_like of int in 0..7, optional
-        The channel each feature reads (:mod:`detector.channels`; default all 0, grey). A feature
+        The channel each feature reads (:mod:`detector.features`; default all 0, grey). A feature
         on channel c >= 1 sums its rectangles over that channel, made from each 8-bit patch with
         its border repeated; normalised, its value is ``sum_i weight_i * S_i / (max(sigma,
         SIGMA_FLOOR) * A_window)`` with the grey patch's ``sigma`` (no mean is subtracted).

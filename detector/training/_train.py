@@ -31,14 +31,16 @@ def train_model(bank: PatchBank, params: dict, bank_path=None, progress=None):
                          "again with --negatives-per-image or --near-negatives above 0)",
                          path=bank_path)
     clf = PatchClassifier(**params)
-    clf.fit(bank.patches, bank.labels, progress=progress)
+    clf.fit(bank.patches, bank.labels, progress=progress, margin=float(bank.margin))
     model = clf.model_
-    model.metadata["margin"] = float(bank.margin)
     model.metadata["bank"] = {
         "sha256": npzfile.file_sha256(bank_path) if bank_path is not None else None,
         "counts": bank.counts(),
         "harvest": {k: v for k, v in bank.metadata.items() if k != "counts"},
     }
+    sizes = bank.metadata.get("object_sizes")
+    if isinstance(sizes, dict) and sizes.get("smallest") and sizes.get("largest"):
+        model.object_range = np.array([sizes["smallest"], sizes["largest"]], np.float64)
     return model, clf
 
 
@@ -131,7 +133,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
     from contextlib import nullcontext
 
     from detector.harvest import KIND_MINED
-    from detector.mining import mine
+    from detector.training._mining import mine
 
     def bar(description, total):
         if progress_factory is None:

@@ -34,7 +34,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from detector.boxes import _nms_numba
+from detector.geometry import _nms_numba
 
 
 #: Windows (at least) gathered from successive rows before the trees run over them.
@@ -256,7 +256,7 @@ def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, heigh
     (:func:`detector.harvest.window_box_to_object_box`), cut to the ``width x height`` frame
     (:func:`detector.scan.clip_boxes`) and thinned by greedy non-maximum suppression at ``nms_iou``
     over the final ``scores``, visited in descending score, ties in window order
-    (:func:`detector.boxes.nms`).
+    (:func:`detector.geometry.nms`).
 
     Returns
     -------

@@ -269,7 +269,7 @@ def fold_average_precision(fold: FoldData, params: dict, *, settings: ScanSettin
         All-point average precision at IoU 0.5 (:func:`detector.evaluate.evaluate`); nan when
         the held-out images hold no object.
     """
-    from detector.training import mining_params, train_with_mining
+    from detector.training._train import mining_params, train_with_mining
 
     # the mining models are the cheaper ones `patchwood train` grows, so that the train line
     # printed for the best trial trains what the trial measured
@@ -375,7 +375,7 @@ class SearchSpace:
         ...             features_per_node=(10, 300), sample_fraction=(0.3, 0.5)).start()
         {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 20, 'sample_fraction': 0.5}
         """
-        from detector.training import DEFAULT_TRAIN
+        from detector.training._train import DEFAULT_TRAIN
 
         d = dict(DEFAULT_TRAIN if defaults is None else defaults)
 

@@ -1,4 +1,4 @@
-"""Compiled loops of the histogram tree grower (:mod:`detector.histogram_trees`), with numpy twins.
+"""Compiled loops of the histogram tree grower (:mod:`detector.forest`), with numpy twins.
 
 Every kernel here has a plain-numpy twin of the same name with ``_numpy`` appended; the two do the
 same float64 operations in the same order (per-bin sums accumulated in sample order, left sums
