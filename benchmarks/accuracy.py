@@ -24,8 +24,8 @@ import numpy as np
 
 from detector.evaluate import evaluate, fppi_at_recall
 from detector.harvest import KIND_MINED, harvest
-from detector.images import read_gray
-from detector.labels import read_labels
+from detector.io.images import read_gray
+from detector.io.labels import read_labels
 from detector.mining import mine
 from detector.scan import MAX_OVERHANG, Engine, ScanSettings
 from detector.training import train_model

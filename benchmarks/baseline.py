@@ -721,8 +721,8 @@ def main(argv=None):
     from _machine import cpu_name, load
     from detector.evaluate import evaluate, fppi_at_recall
     from detector.harvest import harvest
-    from detector.images import read_gray
-    from detector.labels import read_labels
+    from detector.io.images import read_gray
+    from detector.io.labels import read_labels
     from detector.scan import Engine, ScanSettings
     from detector.training import train_with_mining
 

@@ -80,6 +80,7 @@ sys.path.insert(0, str(HERE))
 
 import channel_peer  # noqa: E402
 import datasets  # noqa: E402
+from detector.io.files import write_text  # noqa: E402
 
 METHODS = ("defaults", "recipe", "hog", "channels")
 METHOD_NAMES = {"defaults": "patchwood defaults", "recipe": "patchwood recipe",
@@ -144,7 +145,7 @@ def _timed_pass(scan_one, frames: dict):
 
 
 def run_patchwood(method: str, root: Path, work: Path, test_frames: dict, truth: dict, args) -> dict:
-    from detector.labels import read_detections
+    from detector.io.labels import read_detections
     from detector.model import load_model
     from detector.scan import Engine, ScanSettings
 
@@ -344,8 +345,8 @@ def main(argv=None) -> int:
     import skimage
 
     from _machine import cpu_name, load
-    from detector.images import read_gray
-    from detector.labels import read_labels
+    from detector.io.images import read_gray
+    from detector.io.labels import read_labels
 
     started = time.perf_counter()
     command = shlex.join(["python", "benchmarks/cross_data.py", *(sys.argv[1:] if argv is None
@@ -373,9 +374,7 @@ def main(argv=None) -> int:
                "methods": list(args.methods),
                "sets": {n: {"info": infos[n], "methods": results[n]} for n in results},
                "verdict": v, "complete": seconds is not None}
-        tmp = args.json.with_name(args.json.name + ".tmp")
-        tmp.write_text(json.dumps(doc, indent=1) + "\n")
-        os.replace(tmp, args.json)
+        write_text(args.json, json.dumps(doc, indent=1) + "\n")
 
     work_root = args.keep or Path(tempfile.mkdtemp(prefix="patchwood-cross-data-"))
     try:

@@ -12,7 +12,7 @@ from cli.common import echo, human_path, parse_window_option, progress_bar, usag
 from detector.audit import (BACKGROUND_CALLED_OBJECT, DEFAULT_PARAMS, OBJECT_CALLED_BACKGROUND,
                             audit_bank, check_audit_folder, harvest_for_audit, write_audit)
 from detector.harvest import load_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 
 #: Findings printed on the terminal (the CSV and the page hold all listed ones).
 PRINTED = 10

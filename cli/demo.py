@@ -11,7 +11,7 @@ from cli.common import echo, human_path, progress_bar
 from detector.batch import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
-from detector.labels import read_detections, read_labels
+from detector.io.labels import read_detections, read_labels
 from detector.model import save_model
 from detector.report import score_files, summary_table
 from detector.scan import ScanSettings

@@ -42,10 +42,10 @@ import numpy as np
 
 from detector import features as _features
 from detector.errors import InputError
-from detector.files import write_bytes
+from detector.io.files import write_bytes
 from detector.forest import bin_columns, oob_scores, quantile_cuts, seed_sequence
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
-from detector.labels import csv_writer
+from detector.io.labels import csv_writer
 
 __all__ = [
     "AUDIT_STYLES",
@@ -635,7 +635,7 @@ def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
     """
     import cv2
 
-    from detector.images import read_gray
+    from detector.io.images import read_gray
 
     out = Path(out_dir)
     check_audit_folder(out, force)

@@ -308,7 +308,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             Called after every tree.
         metadata : dict, optional
             Extra entries for the model's metadata, JSON-serialisable: for example ``bank_sha256``
-            (:func:`detector.npzfile.file_sha256` of the patch bank file) and the bank's ``margin``.
+            (:func:`detector.io.npzfile.file_sha256` of the patch bank file) and the bank's ``margin``.
 
         Returns
         -------

@@ -2,7 +2,7 @@
 rate against false positives per image, per-size figures, and the per-image error lists.
 
 Everything here works on plain per-image arrays (boxes ``(K, 4)`` of ``x, y, width, height`` and
-scores ``(K,)``); reading files is the job of :mod:`detector.labels` and the command line.
+scores ``(K,)``); reading files is the job of :mod:`detector.io.labels` and the command line.
 
 Conventions, stated once:
 

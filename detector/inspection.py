@@ -34,7 +34,7 @@ import os
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import write_bytes
+from detector.io.files import write_bytes
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -839,7 +839,7 @@ def render_top_features(features, importances, indices, window, background=None,
 
 
 def write_png(path, image: np.ndarray) -> None:
-    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.files.write_bytes`).
+    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.io.files.write_bytes`).
 
     Examples
     --------

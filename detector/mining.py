@@ -13,7 +13,7 @@ import numpy as np
 from detector.boxes import iou
 from detector.evaluate import evaluate
 from detector.harvest import crop_region
-from detector.images import read_gray
+from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings
 
 

@@ -2,7 +2,7 @@
 false alarms and missed objects, a per-image table, all in one folder that opens offline.
 
 The stage after ``scan``: :func:`score_files` reads a detections file and a labels file (CSV or
-COCO JSON, through :mod:`detector.labels`), scores them with :func:`detector.evaluate.evaluate`,
+COCO JSON, through :mod:`detector.io.labels`), scores them with :func:`detector.evaluate.evaluate`,
 picks an operating point and writes the report folder::
 
     DIR/report.html            headline figures, plots, galleries, per-image table (no external assets)
@@ -35,9 +35,9 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, read_bytes, same_file, write_bytes, write_text
+from detector.io.files import atomic_write, read_bytes, same_file, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
-from detector.npzfile import file_sha256
+from detector.io.npzfile import file_sha256
 from detector.provenance import describe_settings, provenance_of
 
 __all__ = [
@@ -299,7 +299,7 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
     Raises
     ------
     InputError
-        Anything the readers of :mod:`detector.labels` refuse (naming file and line), a labels
+        Anything the readers of :mod:`detector.io.labels` refuse (naming file and line), a labels
         file without images, and names that differ only in folder or case
         (:func:`check_image_names`).
 
@@ -313,7 +313,7 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
     >>> sorted(inputs.ground_truth), inputs.detections
     (['a.png', 'b.png'], {})
     """
-    from detector.labels import normalise_image_name, read_detections, read_labels
+    from detector.io.labels import normalise_image_name, read_detections, read_labels
 
     labels = read_labels(labels_path, label=label)
     if len(labels) == 0:
@@ -1090,7 +1090,7 @@ def _nearest_scores(misses, detections) -> None:
 def _galleries(evaluation, detections, ground_truth, images_dir, out_dir, count, notes,
                threshold=None):
     """Write the thumbnails; return {"false alarm": [...], "missed": [...]} of entries."""
-    from detector.images import read_gray
+    from detector.io.images import read_gray
 
     misses = sorted(evaluation.miss_list,
                     key=lambda m: (math.isnan(m.best_score),

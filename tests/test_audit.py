@@ -30,7 +30,7 @@ from detector.audit import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS,
 from detector.errors import InputError
 from detector.forest import forest_oob_scores, grow_forest, oob_scores
 from detector.harvest import KIND_AUGMENTED, harvest, save_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from synthetic_images.scenario import render_scenario
 from shared import Links
 

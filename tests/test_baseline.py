@@ -24,7 +24,7 @@ from skimage.feature import hog
 from detector.boxes import iou
 from detector.evaluate import evaluate
 from detector.harvest import harvest, window_box_to_object_box
-from detector.labels import ImageLabels
+from detector.io.labels import ImageLabels
 
 FAST = settings(max_examples=40, deadline=None)
 SCRIPT = Path(__file__).resolve().parents[1] / "benchmarks" / "baseline.py"

@@ -188,7 +188,7 @@ def test_from_model_scores_like_the_fitted_classifier(tmp_path):
 
 def test_caller_metadata_reaches_the_model_file(tmp_path):
     from detector.model import load_model, save_model
-    from detector.npzfile import file_sha256, save_npz
+    from detector.io.npzfile import file_sha256, save_npz
 
     patches, y = _patches(seed=7)
     bank = tmp_path / "bank.npz"

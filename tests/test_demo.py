@@ -6,7 +6,7 @@ from typer.testing import CliRunner
 
 from cli.main import app
 from detector.evaluate import evaluate
-from detector.labels import read_detections, read_labels
+from detector.io.labels import read_detections, read_labels
 from detector.model import load_model
 
 

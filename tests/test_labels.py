@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.labels import (
+from detector.io.labels import (
     ImageDetections,
     ImageLabels,
     LabelFile,

@@ -20,8 +20,8 @@ import cli.main
 from cli.common import human_path
 from detector.evaluate import evaluate
 from detector.harvest import KIND_MINED, load_bank
-from detector.images import read_gray
-from detector.labels import read_labels
+from detector.io.images import read_gray
+from detector.io.labels import read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model

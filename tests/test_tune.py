@@ -30,8 +30,8 @@ from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.evaluate import evaluate
 from detector.harvest import harvest, load_bank
-from detector.images import read_gray
-from detector.labels import ImageLabels, read_labels
+from detector.io.images import read_gray
+from detector.io.labels import ImageLabels, read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model

@@ -140,7 +140,7 @@ def open_regular(path, max_bytes: int | None = None):
     >>> open_regular(os.path.join(folder, "pipe.png"))  # doctest: +ELLIPSIS
     Traceback (most recent call last):
     ...
-    detector.files.NotRegularFileError: [Errno 22] not a regular file (a named pipe): '.../pipe.png'
+    detector.io.files.NotRegularFileError: [Errno 22] not a regular file (a named pipe): '.../pipe.png'
     """
     _check_regular(path, os.stat(path).st_mode)
     fd = os.open(path, _READ_FLAGS)
@@ -198,7 +198,7 @@ def read_bytes(path, max_bytes: int | None = None) -> bytes:
     >>> read_bytes(path, max_bytes=4)  # doctest: +ELLIPSIS
     Traceback (most recent call last):
     ...
-    detector.files.FileTooLargeError: [Errno 27] the file is larger than the limit of 4 bytes: '...'
+    detector.io.files.FileTooLargeError: [Errno 27] the file is larger than the limit of 4 bytes: '...'
     """
     with open_regular(path, max_bytes) as fh:
         data = read_at_most(fh, max_bytes)

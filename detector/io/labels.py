@@ -14,7 +14,7 @@ Writers
 :func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv`,
 :func:`write_detections_coco` and :func:`write_detections_coco_results` (the COCO results list,
 with the image and category ids of a COCO labels file: :func:`coco_result_ids`). Each writes
-through :func:`detector.files.atomic_write` (a temporary file beside the target, synced and
+through :func:`detector.io.files.atomic_write` (a temporary file beside the target, synced and
 renamed into place), so an interrupted run never leaves a half-written file.
 
 Every problem in a file raises :class:`detector.errors.InputError` with a one-line message that
@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, read_bytes
+from detector.io.files import atomic_write, read_bytes
 
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
@@ -192,7 +192,7 @@ TEXT_MAX_BYTES = 2 * 2**30
 
 def _read_text(path) -> str:
     """The file as text: UTF-8, an optional byte order mark dropped. Only a regular file is read,
-    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.files.read_bytes`)."""
+    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.io.files.read_bytes`)."""
     try:
         data = read_bytes(path, max_bytes=TEXT_MAX_BYTES)
     except OSError as err:
@@ -597,7 +597,7 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
         kept = {image: [r for r in boxes if r.cls == label] for image, boxes in kept.items()}
 
     if images_dir is not None:
-        from detector.images import image_size
+        from detector.io.images import image_size
 
         for image, rec in first.items():
             full = os.path.join(os.fspath(images_dir), *image.split("/"))
