@@ -31,7 +31,6 @@ from __future__ import annotations
 
 import html
 import io
-import numbers
 import os
 import re
 from dataclasses import dataclass, field
@@ -41,9 +40,10 @@ from urllib.parse import quote
 import numpy as np
 
 from detector import features as _features
+from detector._validation import check_int, seed_sequence
 from detector.errors import InputError
 from detector.io.files import write_bytes
-from detector.forest import bin_columns, oob_scores, quantile_cuts, seed_sequence
+from detector.forest import bin_columns, oob_scores, quantile_cuts
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
 from detector.io.labels import csv_writer
 
@@ -639,8 +639,7 @@ def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
 
     out = Path(out_dir)
     check_audit_folder(out, force)
-    if not isinstance(top, numbers.Integral) or top < 1:
-        raise InputError(f"top must be a positive integer, got {top!r}")
+    check_int(top, "top", low=1)
     listed = result.suspicious(top=top, min_suspicion=min_suspicion)
     out.mkdir(parents=True, exist_ok=True)
     for old in _thumbnail_files(out):

@@ -36,12 +36,13 @@ Conventions, stated once:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field, fields, is_dataclass
+from dataclasses import dataclass, field
 from typing import Mapping
 
 import numpy as np
 
 from detector.boxes import as_boxes, iou
+from detector._validation import check_real, json_safe
 from detector.errors import InputError
 
 __all__ = [
@@ -103,7 +104,7 @@ class OperatingPoint:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready types (``nan`` becomes ``None``)."""
-        return _plain(self)
+        return json_safe(self)
 
 
 @dataclass
@@ -119,7 +120,7 @@ class ImageErrors:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready types."""
-        return _plain(self)
+        return json_safe(self)
 
 
 @dataclass
@@ -137,7 +138,7 @@ class FalseAlarm:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready types."""
-        return _plain(self)
+        return json_safe(self)
 
 
 @dataclass
@@ -154,7 +155,7 @@ class Miss:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready types."""
-        return _plain(self)
+        return json_safe(self)
 
 
 @dataclass
@@ -219,7 +220,7 @@ class Figures:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready types: arrays become lists, ``nan`` and infinity become ``None``."""
-        return _plain(self)
+        return json_safe(self)
 
 
 @dataclass
@@ -249,26 +250,6 @@ class Evaluation(Figures):
     miss_list: list = field(default_factory=list)
     unlabelled_images: list = field(default_factory=list)
     unlabelled_detections: int = 0
-
-
-def _plain(obj):
-    """Recursively turn dataclasses, arrays and numpy scalars into JSON-ready Python types."""
-    if is_dataclass(obj) and not isinstance(obj, type):
-        return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return [_plain(v) for v in obj.tolist()]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    return obj
 
 
 # --------------------------------------------------------------------------------------------
@@ -321,10 +302,7 @@ def _greedy_match(ious: np.ndarray, order: np.ndarray, thresholds: np.ndarray,
 
 
 def _check_threshold(iou_threshold: float) -> float:
-    t = float(iou_threshold)
-    if not 0.0 < t <= 1.0:
-        raise InputError(f"the IoU threshold must be in (0, 1], got {iou_threshold}")
-    return t
+    return check_real(iou_threshold, "the IoU threshold", low=0, high=1, low_open=True)
 
 
 def _image_arrays(name, boxes, scores=None):

@@ -33,6 +33,7 @@ import os
 
 import numpy as np
 
+from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
 from detector.io.files import write_bytes
 
@@ -218,8 +219,7 @@ def top_features(model, k: int = 12) -> np.ndarray:
     >>> top_features(m, k=3).tolist()
     [2, 0, 3]
     """
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 0:
-        raise InputError(f"k must be an integer >= 0, got {k!r}")
+    check_int(k, "k", low=0)
     imp, _ = model_importances(model)
     order = np.lexsort((np.arange(len(imp)), -imp))
     order = order[imp[order] > 0]
@@ -264,31 +264,6 @@ def _rectangles(feature) -> list[list[int]]:
     return [[int(v) for v in row] for row in np.asarray(feature) if row[4] != 0]
 
 
-def _finite_or_none(value):
-    if value is None:
-        return None
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
-def _plain(value):
-    """JSON values only: numpy scalars to Python, NaN and infinities to None."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _plain(value.tolist())
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
 def model_report(model, top: int = 12) -> dict:
     """The facts of a model a person checks first, as one JSON-ready dict.
 
@@ -331,7 +306,7 @@ def model_report(model, top: int = 12) -> dict:
     bank = md.get("bank") if isinstance(md.get("bank"), dict) else {}
     calibration = md.get("calibration") if isinstance(md.get("calibration"), dict) else {}
     mining = md.get("mining") if isinstance(md.get("mining"), list) else []
-    return _plain({
+    return json_safe({
         "window": {"width": int(model.window[0]), "height": int(model.window[1])},
         "mode": model.mode,
         "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
@@ -366,7 +341,7 @@ def model_report(model, top: int = 12) -> dict:
             "bank_counts": bank.get("counts"),
             "patches": md.get("patches"),
             "margin": md.get("margin"),
-            "oob_error": _finite_or_none(md.get("oob_error")),
+            "oob_error": finite_or_none(md.get("oob_error")),
             "mining": mining,
             "versions": md.get("versions") if isinstance(md.get("versions"), dict) else {},
         },
@@ -374,7 +349,7 @@ def model_report(model, top: int = 12) -> dict:
 
 
 def _number(value, digits: int = 3) -> str:
-    v = _finite_or_none(value)
+    v = finite_or_none(value)
     return "n/a" if v is None else f"{v:.{digits}g}"
 
 
@@ -418,9 +393,9 @@ def report_lines(report: dict) -> list[str]:
         if parts:
             lines.append("  calibrated for " + " on ".join(parts))
         means = []
-        if _finite_or_none(cal.get("mean_trees_objects")) is not None:
+        if finite_or_none(cal.get("mean_trees_objects")) is not None:
             means.append(f"objects {cal['mean_trees_objects']:.2f}")
-        if _finite_or_none(cal.get("mean_trees_background")) is not None:
+        if finite_or_none(cal.get("mean_trees_background")) is not None:
             bg = f"background {cal['mean_trees_background']:.2f}"
             if cal.get("background_source"):
                 bg += f" ({cal['background_source']})"

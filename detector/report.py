@@ -34,6 +34,7 @@ from urllib.parse import quote
 
 import numpy as np
 
+from detector._validation import check_real, finite_or_none
 from detector.errors import InputError
 from detector.io.files import atomic_write, read_bytes, same_file, write_bytes, write_text
 from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
@@ -95,14 +96,6 @@ def _hex(rgb) -> str:
 
 def _bgr(rgb) -> tuple[int, int, int]:
     return int(rgb[2]), int(rgb[1]), int(rgb[0])
-
-
-def _finite(value) -> float | None:
-    """A JSON-ready float: ``None`` for None, nan and infinity."""
-    if value is None:
-        return None
-    v = float(value)
-    return v if math.isfinite(v) else None
 
 
 # --------------------------------------------------------------------------------------------
@@ -355,10 +348,7 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
 def _check_target(name: str, value) -> float | None:
     if value is None:
         return None
-    v = float(value)
-    if not (math.isfinite(v) and 0.0 < v <= 1.0):
-        raise InputError(f"the target {name} must be in (0, 1], got {value}")
-    return v
+    return check_real(value, f"the target {name}", low=0, high=1, low_open=True)
 
 
 def choose_operating_point(evaluation: Evaluation, target_precision: float | None = None,
@@ -410,15 +400,15 @@ def choose_operating_point(evaluation: Evaluation, target_precision: float | Non
                  f1=None)
     if p_target is None and r_target is None:
         rule = "best F1"
-        t = _finite(evaluation.best_f1_threshold)
+        t = finite_or_none(evaluation.best_f1_threshold)
         if t is None:
             why = ("there are no labelled objects" if evaluation.objects == 0
                    else "there are no detections on labelled images")
             return dict(empty, rule=rule, met=False, note=f"no threshold to recommend: {why}")
-        point = dict(threshold=t, precision=_finite(evaluation.best_f1_precision),
-                     recall=_finite(evaluation.best_f1_recall),
-                     false_alarms_per_image=_finite(evaluation.best_f1_false_alarms_per_image),
-                     f1=_finite(evaluation.best_f1))
+        point = dict(threshold=t, precision=finite_or_none(evaluation.best_f1_precision),
+                     recall=finite_or_none(evaluation.best_f1_recall),
+                     false_alarms_per_image=finite_or_none(evaluation.best_f1_false_alarms_per_image),
+                     f1=finite_or_none(evaluation.best_f1))
         return dict(point, rule=rule, met=True,
                     note=f"threshold {t:.4g} gives the best F1 ({point['f1']:.3f})")
     if p_target is not None:
@@ -442,7 +432,7 @@ def choose_operating_point(evaluation: Evaluation, target_precision: float | Non
     p, r = found.precision, found.recall
     f1 = 2 * p * r / (p + r) if p + r > 0 else 0.0
     return dict(threshold=found.threshold, precision=p, recall=r,
-                false_alarms_per_image=_finite(found.false_alarms_per_image), f1=f1, rule=rule,
+                false_alarms_per_image=finite_or_none(found.false_alarms_per_image), f1=f1, rule=rule,
                 met=True, note=f"threshold {found.threshold:.4g} gives precision {p:.3f}, "
                                f"recall {r:.3f}")
 
@@ -523,10 +513,10 @@ def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = Non
         "version": SUMMARY_VERSION,
         "inputs": dict(inputs or {}),
         "provenance": provenance,
-        "operating_point": {k: (_finite(v) if isinstance(v, (float, np.floating)) else v)
+        "operating_point": {k: (finite_or_none(v) if isinstance(v, (float, np.floating)) else v)
                             for k, v in point.items()},
         "at_operating_point": at_point,
-        "fppi_at_recall_0.9": _finite(fppi_at_recall(evaluation, 0.9)),
+        "fppi_at_recall_0.9": finite_or_none(fppi_at_recall(evaluation, 0.9)),
         "unlabelled_image_count": len(evaluation.unlabelled_images),
         "warnings": list(warnings),
         "notes": list(notes),
@@ -626,12 +616,12 @@ def read_summary_point(path) -> tuple[float, dict | None]:
 
 
 def _fmt(value, digits: int = 3) -> str:
-    v = _finite(value)
+    v = finite_or_none(value)
     return "n/a" if v is None else f"{v:.{digits}f}"
 
 
 def _percent(value) -> str:
-    v = _finite(value)
+    v = finite_or_none(value)
     return "n/a" if v is None else f"{100 * v:.1f}%"
 
 
@@ -936,7 +926,7 @@ def plot_score_histogram(evaluation: Evaluation, path, threshold: float | None =
         ax.hist(chosen, bins=bins, histtype="stepfilled", color=_hex(rgb), alpha=0.35,
                 edgecolor=_hex(rgb), linewidth=1.4, linestyle=style,
                 label=f"{name} ({len(chosen)})")
-    if threshold is not None and _finite(threshold) is not None:
+    if threshold is not None and finite_or_none(threshold) is not None:
         ax.axvline(threshold, color="black", linewidth=1.2, label=f"threshold {threshold:.3g}")
     ax.legend(loc="upper left", fontsize=8, framealpha=0.92)
     _save(fig, path)
