@@ -34,7 +34,7 @@ prints their labelling rules). For each set, on the same train/test split:
     Belongie and Perona, PAMI 2014), on a bank cut the same way with its own window (the labels'
     median aspect, shorter side 32, whole 4-pixel blocks).
 
-Figures, all from ``detector.evaluate.evaluate`` on the test split's labels (the project's tests
+Figures, all from ``detector.evaluation.evaluate`` on the test split's labels (the project's tests
 hold its AP arithmetic to pycocotools'), so that every method is scored alike:
 AP50 (all-point, PASCAL VOC 2010), AP50:95 (101-point, COCO), FPPI at recall 0.9 (false alarms
 per image at the highest score cut reaching recall 0.9; "n/r" when never reached), training
@@ -125,7 +125,7 @@ def _run(cmd: list[str], log: Path) -> float:
 
 
 def _figures(detections: dict, truth: dict) -> dict:
-    from detector.evaluate import evaluate, fppi_at_recall
+    from detector.evaluation import evaluate, fppi_at_recall
 
     ev = evaluate(detections, truth)
     f = fppi_at_recall(ev, 0.9)

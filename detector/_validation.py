@@ -193,7 +193,8 @@ def finite_or_none(value: Any) -> float | None:
 
 
 def json_safe(value: Any) -> Any:
-    """Plain JSON values, recursively: dataclass instances to dicts (field order), dict keys to
+    """Plain JSON values, recursively: dataclass instances to dicts (field order; a field whose
+    metadata says ``{"json": False}`` is left out), dict keys to
     strings, tuples and arrays to lists, numpy scalars to Python, NaN and infinities to None.
 
     Examples
@@ -204,7 +205,8 @@ def json_safe(value: Any) -> Any:
     [[1.0, None]]
     """
     if is_dataclass(value) and not isinstance(value, type):
-        return {f.name: json_safe(getattr(value, f.name)) for f in fields(value)}
+        return {f.name: json_safe(getattr(value, f.name)) for f in fields(value)
+                if f.metadata.get("json", True)}
     if isinstance(value, dict):
         return {str(k): json_safe(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):

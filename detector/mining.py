@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector.boxes import iou
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import crop_region
 from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings

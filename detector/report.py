@@ -2,7 +2,7 @@
 false alarms and missed objects, a per-image table, all in one folder that opens offline.
 
 The stage after ``scan``: :func:`score_files` reads a detections file and a labels file (CSV or
-COCO JSON, through :mod:`detector.io.labels`), scores them with :func:`detector.evaluate.evaluate`,
+COCO JSON, through :mod:`detector.io.labels`), scores them with :func:`detector.evaluation.evaluate`,
 picks an operating point and writes the report folder::
 
     DIR/report.html            headline figures, plots, galleries, per-image table (no external assets)
@@ -34,10 +34,12 @@ from urllib.parse import quote
 
 import numpy as np
 
-from detector._validation import check_real, finite_or_none
+from detector._validation import finite_or_none
 from detector.errors import InputError
 from detector.io.files import atomic_write, read_bytes, same_file, write_bytes, write_text
-from detector.evaluate import Evaluation, evaluate, fppi_at_recall, match_image, operating_point
+from detector.evaluation import (Evaluation, check_targets, choose_operating_point, evaluate,
+                                 fppi_at_recall, match_image)
+from detector.evaluation.curves import reachable
 from detector.io.npzfile import file_sha256
 from detector.provenance import describe_settings, provenance_of
 
@@ -52,7 +54,6 @@ __all__ = [
     "build_summary",
     "check_image_names",
     "check_report_folder",
-    "choose_operating_point",
     "name_mismatches",
     "plot_miss_rate",
     "plot_precision_recall",
@@ -342,119 +343,6 @@ def read_score_inputs(detections_path, labels_path, label: str | None = None) ->
 
 
 # --------------------------------------------------------------------------------------------
-# the operating point
-
-
-def _check_target(name: str, value) -> float | None:
-    if value is None:
-        return None
-    return check_real(value, f"the target {name}", low=0, high=1, low_open=True)
-
-
-def choose_operating_point(evaluation: Evaluation, target_precision: float | None = None,
-                           target_recall: float | None = None) -> dict:
-    """The score threshold to recommend: one that meets a target, or the best-F1 one.
-
-    Parameters
-    ----------
-    evaluation : Evaluation
-    target_precision : float, optional
-        Recommend the threshold of highest recall whose precision is at least this.
-    target_recall : float, optional
-        Recommend the highest threshold whose recall is at least this.
-        With neither target, the threshold of best F1 is recommended.
-
-    Returns
-    -------
-    dict
-        ``threshold``, ``precision``, ``recall``, ``false_alarms_per_image`` (``None`` when the
-        rule cannot be met), ``f1``, ``rule`` (the rule in words), ``met`` (bool) and ``note``
-        (one line saying what was found, or why nothing meets the rule).
-
-    Raises
-    ------
-    InputError
-        Both targets given, or a target outside (0, 1].
-
-    Examples
-    --------
-    Scores 0.9 (hit), 0.8 (false alarm), 0.7 (hit) on one image with two objects:
-
-    >>> from detector.evaluate import evaluate
-    >>> ev = evaluate({"a.png": ([[0, 0, 10, 10], [40, 0, 10, 10], [20, 0, 10, 10]],
-    ...                          [0.9, 0.8, 0.7])},
-    ...               {"a.png": [[0, 0, 10, 10], [20, 0, 10, 10]]}, size_buckets=None)
-    >>> choose_operating_point(ev)["threshold"]  # F1: 0.667, 0.5, 0.8
-    0.7
-    >>> choose_operating_point(ev, target_precision=0.9)["threshold"]
-    0.9
-    >>> point = choose_operating_point(ev, target_recall=1.0, target_precision=None)
-    >>> point["rule"], round(point["precision"], 3)
-    ('highest threshold with recall >= 1', 0.667)
-    """
-    p_target = _check_target("precision", target_precision)
-    r_target = _check_target("recall", target_recall)
-    if p_target is not None and r_target is not None:
-        raise InputError("give a target precision or a target recall, not both")
-    empty = dict(threshold=None, precision=None, recall=None, false_alarms_per_image=None,
-                 f1=None)
-    if p_target is None and r_target is None:
-        rule = "best F1"
-        t = finite_or_none(evaluation.best_f1_threshold)
-        if t is None:
-            why = ("there are no labelled objects" if evaluation.objects == 0
-                   else "there are no detections on labelled images")
-            return dict(empty, rule=rule, met=False, note=f"no threshold to recommend: {why}")
-        point = dict(threshold=t, precision=finite_or_none(evaluation.best_f1_precision),
-                     recall=finite_or_none(evaluation.best_f1_recall),
-                     false_alarms_per_image=finite_or_none(evaluation.best_f1_false_alarms_per_image),
-                     f1=finite_or_none(evaluation.best_f1))
-        return dict(point, rule=rule, met=True,
-                    note=f"threshold {t:.4g} gives the best F1 ({point['f1']:.3f})")
-    if p_target is not None:
-        rule = f"highest recall with precision >= {p_target:g}"
-        found = operating_point(evaluation, target_precision=p_target)
-    else:
-        rule = f"highest threshold with recall >= {r_target:g}"
-        found = operating_point(evaluation, target_recall=r_target)
-    if found is None:
-        if evaluation.objects == 0:
-            why = "there are no labelled objects"
-        elif evaluation.detections == 0:
-            why = "there are no detections on labelled images"
-        elif p_target is not None:
-            best = float(np.max(np.asarray(evaluation.precision)[_reachable(evaluation)]))
-            why = f"no threshold reaches precision {p_target:g} (the highest is {best:.3f})"
-        else:
-            best = float(np.nanmax(evaluation.recall))
-            why = f"no threshold reaches recall {r_target:g} (the highest is {best:.3f})"
-        return dict(empty, rule=rule, met=False, note=f"cannot be met: {why}")
-    p, r = found.precision, found.recall
-    f1 = 2 * p * r / (p + r) if p + r > 0 else 0.0
-    return dict(threshold=found.threshold, precision=p, recall=r,
-                false_alarms_per_image=finite_or_none(found.false_alarms_per_image), f1=f1, rule=rule,
-                met=True, note=f"threshold {found.threshold:.4g} gives precision {p:.3f}, "
-                               f"recall {r:.3f}")
-
-
-def _reachable(figures) -> np.ndarray:
-    """Mask of the curve points a score threshold can produce (the last point of each tie)."""
-    t = np.asarray(figures.thresholds, dtype=np.float64)
-    if len(t) == 0:
-        return np.zeros(0, dtype=bool)
-    return np.concatenate([t[:-1] != t[1:], [True]])
-
-
-def _true_flags(figures) -> np.ndarray:
-    """Per detection on the curve (descending score), whether it is a true detection."""
-    n = len(figures.thresholds)
-    if n == 0:
-        return np.zeros(0, dtype=bool)
-    tp = np.rint(np.asarray(figures.precision, dtype=np.float64) * np.arange(1, n + 1))
-    return np.diff(np.concatenate([[0.0], tp])) > 0.5
-
-
-# --------------------------------------------------------------------------------------------
 # the summary
 
 
@@ -494,7 +382,7 @@ def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = Non
 
     Examples
     --------
-    >>> from detector.evaluate import evaluate
+    >>> from detector.evaluation import evaluate
     >>> ev = evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]})
     >>> s = build_summary(ev, choose_operating_point(ev))
     >>> s["average_precision"], s["operating_point"]["threshold"], s["fppi_at_recall_0.9"]
@@ -657,7 +545,7 @@ def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
 
     Examples
     --------
-    >>> from detector.evaluate import evaluate
+    >>> from detector.evaluation import evaluate
     >>> ev = evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]})
     >>> dict(summary_table(build_summary(ev, choose_operating_point(ev))))["AP50 (all-point)"]
     '1.000'
@@ -752,7 +640,7 @@ def plot_precision_recall(evaluation: Evaluation, path, point: dict | None = Non
     Examples
     --------
     >>> import tempfile, pathlib
-    >>> from detector.evaluate import evaluate
+    >>> from detector.evaluation import evaluate
     >>> ev = evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]})
     >>> out = pathlib.Path(tempfile.mkdtemp()) / "pr.png"
     >>> plot_precision_recall(ev, out, choose_operating_point(ev)); out.stat().st_size > 0
@@ -822,7 +710,7 @@ def plot_miss_rate(evaluation: Evaluation, path, point: dict | None = None) -> N
     Examples
     --------
     >>> import tempfile, pathlib
-    >>> from detector.evaluate import evaluate
+    >>> from detector.evaluation import evaluate
     >>> ev = evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]})
     >>> out = pathlib.Path(tempfile.mkdtemp()) / "miss.png"
     >>> plot_miss_rate(ev, out); out.stat().st_size > 0
@@ -839,7 +727,7 @@ def plot_miss_rate(evaluation: Evaluation, path, point: dict | None = None) -> N
     ax.set_title(f"Miss rate against FPPI at IoU {evaluation.iou_threshold:.2f}", fontsize=11)
     fppi = np.asarray(evaluation.false_alarms_per_image, dtype=np.float64)
     miss = np.asarray(evaluation.miss_rate, dtype=np.float64)
-    reach = _reachable(evaluation)
+    reach = reachable(np.asarray(evaluation.thresholds))
     fppi, miss = fppi[reach], miss[reach]
     positive = fppi[fppi > 0]
     x_low = min(1e-3, positive.min() / 2) if len(positive) else 1e-3
@@ -896,7 +784,7 @@ def plot_score_histogram(evaluation: Evaluation, path, threshold: float | None =
     Examples
     --------
     >>> import tempfile, pathlib
-    >>> from detector.evaluate import evaluate
+    >>> from detector.evaluation import evaluate
     >>> ev = evaluate({"a.png": ([[0, 0, 10, 10], [30, 0, 9, 9]], [0.8, 0.3])},
     ...               {"a.png": [[0, 0, 10, 10]]})
     >>> out = pathlib.Path(tempfile.mkdtemp()) / "hist.png"
@@ -908,7 +796,7 @@ def plot_score_histogram(evaluation: Evaluation, path, threshold: float | None =
     fig = _figure(5.4, 3.6)
     ax = fig.add_subplot()
     scores = np.asarray(evaluation.thresholds, dtype=np.float64)
-    true = _true_flags(evaluation)
+    true = np.asarray(evaluation.is_true, dtype=bool)
     bins = np.linspace(0.0, 1.0, 26)
     ax.set_xlim(0, 1)
     ax.set_xlabel("score")
@@ -1345,10 +1233,7 @@ def score_files(detections_path, labels_path, report_dir, iou_threshold: float =
     out = Path(report_dir)
     check_report_folder(out, force)  # before any work: refuse early
     _check_inputs_outside_report(out, (detections_path, labels_path))
-    p_target = _check_target("precision", target_precision)
-    r_target = _check_target("recall", target_recall)
-    if p_target is not None and r_target is not None:
-        raise InputError("give a target precision or a target recall, not both")
+    p_target, r_target = check_targets(target_precision, target_recall)
     notes: list[str] = []
     if images_dir is not None:
         if not os.path.isdir(images_dir):

@@ -32,7 +32,7 @@ import numpy as np
 
 from detector.errors import InputError
 from detector.io.files import atomic_write
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.features import count_features
 from detector.harvest import PatchBank, harvest
 from detector.io.labels import csv_writer
@@ -266,7 +266,7 @@ def fold_average_precision(fold: FoldData, params: dict, *, settings: ScanSettin
     Returns
     -------
     float
-        All-point average precision at IoU 0.5 (:func:`detector.evaluate.evaluate`); nan when
+        All-point average precision at IoU 0.5 (:func:`detector.evaluation.evaluate`); nan when
         the held-out images hold no object.
     """
     from detector.training import mining_params, train_with_mining

@@ -3,7 +3,7 @@
 References: ``skimage.feature.hog`` (the numpy twin of the block grid, and the window descriptor
 read from a frame's dense block grid, must equal it); ``sklearn.svm.LinearSVC.decision_function``
 (the correlation that scores every window at once must equal it window by window); pyramid
-arithmetic worked by hand in the comments; ``detector.evaluate.evaluate`` and
+arithmetic worked by hand in the comments; ``detector.evaluation.evaluate`` and
 ``detector.boxes.iou`` (held to pycocotools in their own tests) for a small end-to-end run on
 bright squares.
 """
@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from skimage.feature import hog
 
 from detector.boxes import iou
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import harvest, window_box_to_object_box
 from detector.io.labels import ImageLabels
 

@@ -17,12 +17,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.evaluate import evaluate, match_image
+from detector.evaluation import choose_operating_point, evaluate, match_image
 from detector.report import (
     BOX_STYLES,
     build_summary,
     check_image_names,
-    choose_operating_point,
     read_score_inputs,
     score_files,
     summary_table,

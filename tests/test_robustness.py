@@ -72,7 +72,7 @@ import cli.main
 from detector.io import npzfile
 from detector.batch import failures_path
 from detector.errors import InputError
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import harvest, load_bank, save_bank
 from detector.io.images import image_size, read_gray
 from detector.io.labels import LabelFile, read_detections, read_labels
