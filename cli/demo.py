@@ -13,7 +13,8 @@ from detector.errors import InputError
 from detector.harvest import harvest, save_bank
 from detector.io.labels import read_detections, read_labels
 from detector.model import save_model
-from detector.report import score_files, summary_table
+from detector.reporting.score_report import score_files
+from detector.reporting.summary import summary_table
 from detector.scan import ScanSettings
 from detector.training import DEFAULT_MINE_ROUNDS, mining_params, train_with_mining
 from synthetic_images import render_scenario

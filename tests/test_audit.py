@@ -23,7 +23,7 @@ from typer.testing import CliRunner
 
 from cli.audit import audit
 from detector import features as F
-from detector.audit import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS, CSV_NAME,
+from detector.reporting.audit import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS, CSV_NAME,
                             HTML_NAME, OBJECT_CALLED_BACKGROUND, THUMBNAIL_DIR, AuditResult,
                             Finding, audit_bank, audit_thumbnail, check_audit_folder,
                             harvest_for_audit, suspicion, suspicion_order, write_audit)

@@ -18,16 +18,10 @@ from hypothesis import strategies as st
 
 from detector.errors import InputError
 from detector.evaluation import choose_operating_point, evaluate, match_image
-from detector.report import (
-    BOX_STYLES,
-    build_summary,
-    check_image_names,
-    read_score_inputs,
-    score_files,
-    summary_table,
-    threshold_from_summary,
-    thumbnail,
-)
+from detector.reporting.drawing import BOX_STYLES, thumbnail
+from detector.reporting.inputs import check_image_names, read_score_inputs
+from detector.reporting.score_report import score_files
+from detector.reporting.summary import build_summary, summary_table, threshold_from_summary
 
 LABELS_CSV = """image,x,y,width,height
 a.png,4,4,16,16

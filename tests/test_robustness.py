@@ -1017,7 +1017,7 @@ JSON_VALUES = st.recursive(
 def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
     """A hand-edited metadata record: the two values the scan computes with are checked, the
     rest is only shown, by the summary and by `patchwood inspect`, whatever its type."""
-    from detector.inspection import model_report, report_lines
+    from detector.reporting.inspection import model_report, report_lines
 
     whole, _ = model_members
     src = tmp_path / "valid.npz"
@@ -1524,7 +1524,7 @@ def test_the_atomic_writer_leaves_the_old_file_or_the_new(tmp_path):
     destination as it was and no temporary file; success replaces it in one step, with the
     permissions the umask gives a new file."""
     from detector.io.files import atomic_write, write_text
-    from detector.report import _figure, _save
+    from detector.reporting.plots import new_figure as _figure, save_figure as _save
 
     path = tmp_path / "plot.png"
     path.write_bytes(b"last week's plot")

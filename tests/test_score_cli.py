@@ -18,7 +18,7 @@ from typer.testing import CliRunner
 from cli.score import score
 from detector.errors import InputError
 from detector.evaluation import evaluate
-from detector.report import threshold_from_summary
+from detector.reporting.summary import threshold_from_summary
 from shared import Links
 
 app = typer.Typer()
