@@ -174,6 +174,8 @@ def thumbnail(gray: np.ndarray, subject, boxes=(), size: int = THUMBNAIL_SIZE,
 
 
 def write_png(path, image: np.ndarray) -> None:
+    """Write a BGR (as cv2 makes it) or gray uint8 picture as PNG, atomically
+    (:func:`detector.io.files.write_bytes`)."""
     import cv2
 
     ok, data = cv2.imencode(".png", image)

@@ -35,7 +35,7 @@ import numpy as np
 
 from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
-from detector.io.files import write_bytes
+from detector.reporting import drawing
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -814,7 +814,7 @@ def render_top_features(features, importances, indices, window, background=None,
 
 
 def write_png(path, image: np.ndarray) -> None:
-    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.io.files.write_bytes`).
+    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.reporting.drawing.write_png`).
 
     Examples
     --------
@@ -823,12 +823,7 @@ def write_png(path, image: np.ndarray) -> None:
     >>> write_png(p, np.zeros((2, 3, 3), np.uint8)); os.path.getsize(p) > 0
     True
     """
-    import cv2
-
     image = np.asarray(image)
     if image.dtype != np.uint8 or image.ndim != 3 or image.shape[2] != 3:
         raise InputError(f"a picture must be uint8 (rows, columns, 3), got {image.dtype} {image.shape}")
-    ok, data = cv2.imencode(".png", np.ascontiguousarray(image[:, :, ::-1]))
-    if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
-        raise InputError("cannot encode the picture", path=path)
-    write_bytes(path, data.tobytes())
+    drawing.write_png(path, np.ascontiguousarray(image[:, :, ::-1]))
