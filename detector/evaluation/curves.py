@@ -4,6 +4,11 @@ the log-average miss rate; which curve points a score threshold can reach.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+
 import math
 
 import numpy as np
@@ -16,7 +21,7 @@ __all__ = ["average_precision", "log_average_miss_rate", "reachable"]
 # curve summaries
 
 
-def average_precision(precision, recall, method: str = "all-points") -> float:
+def average_precision(precision: ArrayLike, recall: ArrayLike, method: str = "all-points") -> float:
     """Average precision of a precision-recall curve.
 
     Parameters
@@ -81,7 +86,8 @@ def _sampled_ap(p: np.ndarray, r: np.ndarray, points: np.ndarray) -> float:
     return float(np.mean(q))
 
 
-def log_average_miss_rate(false_alarms_per_image, miss_rate, reference=None) -> float:
+def log_average_miss_rate(false_alarms_per_image: ArrayLike, miss_rate: ArrayLike,
+                          reference: ArrayLike | None = None) -> float:
     """Log-average miss rate (Dollar et al., PAMI 2012).
 
     For each reference FPPI value ``f`` (by default nine values evenly spaced in log space from

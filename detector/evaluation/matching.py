@@ -4,6 +4,11 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+
 import numpy as np
 
 from detector._validation import check_real
@@ -85,7 +90,8 @@ def _image_arrays(name, boxes, scores=None):
     return b, s
 
 
-def match_image(det_boxes, det_scores, gt_boxes, iou_threshold: float = 0.5):
+def match_image(det_boxes: ArrayLike, det_scores: ArrayLike, gt_boxes: ArrayLike,
+                iou_threshold: float = 0.5) -> tuple[np.ndarray, np.ndarray]:
     """Match the detections of one image to its ground-truth boxes.
 
     Detections are visited in descending score (equal scores in input order); each takes the still

@@ -19,6 +19,8 @@ limit can take (:func:`max_file_bytes`).
 
 from __future__ import annotations
 
+from typing import Iterable
+
 import io
 import math
 import os
@@ -599,7 +601,8 @@ def _is_image_name(name: str) -> bool:
     return name.lower().endswith(IMAGE_SUFFIXES)
 
 
-def list_images(paths, failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
+def list_images(paths: Iterable[str | os.PathLike],
+                failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
     """Find the image files among files and folders, in a fixed order.
 
     Folders are walked recursively; files and sub-folders whose names start with a dot are left

@@ -26,6 +26,8 @@ and the results format read by pycocotools.
 
 from __future__ import annotations
 
+from typing import IO, Iterable
+
 import codecs
 import csv
 import io
@@ -767,7 +769,8 @@ def _coco_results(doc: list, path, images) -> list[_Record]:
     return records
 
 
-def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetections]:
+def read_detections(path: str | os.PathLike,
+                    images: Iterable[str] | None = None) -> list[ImageDetections]:
     """Read a detections file: the detections CSV contract, or COCO JSON.
 
     Accepted forms:
@@ -853,7 +856,7 @@ class _CsvWriter:
             self.writerow(row)
 
 
-def csv_line(fields) -> str:
+def csv_line(fields: Iterable) -> str:
     """One CSV line as the project writes them (RFC 4180): fields joined by commas, a field that
     holds a comma, a double quote, a carriage return or a line feed put in double quotes (with its
     quotes doubled), and a line feed at the end. Unlike Python 3.11's ``csv.writer`` with
@@ -872,7 +875,7 @@ def csv_line(fields) -> str:
     return ",".join(out) + "\n"
 
 
-def csv_writer(fh) -> _CsvWriter:
+def csv_writer(fh: IO) -> _CsvWriter:
     """A writer of :func:`csv_line` rows on ``fh`` (``writerow``, ``writerows``)."""
     return _CsvWriter(fh)
 
@@ -1191,7 +1194,7 @@ def coco_result_ids(path: str | os.PathLike, label: str | None = None) -> CocoRe
 
 
 def write_detections_coco_results(path: str | os.PathLike, items: list[ImageDetections],
-                                  image_ids: dict | None = None, category_id=1) -> None:
+                                  image_ids: dict | None = None, category_id: int = 1) -> None:
     """Write detections as a COCO results list: ``[{"image_id", "category_id", "bbox",
     "score"}, ...]``, the format pycocotools' ``COCO.loadRes`` and ``COCOeval`` read (Lin et al.,
     2014), images in the order given, each image's detections by descending score.

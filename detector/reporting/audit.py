@@ -29,6 +29,13 @@ the other labelled objects near it in sky blue, solid and thin.
 
 from __future__ import annotations
 
+from typing import Callable, Sequence
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+    from detector.io.labels import ImageLabels
+
 import io
 import os
 import re
@@ -104,7 +111,7 @@ DEFAULT_PARAMS = {
 # scores and suspicion
 
 
-def suspicion(scores, labels) -> np.ndarray:
+def suspicion(scores: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """How strongly the out-of-bag score contradicts the label: ``1 - s`` for objects, ``s`` for
     background; NaN where the score is NaN.
 
@@ -130,7 +137,7 @@ def suspicion(scores, labels) -> np.ndarray:
     return np.where(y == 1, 1.0 - s, s)
 
 
-def suspicion_order(scores, labels) -> np.ndarray:
+def suspicion_order(scores: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """Indices of the scored patches, most suspicious first; ties keep index order, NaN left out.
 
     Examples
@@ -164,7 +171,8 @@ def _params(params) -> dict:
     return merged
 
 
-def patch_oob_scores(patches, y, params=None, progress=None):
+def patch_oob_scores(patches: ArrayLike, y: ArrayLike, params: dict | None = None,
+                     progress: Callable[[int], None] | None = None) -> tuple[np.ndarray, dict]:
     """Out-of-bag scores of grey patches: a random feature pool, its values, then a bagged forest.
 
     The same steps as :class:`detector.classifier.PatchClassifier` (pool, contrast-normalised
@@ -335,9 +343,11 @@ class AuditResult:
         return chosen if top is None else chosen[: int(top)]
 
 
-def harvest_for_audit(images_dir, items, *, window=None, margin: float = 0.1,
-                      negatives_per_image: int = 50, seed: int = 0, labels_path=None,
-                      progress=None) -> PatchBank:
+def harvest_for_audit(images_dir: str | os.PathLike, items: Sequence[ImageLabels], *,
+                      window: tuple[int, int] | None = None, margin: float = 0.1,
+                      negatives_per_image: int = 50, seed: int = 0,
+                      labels_path: str | os.PathLike | None = None,
+                      progress: Callable[[int], None] | None = None) -> PatchBank:
     """The bank an audit needs: one patch per labelled box, and random background windows.
 
     :func:`detector.harvest.harvest` with ``copies=0``: augmented copies of one box would leak
@@ -371,7 +381,8 @@ def harvest_for_audit(images_dir, items, *, window=None, margin: float = 0.1,
                    labels_path=labels_path, progress=progress)
 
 
-def audit_bank(bank: PatchBank, params=None, progress=None) -> AuditResult:
+def audit_bank(bank: PatchBank, params: dict | None = None,
+               progress: Callable[[int], None] | None = None) -> AuditResult:
     """Score every patch of a bank out of bag and rank them by suspicion.
 
     Parameters
@@ -454,7 +465,8 @@ def audit_bank(bank: PatchBank, params=None, progress=None) -> AuditResult:
 # pictures
 
 
-def audit_thumbnail(gray: np.ndarray, box, kind: str, others=(), size: int = THUMBNAIL_SIZE,
+def audit_thumbnail(gray: np.ndarray, box: Sequence[float], kind: str,
+                    others: Sequence[Sequence[float]] = (), size: int = THUMBNAIL_SIZE,
                     context: float = 0.5) -> np.ndarray:
     """A square colour thumbnail around a finding's box, the other labelled boxes drawn thin.
 
@@ -529,7 +541,7 @@ def _thumbnail_files(out_dir: Path) -> list[Path]:
     return [e for e in folder.iterdir() if e.is_file() and _THUMBNAIL_FILE.fullmatch(e.name)]
 
 
-def check_audit_folder(out_dir, force: bool = False) -> None:
+def check_audit_folder(out_dir: str | os.PathLike, force: bool = False) -> None:
     """Refuse to replace the files of an earlier audit unless ``force``; refuse a file as folder.
 
     Only the audit's own files count: ``suspicious-labels.csv``, ``audit.html`` and
@@ -574,9 +586,10 @@ def _csv_text(findings) -> str:
     return buf.getvalue()
 
 
-def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
-                min_suspicion: float = 0.5, images_dir=None, inputs: dict | None = None,
-                force: bool = False, progress=None) -> dict:
+def write_audit(out_dir: str | os.PathLike, result: AuditResult, bank: PatchBank, *, top: int = 50,
+                min_suspicion: float = 0.5, images_dir: str | os.PathLike | None = None,
+                inputs: dict | None = None, force: bool = False,
+                progress: Callable[[int], None] | None = None) -> dict:
     """Write the audit folder: the CSV of the listed findings, thumbnails and ``audit.html``.
 
     Parameters

@@ -9,6 +9,9 @@ over a dark outline so that it stays visible on light and dark backgrounds.
 
 from __future__ import annotations
 
+import os
+from typing import Callable, Sequence
+
 import numpy as np
 
 from detector.errors import InputError
@@ -41,11 +44,11 @@ BOX_STYLES = {
 _OUTLINE_BGR = (24, 24, 24)
 
 
-def hex_colour(rgb) -> str:
+def hex_colour(rgb: tuple[int, int, int]) -> str:
     return "#{:02x}{:02x}{:02x}".format(*rgb)
 
 
-def bgr(rgb) -> tuple[int, int, int]:
+def bgr(rgb: tuple[int, int, int]) -> tuple[int, int, int]:
     return int(rgb[2]), int(rgb[1]), int(rgb[0])
 
 
@@ -61,7 +64,8 @@ def _dash_segments(p0, p1, on: float, off: float):
         t += on + off
 
 
-def draw_box(img: np.ndarray, box, rgb, style: str, thickness: int) -> None:
+def draw_box(img: np.ndarray, box: Sequence[float], rgb: tuple[int, int, int], style: str,
+             thickness: int) -> None:
     """Draw an ``x, y, width, height`` box (pixel coordinates of ``img``) in a line style, over a
     dark outline."""
     import cv2
@@ -91,7 +95,8 @@ def draw_box(img: np.ndarray, box, rgb, style: str, thickness: int) -> None:
             raise ValueError(f"unknown line style {style!r}")
 
 
-def crop_around(gray: np.ndarray, box, size: int, context: float):
+def crop_around(gray: np.ndarray, box: Sequence[float], size: int,
+                context: float) -> tuple[np.ndarray, Callable]:
     """Square crop around ``box``: ``1 + 2 * context`` times its longer side (at least 32 pixels
     across), scaled to ``size`` by an affine warp so that parts outside the image (dark gray)
     and sub-pixel offsets are exact.
@@ -126,7 +131,8 @@ def crop_around(gray: np.ndarray, box, size: int, context: float):
     return cv2.cvtColor(crop, cv2.COLOR_GRAY2BGR), local
 
 
-def thumbnail(gray: np.ndarray, subject, boxes=(), size: int = THUMBNAIL_SIZE,
+def thumbnail(gray: np.ndarray, subject: tuple[Sequence[float], str],
+              boxes: Sequence[tuple[Sequence[float], str]] = (), size: int = THUMBNAIL_SIZE,
               context: float = 1.0) -> np.ndarray:
     """A square colour thumbnail around one box, with the boxes near it drawn in their styles.
 
@@ -173,7 +179,7 @@ def thumbnail(gray: np.ndarray, subject, boxes=(), size: int = THUMBNAIL_SIZE,
     return out
 
 
-def write_png(path, image: np.ndarray) -> None:
+def write_png(path: str | os.PathLike, image: np.ndarray) -> None:
     """Write a BGR (as cv2 makes it) or gray uint8 picture as PNG, atomically
     (:func:`detector.io.files.write_bytes`)."""
     import cv2

@@ -4,6 +4,8 @@ JSON, through :mod:`detector.io.labels`), checked against each other.
 
 from __future__ import annotations
 
+from typing import Iterable
+
 import os
 import posixpath
 from dataclasses import dataclass, field
@@ -75,7 +77,8 @@ def _is_blank_file(path) -> bool:
     return not more and not data.lstrip(b"\xef\xbb\xbf \t\r\n")
 
 
-def check_image_names(detection_images, labelled_images, path=None) -> None:
+def check_image_names(detection_images: Iterable[str], labelled_images: Iterable[str],
+                      path: str | os.PathLike | None = None) -> None:
     """Refuse detections whose image names can only match the labels by ignoring folder or case.
 
     When some detection images are given, none of them is a labelled image, but some are after
@@ -137,8 +140,9 @@ def _names(names) -> str:
     return shown + (f" and {len(names) - SHOWN_NAMES} more" if len(names) > SHOWN_NAMES else "")
 
 
-def name_mismatches(detection_images, labelled_images, detections_path=None,
-                    labels_path=None) -> list[str]:
+def name_mismatches(detection_images: Iterable[str], labelled_images: Iterable[str],
+                    detections_path: str | os.PathLike | None = None,
+                    labels_path: str | os.PathLike | None = None) -> list[str]:
     """One line per kind of mismatch between the images of a detections file and those of a
     labels file, naming how many and the first few.
 
@@ -190,7 +194,8 @@ def at_threshold(detections: dict, threshold: float) -> dict:
     return out
 
 
-def read_score_inputs(detections_path, labels_path, label: str | None = None) -> ScoreInputs:
+def read_score_inputs(detections_path: str | os.PathLike, labels_path: str | os.PathLike,
+                      label: str | None = None) -> ScoreInputs:
     """Read a detections file and a labels file (CSV or COCO JSON each) for scoring.
 
     A detections file that is empty (no bytes, or a header row only) means no detections: the

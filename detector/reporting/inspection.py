@@ -28,6 +28,13 @@ do not wash out the rest.
 
 from __future__ import annotations
 
+from typing import Sequence
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+    from detector.model import Model
+
 import math
 import os
 
@@ -100,7 +107,8 @@ def _check_window(window) -> tuple[int, int]:
     return width, height
 
 
-def importance_heat_map(features, importances, window) -> np.ndarray:
+def importance_heat_map(features: ArrayLike, importances: ArrayLike,
+                        window: tuple[int, int]) -> np.ndarray:
     """Where in the window the features look, weighted by their importance.
 
     Every rectangle ``(x, y, w, h, weight)`` of feature ``i`` adds
@@ -162,7 +170,7 @@ def _importance_source(model) -> str:
     return "squared-error decrease, summed over the stages (per patch)"
 
 
-def model_importances(model) -> tuple[np.ndarray, str]:
+def model_importances(model: Model) -> tuple[np.ndarray, str]:
     """One importance per feature of a model, and what it measures.
 
     The summed impurity decrease stored in the model file (``model.feature_importances``); for a
@@ -195,7 +203,7 @@ def model_importances(model) -> tuple[np.ndarray, str]:
     return imp, _importance_source(model)
 
 
-def top_features(model, k: int = 12) -> np.ndarray:
+def top_features(model: Model, k: int = 12) -> np.ndarray:
     """Indices of the model's ``k`` most important features, most important first.
 
     Ranked by :func:`model_importances`, ties by index (lower first). Features of importance 0
@@ -226,7 +234,7 @@ def top_features(model, k: int = 12) -> np.ndarray:
     return order[:k].astype(np.intp)
 
 
-def mean_object_patch(patches, labels) -> np.ndarray:
+def mean_object_patch(patches: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """Pixel-wise mean of the object patches (label 1) of a patch bank.
 
     Parameters
@@ -264,7 +272,7 @@ def _rectangles(feature) -> list[list[int]]:
     return [[int(v) for v in row] for row in np.asarray(feature) if row[4] != 0]
 
 
-def model_report(model, top: int = 12) -> dict:
+def model_report(model: Model, top: int = 12) -> dict:
     """The facts of a model a person checks first, as one JSON-ready dict.
 
     Parameters
@@ -459,7 +467,7 @@ def report_lines(report: dict) -> list[str]:
 # pictures: pixel-exact panels
 
 
-def display_scale(window, target: int = 240) -> int:
+def display_scale(window: tuple[int, int], target: int = 240) -> int:
     """Nearest-neighbour enlargement that makes the window's longer side about ``target`` pixels.
 
     Between 1 and 20. A 24 x 24 window is shown 10 times larger.
@@ -495,8 +503,8 @@ def _colour_map(values: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(rgba[..., :3])
 
 
-def heat_map_panel(heat, scale: int = 10, vmax: float | None = None, patch=None,
-                   gamma: float = HEAT_GAMMA) -> np.ndarray:
+def heat_map_panel(heat: ArrayLike, scale: int = 10, vmax: float | None = None,
+                   patch: ArrayLike | None = None, gamma: float = HEAT_GAMMA) -> np.ndarray:
     """A heat map as an RGB picture, each window pixel a ``scale`` x ``scale`` block.
 
     Parameters
@@ -556,7 +564,8 @@ def _sign(panel: np.ndarray, cx: int, cy: int, half: int, plus: bool) -> None:
             panel[max(cy - a, 0):cy + a + 1, max(cx - t + 1, 0):cx + t] = colour
 
 
-def feature_panel(feature, background, scale: int = 10, stretch: bool = True) -> np.ndarray:
+def feature_panel(feature: ArrayLike, background: ArrayLike | None, scale: int = 10,
+                  stretch: bool = True) -> np.ndarray:
     """One feature's rectangles drawn over a grey window, each window pixel ``scale`` x ``scale``.
 
     Every rectangle is filled with its colour at opacity 0.4 (:data:`POSITIVE_RGB` for a positive
@@ -652,9 +661,9 @@ def _place(fig, panel: np.ndarray, x_px: int, y_px: int, height_px: int) -> None
     fig.figimage(panel, xo=x_px, yo=height_px - y_px - panel.shape[0], origin="upper", zorder=1)
 
 
-def render_heat_map(heat, scale: int | None = None, patch=None, title: str = "Where the features look",
-                    subtitle: str = "", unit: str = "importance per pixel",
-                    gamma: float = HEAT_GAMMA) -> np.ndarray:
+def render_heat_map(heat: ArrayLike, scale: int | None = None, patch: ArrayLike | None = None,
+                    title: str = "Where the features look", subtitle: str = "",
+                    unit: str = "importance per pixel", gamma: float = HEAT_GAMMA) -> np.ndarray:
     """A picture of a heat map with a title and a colour bar (and the map over a patch, if given).
 
     Parameters
@@ -718,9 +727,10 @@ def render_heat_map(heat, scale: int | None = None, patch=None, title: str = "Wh
     return _pixels(fig, width, height)
 
 
-def render_top_features(features, importances, indices, window, background=None,
-                        scale: int | None = None,
-                        columns: int = 4, title: str = "Most important features",
+def render_top_features(features: ArrayLike, importances: ArrayLike, indices: Sequence[int],
+                        window: tuple[int, int], background: ArrayLike | None = None,
+                        scale: int | None = None, columns: int = 4,
+                        title: str = "Most important features",
                         note: str | None = None) -> np.ndarray:
     """A picture of the given features, one panel each, with rank and importance as titles.
 
@@ -813,7 +823,7 @@ def render_top_features(features, importances, indices, window, background=None,
     return _pixels(fig, width, height)
 
 
-def write_png(path, image: np.ndarray) -> None:
+def write_png(path: str | os.PathLike, image: np.ndarray) -> None:
     """Write an RGB uint8 picture as PNG, atomically (:func:`detector.reporting.drawing.write_png`).
 
     Examples

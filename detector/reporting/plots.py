@@ -4,6 +4,12 @@ miss rate against false alarms per image, and the score histograms.
 
 from __future__ import annotations
 
+import os
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
 import numpy as np
 
 from detector._validation import finite_or_none
@@ -24,7 +30,7 @@ __all__ = [
 _CURVE_RGB = (0, 114, 178)  # Okabe & Ito blue, for curves
 
 
-def new_figure(width=5.4, height=4.2):
+def new_figure(width: float = 5.4, height: float = 4.2) -> Figure:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -36,7 +42,7 @@ def new_figure(width=5.4, height=4.2):
     return fig
 
 
-def save_figure(fig, path) -> None:
+def save_figure(fig: Figure, path: str | os.PathLike) -> None:
     with atomic_write(path) as fh:
         fig.savefig(fh, format="png", metadata={"Software": None})
 
@@ -45,7 +51,8 @@ def _nothing_to_draw(ax, text: str) -> None:
     ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, color="#555555")
 
 
-def plot_precision_recall(evaluation: Evaluation, path, point: dict | None = None) -> None:
+def plot_precision_recall(evaluation: Evaluation, path: str | os.PathLike,
+                          point: dict | None = None) -> None:
     """Draw the precision-recall curve with its AP in the legend and the operating point marked.
 
     The raw curve (one point per detection in descending score) is drawn with the interpolated
@@ -113,7 +120,8 @@ def plot_precision_recall(evaluation: Evaluation, path, point: dict | None = Non
     save_figure(fig, path)
 
 
-def plot_miss_rate(evaluation: Evaluation, path, point: dict | None = None) -> None:
+def plot_miss_rate(evaluation: Evaluation, path: str | os.PathLike,
+                   point: dict | None = None) -> None:
     """Draw miss rate against false alarms per image (FPPI) on log axes.
 
     The curve is read as the log-average miss rate reads it (Dollar et al., PAMI 2012): at each
@@ -193,7 +201,8 @@ def plot_miss_rate(evaluation: Evaluation, path, point: dict | None = None) -> N
     save_figure(fig, path)
 
 
-def plot_score_histogram(evaluation: Evaluation, path, threshold: float | None = None) -> None:
+def plot_score_histogram(evaluation: Evaluation, path: str | os.PathLike,
+                         threshold: float | None = None) -> None:
     """Draw histograms of the scores of true detections and of false alarms.
 
     Parameters

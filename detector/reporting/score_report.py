@@ -19,6 +19,8 @@ operating-point policy is :func:`detector.evaluation.choose_operating_point`.
 
 from __future__ import annotations
 
+from typing import Iterable
+
 import math
 import os
 import re
@@ -141,7 +143,7 @@ def _galleries(evaluation, detections, ground_truth, images_dir, out_dir, count,
     return result
 
 
-def check_report_folder(report_dir, force: bool = False) -> None:
+def check_report_folder(report_dir: str | os.PathLike, force: bool = False) -> None:
     """Refuse a report folder that is a file, or that holds files, unless ``force``.
 
     Parameters
@@ -201,10 +203,11 @@ def _clear_old_report(out_dir: Path) -> None:
                 entry.unlink()
 
 
-def write_report(report_dir, evaluation: Evaluation, point: dict, detections: dict | None = None,
-                 ground_truth: dict | None = None, images_dir=None, inputs: dict | None = None,
-                 notes=(), force: bool = False, gallery_size: int = GALLERY_SIZE,
-                 provenance: dict | None = None, warnings=()) -> dict:
+def write_report(report_dir: str | os.PathLike, evaluation: Evaluation, point: dict,
+                 detections: dict | None = None, ground_truth: dict | None = None,
+                 images_dir: str | os.PathLike | None = None, inputs: dict | None = None,
+                 notes: Iterable[str] = (), force: bool = False, gallery_size: int = GALLERY_SIZE,
+                 provenance: dict | None = None, warnings: Iterable[str] = ()) -> dict:
     """Write the report folder: ``report.html``, ``summary.json``, plots and galleries.
 
     The curves, AP and the figures of the headline describe every detection in the file; the
@@ -298,10 +301,12 @@ class ScoreResult:
     warnings: list = field(default_factory=list)
 
 
-def score_files(detections_path, labels_path, report_dir, iou_threshold: float = 0.5,
-                images_dir=None, label: str | None = None, target_precision: float | None = None,
-                target_recall: float | None = None, force: bool = False,
-                gallery_size: int = GALLERY_SIZE, strict: bool = False) -> ScoreResult:
+def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLike,
+                report_dir: str | os.PathLike, iou_threshold: float = 0.5,
+                images_dir: str | os.PathLike | None = None, label: str | None = None,
+                target_precision: float | None = None, target_recall: float | None = None,
+                force: bool = False, gallery_size: int = GALLERY_SIZE,
+                strict: bool = False) -> ScoreResult:
     """Score a detections file against a labels file and write the report folder.
 
     Parameters
@@ -416,7 +421,8 @@ def _provenance_html(record: dict | None) -> str:
     return f'<p class="inputs">made by: {" &middot; ".join(parts)}</p>'
 
 
-def _html(summary: dict, evaluation: Evaluation, galleries, errors: Evaluation | None = None) -> str:
+def _html(summary: dict, evaluation: Evaluation, galleries,
+          errors: Evaluation | None = None) -> str:
     errors = evaluation if errors is None else errors
     inputs = summary.get("inputs") or {}
     point = summary["operating_point"]

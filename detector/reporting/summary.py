@@ -4,6 +4,8 @@
 
 from __future__ import annotations
 
+from typing import Iterable
+
 import json
 import math
 import os
@@ -35,8 +37,8 @@ SUMMARY_VERSION = 1
 
 
 def build_summary(evaluation: Evaluation, point: dict, inputs: dict | None = None,
-                  notes=(), errors: Evaluation | None = None, provenance: dict | None = None,
-                  warnings=()) -> dict:
+                  notes: Iterable[str] = (), errors: Evaluation | None = None,
+                  provenance: dict | None = None, warnings: Iterable[str] = ()) -> dict:
     """Every figure of a scoring run as plain JSON-ready types (the content of ``summary.json``).
 
     Parameters
@@ -112,7 +114,7 @@ def _summary_text(summary: dict) -> str:
 SUMMARY_MAX_BYTES = 16 * 2**20
 
 
-def threshold_from_summary(path) -> float:
+def threshold_from_summary(path: str | os.PathLike) -> float:
     """The recommended score threshold stored in a ``summary.json`` written by ``score`` (see
     :func:`read_summary_point`, which also gives the provenance of the scored detections).
 
@@ -144,7 +146,7 @@ def threshold_from_summary(path) -> float:
     return read_summary_point(path)[0]
 
 
-def read_summary_point(path) -> tuple[float, dict | None]:
+def read_summary_point(path: str | os.PathLike) -> tuple[float, dict | None]:
     """``(threshold, provenance)`` from a ``summary.json`` written by ``score``: the recommended
     score threshold, and the provenance record of the detections it was computed from (None
     when the summary has none: detections made by another program or an older patchwood).
@@ -191,17 +193,17 @@ def read_summary_point(path) -> tuple[float, dict | None]:
     return float(t), record
 
 
-def fmt(value, digits: int = 3) -> str:
+def fmt(value: float | None, digits: int = 3) -> str:
     v = finite_or_none(value)
     return "n/a" if v is None else f"{v:.{digits}f}"
 
 
-def percent(value) -> str:
+def percent(value: float | None) -> str:
     v = finite_or_none(value)
     return "n/a" if v is None else f"{100 * v:.1f}%"
 
 
-def ap_name(iou_threshold) -> str:
+def ap_name(iou_threshold: float) -> str:
     t = float(iou_threshold)
     return "AP50" if t == 0.5 else f"AP at IoU {t:.2f}"
 
@@ -217,7 +219,8 @@ def _near_path(path) -> str:
     return text if rel.startswith("..") else rel
 
 
-def summary_table(summary: dict, report_path=None) -> list[tuple[str, str]]:
+def summary_table(summary: dict,
+                  report_path: str | os.PathLike | None = None) -> list[tuple[str, str]]:
     """The short summary the terminal prints: ``(name, value)`` rows.
 
     Parameters
