@@ -9,6 +9,7 @@ COCO JSON files (Lin et al., 2014) written by hand.
 import json
 import math
 import os
+from pathlib import Path
 
 import cv2
 import numpy as np
@@ -386,3 +387,29 @@ def test_empty_detections_still_give_a_report(tmp_path):
     for name in ("report.html", "precision-recall.png", "miss-rate.png", "score-histogram.png"):
         assert (tmp_path / "report" / name).stat().st_size > 0
     assert cv2.imread(str(tmp_path / "report" / "miss-rate.png")) is not None
+
+
+def test_pages_share_one_template_and_base_style_sheet():
+    """The score report and the audit page are built from the same package files
+    (detector/reporting/assets: page.html, base.css, one sheet per page), found through
+    importlib.resources so an installed package has them; no page keeps CSS in Python code."""
+    from importlib import resources
+
+    from detector.reporting import _html
+
+    assets = resources.files("detector.reporting").joinpath("assets")
+    names = sorted(p.name for p in assets.iterdir())
+    assert names == ["audit.css", "base.css", "page.html", "score-report.css"]
+    base = _html.asset("base.css")
+    pages = {sheet: _html.page("t", sheet, ["<h1>x</h1>"]) for sheet in ("score-report.css", "audit.css")}
+    for sheet, text in pages.items():
+        assert text.startswith("<!DOCTYPE html>") and text.endswith("</main></body></html>\n")
+        assert base in text and _html.asset(sheet) in text
+        assert text.count("<style>") == 1
+    # the page sheets hold only what differs: no rule of base.css is repeated in them
+    rules = {r.strip() for r in base.split("}") if "{" in r}
+    for sheet in ("score-report.css", "audit.css"):
+        assert not rules & {r.strip() for r in _html.asset(sheet).split("}") if "{" in r}
+    here = Path(__file__).resolve().parent.parent / "detector" / "reporting"
+    for module in here.glob("*.py"):
+        assert "box-sizing" not in module.read_text(encoding="utf-8"), module
