@@ -31,7 +31,8 @@ __all__ = ["check_int", "check_real", "check_choice", "seed_sequence", "as_gener
 # parameters
 
 def check_int(value: Any, name: str, *, low: int | None = None, high: int | None = None) -> int:
-    """``value`` as an ``int`` if it is an integer (not a bool) in ``[low, high]``.
+    """``value`` as an ``int`` if it is an integer (not a bool) in ``[low, high]``; the message
+    words the range as :class:`detector.classifier.PatchClassifier` does ("1..12", ">= 1").
 
     Examples
     --------
@@ -50,7 +51,7 @@ def check_int(value: Any, name: str, *, low: int | None = None, high: int | None
     if ok and (low is None or value >= low) and (high is None or value <= high):
         return int(value)
     if low is not None and high is not None:
-        bound = f" in {low}..{high}"
+        bound = f" {low}..{high}"
     elif low is not None:
         bound = f" >= {low}"
     elif high is not None:
@@ -110,12 +111,12 @@ def check_choice(value: Any, name: str, choices: Iterable[str]) -> str:
     >>> check_choice("adaptive", "mode", ("bagged", "boosted"))
     Traceback (most recent call last):
     ...
-    detector.errors.InputError: mode must be one of bagged, boosted; got 'adaptive'
+    detector.errors.InputError: mode must be one of bagged, boosted, got 'adaptive'
     """
     choices = tuple(choices)
     if isinstance(value, str) and value in choices:
         return value
-    raise InputError(f"{name} must be one of {', '.join(choices)}; got {value!r}")
+    raise InputError(f"{name} must be one of {', '.join(choices)}, got {value!r}")
 
 
 # --------------------------------------------------------------------------------------------

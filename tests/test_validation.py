@@ -43,7 +43,7 @@ def test_generators_and_random_states():
 
 def test_parameter_checks_raise_the_one_input_error():
     assert check_int(np.int32(4), "trees", low=1, high=10) == 4
-    with pytest.raises(InputError, match=r"^trees must be an integer in 1\.\.10, got 11$"):
+    with pytest.raises(InputError, match=r"^trees must be an integer 1\.\.10, got 11$"):
         check_int(11, "trees", low=1, high=10)
     with pytest.raises(InputError, match="got True"):
         check_int(True, "trees")  # a bool is not a count
