@@ -9,7 +9,7 @@ jitter=0.08, negatives_per_image=100``; 300 boosted trees of depth 2, pool 10,00
 (``--seed`` changes the harvest's and the model's). The scan uses the defaults (scale step 1.2,
 stride 2, overhang 0.25, early exit on) at threshold 0.05 so that the precision-recall curve is
 complete; mining scans with the same overhang. AP is computed by
-:func:`detector.evaluate.evaluate`, which the tests hold equal to pycocotools.
+:func:`detector.evaluation.evaluate`, which the tests hold equal to pycocotools.
 """
 
 from __future__ import annotations
@@ -22,10 +22,10 @@ import time
 
 import numpy as np
 
-from detector.evaluate import evaluate, fppi_at_recall
+from detector.evaluation import evaluate, fppi_at_recall
 from detector.harvest import KIND_MINED, harvest
-from detector.images import read_gray
-from detector.labels import read_labels
+from detector.io.images import read_gray
+from detector.io.labels import read_labels
 from detector.training import mine
 from detector.scan import MAX_OVERHANG, Engine, ScanSettings
 from detector.training import train_model

@@ -55,9 +55,9 @@ Baseline, assembled from general-purpose libraries:
   around it); this is the usual price of the dense scan, and the mined background patches are
   described the same way as the bank's, from their own 24 x 24 crops.
 
-Scored by ``detector.evaluate.evaluate`` on the same ground truth (all-point AP at IoU 0.5, which
+Scored by ``detector.evaluation.evaluate`` on the same ground truth (all-point AP at IoU 0.5, which
 the project's tests hold equal to pycocotools' precision-recall arithmetic) and
-``detector.evaluate.fppi_at_recall`` (false alarms per image at the highest score cut that reaches
+``detector.evaluation.fppi_at_recall`` (false alarms per image at the highest score cut that reaches
 recall 0.9). Speed: the test frames are decoded to grayscale arrays before timing; each detector's
 wall time to scan all of them on one core (OMP / OpenBLAS / MKL / numba threads set to 1 below),
 ``--repeats`` passes after a warm-up frame, the routes taking turns frame by frame (this
@@ -718,10 +718,10 @@ def main(argv=None):
     import skimage
 
     from _machine import cpu_name, load
-    from detector.evaluate import evaluate, fppi_at_recall
+    from detector.evaluation import evaluate, fppi_at_recall
     from detector.harvest import harvest
-    from detector.images import read_gray
-    from detector.labels import read_labels
+    from detector.io.images import read_gray
+    from detector.io.labels import read_labels
     from detector.scan import Engine, ScanSettings
     from detector.training import train_with_mining
 

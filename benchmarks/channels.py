@@ -25,9 +25,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from detector.features import N_CHANNELS  # noqa: E402
 from detector.classifier import PatchClassifier  # noqa: E402
 from detector.harvest import harvest  # noqa: E402
-from detector.labels import read_labels  # noqa: E402
-from detector.scan import (Engine, ScanSettings, channel_frame_integrals, frame_integrals,
-                           integral_dtype)  # noqa: E402
+from detector.io.labels import read_labels  # noqa: E402
+from detector.scan import (Engine, ScanSettings, channel_frame_integrals,  # noqa: E402
+                           frame_integrals, integral_dtype)
 from synthetic_images import render_frame, render_scenario  # noqa: E402
 
 

@@ -34,7 +34,7 @@ prints their labelling rules). For each set, on the same train/test split:
     Belongie and Perona, PAMI 2014), on a bank cut the same way with its own window (the labels'
     median aspect, shorter side 32, whole 4-pixel blocks).
 
-Figures, all from ``detector.evaluate.evaluate`` on the test split's labels (the project's tests
+Figures, all from ``detector.evaluation.evaluate`` on the test split's labels (the project's tests
 hold its AP arithmetic to pycocotools'), so that every method is scored alike:
 AP50 (all-point, PASCAL VOC 2010), AP50:95 (101-point, COCO), FPPI at recall 0.9 (false alarms
 per image at the highest score cut reaching recall 0.9; "n/r" when never reached), training
@@ -80,6 +80,7 @@ sys.path.insert(0, str(HERE))
 
 import channel_peer  # noqa: E402
 import datasets  # noqa: E402
+from detector.io.files import write_text  # noqa: E402
 
 METHODS = ("defaults", "recipe", "hog", "channels")
 METHOD_NAMES = {"defaults": "patchwood defaults", "recipe": "patchwood recipe",
@@ -124,7 +125,7 @@ def _run(cmd: list[str], log: Path) -> float:
 
 
 def _figures(detections: dict, truth: dict) -> dict:
-    from detector.evaluate import evaluate, fppi_at_recall
+    from detector.evaluation import evaluate, fppi_at_recall
 
     ev = evaluate(detections, truth)
     f = fppi_at_recall(ev, 0.9)
@@ -144,7 +145,7 @@ def _timed_pass(scan_one, frames: dict):
 
 
 def run_patchwood(method: str, root: Path, work: Path, test_frames: dict, truth: dict, args) -> dict:
-    from detector.labels import read_detections
+    from detector.io.labels import read_detections
     from detector.model import load_model
     from detector.scan import Engine, ScanSettings
 
@@ -344,8 +345,8 @@ def main(argv=None) -> int:
     import skimage
 
     from _machine import cpu_name, load
-    from detector.images import read_gray
-    from detector.labels import read_labels
+    from detector.io.images import read_gray
+    from detector.io.labels import read_labels
 
     started = time.perf_counter()
     command = shlex.join(["python", "benchmarks/cross_data.py", *(sys.argv[1:] if argv is None
@@ -373,9 +374,7 @@ def main(argv=None) -> int:
                "methods": list(args.methods),
                "sets": {n: {"info": infos[n], "methods": results[n]} for n in results},
                "verdict": v, "complete": seconds is not None}
-        tmp = args.json.with_name(args.json.name + ".tmp")
-        tmp.write_text(json.dumps(doc, indent=1) + "\n")
-        os.replace(tmp, args.json)
+        write_text(args.json, json.dumps(doc, indent=1) + "\n")
 
     work_root = args.keep or Path(tempfile.mkdtemp(prefix="patchwood-cross-data-"))
     try:

@@ -63,7 +63,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from detector.labels import ImageLabels, write_labels_csv  # noqa: E402
+from detector.io.labels import ImageLabels, write_labels_csv  # noqa: E402
 
 #: Bump when a builder changes what it writes: cached sets of another version are rebuilt.
 BUILDER_VERSION = 1

@@ -71,7 +71,7 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from detector.labels import read_detections  # noqa: E402
+from detector.io.labels import read_detections  # noqa: E402
 from detector.model import load_model, save_model  # noqa: E402
 from synthetic_images import render_frame  # noqa: E402
 

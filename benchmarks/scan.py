@@ -61,7 +61,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from detector.scan import scan_paths  # noqa: E402
 from detector.features import SIGMA_FLOOR  # noqa: E402
 from detector.harvest import harvest  # noqa: E402
-from detector.labels import read_labels  # noqa: E402
+from detector.io.labels import read_labels  # noqa: E402
 from detector.model import load_model, save_model  # noqa: E402
 from detector.scan import Engine, ScanSettings, final_scores  # noqa: E402
 from detector.training import train_model  # noqa: E402

@@ -9,10 +9,10 @@ from typing import Optional
 import typer
 
 from cli.common import echo, human_path, parse_window_option, progress_bar, usage_error
-from detector.audit import (BACKGROUND_CALLED_OBJECT, DEFAULT_PARAMS, OBJECT_CALLED_BACKGROUND,
+from detector.reporting.audit import (BACKGROUND_CALLED_OBJECT, DEFAULT_PARAMS, OBJECT_CALLED_BACKGROUND,
                             audit_bank, check_audit_folder, harvest_for_audit, write_audit)
 from detector.harvest import load_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 
 #: Findings printed on the terminal (the CSV and the page hold all listed ones).
 PRINTED = 10

@@ -14,7 +14,7 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 
 from detector.errors import InputError
-from detector.files import display_name, same_file
+from detector.io.files import display_name, same_file
 
 console = Console(stderr=True, highlight=False)
 
@@ -145,7 +145,7 @@ def count(n: int, noun: str, plural: str | None = None) -> str:
 
 def echo(text: str = "") -> None:
     """Print a line of results to stdout (a name that is not UTF-8 shown as the project writes
-    it, :func:`detector.files.display_name`)."""
+    it, :func:`detector.io.files.display_name`)."""
     typer.echo(display_name(text))
 
 

@@ -11,9 +11,10 @@ from cli.common import echo, human_path, progress_bar
 from detector.scan import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
-from detector.labels import read_detections, read_labels
+from detector.io.labels import read_detections, read_labels
 from detector.model import save_model
-from detector.report import score_files, summary_table
+from detector.reporting.score_report import score_files
+from detector.reporting.summary import summary_table
 from detector.scan import ScanSettings
 from detector.training import DEFAULT_MINE_ROUNDS, mining_params, train_with_mining
 from synthetic_images import render_scenario

@@ -10,7 +10,7 @@ import typer
 from cli.common import (check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 
 
 #: Options that only shape the augmented copies: parameter name -> (option, the value that

@@ -10,7 +10,7 @@ import typer
 
 from cli.common import echo, human_path
 from detector.errors import InputError
-from detector.inspection import (
+from detector.reporting.inspection import (
     display_scale,
     importance_heat_map,
     mean_object_patch,

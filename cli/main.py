@@ -13,7 +13,7 @@ import sys
 import typer
 
 from detector.errors import InputError
-from detector.files import display_name
+from detector.io.files import display_name
 
 #: Every command: (module under cli/, function, one-line summary for `patchwood --help`). The
 #: module is imported only when its command runs or shows its own help, so `patchwood --help`

@@ -73,7 +73,7 @@ def scan(
     recorded = None
     if threshold_from is not None:
         from detector.scan import check_summary_model, settings_differences
-        from detector.report import read_summary_point
+        from detector.reporting.summary import read_summary_point
 
         check_not_an_input(out, [threshold_from])
 

@@ -8,7 +8,8 @@ from typing import Optional
 
 import typer
 
-from detector.report import score_files, summary_table
+from detector.reporting.score_report import score_files
+from detector.reporting.summary import summary_table
 
 
 def _iou(value: float) -> float:

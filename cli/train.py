@@ -12,7 +12,7 @@ from cli.common import (check_not_an_input, check_output_file, echo, given, huma
                         progress_bar, usage_error)
 from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.harvest import load_bank, save_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
 from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params, mining_source,

@@ -11,9 +11,9 @@ import typer
 
 from cli.common import echo, human_path, parse_window_option, progress_bar
 from detector.errors import InputError
-from detector.files import write_text
+from detector.io.files import write_text
 from detector.harvest import save_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.scan import ScanSettings
 from detector.training import (DEFAULT_MINE_ROUNDS, SearchSpace, describe, plot_trials,
                                prepare_folds, search, train_command, write_trials_csv)

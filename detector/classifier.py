@@ -217,7 +217,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             Called after every tree.
         metadata : dict, optional
             Extra entries for the model's metadata, JSON-serialisable: for example ``bank_sha256``
-            (:func:`detector.npzfile.file_sha256` of the patch bank file).
+            (:func:`detector.io.npzfile.file_sha256` of the patch bank file).
         margin : float >= 0, default=0.0
             The context margin the patches were cut with (the bank's ``margin``): the model's
             :attr:`~detector.model.Model.margin`, with which the scan turns a window into the object

@@ -22,12 +22,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from detector import npzfile
+from detector.io import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.geometry import crop_region, iou, object_box_to_window_box, window_box_to_object_box
-from detector.images import image_size, read_gray
-from detector.labels import ImageLabels
+from detector.io.images import image_size, read_gray
+from detector.io.labels import ImageLabels
 
 BANK_FORMAT_VERSION = 1
 SHORT_SIDE = 24  # inferred windows have this shorter side, in pixels (common practice: 24x24)
@@ -261,7 +261,7 @@ def harvest(
     images_dir : path
         Folder the labels' image paths are relative to.
     items : list of ImageLabels
-        From :func:`detector.labels.read_labels`.
+        From :func:`detector.io.labels.read_labels`.
     window : (int, int) or None
         Patch size; None infers it from the median box aspect ratio (shorter side 24).
     margin : float

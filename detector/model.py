@@ -1,7 +1,7 @@
 """The model file: a trained forest with its features and early-exit thresholds, saved and loaded
 safely.
 
-One ``.npz`` archive (written by :func:`detector.npzfile.save_npz`, deterministic and atomic) that
+One ``.npz`` archive (written by :func:`detector.io.npzfile.save_npz`, deterministic and atomic) that
 ``numpy.load(path, allow_pickle=False)`` opens:
 
 =====================  =================  =====================================================
@@ -59,7 +59,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from detector import npzfile
+from detector.io import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,

@@ -15,8 +15,8 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import write_bytes
-from detector.labels import ImageLabels, write_labels_csv
+from detector.io.files import write_bytes
+from detector.io.labels import ImageLabels, write_labels_csv
 from synthetic_images.render import FRAME_LIMITS, render_frame
 
 EMPTY_SHARE = 0.15

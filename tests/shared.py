@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from detector.harvest import harvest
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.training import train_model
 from synthetic_images import render_scenario
@@ -53,7 +53,7 @@ def calibration_copies(clf, patches, random_state=0):
     """The early-exit calibration copies a fitted PatchClassifier made (as its ``fit`` draws them
     from its seed, with the default shift 1 and scale 1.1)."""
     from detector.cascade import misaligned_copies
-    from detector.forest import seed_sequence
+    from detector._validation import seed_sequence
 
     exit_ss = seed_sequence(random_state).spawn(5)[4]
     return misaligned_copies(patches[clf.calibration_indices_], 1.0, 1.1, random_state=exit_ss)

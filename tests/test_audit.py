@@ -23,14 +23,14 @@ from typer.testing import CliRunner
 
 from cli.audit import audit
 from detector import features as F
-from detector.audit import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS, CSV_NAME,
+from detector.reporting.audit import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS, CSV_NAME,
                             HTML_NAME, OBJECT_CALLED_BACKGROUND, THUMBNAIL_DIR, AuditResult,
                             Finding, audit_bank, audit_thumbnail, check_audit_folder,
                             harvest_for_audit, suspicion, suspicion_order, write_audit)
 from detector.errors import InputError
 from detector.forest import forest_oob_scores, grow_forest, oob_scores
 from detector.harvest import KIND_AUGMENTED, harvest, save_bank
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from synthetic_images.scenario import render_scenario
 from shared import Links
 

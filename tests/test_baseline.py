@@ -3,7 +3,7 @@
 References: ``skimage.feature.hog`` (the numpy twin of the block grid, and the window descriptor
 read from a frame's dense block grid, must equal it); ``sklearn.svm.LinearSVC.decision_function``
 (the correlation that scores every window at once must equal it window by window); pyramid
-arithmetic worked by hand in the comments; ``detector.evaluate.evaluate`` and
+arithmetic worked by hand in the comments; ``detector.evaluation.evaluate`` and
 ``detector.geometry.iou`` (held to pycocotools in their own tests) for a small end-to-end run on
 bright squares.
 """
@@ -21,11 +21,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from skimage.feature import hog
 
-from detector.geometry import iou
-from detector.evaluate import evaluate
-from detector.geometry import window_box_to_object_box
+from detector.evaluation import evaluate
+from detector.geometry import iou, window_box_to_object_box
 from detector.harvest import harvest
-from detector.labels import ImageLabels
+from detector.io.labels import ImageLabels
 
 FAST = settings(max_examples=40, deadline=None)
 SCRIPT = Path(__file__).resolve().parents[1] / "benchmarks" / "baseline.py"

@@ -32,8 +32,8 @@ from typer.testing import CliRunner
 import cli.main
 from detector.scan import DETECTION_COLOUR, failures_path, scan_paths
 from detector.errors import InputError
-from detector.images import read_gray
-from detector.labels import read_detections
+from detector.io.images import read_gray
+from detector.io.labels import read_detections
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from shared import small_model

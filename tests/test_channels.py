@@ -22,7 +22,7 @@ from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.features import channel_pool, evaluate_features, evaluate_features_numpy, random_pool
 from detector.harvest import harvest
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \
     save_model
 from detector.scan import (Engine, ScanSettings, channel_frame_integrals, final_scores,

@@ -81,7 +81,7 @@ def test_early_exit_keeps_the_calibration_objects():
     assert len(held) == calibration_count(300) == 30 and (y[held] == 1).all()
     # the calibration set: every held-out object and 8 misaligned copies of it (seeded stream 5)
     from detector.cascade import misaligned_copies
-    from detector.forest import seed_sequence
+    from detector._validation import seed_sequence
 
     copies = misaligned_copies(patches[held], 1.0, 1.1, random_state=seed_sequence(0).spawn(5)[4])
     running = clf.model_.running_scores(copies)
@@ -188,7 +188,7 @@ def test_from_model_scores_like_the_fitted_classifier(tmp_path):
 
 def test_caller_metadata_reaches_the_model_file(tmp_path):
     from detector.model import load_model, save_model
-    from detector.npzfile import file_sha256, save_npz
+    from detector.io.npzfile import file_sha256, save_npz
 
     patches, y = _patches(seed=7)
     bank = tmp_path / "bank.npz"

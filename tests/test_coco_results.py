@@ -20,7 +20,7 @@ from typer.testing import CliRunner
 
 import cli.main
 from detector.errors import InputError
-from detector.labels import (ImageDetections, coco_result_ids, read_detections,
+from detector.io.labels import (ImageDetections, coco_result_ids, read_detections,
                              read_labels, write_coco, write_detections_coco_results)
 from shared import small_model
 

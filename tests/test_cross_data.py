@@ -1,7 +1,7 @@
 """The cross-data benchmark's pieces: the data-set builders (benchmarks/datasets.py) and the
 channel-features peer (benchmarks/channel_peer.py).
 
-References: the labels CSV contract as ``detector.labels.read_labels`` checks it;
+References: the labels CSV contract as ``detector.io.labels.read_labels`` checks it;
 ``skimage.measure.regionprops`` (bounding boxes of components); ``cv2.sepFilter2D`` (the triangle
 filters); ``sklearn.ensemble.HistGradientBoostingClassifier.decision_function`` (the peer's flat
 trees must give its values); the modules' own docstring examples, which run here because
@@ -22,7 +22,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 
 BENCH = Path(__file__).resolve().parents[1] / "benchmarks"
 

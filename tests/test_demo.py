@@ -5,8 +5,8 @@ import json
 from typer.testing import CliRunner
 
 from cli.main import app
-from detector.evaluate import evaluate
-from detector.labels import read_detections, read_labels
+from detector.evaluation import evaluate
+from detector.io.labels import read_detections, read_labels
 from detector.model import load_model
 
 

@@ -20,7 +20,7 @@ from pycocotools.cocoeval import COCOeval
 from sklearn.metrics import average_precision_score
 
 from detector.errors import InputError
-from detector.evaluate import (
+from detector.evaluation import (
     COCO_RECALL_POINTS,
     Evaluation,
     average_precision,
@@ -413,6 +413,42 @@ def test_tied_scores_only_reachable_thresholds():
     assert (point.threshold, point.recall) == (0.9, pytest.approx(1 / 3))
     # best F1 over reachable points: (1, 1/3) -> 1/2; (2/3, 2/3) -> 2/3
     assert ev.best_f1 == pytest.approx(2 / 3) and ev.best_f1_threshold == 0.8
+
+
+def test_true_flags_are_exposed_per_curve_point():
+    # hand-worked: a.png has objects A=[0,0,10,10] and B=[50,0,10,10]; b.png has none.
+    # descending score: 0.9 hits A (true), 0.8 on b.png (false), 0.7 duplicates A (false),
+    # 0.6 hits B (true) -> flags T F F T, precision 1, 1/2, 1/3, 2/4
+    ev = evaluate({"a.png": ([[0, 0, 10, 10], [1, 0, 10, 10], [50, 0, 10, 10]], [0.9, 0.7, 0.6]),
+                   "b.png": ([[5, 5, 10, 10]], [0.8])},
+                  {"a.png": [[0, 0, 10, 10], [50, 0, 10, 10]], "b.png": []}, size_buckets=None)
+    assert ev.is_true.tolist() == [True, False, False, True]
+    np.testing.assert_allclose(ev.precision, [1, 1 / 2, 1 / 3, 2 / 4])
+    assert "is_true" not in ev.to_dict()  # the curves already carry it; summary.json is unchanged
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 4))
+def test_true_flags_agree_with_per_image_matching(seed, n_images):
+    """Property: the pooled flags are the per-image matches (match_image) put in score order, and
+    they rebuild precision exactly; each size bucket carries flags of its own length."""
+    rng = np.random.default_rng(seed)
+    dets, gts, pooled = {}, {}, []
+    for i in range(n_images):
+        gt = np.column_stack([rng.integers(0, 80, (3, 2)), rng.integers(8, 40, (3, 2))]).astype(float)
+        det = np.column_stack([rng.integers(0, 80, (5, 2)), rng.integers(8, 40, (5, 2))]).astype(float)
+        det[:2] = gt[:2] + rng.integers(-2, 3, (2, 4))  # some near hits
+        scores = rng.random(5)
+        name = f"{i}.png"
+        dets[name], gts[name] = (det, scores), gt
+        matched, _ = match_image(det, scores, gt, 0.5)
+        pooled += [(-s, name, k, m >= 0) for k, (s, m) in enumerate(zip(scores, matched))]
+    ev = evaluate(dets, gts)
+    flags = [t for _, _, _, t in sorted(pooled, key=lambda p: p[:3])]
+    assert ev.is_true.tolist() == flags
+    np.testing.assert_array_equal(np.cumsum(ev.is_true) / np.arange(1, len(flags) + 1), ev.precision)
+    for figures in ev.buckets.values():
+        assert len(figures.is_true) == figures.detections
 
 
 def test_score_ties_keep_image_then_input_order():

@@ -23,15 +23,15 @@ from skimage.transform import downscale_local_mean
 from typer.testing import CliRunner
 
 import cli.main
-from detector import npzfile
+from detector.io import npzfile
 from detector.geometry import iou
 from detector.errors import InputError
 from detector.harvest import (AUGMENTATION_COLUMNS, KIND_AUGMENTED, KIND_BACKGROUND, KIND_MINED,
                               KIND_OBJECT, PatchBank, crop_region, harvest, infer_window,
                               load_bank, object_box_to_window_box, parse_window, sample_background,
                               sample_near_background, save_bank, window_box_to_object_box)
-from detector.images import read_gray
-from detector.labels import read_labels
+from detector.io.images import read_gray
+from detector.io.labels import read_labels
 from detector.model import Model, save_model
 
 MARGIN = 0.25  # with the boxes below, every grown box has whole-pixel corners and sides

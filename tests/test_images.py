@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.images import (IMAGE_SUFFIXES, header_size, image_size, list_images,
+from detector.io.images import (IMAGE_SUFFIXES, header_size, image_size, list_images,
                              max_pixels_limit, read_gray)
 
 

@@ -20,7 +20,7 @@ from cli import main as cli_main
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.harvest import KIND_BACKGROUND, KIND_OBJECT, PatchBank, save_bank
-from detector.inspection import (
+from detector.reporting.inspection import (
     NEGATIVE_RGB,
     NEUTRAL_GREY,
     POSITIVE_RGB,

@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.labels import (
+from detector.io.labels import (
     ImageDetections,
     ImageLabels,
     LabelFile,
@@ -490,7 +490,7 @@ def test_detections_csv_names_round_trip_exactly(tmp_path, names, data):
 def test_scoring_matches_detection_names_the_way_labels_are_read(tmp_path):
     """Labels normalise names (' ./belt\\a.png ' is 'belt/a.png'); detections keep them exactly,
     and the score matches them by the same normal form, merging names that agree on it."""
-    from detector.report import read_score_inputs
+    from detector.reporting.inputs import read_score_inputs
 
     labels = _csv(tmp_path, "image,x,y,width,height\nbelt/a.png,0,0,10,10\n")
     found = _csv(tmp_path, "image,x,y,width,height,score\n"

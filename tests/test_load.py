@@ -29,8 +29,8 @@ import numpy as np
 import pytest
 
 from detector.scan import failures_path, scan_paths
-from detector.images import read_gray
-from detector.labels import read_detections
+from detector.io.images import read_gray
+from detector.io.labels import read_detections
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from synthetic_images import render_frame

@@ -14,7 +14,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from detector import npzfile
+from detector.io import npzfile
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.features import evaluate_features
@@ -92,7 +92,7 @@ def test_save_npz_replaces_atomically_and_cleans_up(tmp_path, monkeypatch):
         raise OSError("disk full")
 
     monkeypatch.setattr(zipfile.ZipFile, "writestr", broken)
-    # a write error is one InputError naming the file (detector.files.atomic_write)
+    # a write error is one InputError naming the file (detector.io.files.atomic_write)
     with pytest.raises(InputError, match="keep.npz: cannot write the file: disk full"):
         npzfile.save_npz(path, {"a": np.arange(5)})
     assert path.read_bytes() == before

@@ -22,7 +22,7 @@ import pytest
 
 import cli.main
 from detector.harvest import harvest
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.training import train_model
 from synthetic_images import render_scenario

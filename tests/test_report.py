@@ -9,6 +9,7 @@ COCO JSON files (Lin et al., 2014) written by hand.
 import json
 import math
 import os
+from pathlib import Path
 
 import cv2
 import numpy as np
@@ -17,18 +18,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from detector.errors import InputError
-from detector.evaluate import evaluate, match_image
-from detector.report import (
-    BOX_STYLES,
-    build_summary,
-    check_image_names,
-    choose_operating_point,
-    read_score_inputs,
-    score_files,
-    summary_table,
-    threshold_from_summary,
-    thumbnail,
-)
+from detector.evaluation import choose_operating_point, evaluate, match_image
+from detector.reporting.drawing import BOX_STYLES, thumbnail
+from detector.reporting.inputs import check_image_names, read_score_inputs
+from detector.reporting.score_report import score_files
+from detector.reporting.summary import build_summary, summary_table, threshold_from_summary
 
 LABELS_CSV = """image,x,y,width,height
 a.png,4,4,16,16
@@ -393,3 +387,29 @@ def test_empty_detections_still_give_a_report(tmp_path):
     for name in ("report.html", "precision-recall.png", "miss-rate.png", "score-histogram.png"):
         assert (tmp_path / "report" / name).stat().st_size > 0
     assert cv2.imread(str(tmp_path / "report" / "miss-rate.png")) is not None
+
+
+def test_pages_share_one_template_and_base_style_sheet():
+    """The score report and the audit page are built from the same package files
+    (detector/reporting/assets: page.html, base.css, one sheet per page), found through
+    importlib.resources so an installed package has them; no page keeps CSS in Python code."""
+    from importlib import resources
+
+    from detector.reporting import _html
+
+    assets = resources.files("detector.reporting").joinpath("assets")
+    names = sorted(p.name for p in assets.iterdir())
+    assert names == ["audit.css", "base.css", "page.html", "score-report.css"]
+    base = _html.asset("base.css")
+    pages = {sheet: _html.page("t", sheet, ["<h1>x</h1>"]) for sheet in ("score-report.css", "audit.css")}
+    for sheet, text in pages.items():
+        assert text.startswith("<!DOCTYPE html>") and text.endswith("</main></body></html>\n")
+        assert base in text and _html.asset(sheet) in text
+        assert text.count("<style>") == 1
+    # the page sheets hold only what differs: no rule of base.css is repeated in them
+    rules = {r.strip() for r in base.split("}") if "{" in r}
+    for sheet in ("score-report.css", "audit.css"):
+        assert not rules & {r.strip() for r in _html.asset(sheet).split("}") if "{" in r}
+    here = Path(__file__).resolve().parent.parent / "detector" / "reporting"
+    for module in here.glob("*.py"):
+        assert "box-sizing" not in module.read_text(encoding="utf-8"), module

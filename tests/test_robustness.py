@@ -69,13 +69,13 @@ from hypothesis import strategies as st
 from PIL import Image, ImageOps
 
 import cli.main
-from detector import npzfile
+from detector.io import npzfile
 from detector.scan import failures_path
 from detector.errors import InputError
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import harvest, load_bank, save_bank
-from detector.images import image_size, read_gray
-from detector.labels import LabelFile, read_detections, read_labels
+from detector.io.images import image_size, read_gray
+from detector.io.labels import LabelFile, read_detections, read_labels
 from detector.model import Model, load_model, save_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model
@@ -1021,7 +1021,7 @@ def test_fuzz_model_loader_on_odd_metadata(tmp_path, model_members, changes):
     """A hand-edited metadata record is only shown, by the summary and by `patchwood inspect`,
     whatever its type: the values the scan computes with are typed arrays (format 3), so the
     model always loads and scans."""
-    from detector.inspection import model_report, report_lines
+    from detector.reporting.inspection import model_report, report_lines
 
     whole, _ = model_members
     src = tmp_path / "valid.npz"
@@ -1097,7 +1097,7 @@ def test_reads_are_bounded_by_the_size_limit(trained, tmp_path, monkeypatch, cap
     allocate: the run's peak stays far below what reading the file would take."""
     import tracemalloc
 
-    from detector.files import FileTooLargeError, read_bytes
+    from detector.io.files import FileTooLargeError, read_bytes
 
     folder = tmp_path / "frames"
     folder.mkdir()
@@ -1280,7 +1280,7 @@ def test_two_runs_never_write_one_output(trained, tmp_path, monkeypatch, capsys)
     out = tmp_path / "d.csv"
     holder = subprocess.Popen(
         [sys.executable, "-c",
-         "import sys, time\nfrom detector.files import output_lock\n"
+         "import sys, time\nfrom detector.io.files import output_lock\n"
          "with output_lock(sys.argv[1], 'patchwood scan (the first run)'):\n"
          "    print('locked', flush=True)\n    time.sleep(300)\n", str(out)],
         cwd=REPO, stdout=subprocess.PIPE, text=True)
@@ -1500,7 +1500,7 @@ def test_a_folder_that_cannot_be_read_is_a_listed_failure(trained, tmp_path, mon
 
 def test_every_file_is_written_through_the_one_atomic_writer():
     """No module writes a file by itself: opening for writing, renaming into place, temporary
-    files and encoders that write to a path live only in detector/files.py (the writer every
+    files and encoders that write to a path live only in detector/io/files.py (the writer every
     other module calls; it syncs, renames and cleans up)."""
     patterns = [r"os\.replace\(", r"os\.rename\(", r"\.rename\(", r"mkstemp", r"NamedTemporaryFile",
                 r"\.tofile\(", r"cv2\.imwrite\(", r"\.write_text\(", r"\.write_bytes\(",
@@ -1508,8 +1508,8 @@ def test_every_file_is_written_through_the_one_atomic_writer():
                 r"\.to_csv\("]
     offenders = []
     for folder in ("detector", "cli", "synthetic_images"):
-        for path in sorted((REPO / folder).glob("*.py")):
-            if path.name == "files.py":
+        for path in sorted((REPO / folder).rglob("*.py")):
+            if path == REPO / "detector" / "io" / "files.py":
                 continue
             for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
                 code = line.split("#")[0]
@@ -1524,8 +1524,8 @@ def test_the_atomic_writer_leaves_the_old_file_or_the_new(tmp_path):
     """A failure half-way (the report's PNG writer here: matplotlib raising mid-save) leaves the
     destination as it was and no temporary file; success replaces it in one step, with the
     permissions the umask gives a new file."""
-    from detector.files import atomic_write, write_text
-    from detector.report import _figure, _save
+    from detector.io.files import atomic_write, write_text
+    from detector.reporting.plots import new_figure as _figure, save_figure as _save
 
     path = tmp_path / "plot.png"
     path.write_bytes(b"last week's plot")
@@ -1606,7 +1606,7 @@ def _read(kind: str, data: bytes, folder: Path):
     """Read ``data`` with the reader of ``kind``: images and npz files from bytes, text files
     from a file holding them (the readers of text take paths)."""
     from detector.harvest import load_bank
-    from detector.images import decode_gray
+    from detector.io.images import decode_gray
 
     if kind in ("png", "jpeg", "bmp", "tiff"):
         return decode_gray(data, f"fuzz.{kind}", max_pixels=FUZZ_PIXELS)

@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 from detector.classifier import PatchClassifier
 from detector.geometry import window_box_to_object_box
 from detector.harvest import harvest
-from detector.labels import read_labels
+from detector.io.labels import read_labels
 from detector.model import Model
 from detector.scan import (Engine, ScanSettings, clip_boxes, detection_scores, final_scores,
                            first_use_order)

@@ -1,6 +1,6 @@
 """`patchwood score` end to end on handmade files and a few tiny PNGs written here.
 
-References: the figures are checked against detector.evaluate.evaluate computed directly and
+References: the figures are checked against detector.evaluation.evaluate computed directly and
 against counts worked by hand in the comments (PASCAL VOC all-point and 11-point AP, Everingham
 et al., 2010; COCO 101-point AP, Lin et al., 2014; log-average miss rate, Dollar et al., PAMI 2012).
 """
@@ -17,8 +17,8 @@ from typer.testing import CliRunner
 
 from cli.score import score
 from detector.errors import InputError
-from detector.evaluate import evaluate
-from detector.report import threshold_from_summary
+from detector.evaluation import evaluate
+from detector.reporting.summary import threshold_from_summary
 from shared import Links
 
 app = typer.Typer()

@@ -1,6 +1,6 @@
 """`patchwood train` end to end on a tiny demo scenario (12 training frames, 4 mining frames).
 
-Outside references: the mining figures are recounted with ``detector.evaluate.evaluate`` (COCO-style
+Outside references: the mining figures are recounted with ``detector.evaluation.evaluate`` (COCO-style
 matching at IoU 0.5, held equal to pycocotools in tests/test_evaluate.py) on detections made by
 ``detector.scan.Engine`` with the first-round model; SHA-256 (FIPS 180-4) via ``hashlib`` for the
 bank hash; ``SOURCE_DATE_EPOCH`` (reproducible-builds.org) for byte-identical model files. The model
@@ -18,10 +18,10 @@ from typer.testing import CliRunner
 
 import cli.main
 from cli.common import human_path
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import KIND_MINED, load_bank
-from detector.images import read_gray
-from detector.labels import read_labels
+from detector.io.images import read_gray
+from detector.io.labels import read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model
@@ -167,14 +167,14 @@ def test_mining_round(scenario, cli_env, tmp_path):
     assert first_round_recount(bank, test, ScanSettings(threshold=0.5)) == \
         (float(lines[0][1]), float(lines[0][2]))
     # the final model's check scans with the exits for its threshold (--exit-level 0.5), and
-    # its figures are what such a scan of the written model gives, matched by detector.evaluate
+    # its figures are what such a scan of the written model gives, matched by detector.evaluation
     assert recount(load_model(out), test, ScanSettings(threshold=0.5, exit_level=0.5)) == \
         (float(lines[1][1]), float(lines[1][2]))
 
 
 def recount(model, test, settings):
     """False alarms per image and recall of ``model`` scanned with ``settings`` on the test
-    frames, matched with detector.evaluate (IoU 0.5), rounded as train prints them."""
+    frames, matched with detector.evaluation (IoU 0.5), rounded as train prints them."""
     engine = Engine(model, settings)
     items = read_labels(test / "labels.csv", images_dir=test / "images").items
     dets = {}
@@ -188,7 +188,7 @@ def recount(model, test, settings):
 def first_round_recount(bank, test, settings, trees=10):
     """The first mining round's false alarms per image and recall, counted again: the first model
     is the plain model with the same seed; scan the mining frames with the loosest exits (as
-    mining scans) and match with detector.evaluate (IoU 0.5)."""
+    mining scans) and match with detector.evaluation (IoU 0.5)."""
     first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
@@ -215,7 +215,7 @@ def test_mining_scans_with_the_overhang_asked_for(scenario, cli_env, tmp_path):
 
 def test_mining_is_on_by_default_on_the_images_the_bank_came_from(scenario, cli_env, tmp_path):
     """Without mining options, train mines the training images the harvest recorded: the mining
-    history counts false alarms on exactly those images (recounted with detector.evaluate on the
+    history counts false alarms on exactly those images (recounted with detector.evaluation on the
     first model's scan, as in test_mining_round), and the models before the last grow a quarter
     of the trees (at least 10)."""
     from detector.training import DEFAULT_MINE_ROUNDS

@@ -3,7 +3,7 @@ nuts).
 
 References: the objective is checked against the computation it stands for, done here step by
 step with the library's parts (train on the fold's patches, scan the held-out frames, score with
-detector.evaluate.evaluate, whose all-point AP is held in test_evaluate.py to hand-worked PASCAL VOC
+detector.evaluation.evaluate, whose all-point AP is held in test_evaluate.py to hand-worked PASCAL VOC
 examples and bounded by sklearn.metrics.average_precision_score, and whose matching and 101-point
 COCO AP to pycocotools' COCOeval);
 fold properties are checked with hypothesis; the printed `patchwood train` line is run through the
@@ -29,10 +29,10 @@ import cli.main as cli_main
 from cli.tune import tune
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.harvest import harvest, load_bank
-from detector.images import read_gray
-from detector.labels import ImageLabels, read_labels
+from detector.io.images import read_gray
+from detector.io.labels import ImageLabels, read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
 from detector.training import train_model

@@ -5,7 +5,7 @@ named pipe or a device, a folder that cannot be listed) is recorded as a failure
 end and in a side file) and the run goes on. The output file is rewritten atomically after every
 batch of images (and once more when the run is interrupted), so an interrupted run leaves a valid
 detections file of complete images that ``resume=True`` continues. A run holds an exclusive lock
-on its output (:func:`detector.files.output_lock`), so that two runs never write the same file.
+on its output (:func:`detector.io.files.output_lock`), so that two runs never write the same file.
 """
 
 from __future__ import annotations
@@ -24,10 +24,10 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import output_lock, read_bytes, same_file, write_bytes, write_text
-from detector.images import (decode_gray, header_size, list_images, max_file_bytes,
+from detector.io.files import output_lock, read_bytes, same_file, write_bytes, write_text
+from detector.io.images import (decode_gray, header_size, list_images, max_file_bytes,
                              max_pixels_limit, read_gray)
-from detector.labels import (ImageDetections, coco_result_ids, csv_writer, read_detections,
+from detector.io.labels import (ImageDetections, coco_result_ids, csv_writer, read_detections,
                              write_detections_coco, write_detections_coco_results,
                              write_detections_csv)
 from detector.model import Model, load_model
@@ -317,7 +317,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
                on_image=None, threshold_from=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
 
-    Image names in the output follow :func:`detector.images.list_images`: relative to the folder
+    Image names in the output follow :func:`detector.io.images.list_images`: relative to the folder
     given (forward slashes), or the path as given for a file given by itself. The output is
     rewritten atomically after every batch of ``batch_images`` images or ``batch_seconds`` seconds
     (whichever comes first, and never so often that rewriting takes more than about a tenth of the
@@ -335,7 +335,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     out : path
         Detections file: the CSV contract; with ``fmt="coco"`` a COCO JSON object (images and
         scored annotations); with ``fmt="coco-results"`` the COCO results list that pycocotools'
-        ``COCO.loadRes`` reads (see :func:`detector.labels.write_detections_coco_results`).
+        ``COCO.loadRes`` reads (see :func:`detector.io.labels.write_detections_coco_results`).
     settings : ScanSettings
     jobs : int
         Worker processes on this machine.
@@ -352,7 +352,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     fmt : {"csv", "coco", "coco-results"}
     labels : path, optional
         Only with ``fmt="coco-results"``: the COCO labels file whose image ids (matched by file
-        name, :meth:`detector.labels.CocoResultIds.image_id`) and category id the results use;
+        name, :meth:`detector.io.labels.CocoResultIds.image_id`) and category id the results use;
         without it images are numbered 1..N in the order written.
     label : str, optional
         The category of ``labels`` the detections are for, when it has several.
@@ -568,7 +568,7 @@ def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, r
 
 
 def _read_failure(path, err: OSError) -> str:
-    """The reason :func:`detector.images.read_gray` gives for a file that cannot be opened, so a
+    """The reason :func:`detector.io.images.read_gray` gives for a file that cannot be opened, so a
     cluster run lists failures in the same words as a local one."""
     try:
         read_gray(path)
@@ -578,7 +578,7 @@ def _read_failure(path, err: OSError) -> str:
 
 
 def _too_large(path, limit: int) -> str | None:
-    """The reason :func:`detector.images.read_gray` gives for an image above ``limit`` pixels
+    """The reason :func:`detector.io.images.read_gray` gives for an image above ``limit`` pixels
     (known from its header), or None: such an image is refused here and never sent to a worker."""
     try:
         size = header_size(path)

@@ -583,7 +583,7 @@ def check_enlargement(shape, up: float, min_object=None) -> None:
 
     An object smaller than the window is looked for by enlarging the frame (``min_object`` below
     the window's object size); the enlarged frame must stay within the limit
-    :func:`detector.images.read_gray` applies to images (100 megapixels, or
+    :func:`detector.io.images.read_gray` applies to images (100 megapixels, or
     ``PATCHWOOD_MAX_MEGAPIXELS``), since the scan's memory grows with its pixels
     (README, "Memory").
 
@@ -600,7 +600,7 @@ def check_enlargement(shape, up: float, min_object=None) -> None:
     ...
     detector.errors.InputError: --min-object 1 enlarges this 4000 x 3000 image 20 times, to 80000 x 60000 pixels, more than the limit of 100,000,000 pixels (PATCHWOOD_MAX_MEGAPIXELS); look for larger objects or cut the image into parts
     """
-    from detector.images import MAX_MEGAPIXELS_VARIABLE, max_pixels_limit
+    from detector.io.images import MAX_MEGAPIXELS_VARIABLE, max_pixels_limit
 
     limit = max_pixels_limit()
     width, height = enlarged_size(shape, up)
@@ -830,7 +830,7 @@ class Engine:
             if self.settings.min_object is None:
                 # the labelled sizes' enlargement is a default: it shrinks to fit the size limit
                 # (the smallest objects are then not looked for) instead of failing the image
-                from detector.images import max_pixels_limit
+                from detector.io.images import max_pixels_limit
 
                 fits = math.sqrt(max_pixels_limit() / float(gray.size))
                 up = max(1.0, min(up, math.floor(fits * 1000) / 1000))

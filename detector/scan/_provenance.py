@@ -75,7 +75,7 @@ def model_record(model_path, model) -> dict:
     """What identifies a model: its file's SHA-256, its metadata's SHA-256, and a few facts a
     person reads (mode, trees, window, training date)."""
     from detector.model import metadata_sha256
-    from detector.npzfile import file_sha256
+    from detector.io.npzfile import file_sha256
 
     return {"file": os.path.abspath(model_path), "sha256": file_sha256(model_path),
             "metadata_sha256": metadata_sha256(model), "mode": model.mode,
@@ -102,8 +102,8 @@ def scan_record(model_path, model, settings, inputs=(), threshold_from=None) -> 
 def write_provenance(detections_path, record: dict, images: int) -> dict:
     """Write the side file of ``detections_path`` (atomically), with the detections file's name,
     SHA-256 and image count added to ``record``; returns the record written."""
-    from detector.files import atomic_write
-    from detector.npzfile import file_sha256
+    from detector.io.files import atomic_write
+    from detector.io.npzfile import file_sha256
 
     full = dict(record, detections={"file": Path(detections_path).name,
                                     "sha256": file_sha256(detections_path),
@@ -140,7 +140,7 @@ def read_provenance(detections_path) -> dict | None:
     InputError
         One line naming the side file: not UTF-8, not JSON, or not a provenance record.
     """
-    from detector.labels import _json_document
+    from detector.io.labels import _json_document
 
     side = provenance_path(detections_path)
     if side.exists():
@@ -179,7 +179,7 @@ def provenance_of(detections_path) -> tuple[dict | None, str | None]:
     file written for other contents of the file, e.g. by a later run of another program).
 
     A COCO file's ``info`` travels inside the file, so it always describes it."""
-    from detector.npzfile import file_sha256
+    from detector.io.npzfile import file_sha256
 
     record = read_provenance(detections_path)
     name = os.fspath(detections_path)
@@ -211,7 +211,7 @@ def model_differences(recorded_model: dict, model_path) -> list[str]:
     """How the model recorded in a provenance differs from the model file ``model_path``: an
     empty list when the file's SHA-256 is the same (the bytes decide: a model trained again with
     the same seed and bank is byte-identical, so it passes too), else one line naming both."""
-    from detector.npzfile import file_sha256
+    from detector.io.npzfile import file_sha256
 
     here = file_sha256(model_path)
     if recorded_model.get("sha256") == here:
@@ -251,7 +251,7 @@ def check_same_scan(out, model_path, settings) -> dict:
         One line naming the output: no side file, a side file written for other contents, another
         model, or other settings (the first difference named).
     """
-    from detector.npzfile import file_sha256
+    from detector.io.npzfile import file_sha256
 
     record = read_provenance(out)
     side = provenance_path(out)

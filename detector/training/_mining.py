@@ -10,9 +10,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from detector.evaluate import evaluate
+from detector.evaluation import evaluate
 from detector.geometry import crop_region, iou
-from detector.images import read_gray
+from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings
 
 

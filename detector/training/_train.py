@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from detector import npzfile
+from detector.io import npzfile
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.harvest import PatchBank

@@ -31,12 +31,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write
-from detector.evaluate import evaluate
+from detector.io.files import atomic_write
+from detector.evaluation import evaluate
 from detector.features import count_features
 from detector.harvest import PatchBank, harvest
-from detector.labels import csv_writer
-from detector.images import read_gray
+from detector.io.labels import csv_writer
+from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings
 
 __all__ = [
@@ -98,7 +98,7 @@ def image_folds(items, k: int = 3, seed: int = 0) -> list[tuple[np.ndarray, np.n
 
     Examples
     --------
-    >>> from detector.labels import ImageLabels
+    >>> from detector.io.labels import ImageLabels
     >>> items = [ImageLabels(f"{i}.png", [[0, 0, 5, 5]] if i < 4 else []) for i in range(6)]
     >>> folds = image_folds(items, k=2, seed=0)
     >>> sorted(int(i) for _, test in folds for i in test)
@@ -266,7 +266,7 @@ def fold_average_precision(fold: FoldData, params: dict, *, settings: ScanSettin
     Returns
     -------
     float
-        All-point average precision at IoU 0.5 (:func:`detector.evaluate.evaluate`); nan when
+        All-point average precision at IoU 0.5 (:func:`detector.evaluation.evaluate`); nan when
         the held-out images hold no object.
     """
     from detector.training._train import mining_params, train_with_mining
@@ -584,7 +584,7 @@ def _row(record: TrialRecord) -> list:
 def write_trials_csv(path, records, folds: int) -> None:
     """Write one row per trial (see :func:`trials_columns`); AP values with 6 decimals.
 
-    Written through :func:`detector.files.atomic_write`, so an interrupted run leaves either the
+    Written through :func:`detector.io.files.atomic_write`, so an interrupted run leaves either the
     previous complete file or the new one.
     """
     with atomic_write(path, "w", newline="") as fh:

@@ -29,9 +29,14 @@ the other labelled objects near it in sky blue, solid and thin.
 
 from __future__ import annotations
 
-import html
+from typing import Callable, Sequence
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+    from detector.io.labels import ImageLabels
+
 import io
-import numbers
 import os
 import re
 from dataclasses import dataclass, field
@@ -41,11 +46,14 @@ from urllib.parse import quote
 import numpy as np
 
 from detector import features as _features
+from detector._validation import check_int, seed_sequence
 from detector.errors import InputError
-from detector.files import write_bytes
-from detector.forest import bin_columns, oob_scores, quantile_cuts, seed_sequence
+from detector.io.files import write_bytes
+from detector.forest import bin_columns, oob_scores, quantile_cuts
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
-from detector.labels import csv_writer
+from detector.io.labels import csv_writer
+from detector.reporting._html import card, esc, page, swatch
+from detector.reporting.drawing import crop_around, draw_box, write_png
 
 __all__ = [
     "AUDIT_STYLES",
@@ -103,7 +111,7 @@ DEFAULT_PARAMS = {
 # scores and suspicion
 
 
-def suspicion(scores, labels) -> np.ndarray:
+def suspicion(scores: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """How strongly the out-of-bag score contradicts the label: ``1 - s`` for objects, ``s`` for
     background; NaN where the score is NaN.
 
@@ -129,7 +137,7 @@ def suspicion(scores, labels) -> np.ndarray:
     return np.where(y == 1, 1.0 - s, s)
 
 
-def suspicion_order(scores, labels) -> np.ndarray:
+def suspicion_order(scores: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """Indices of the scored patches, most suspicious first; ties keep index order, NaN left out.
 
     Examples
@@ -163,7 +171,8 @@ def _params(params) -> dict:
     return merged
 
 
-def patch_oob_scores(patches, y, params=None, progress=None):
+def patch_oob_scores(patches: ArrayLike, y: ArrayLike, params: dict | None = None,
+                     progress: Callable[[int], None] | None = None) -> tuple[np.ndarray, dict]:
     """Out-of-bag scores of grey patches: a random feature pool, its values, then a bagged forest.
 
     The same steps as :class:`detector.classifier.PatchClassifier` (pool, contrast-normalised
@@ -334,9 +343,11 @@ class AuditResult:
         return chosen if top is None else chosen[: int(top)]
 
 
-def harvest_for_audit(images_dir, items, *, window=None, margin: float = 0.1,
-                      negatives_per_image: int = 50, seed: int = 0, labels_path=None,
-                      progress=None) -> PatchBank:
+def harvest_for_audit(images_dir: str | os.PathLike, items: Sequence[ImageLabels], *,
+                      window: tuple[int, int] | None = None, margin: float = 0.1,
+                      negatives_per_image: int = 50, seed: int = 0,
+                      labels_path: str | os.PathLike | None = None,
+                      progress: Callable[[int], None] | None = None) -> PatchBank:
     """The bank an audit needs: one patch per labelled box, and random background windows.
 
     :func:`detector.harvest.harvest` with ``copies=0``: augmented copies of one box would leak
@@ -370,7 +381,8 @@ def harvest_for_audit(images_dir, items, *, window=None, margin: float = 0.1,
                    labels_path=labels_path, progress=progress)
 
 
-def audit_bank(bank: PatchBank, params=None, progress=None) -> AuditResult:
+def audit_bank(bank: PatchBank, params: dict | None = None,
+               progress: Callable[[int], None] | None = None) -> AuditResult:
     """Score every patch of a bank out of bag and rank them by suspicion.
 
     Parameters
@@ -453,28 +465,8 @@ def audit_bank(bank: PatchBank, params=None, progress=None) -> AuditResult:
 # pictures
 
 
-def _crop(gray: np.ndarray, box, size: int, context: float):
-    """Square crop around ``box`` (``context`` times its longer side on every side, at least 32
-    pixels across), scaled to ``size``; outside the image dark gray. Returns (BGR image, map)."""
-    import cv2
-
-    x, y, w, h = (float(v) for v in box)
-    side = max(32.0, max(w, h) * (1.0 + 2.0 * float(context)))
-    x0, y0 = x + w / 2 - side / 2, y + h / 2 - side / 2
-    scale = size / side
-    matrix = np.array([[scale, 0.0, -x0 * scale], [0.0, scale, -y0 * scale]], dtype=np.float64)
-    interp = cv2.INTER_AREA if scale < 1 else cv2.INTER_LINEAR
-    crop = cv2.warpAffine(np.ascontiguousarray(gray, dtype=np.uint8), matrix, (size, size),
-                          flags=interp, borderMode=cv2.BORDER_CONSTANT, borderValue=40)
-
-    def local(b):
-        bx, by, bw, bh = (float(v) for v in b)
-        return ((bx - x0) * scale, (by - y0) * scale, bw * scale, bh * scale)
-
-    return cv2.cvtColor(crop, cv2.COLOR_GRAY2BGR), local
-
-
-def audit_thumbnail(gray: np.ndarray, box, kind: str, others=(), size: int = THUMBNAIL_SIZE,
+def audit_thumbnail(gray: np.ndarray, box: Sequence[float], kind: str,
+                    others: Sequence[Sequence[float]] = (), size: int = THUMBNAIL_SIZE,
                     context: float = 0.5) -> np.ndarray:
     """A square colour thumbnail around a finding's box, the other labelled boxes drawn thin.
 
@@ -506,17 +498,15 @@ def audit_thumbnail(gray: np.ndarray, box, kind: str, others=(), size: int = THU
     >>> t.shape, tuple(int(v) for v in t[64, 64])    # the middle stays untouched gray
     ((128, 128, 3), (128, 128, 128))
     """
-    from detector.report import _draw_box
-
-    out, local = _crop(gray, box, size, context)
+    out, local = crop_around(gray, box, size, context)
     rgb, style, _ = AUDIT_STYLES["labelled"]
     for other in others:
         lb = local(other)
         if lb[0] > size or lb[1] > size or lb[0] + lb[2] < 0 or lb[1] + lb[3] < 0:
             continue
-        _draw_box(out, lb, rgb, style, 1)
+        draw_box(out, lb, rgb, style, 1)
     rgb, style, _ = AUDIT_STYLES[kind]
-    _draw_box(out, local(box), rgb, style, 2)
+    draw_box(out, local(box), rgb, style, 2)
     return out
 
 
@@ -524,8 +514,6 @@ def _patch_thumbnail(bank: PatchBank, finding: Finding, size: int) -> np.ndarray
     """Thumbnail from the patch alone (no image folder): the whole window, scaled to fit and
     centred on dark gray, with the box inside it (the window less the context margin)."""
     import cv2
-
-    from detector.report import _draw_box
 
     W, H = bank.window
     scale = size / max(W, H)
@@ -538,7 +526,7 @@ def _patch_thumbnail(bank: PatchBank, finding: Finding, size: int) -> np.ndarray
     k = 1.0 + 2.0 * bank.margin
     bw, bh = w / k, h / k
     rgb, style, _ = AUDIT_STYLES[finding.kind]
-    _draw_box(out, (x0 + (w - bw) / 2, y0 + (h - bh) / 2, bw, bh), rgb, style, 2)
+    draw_box(out, (x0 + (w - bw) / 2, y0 + (h - bh) / 2, bw, bh), rgb, style, 2)
     return out
 
 
@@ -553,7 +541,7 @@ def _thumbnail_files(out_dir: Path) -> list[Path]:
     return [e for e in folder.iterdir() if e.is_file() and _THUMBNAIL_FILE.fullmatch(e.name)]
 
 
-def check_audit_folder(out_dir, force: bool = False) -> None:
+def check_audit_folder(out_dir: str | os.PathLike, force: bool = False) -> None:
     """Refuse to replace the files of an earlier audit unless ``force``; refuse a file as folder.
 
     Only the audit's own files count: ``suspicious-labels.csv``, ``audit.html`` and
@@ -598,9 +586,10 @@ def _csv_text(findings) -> str:
     return buf.getvalue()
 
 
-def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
-                min_suspicion: float = 0.5, images_dir=None, inputs: dict | None = None,
-                force: bool = False, progress=None) -> dict:
+def write_audit(out_dir: str | os.PathLike, result: AuditResult, bank: PatchBank, *, top: int = 50,
+                min_suspicion: float = 0.5, images_dir: str | os.PathLike | None = None,
+                inputs: dict | None = None, force: bool = False,
+                progress: Callable[[int], None] | None = None) -> dict:
     """Write the audit folder: the CSV of the listed findings, thumbnails and ``audit.html``.
 
     Parameters
@@ -633,14 +622,11 @@ def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
         ``csv`` and ``html`` (paths written), ``listed`` (the findings listed, in order) and
         ``notes`` (lines worth knowing: images that could not be read).
     """
-    import cv2
-
-    from detector.images import read_gray
+    from detector.io.images import read_gray
 
     out = Path(out_dir)
     check_audit_folder(out, force)
-    if not isinstance(top, numbers.Integral) or top < 1:
-        raise InputError(f"top must be a positive integer, got {top!r}")
+    check_int(top, "top", low=1)
     listed = result.suspicious(top=top, min_suspicion=min_suspicion)
     out.mkdir(parents=True, exist_ok=True)
     for old in _thumbnail_files(out):
@@ -681,95 +667,36 @@ def write_audit(out_dir, result: AuditResult, bank: PatchBank, *, top: int = 50,
     width = max(2, len(str(len(listed))))
     for r, f in enumerate(listed):
         name = f"{f.kind}-{len(entries[f.kind]) + 1:0{width}d}.png"
-        ok, data = cv2.imencode(".png", pictures[r])
-        if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
-            raise InputError("cannot encode the thumbnail", path=folder / name)
         folder.mkdir(exist_ok=True)
-        write_bytes(folder / name, data.tobytes())
+        write_png(folder / name, pictures[r])
         entries[f.kind].append((r + 1, f, f"{THUMBNAIL_DIR}/{name}"))
 
     csv_path, html_path = out / CSV_NAME, out / HTML_NAME
     write_bytes(csv_path, _csv_text(listed).encode("utf-8"))
-    page = _html(result, listed, entries, inputs or {}, notes, top, min_suspicion)
-    write_bytes(html_path, page.encode("utf-8"))
+    text = _html(result, listed, entries, inputs or {}, notes, top, min_suspicion)
+    write_bytes(html_path, text.encode("utf-8"))
     return {"csv": str(csv_path), "html": str(html_path), "listed": listed, "notes": notes}
 
 
 # --------------------------------------------------------------------------------------------
 # HTML
 
-_CSS = """
-:root { --ink: #1d2430; --muted: #5b6472; --line: #dde1e6; --card: #f5f7f9; }
-* { box-sizing: border-box; }
-body { margin: 0; font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, sans-serif;
-       color: var(--ink); background: #fff; }
-main { max-width: 1180px; margin: 0 auto; padding: 24px 28px 48px; }
-h1 { font-size: 1.55rem; margin: 0 0 4px; }
-h2 { font-size: 1.2rem; margin: 32px 0 6px; padding-bottom: 4px; border-bottom: 2px solid var(--line); }
-.inputs { color: var(--muted); font-size: 0.85rem; margin: 0 0 16px; word-break: break-all; }
-.inputs code { color: var(--ink); }
-.cards { display: flex; flex-wrap: wrap; gap: 10px; margin: 10px 0; }
-.card { background: var(--card); border-radius: 8px; padding: 10px 14px; min-width: 128px; flex: 1 1 128px; }
-.card .value { font-size: 1.6rem; font-weight: 650; line-height: 1.1; font-variant-numeric: tabular-nums; }
-.card .name { font-size: 0.8rem; color: var(--muted); margin-top: 2px; }
-.read { color: var(--muted); font-size: 0.88rem; max-width: 900px; margin: 4px 0 12px; }
-.notes { background: #fffbe6; border-left: 4px solid #e0c200; padding: 8px 14px; margin: 14px 0;
-         font-size: 0.88rem; }
-.legend { display: flex; flex-wrap: wrap; gap: 18px; font-size: 0.88rem; margin: 8px 0 4px; }
-.swatch { display: inline-block; width: 30px; height: 14px; vertical-align: -2px; margin-right: 6px;
-          outline: 1px solid #181818; background: #777; }
-.gallery { display: grid; grid-template-columns: repeat(auto-fill, minmax(136px, 1fr)); gap: 10px; }
-.gallery figure { margin: 0; }
-.gallery img { width: 128px; height: 128px; display: block; border-radius: 3px; }
-.gallery figcaption { font-size: 0.74rem; line-height: 1.3; overflow: hidden; }
-.gallery .image { display: block; white-space: nowrap; overflow: hidden; text-overflow: ellipsis;
-                  color: var(--ink); max-width: 130px; }
-table { border-collapse: collapse; font-size: 0.86rem; font-variant-numeric: tabular-nums; }
-th, td { padding: 3px 10px; border-bottom: 1px solid var(--line); text-align: right; }
-th { background: var(--card); }
-td.text, th.text { text-align: left; }
-.empty { color: var(--muted); font-style: italic; }
-"""
-
-
-def _esc(value) -> str:
-    return html.escape(str(value), quote=True)
-
-
-def _hex(rgb) -> str:
-    return "#{:02x}{:02x}{:02x}".format(*rgb)
-
-
-def _swatch(kind: str) -> str:
-    rgb, style, text = AUDIT_STYLES[kind]
-    return (f'<span><span class="swatch" style="background:none;border:3px {style} {_hex(rgb)}">'
-            f'</span>{_esc(text)}</span>')
-
-
-def _card(value, name: str) -> str:
-    return (f'<div class="card"><div class="value">{_esc(value)}</div>'
-            f'<div class="name">{_esc(name)}</div></div>')
-
-
 def _html(result: AuditResult, listed, entries, inputs, notes, top, min_suspicion) -> str:
     p = result.params
-    parts = ['<!DOCTYPE html>', '<html lang="en"><head><meta charset="utf-8">',
-             '<meta name="viewport" content="width=device-width, initial-scale=1">',
-             '<title>patchwood label audit</title>', f'<style>{_CSS}</style></head><body><main>',
-             '<h1>Label audit</h1>']
-    described = [f"{_esc(k)} <code>{_esc(v)}</code>" for k, v in inputs.items() if v is not None]
+    parts = ['<h1>Label audit</h1>']
+    described = [f"{esc(k)} <code>{esc(v)}</code>" for k, v in inputs.items() if v is not None]
     described.append(f"{p['n_trees']} trees of depth {p['depth']}, pool {p['pool']}, "
-                     f"seed {_esc(p['random_state'])}")
+                     f"seed {esc(p['random_state'])}")
     parts.append(f'<p class="inputs">{" &middot; ".join(described)}</p>')
     by_kind = {k: sum(1 for f in result if f.kind == k and f.suspicion > 0.5) for k in FINDING_KINDS}
     oob = "n/a" if result.oob_error is None else f"{100 * result.oob_error:.1f}%"
     parts.append('<div class="cards">')
-    parts.append(_card(result.audited.get("objects", 0), "object patches audited"))
-    parts.append(_card(result.audited.get("background", 0), "background patches audited"))
-    parts.append(_card(oob, "out-of-bag error"))
-    parts.append(_card(by_kind[OBJECT_CALLED_BACKGROUND], "objects called background"))
-    parts.append(_card(by_kind[BACKGROUND_CALLED_OBJECT], "background called object"))
-    parts.append(_card(sum(result.not_scored.values()), "not scored"))
+    parts.append(card(result.audited.get("objects", 0), "object patches audited"))
+    parts.append(card(result.audited.get("background", 0), "background patches audited"))
+    parts.append(card(oob, "out-of-bag error"))
+    parts.append(card(by_kind[OBJECT_CALLED_BACKGROUND], "objects called background"))
+    parts.append(card(by_kind[BACKGROUND_CALLED_OBJECT], "background called object"))
+    parts.append(card(sum(result.not_scored.values()), "not scored"))
     parts.append('</div>')
     parts.append(
         '<p class="read">How to read this: every patch was scored only by the trees that did not '
@@ -782,7 +709,7 @@ def _html(result: AuditResult, listed, entries, inputs, notes, top, min_suspicio
         'contradictions are. '
         f'Listed: at most {int(top)} findings whose suspicion (1 - score for objects, the score '
         f'for background) is above {min_suspicion:g}, most suspicious first; all of them are in '
-        f'<a href="{quote(CSV_NAME)}">{_esc(CSV_NAME)}</a>.</p>')
+        f'<a href="{quote(CSV_NAME)}">{esc(CSV_NAME)}</a>.</p>')
     all_notes = list(notes)
     if sum(result.not_scored.values()):
         all_notes.insert(0, f"not scored: {result.not_scored['objects']} object and "
@@ -792,23 +719,23 @@ def _html(result: AuditResult, listed, entries, inputs, notes, top, min_suspicio
         all_notes.insert(0, f"{result.augmented_left_out} augmented copies were set aside: copies "
                             "of one box would vouch for each other's out-of-bag scores")
     if all_notes:
-        parts.append('<ul class="notes">' + "".join(f"<li>{_esc(n)}</li>" for n in all_notes)
+        parts.append('<ul class="notes">' + "".join(f"<li>{esc(n)}</li>" for n in all_notes)
                      + '</ul>')
-    parts.append('<div class="legend">' + "".join(_swatch(k) for k in AUDIT_STYLES)
+    parts.append('<div class="legend">' + "".join(swatch(*AUDIT_STYLES[k]) for k in AUDIT_STYLES)
                  + '<span>thick line: the box the thumbnail is about</span></div>')
     titles = {OBJECT_CALLED_BACKGROUND: "Labelled objects the forest calls background",
               BACKGROUND_CALLED_OBJECT: "Background windows the forest calls object"}
     for kind in (OBJECT_CALLED_BACKGROUND, BACKGROUND_CALLED_OBJECT):
         shown = entries[kind]
-        parts.append(f'<h2>{_esc(titles[kind])} ({len(shown)} of {by_kind[kind]})</h2>')
+        parts.append(f'<h2>{esc(titles[kind])} ({len(shown)} of {by_kind[kind]})</h2>')
         if not shown:
             parts.append('<p class="empty">None listed.</p>')
             continue
         parts.append('<div class="gallery">')
         for rank, f, src in shown:
             parts.append(
-                f'<figure><img src="{quote(src)}" alt="{_esc(kind)} in {_esc(f.image)}">'
-                f'<figcaption><span class="image" title="{_esc(f.image)}">{_esc(f.image)}</span>'
+                f'<figure><img src="{quote(src)}" alt="{esc(kind)} in {esc(f.image)}">'
+                f'<figcaption><span class="image" title="{esc(f.image)}">{esc(f.image)}</span>'
                 f'#{rank} &middot; score {f.score:.3f}</figcaption></figure>')
         parts.append('</div>')
     parts.append('<h2>Listed findings</h2>')
@@ -820,12 +747,11 @@ def _html(result: AuditResult, listed, entries, inputs, notes, top, min_suspicio
                      '<th>y</th><th>width</th><th>height</th></tr>')
         for rank, f in enumerate(listed, 1):
             box = "".join(f"<td>{_number(v)}</td>" for v in f.box)
-            parts.append(f'<tr><td>{rank}</td><td class="text">{_esc(f.kind)}</td>'
+            parts.append(f'<tr><td>{rank}</td><td class="text">{esc(f.kind)}</td>'
                          f'<td>{f.score:.3f}</td><td>{f.suspicion:.3f}</td><td>{f.trees}</td>'
-                         f'<td class="text">{_esc(f.image)}</td>{box}</tr>')
+                         f'<td class="text">{esc(f.image)}</td>{box}</tr>')
         parts.append('</table>')
     parts.append('<p class="read">Out-of-bag estimates as in "Random Forests" (Machine Learning '
                  '45, 2001); "trees" is how many trees each score averages.</p>')
-    parts.append('</main></body></html>\n')
-    return "\n".join(parts)
+    return page("patchwood label audit", "audit.css", parts)
 

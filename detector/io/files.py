@@ -37,6 +37,8 @@ Names
 
 from __future__ import annotations
 
+from typing import BinaryIO, IO, Iterator
+
 import errno
 import hashlib
 import io
@@ -110,7 +112,7 @@ _READ_FLAGS = (os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_CLOEX
                | getattr(os, "O_NOCTTY", 0) | getattr(os, "O_BINARY", 0))
 
 
-def open_regular(path, max_bytes: int | None = None):
+def open_regular(path: str | os.PathLike, max_bytes: int | None = None) -> BinaryIO:
     """Open a regular file for reading bytes; refuse anything else before reading from it.
 
     The path is looked at first (following symbolic links) and again, through the open
@@ -140,7 +142,7 @@ def open_regular(path, max_bytes: int | None = None):
     >>> open_regular(os.path.join(folder, "pipe.png"))  # doctest: +ELLIPSIS
     Traceback (most recent call last):
     ...
-    detector.files.NotRegularFileError: [Errno 22] not a regular file (a named pipe): '.../pipe.png'
+    detector.io.files.NotRegularFileError: [Errno 22] not a regular file (a named pipe): '.../pipe.png'
     """
     _check_regular(path, os.stat(path).st_mode)
     fd = os.open(path, _READ_FLAGS)
@@ -155,7 +157,7 @@ def open_regular(path, max_bytes: int | None = None):
         raise
 
 
-def read_at_most(fh, max_bytes: int | None) -> bytes:
+def read_at_most(fh: IO, max_bytes: int | None) -> bytes:
     """Read ``fh`` from where it stands to its end, but at most ``max_bytes + 1`` bytes, without
     setting aside ``max_bytes`` of memory first (``fh.read(n)`` allocates ``n`` bytes before it
     reads: two gigabytes for an empty file under a two-gigabyte limit). The caller refuses a
@@ -182,7 +184,7 @@ def read_at_most(fh, max_bytes: int | None) -> bytes:
     return first if len(chunks) == 1 else b"".join(chunks)
 
 
-def read_bytes(path, max_bytes: int | None = None) -> bytes:
+def read_bytes(path: str | os.PathLike, max_bytes: int | None = None) -> bytes:
     """The bytes of a regular file, at most ``max_bytes`` of them (see :func:`open_regular`).
 
     At most ``max_bytes + 1`` bytes are read whatever the file claims to be, so a file that grows
@@ -198,7 +200,7 @@ def read_bytes(path, max_bytes: int | None = None) -> bytes:
     >>> read_bytes(path, max_bytes=4)  # doctest: +ELLIPSIS
     Traceback (most recent call last):
     ...
-    detector.files.FileTooLargeError: [Errno 27] the file is larger than the limit of 4 bytes: '...'
+    detector.io.files.FileTooLargeError: [Errno 27] the file is larger than the limit of 4 bytes: '...'
     """
     with open_regular(path, max_bytes) as fh:
         data = read_at_most(fh, max_bytes)
@@ -207,7 +209,7 @@ def read_bytes(path, max_bytes: int | None = None) -> bytes:
     return data
 
 
-def same_file(a, b) -> bool:
+def same_file(a: str | os.PathLike, b: str | os.PathLike) -> bool:
     """Whether two paths name the same existing file (``os.path.samefile``; False when either
     does not exist or cannot be looked at).
 
@@ -227,7 +229,7 @@ def same_file(a, b) -> bool:
 # names
 
 
-def display_name(name) -> str:
+def display_name(name: str | bytes) -> str:
     """A file name as the project writes it into its files and messages: valid UTF-8 always.
 
     A name that is valid UTF-8 is returned unchanged. A byte of the name that is not UTF-8 (on
@@ -277,7 +279,7 @@ def _stem(base: str) -> str:
     return os.fsdecode(raw[:_LONG_NAME - 13]) + "~" + digest
 
 
-def part_path(path) -> str:
+def part_path(path: str | os.PathLike) -> str:
     """A fresh temporary path beside ``path``: ``FOLDER/.NAME.PID-RANDOM.part``."""
     folder, base = os.path.split(os.path.abspath(os.fspath(path)))
     return os.path.join(folder, f".{_stem(base)}.{os.getpid()}-{uuid.uuid4().hex[:8]}{PART_SUFFIX}")
@@ -319,7 +321,8 @@ def _sync_folder(folder: str) -> None:
 
 
 @contextmanager
-def atomic_write(path, mode: str = "wb", *, encoding: str = "utf-8", newline: str | None = None):
+def atomic_write(path: str | os.PathLike, mode: str = "wb", *, encoding: str = "utf-8",
+                 newline: str | None = None) -> Iterator[IO]:
     """Write a file atomically: yields a file object on a temporary file beside ``path``; when
     the block ends without an error, the data is synced to the disk and the file renamed over
     ``path``.
@@ -385,13 +388,13 @@ def atomic_write(path, mode: str = "wb", *, encoding: str = "utf-8", newline: st
     remove_stale_parts(path)
 
 
-def write_bytes(path, data) -> None:
+def write_bytes(path: str | os.PathLike, data: bytes) -> None:
     """:func:`atomic_write` of ``data`` (bytes, or anything with the buffer protocol)."""
     with atomic_write(path, "wb") as fh:
         fh.write(data)
 
 
-def write_text(path, text: str, newline: str = "\n") -> None:
+def write_text(path: str | os.PathLike, text: str, newline: str = "\n") -> None:
     """:func:`atomic_write` of ``text`` in UTF-8 (``"\\n"`` line ends unless ``newline`` says
     otherwise)."""
     with atomic_write(path, "w", newline=newline) as fh:
@@ -439,7 +442,7 @@ def _stale(folder: str, name: str, stem: str) -> bool:
     return age > STALE_AFTER_SECONDS
 
 
-def remove_stale_parts(path) -> list[str]:
+def remove_stale_parts(path: str | os.PathLike) -> list[str]:
     """Remove the temporary files that killed runs left beside ``path`` (see the module notes).
 
     The folder is listed once per process (the first time something is written there), so that
@@ -483,7 +486,7 @@ def remove_stale_parts(path) -> list[str]:
 # output locks
 
 
-def lock_path(path) -> str:
+def lock_path(path: str | os.PathLike) -> str:
     """The lock file of an output: ``FOLDER/.NAME.lock``."""
     folder, base = os.path.split(os.path.abspath(os.fspath(path)))
     return os.path.join(folder, f".{_stem(base)}.lock")
@@ -499,7 +502,7 @@ def _holder(fd: int) -> str:
 
 
 @contextmanager
-def output_lock(path, command: str = "patchwood"):
+def output_lock(path: str | os.PathLike, command: str = "patchwood") -> Iterator[None]:
     """Hold an exclusive lock on ``path``'s lock file (:func:`lock_path`) for the block.
 
     The lock file records who holds it (process id, start time, ``command``); a second run that

@@ -13,11 +13,13 @@ array is the picture the way a viewer shows it, and label boxes refer to that pi
 Images above a size limit (100 megapixels, or ``PATCHWOOD_MAX_MEGAPIXELS``) are refused from their
 header, before any pixel is decoded; a folder scan counts them among the files it could not read.
 Only regular files are read (a named pipe or a device named like an image is refused before a
-byte is read, :func:`detector.files.open_regular`), and never more bytes than an image within the
+byte is read, :func:`detector.io.files.open_regular`), and never more bytes than an image within the
 limit can take (:func:`max_file_bytes`).
 """
 
 from __future__ import annotations
+
+from typing import Iterable
 
 import io
 import math
@@ -31,7 +33,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import FileTooLargeError, display_name, open_regular, read_at_most
+from detector.io.files import FileTooLargeError, display_name, open_regular, read_at_most
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 DEFAULT_MAX_PIXELS = 100_000_000
@@ -599,7 +601,8 @@ def _is_image_name(name: str) -> bool:
     return name.lower().endswith(IMAGE_SUFFIXES)
 
 
-def list_images(paths, failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
+def list_images(paths: Iterable[str | os.PathLike],
+                failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
     """Find the image files among files and folders, in a fixed order.
 
     Folders are walked recursively; files and sub-folders whose names start with a dot are left
@@ -623,7 +626,7 @@ def list_images(paths, failures: list | None = None) -> tuple[list[tuple[str, st
         ``image`` column: for a file found in a folder, its path relative to that folder with
         forward slashes (so that a scan of ``test/images`` matches ``test/labels.csv``); for a
         file given by itself, the path as given. Bytes of a name that are not UTF-8 are written
-        ``%XX`` (:func:`detector.files.display_name`). Each folder's images are sorted by display
+        ``%XX`` (:func:`detector.io.files.display_name`). Each folder's images are sorted by display
         name; the folders and files keep the order given.
     skipped : int
         Files with other suffixes (in the folders, or given by themselves) that were left out.

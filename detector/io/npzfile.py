@@ -3,7 +3,7 @@
 Writing
     :func:`save_npz` writes a deterministic zip archive (sorted entry names, fixed entry time
     1980-01-01 00:00:00, deflate, C-ordered arrays in the ``.npy`` format) through
-    :func:`detector.files.atomic_write`, so a crash never leaves a half-written file at the
+    :func:`detector.io.files.atomic_write`, so a crash never leaves a half-written file at the
     destination. The same arrays always give the same bytes (for one zlib version).
 
 Reading
@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, open_regular
+from detector.io.files import atomic_write, open_regular
 
 __all__ = ["ArraySpec", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
 
@@ -246,7 +246,7 @@ def read_npz(path: str | os.PathLike, kind: str = "model", spec: dict | None = N
     Parameters
     ----------
     path : str or os.PathLike
-        The archive (a regular file: :func:`detector.files.open_regular`).
+        The archive (a regular file: :func:`detector.io.files.open_regular`).
     kind : str, default="model"
         What the file should be ("model", "patch bank"), used in messages.
     spec : dict of str to ArraySpec, optional

@@ -14,7 +14,7 @@ Writers
 :func:`write_labels_csv`, :func:`write_coco`, :func:`write_detections_csv`,
 :func:`write_detections_coco` and :func:`write_detections_coco_results` (the COCO results list,
 with the image and category ids of a COCO labels file: :func:`coco_result_ids`). Each writes
-through :func:`detector.files.atomic_write` (a temporary file beside the target, synced and
+through :func:`detector.io.files.atomic_write` (a temporary file beside the target, synced and
 renamed into place), so an interrupted run never leaves a half-written file.
 
 Every problem in a file raises :class:`detector.errors.InputError` with a one-line message that
@@ -25,6 +25,8 @@ and the results format read by pycocotools.
 """
 
 from __future__ import annotations
+
+from typing import IO, Iterable
 
 import codecs
 import csv
@@ -39,7 +41,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from detector.errors import InputError
-from detector.files import atomic_write, read_bytes
+from detector.io.files import atomic_write, read_bytes
 
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
@@ -192,7 +194,7 @@ TEXT_MAX_BYTES = 2 * 2**30
 
 def _read_text(path) -> str:
     """The file as text: UTF-8, an optional byte order mark dropped. Only a regular file is read,
-    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.files.read_bytes`)."""
+    and at most ``TEXT_MAX_BYTES`` of it (:func:`detector.io.files.read_bytes`)."""
     try:
         data = read_bytes(path, max_bytes=TEXT_MAX_BYTES)
     except OSError as err:
@@ -597,7 +599,7 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
         kept = {image: [r for r in boxes if r.cls == label] for image, boxes in kept.items()}
 
     if images_dir is not None:
-        from detector.images import image_size
+        from detector.io.images import image_size
 
         for image, rec in first.items():
             full = os.path.join(os.fspath(images_dir), *image.split("/"))
@@ -767,7 +769,8 @@ def _coco_results(doc: list, path, images) -> list[_Record]:
     return records
 
 
-def read_detections(path: str | os.PathLike, images=None) -> list[ImageDetections]:
+def read_detections(path: str | os.PathLike,
+                    images: Iterable[str] | None = None) -> list[ImageDetections]:
     """Read a detections file: the detections CSV contract, or COCO JSON.
 
     Accepted forms:
@@ -853,7 +856,7 @@ class _CsvWriter:
             self.writerow(row)
 
 
-def csv_line(fields) -> str:
+def csv_line(fields: Iterable) -> str:
     """One CSV line as the project writes them (RFC 4180): fields joined by commas, a field that
     holds a comma, a double quote, a carriage return or a line feed put in double quotes (with its
     quotes doubled), and a line feed at the end. Unlike Python 3.11's ``csv.writer`` with
@@ -872,7 +875,7 @@ def csv_line(fields) -> str:
     return ",".join(out) + "\n"
 
 
-def csv_writer(fh) -> _CsvWriter:
+def csv_writer(fh: IO) -> _CsvWriter:
     """A writer of :func:`csv_line` rows on ``fh`` (``writerow``, ``writerows``)."""
     return _CsvWriter(fh)
 
@@ -1191,7 +1194,7 @@ def coco_result_ids(path: str | os.PathLike, label: str | None = None) -> CocoRe
 
 
 def write_detections_coco_results(path: str | os.PathLike, items: list[ImageDetections],
-                                  image_ids: dict | None = None, category_id=1) -> None:
+                                  image_ids: dict | None = None, category_id: int = 1) -> None:
     """Write detections as a COCO results list: ``[{"image_id", "category_id", "bbox",
     "score"}, ...]``, the format pycocotools' ``COCO.loadRes`` and ``COCOeval`` read (Lin et al.,
     2014), images in the order given, each image's detections by descending score.

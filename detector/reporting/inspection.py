@@ -28,13 +28,21 @@ do not wash out the rest.
 
 from __future__ import annotations
 
+from typing import Sequence
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+    from detector.model import Model
+
 import math
 import os
 
 import numpy as np
 
+from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
-from detector.files import write_bytes
+from detector.reporting import drawing
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -99,7 +107,8 @@ def _check_window(window) -> tuple[int, int]:
     return width, height
 
 
-def importance_heat_map(features, importances, window) -> np.ndarray:
+def importance_heat_map(features: ArrayLike, importances: ArrayLike,
+                        window: tuple[int, int]) -> np.ndarray:
     """Where in the window the features look, weighted by their importance.
 
     Every rectangle ``(x, y, w, h, weight)`` of feature ``i`` adds
@@ -161,7 +170,7 @@ def _importance_source(model) -> str:
     return "squared-error decrease, summed over the stages (per patch)"
 
 
-def model_importances(model) -> tuple[np.ndarray, str]:
+def model_importances(model: Model) -> tuple[np.ndarray, str]:
     """One importance per feature of a model, and what it measures.
 
     The summed impurity decrease stored in the model file (``model.feature_importances``); for a
@@ -194,7 +203,7 @@ def model_importances(model) -> tuple[np.ndarray, str]:
     return imp, _importance_source(model)
 
 
-def top_features(model, k: int = 12) -> np.ndarray:
+def top_features(model: Model, k: int = 12) -> np.ndarray:
     """Indices of the model's ``k`` most important features, most important first.
 
     Ranked by :func:`model_importances`, ties by index (lower first). Features of importance 0
@@ -218,15 +227,14 @@ def top_features(model, k: int = 12) -> np.ndarray:
     >>> top_features(m, k=3).tolist()
     [2, 0, 3]
     """
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 0:
-        raise InputError(f"k must be an integer >= 0, got {k!r}")
+    check_int(k, "k", low=0)
     imp, _ = model_importances(model)
     order = np.lexsort((np.arange(len(imp)), -imp))
     order = order[imp[order] > 0]
     return order[:k].astype(np.intp)
 
 
-def mean_object_patch(patches, labels) -> np.ndarray:
+def mean_object_patch(patches: ArrayLike, labels: ArrayLike) -> np.ndarray:
     """Pixel-wise mean of the object patches (label 1) of a patch bank.
 
     Parameters
@@ -264,32 +272,7 @@ def _rectangles(feature) -> list[list[int]]:
     return [[int(v) for v in row] for row in np.asarray(feature) if row[4] != 0]
 
 
-def _finite_or_none(value):
-    if value is None:
-        return None
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
-def _plain(value):
-    """JSON values only: numpy scalars to Python, NaN and infinities to None."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _plain(value.tolist())
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
-def model_report(model, top: int = 12) -> dict:
+def model_report(model: Model, top: int = 12) -> dict:
     """The facts of a model a person checks first, as one JSON-ready dict.
 
     Parameters
@@ -331,7 +314,7 @@ def model_report(model, top: int = 12) -> dict:
     bank = md.get("bank") if isinstance(md.get("bank"), dict) else {}
     calibration = md.get("calibration") if isinstance(md.get("calibration"), dict) else {}
     mining = md.get("mining") if isinstance(md.get("mining"), list) else []
-    return _plain({
+    return json_safe({
         "window": {"width": int(model.window[0]), "height": int(model.window[1])},
         "mode": model.mode,
         "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
@@ -365,8 +348,8 @@ def model_report(model, top: int = 12) -> dict:
             "bank_sha256": md.get("bank_sha256") or bank.get("sha256"),
             "bank_counts": bank.get("counts"),
             "patches": md.get("patches"),
-            "margin": md.get("margin"),
-            "oob_error": _finite_or_none(md.get("oob_error")),
+            "margin": float(model.margin),
+            "oob_error": finite_or_none(md.get("oob_error")),
             "mining": mining,
             "versions": md.get("versions") if isinstance(md.get("versions"), dict) else {},
         },
@@ -374,7 +357,7 @@ def model_report(model, top: int = 12) -> dict:
 
 
 def _number(value, digits: int = 3) -> str:
-    v = _finite_or_none(value)
+    v = finite_or_none(value)
     return "n/a" if v is None else f"{v:.{digits}g}"
 
 
@@ -418,9 +401,9 @@ def report_lines(report: dict) -> list[str]:
         if parts:
             lines.append("  calibrated for " + " on ".join(parts))
         means = []
-        if _finite_or_none(cal.get("mean_trees_objects")) is not None:
+        if finite_or_none(cal.get("mean_trees_objects")) is not None:
             means.append(f"objects {cal['mean_trees_objects']:.2f}")
-        if _finite_or_none(cal.get("mean_trees_background")) is not None:
+        if finite_or_none(cal.get("mean_trees_background")) is not None:
             bg = f"background {cal['mean_trees_background']:.2f}"
             if cal.get("background_source"):
                 bg += f" ({cal['background_source']})"
@@ -484,7 +467,7 @@ def report_lines(report: dict) -> list[str]:
 # pictures: pixel-exact panels
 
 
-def display_scale(window, target: int = 240) -> int:
+def display_scale(window: tuple[int, int], target: int = 240) -> int:
     """Nearest-neighbour enlargement that makes the window's longer side about ``target`` pixels.
 
     Between 1 and 20. A 24 x 24 window is shown 10 times larger.
@@ -520,8 +503,8 @@ def _colour_map(values: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(rgba[..., :3])
 
 
-def heat_map_panel(heat, scale: int = 10, vmax: float | None = None, patch=None,
-                   gamma: float = HEAT_GAMMA) -> np.ndarray:
+def heat_map_panel(heat: ArrayLike, scale: int = 10, vmax: float | None = None,
+                   patch: ArrayLike | None = None, gamma: float = HEAT_GAMMA) -> np.ndarray:
     """A heat map as an RGB picture, each window pixel a ``scale`` x ``scale`` block.
 
     Parameters
@@ -581,7 +564,8 @@ def _sign(panel: np.ndarray, cx: int, cy: int, half: int, plus: bool) -> None:
             panel[max(cy - a, 0):cy + a + 1, max(cx - t + 1, 0):cx + t] = colour
 
 
-def feature_panel(feature, background, scale: int = 10, stretch: bool = True) -> np.ndarray:
+def feature_panel(feature: ArrayLike, background: ArrayLike | None, scale: int = 10,
+                  stretch: bool = True) -> np.ndarray:
     """One feature's rectangles drawn over a grey window, each window pixel ``scale`` x ``scale``.
 
     Every rectangle is filled with its colour at opacity 0.4 (:data:`POSITIVE_RGB` for a positive
@@ -677,9 +661,9 @@ def _place(fig, panel: np.ndarray, x_px: int, y_px: int, height_px: int) -> None
     fig.figimage(panel, xo=x_px, yo=height_px - y_px - panel.shape[0], origin="upper", zorder=1)
 
 
-def render_heat_map(heat, scale: int | None = None, patch=None, title: str = "Where the features look",
-                    subtitle: str = "", unit: str = "importance per pixel",
-                    gamma: float = HEAT_GAMMA) -> np.ndarray:
+def render_heat_map(heat: ArrayLike, scale: int | None = None, patch: ArrayLike | None = None,
+                    title: str = "Where the features look", subtitle: str = "",
+                    unit: str = "importance per pixel", gamma: float = HEAT_GAMMA) -> np.ndarray:
     """A picture of a heat map with a title and a colour bar (and the map over a patch, if given).
 
     Parameters
@@ -743,9 +727,10 @@ def render_heat_map(heat, scale: int | None = None, patch=None, title: str = "Wh
     return _pixels(fig, width, height)
 
 
-def render_top_features(features, importances, indices, window, background=None,
-                        scale: int | None = None,
-                        columns: int = 4, title: str = "Most important features",
+def render_top_features(features: ArrayLike, importances: ArrayLike, indices: Sequence[int],
+                        window: tuple[int, int], background: ArrayLike | None = None,
+                        scale: int | None = None, columns: int = 4,
+                        title: str = "Most important features",
                         note: str | None = None) -> np.ndarray:
     """A picture of the given features, one panel each, with rank and importance as titles.
 
@@ -838,8 +823,8 @@ def render_top_features(features, importances, indices, window, background=None,
     return _pixels(fig, width, height)
 
 
-def write_png(path, image: np.ndarray) -> None:
-    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.files.write_bytes`).
+def write_png(path: str | os.PathLike, image: np.ndarray) -> None:
+    """Write an RGB uint8 picture as PNG, atomically (:func:`detector.reporting.drawing.write_png`).
 
     Examples
     --------
@@ -848,12 +833,7 @@ def write_png(path, image: np.ndarray) -> None:
     >>> write_png(p, np.zeros((2, 3, 3), np.uint8)); os.path.getsize(p) > 0
     True
     """
-    import cv2
-
     image = np.asarray(image)
     if image.dtype != np.uint8 or image.ndim != 3 or image.shape[2] != 3:
         raise InputError(f"a picture must be uint8 (rows, columns, 3), got {image.dtype} {image.shape}")
-    ok, data = cv2.imencode(".png", np.ascontiguousarray(image[:, :, ::-1]))
-    if not ok:  # pragma: no cover - cv2 encodes any uint8 BGR array
-        raise InputError("cannot encode the picture", path=path)
-    write_bytes(path, data.tobytes())
+    drawing.write_png(path, np.ascontiguousarray(image[:, :, ::-1]))
