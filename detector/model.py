@@ -59,6 +59,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from detector._validation import json_safe
 from detector.io import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
@@ -129,21 +130,6 @@ def training_date() -> str:
 
 
 library_versions = npzfile.library_versions
-
-
-def _jsonable(value):
-    """Plain JSON values: numpy scalars and arrays to Python, NaN and infinities to None."""
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 @dataclass
@@ -429,7 +415,7 @@ def describe(model: Model) -> dict:
     exits = np.isfinite(model.exit_thresholds)
     levels = [] if model.exit_levels is None else [float(v) for v in model.exit_levels]
     versions = md.get("versions")
-    return _jsonable({
+    return json_safe({
         "window": {"width": int(model.window[0]), "height": int(model.window[1])},
         "mode": model.mode,
         "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
@@ -477,7 +463,7 @@ def _plain(value: float) -> str:
 
 def metadata_text(model: Model) -> str:
     """The model's metadata as the model file stores it: JSON, keys sorted, no NaN."""
-    return json.dumps(_jsonable(model.metadata), sort_keys=True, allow_nan=False)
+    return json.dumps(json_safe(model.metadata), sort_keys=True, allow_nan=False)
 
 
 def metadata_sha256(model: Model) -> str:

@@ -12,6 +12,7 @@ from functools import partial
 import numpy as np
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
+from detector._validation import seed_sequence  # the trees' seeds (re-exported)
 from detector.forest._flat import MAX_DEPTH, MODES, FlatForest, flatten_tree, forest_leaves
 from detector.forest._histogram import grow_histogram_tree
 from detector.forest._tree_kernels import ENTROPY, SQUARED_ERROR
@@ -19,35 +20,6 @@ from detector.forest._tree_kernels import ENTROPY, SQUARED_ERROR
 __all__ = ["GROWERS", "seed_sequence", "grow_forest", "forest_oob_scores", "oob_scores"]
 
 GROWERS = ("sklearn", "histogram")
-
-
-def seed_sequence(random_state) -> np.random.SeedSequence:
-    """A :class:`numpy.random.SeedSequence` from any scikit-learn style ``random_state``.
-
-    Parameters
-    ----------
-    random_state : None, int, SeedSequence, Generator or RandomState
-        None draws fresh entropy; an int gives a reproducible sequence; a generator is consumed
-        once.
-
-    Examples
-    --------
-    >>> seed_sequence(7).generate_state(1) == seed_sequence(7).generate_state(1)
-    array([ True])
-    """
-    if random_state is None:
-        return np.random.SeedSequence()
-    if isinstance(random_state, np.random.SeedSequence):
-        return random_state
-    if isinstance(random_state, numbers.Integral) and not isinstance(random_state, bool):
-        if random_state < 0:
-            raise ValueError(f"random_state must be >= 0, got {random_state}")
-        return np.random.SeedSequence(int(random_state))
-    if isinstance(random_state, np.random.Generator):
-        return np.random.SeedSequence(int(random_state.integers(0, 2**63)))
-    if isinstance(random_state, np.random.RandomState):
-        return np.random.SeedSequence(int(random_state.randint(0, 2**31 - 1)))
-    raise ValueError(f"random_state must be None, an int or a numpy generator, got {random_state!r}")
 
 
 #: Smallest boosting weight, relative to the mean weight 1.
