@@ -313,3 +313,22 @@ def test_binning_is_lossless_with_few_distinct_values():
     for name in ("node_features", "node_thresholds", "leaf_values"):
         np.testing.assert_array_equal(getattr(binned, name), getattr(exact, name))
     assert binned.oob_error == exact.oob_error
+
+
+@pytest.mark.parametrize("bad,message", [
+    (dict(depth=0), r"depth must be an integer 1\.\.\d+, got 0"),
+    (dict(n_trees=0), "n_trees must be an integer >= 1, got 0"),
+    (dict(mode="stacked"), "mode must be one of bagged, boosted, got 'stacked'"),
+    (dict(sample_fraction=0.0), "sample_fraction"),
+])
+def test_grow_forest_checks_parameters_as_the_classifier_does(bad, message):
+    """The forest's parameter checks are the one set in detector._validation: the same error
+    type (InputError) and wording as PatchClassifier's."""
+    from detector.errors import InputError
+    from detector.forest import grow_forest
+
+    X = np.arange(8, dtype=np.float32).reshape(4, 2)
+    y = np.array([0, 1, 0, 1])
+    params = dict(mode="bagged", n_trees=2, depth=1, sample_fraction=1.0)
+    with pytest.raises(InputError, match=message):
+        grow_forest(X, y, **{**params, **bad})

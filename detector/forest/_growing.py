@@ -3,7 +3,6 @@ grower), and the out-of-bag scores of a bagged one."""
 
 from __future__ import annotations
 
-import numbers
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
@@ -12,7 +11,7 @@ from functools import partial
 import numpy as np
 from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
-from detector._validation import seed_sequence  # the trees' seeds (re-exported)
+from detector._validation import check_choice, check_int, check_real, seed_sequence
 from detector.forest._flat import MAX_DEPTH, MODES, FlatForest, flatten_tree, forest_leaves
 from detector.forest._histogram import grow_histogram_tree
 from detector.forest._tree_kernels import ENTROPY, SQUARED_ERROR
@@ -50,19 +49,15 @@ def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
     y = y.astype(np.int64)
     if y.min(initial=1) == y.max(initial=0) or n < 2:
         raise ValueError("y must hold both object (1) and background (0) patches")
-    if mode not in MODES:
-        raise ValueError(f"mode must be one of {MODES}, got {mode!r}")
-    if not isinstance(n_trees, numbers.Integral) or n_trees < 1:
-        raise ValueError(f"n_trees must be a positive integer, got {n_trees!r}")
-    if not isinstance(depth, numbers.Integral) or not 1 <= depth <= MAX_DEPTH:
-        raise ValueError(f"depth must be an integer in 1..{MAX_DEPTH}, got {depth!r}")
+    # the parameters: one set of checks and one error type with the classifier's (_validation)
+    check_choice(mode, "mode", MODES)
+    n_trees = check_int(n_trees, "n_trees", low=1)
+    depth = check_int(depth, "depth", low=1, high=MAX_DEPTH)
     if features_per_node is None:
         features_per_node = max(1, int(round(np.sqrt(n_features))))
-    if not isinstance(features_per_node, numbers.Integral) or features_per_node < 1:
-        raise ValueError(f"features_per_node must be a positive integer, got {features_per_node!r}")
-    features_per_node = int(min(features_per_node, n_features))
-    if not 0.0 < float(sample_fraction) <= 1.0:
-        raise ValueError(f"sample_fraction must be in (0, 1], got {sample_fraction!r}")
+    features_per_node = min(check_int(features_per_node, "features_per_node", low=1), n_features)
+    sample_fraction = check_real(sample_fraction, "sample_fraction", low=0.0, high=1.0,
+                                 low_open=True)
     if n_features < 1:
         raise ValueError("X has no feature columns")
     if X.dtype != np.uint8 and not _check_finite(X):
