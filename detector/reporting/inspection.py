@@ -43,6 +43,7 @@ import numpy as np
 from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
 from detector.reporting import drawing
+from detector.model import describe
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -303,28 +304,17 @@ def model_report(model: Model, top: int = 12) -> dict:
     >>> r["trees"], r["depth"], r["features_used"], r["importance"]["top"][0]["share"]
     (1, 1, 1, 1.0)
     """
-    md = model.metadata or {}
-    params = md.get("parameters") if isinstance(md.get("parameters"), dict) else {}
+    # the model's facts come from the one describer (detector.model.describe); the report adds
+    # the rectangles and importances, and keeps its own order of keys
+    d = describe(model)
     imp, source = model_importances(model)
     total = float(imp.sum())
     ranked = top_features(model, top)
-    forest = model.forest
     n_rect = (model.features[:, :, 4] != 0).sum(axis=1)
-    exits = np.isfinite(model.exit_thresholds)
-    bank = md.get("bank") if isinstance(md.get("bank"), dict) else {}
-    calibration = md.get("calibration") if isinstance(md.get("calibration"), dict) else {}
-    mining = md.get("mining") if isinstance(md.get("mining"), list) else []
+    training = d["training"]
     return json_safe({
-        "window": {"width": int(model.window[0]), "height": int(model.window[1])},
-        "mode": model.mode,
-        "method": "random forest" if model.mode == "bagged" else "Gentle AdaBoost",
-        "trees": model.n_trees,
-        "depth": model.depth,
-        "splits": int(forest.split_mask.sum()),
-        "features_used": int(len(model.features)),
-        "pool": md.get("pool_drawn", params.get("pool")),
-        "features_per_node": md.get("features_per_node", params.get("features_per_node")),
-        "normalize": bool(model.normalize),
+        **{k: d[k] for k in ("window", "mode", "method", "trees", "depth", "splits",
+                             "features_used", "pool", "features_per_node", "normalize")},
         "rectangles_per_feature": {str(n): int((n_rect == n).sum()) for n in (2, 3, 4)
                                    if (n_rect == n).any()} | (
             {"other": int((~np.isin(n_rect, (2, 3, 4))).sum())}
@@ -337,22 +327,12 @@ def model_report(model: Model, top: int = 12) -> dict:
                      "rectangles": _rectangles(model.features[i])}
                     for r, i in enumerate(ranked)],
         },
-        "early_exit": {
-            "trees_with_exit": int(exits.sum()),
-            "first_exit_after_tree": int(np.argmax(exits)) + 1 if exits.any() else None,
-            "calibration": calibration,
-        },
-        "training": {
-            "date": md.get("date"),
-            "parameters": params,
-            "bank_sha256": md.get("bank_sha256") or bank.get("sha256"),
-            "bank_counts": bank.get("counts"),
-            "patches": md.get("patches"),
-            "margin": float(model.margin),
-            "oob_error": finite_or_none(md.get("oob_error")),
-            "mining": mining,
-            "versions": md.get("versions") if isinstance(md.get("versions"), dict) else {},
-        },
+        "early_exit": {k: d["early_exit"][k]
+                       for k in ("trees_with_exit", "first_exit_after_tree", "calibration")},
+        "training": {**{k: training[k] for k in ("date", "parameters", "bank_sha256",
+                                                 "bank_counts", "patches")},
+                     "margin": d["scan"]["margin"],
+                     **{k: training[k] for k in ("oob_error", "mining", "versions")}},
     })
 
 
