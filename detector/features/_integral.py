@@ -140,17 +140,8 @@ def integral_images(patches) -> np.ndarray:
 
 
 def squared_integral_images(patches) -> np.ndarray:
-    """Squared integral images of a stack of patches, each with a leading zero row and column.
-
-    Parameters
-    ----------
-    patches : (N, h, w) array_like of integers or reals
-        A stack of equally sized grayscale patches.
-
-    Returns
-    -------
-    sq : (N, h + 1, w + 1) ndarray of int64 or float64
-        ``sq[n]`` equals ``squared_integral_image(patches[n])``.
+    """Squared integral images of a stack of patches (as :func:`integral_images`, of the squared
+    values): ``sq[n]``, of shape (h + 1, w + 1), equals ``squared_integral_image(patches[n])``.
 
     Examples
     --------

@@ -128,23 +128,13 @@ def plot_miss_rate(evaluation: Evaluation, path: str | os.PathLike,
     FPPI, the miss rate of the threshold with the largest FPPI not above it; it starts at
     "keep nothing" (miss rate 1) and stays flat past the last threshold. Thresholds with no false
     alarm sit on the left edge. The shaded band is the FPPI range 0.01..1 that the log-average
-    miss rate (in the legend) averages over.
+    miss rate (in the legend) averages over. Parameters as :func:`plot_precision_recall`'s.
 
-    Parameters
-    ----------
-    evaluation : Evaluation
-    path : str or os.PathLike
-        The PNG to write.
-    point : dict, optional
-        From :func:`choose_operating_point`; marked when it has a threshold.
-
-    Examples
-    --------
     >>> import tempfile, pathlib
-    >>> from detector.evaluation import choose_operating_point, evaluate
-    >>> ev = evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]})
+    >>> from detector.evaluation import evaluate
     >>> out = pathlib.Path(tempfile.mkdtemp()) / "miss.png"
-    >>> plot_miss_rate(ev, out); out.stat().st_size > 0
+    >>> plot_miss_rate(evaluate({"a.png": ([[0, 0, 10, 10]], [0.8])}, {"a.png": [[0, 0, 10, 10]]}),
+    ...                out); out.stat().st_size > 0
     True
     """
     from matplotlib.ticker import FixedLocator, NullFormatter, NullLocator
