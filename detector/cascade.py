@@ -29,6 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 
+from detector._validation import as_generator
 from detector._cascade_kernels import exit_earlier, greedy_order
 from detector.forest import final_score, float32_thresholds
 from detector.geometry import crop_region
@@ -100,7 +101,7 @@ def misaligned_copies(patches: ArrayLike, shift: float = 1.0, scale: float = 1.1
     """
     patches = np.asarray(patches, dtype=np.uint8)
     n, h, w = patches.shape
-    rng = np.random.default_rng(random_state)
+    rng = as_generator(random_state)
     out = np.empty((n, copies + 1, h, w), np.uint8)
     out[:, 0] = patches
     for i in range(n):

@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from detector._validation import as_generator
 from detector.io import npzfile
 from detector.errors import InputError
 from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
@@ -313,7 +314,7 @@ def harvest(
         big_w, big_h = max(sizes, key=lambda s: s[0] * s[1])
         raise InputError(f"window {W}x{H} is larger than every image (the largest is "
                          f"{big_w}x{big_h})", path=labels_path)
-    rng = np.random.default_rng(seed)
+    rng = as_generator(seed)
     patches, labels, kinds, index, boxes, aug = [], [], [], [], [], []
     names = [it.image for it in items]
     for i, it in enumerate(items):

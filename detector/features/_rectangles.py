@@ -39,6 +39,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from detector._validation import as_generator
 from detector.features._feature_kernels import CHUNK, TILE, evaluate_tiles
 from detector.features._channels import N_CHANNELS, patch_channels
 from detector.errors import InputError
@@ -116,15 +117,6 @@ def _check_shapes(shapes) -> tuple[str, ...]:
     if len(set(shapes)) != len(shapes):
         raise InputError(f"feature shapes repeat: {', '.join(shapes)}")
     return shapes
-
-
-def _rng(random_state) -> np.random.Generator:
-    if isinstance(random_state, np.random.RandomState):
-        return np.random.default_rng(random_state.randint(0, 2 ** 31 - 1))
-    try:
-        return np.random.default_rng(random_state)
-    except (TypeError, ValueError) as error:
-        raise InputError(f"random_state must be None, an integer or a Generator: {error}") from None
 
 
 # ----------------------------------------------------------------------------------------------
@@ -283,7 +275,7 @@ def random_pool(window_width, window_height, size, random_state=None, *,
     total = count_features(width, height, shapes)
     if size >= total:
         return enumerate_features(width, height, shapes)
-    index = np.sort(_rng(random_state).choice(total, size=int(size), replace=False))
+    index = np.sort(as_generator(random_state).choice(total, size=int(size), replace=False))
     parts = [np.zeros((0, 4, 5), dtype=np.int32)]
     offset = 0
     for shape in shapes:
@@ -328,7 +320,7 @@ def channel_pool(window_width, window_height, size, random_state=None) -> tuple[
     width, height = _check_window(window_width, window_height)
     if width < 3 or height < 3:
         return np.zeros((0, 4, 5), np.int32), np.zeros(0, np.int8)
-    rng = _rng(random_state)
+    rng = as_generator(random_state)
     features = random_pool(width - 2, height - 2, size, rng, shapes=CHANNEL_SHAPES)
     used = features[:, :, 4] != 0
     features[:, :, 0] += used

@@ -30,6 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from detector._validation import as_generator
 from detector.errors import InputError
 from detector.io.files import atomic_write
 from detector.evaluation import evaluate
@@ -111,7 +112,7 @@ def image_folds(items, k: int = 3, seed: int = 0) -> list[tuple[np.ndarray, np.n
         raise InputError(f"folds must be an integer of at least 2, got {k!r}")
     if k > n:
         raise InputError(f"{k} folds need at least {k} images, found {n}")
-    order = np.random.default_rng(seed).permutation(n)
+    order = as_generator(seed).permutation(n)
     has = np.array([len(items[i].boxes) > 0 for i in order], dtype=bool)
     dealt = np.concatenate([order[has], order[~has]])
     fold_of = np.empty(n, dtype=np.int64)
