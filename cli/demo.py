@@ -16,7 +16,7 @@ from detector.model import save_model
 from detector.reporting.score_report import score_files
 from detector.reporting.summary import summary_table
 from detector.scan import ScanSettings
-from detector.training import DEFAULT_MINE_ROUNDS, mining_params, train_with_mining
+from detector.training import DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params, train_with_mining
 from synthetic_images import render_scenario
 
 #: What the demo writes inside its folder (and may replace with --force).
@@ -28,7 +28,7 @@ def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
     images: int = typer.Option(200, "--images", min=4, max=5000, help="Frames to render, split 80/20 into training and test frames."),
-    trees: int = typer.Option(200, "--trees", min=1, max=2000, help="Trees in the forest."),
+    trees: int = typer.Option(DEFAULT_TRAIN["trees"], "--trees", min=1, max=2000, help="Trees in the forest."),
     mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
     pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
     mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images (as `patchwood train`: the models before the last grow a quarter of the trees)."),

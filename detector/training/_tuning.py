@@ -371,7 +371,7 @@ class SearchSpace:
         the pool, as training has it).
 
         >>> SearchSpace().start()
-        {'trees': 200, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 141, 'sample_fraction': 1.0}
+        {'trees': 300, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 141, 'sample_fraction': 1.0}
         >>> SearchSpace(trees=(5, 50), depth=(3, 4), modes=("bagged",), pool=(100, 400),
         ...             features_per_node=(10, 300), sample_fraction=(0.3, 0.5)).start()
         {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 20, 'sample_fraction': 0.5}
