@@ -50,15 +50,8 @@ def check_int(value: Any, name: str, *, low: int | None = None, high: int | None
     ok = isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_))
     if ok and (low is None or value >= low) and (high is None or value <= high):
         return int(value)
-    if low is not None and high is not None:
-        bound = f" {low}..{high}"
-    elif low is not None:
-        bound = f" >= {low}"
-    elif high is not None:
-        bound = f" <= {high}"
-    else:
-        bound = ""
-    raise InputError(f"{name} must be an integer{bound}, got {value!r}")
+    bound = _bound_words(low, high, lambda: f"{low}..{high}", fmt=str)
+    raise InputError(f"{name} must be an integer{' ' + bound if bound else ''}, got {value!r}")
 
 
 def check_real(value: Any, name: str, *, low: float | None = None, high: float | None = None,
@@ -90,15 +83,26 @@ def check_real(value: Any, name: str, *, low: float | None = None, high: float |
         inside = inside and (v < high if high_open else v <= high)
     if inside:
         return v
+    bound = _bound_words(
+        low, high, lambda: f"in {'(' if low_open else '['}{low:g}, {high:g}{')' if high_open else ']'}",
+        low_open, high_open)
+    raise InputError(f"{name} must be {bound or 'a finite number'}, got {value}")
+
+
+def _bound_words(low, high, both, low_open=False, high_open=False, fmt=lambda v: f"{v:g}"):
+    """The range in a message: ``both()`` when both ends are given, else ``>= low`` or
+    ``<= high`` (``>`` / ``<`` when open), else an empty string.
+
+    >>> _bound_words(1, None, None, low_open=True), _bound_words(None, None, None)
+    ('> 1', '')
+    """
     if low is not None and high is not None:
-        bound = f"in {'(' if low_open else '['}{low:g}, {high:g}{')' if high_open else ']'}"
-    elif low is not None:
-        bound = f"{'>' if low_open else '>='} {low:g}"
-    elif high is not None:
-        bound = f"{'<' if high_open else '<='} {high:g}"
-    else:
-        bound = "a finite number"
-    raise InputError(f"{name} must be {bound}, got {value}")
+        return both()
+    if low is not None:
+        return f"{'>' if low_open else '>='} {fmt(low)}"
+    if high is not None:
+        return f"{'<' if high_open else '<='} {fmt(high)}"
+    return ""
 
 
 def check_choice(value: Any, name: str, choices: Iterable[str]) -> str:

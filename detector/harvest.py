@@ -427,9 +427,7 @@ def save_bank(path, bank: PatchBank) -> None:
     npzfile.save_npz(
         path,
         {
-            "format_version": np.array(BANK_FORMAT_VERSION, dtype=np.int64),
-            "kind": np.array("patch-bank"),
-            "window": np.array(bank.window, dtype=np.int32),
+            **npzfile.header_arrays("patch-bank", BANK_FORMAT_VERSION, bank.window),
             "patches": bank.patches,
             "labels": bank.labels,
             "kinds": bank.kinds,

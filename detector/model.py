@@ -483,9 +483,7 @@ def metadata_sha256(model: Model) -> str:
 def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
-        "format_version": np.array(FORMAT_VERSION, dtype=np.int64),
-        "kind": np.array("model"),
-        "window": np.array(model.window, dtype=np.int32),
+        **npzfile.header_arrays("model", FORMAT_VERSION, model.window),
         "features": model.features,
         "node_features": model.node_features,
         "node_thresholds": model.node_thresholds,

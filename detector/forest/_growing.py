@@ -356,18 +356,7 @@ def forest_oob_scores(forest: FlatForest, X, chunk: int = 4096) -> tuple[np.ndar
     return scores, count
 
 
-def oob_scores(
-    X,
-    y,
-    *,
-    n_trees: int = 200,
-    depth: int = 2,
-    features_per_node: int | None = None,
-    sample_fraction: float = 1.0,
-    random_state=None,
-    progress=None,
-    n_jobs: int | None = None,
-) -> tuple[np.ndarray, np.ndarray, FlatForest]:
+def oob_scores(X, y, **options) -> tuple[np.ndarray, np.ndarray, FlatForest]:
     """Grow a bagged forest and score every patch with the trees that did not draw it.
 
     Parameters
@@ -375,8 +364,10 @@ def oob_scores(
     X : ndarray of float32, shape (N, F)
     y : ndarray of int, shape (N,)
         1 for object patches, 0 for background.
-    n_trees, depth, features_per_node, sample_fraction, random_state, progress, n_jobs
-        As for :func:`grow_forest` (``mode="bagged"``).
+    **options
+        Keywords of :func:`grow_forest` (``n_trees``, ``depth``, ``features_per_node``,
+        ``sample_fraction``, ``random_state``, ``progress``, ``n_jobs``, ``grower``), with its
+        defaults; the forest is always bagged and keeps its estimators.
 
     Returns
     -------
@@ -398,9 +389,9 @@ def oob_scores(
     >>> bool(np.mean((s > 0.5) == (y == 1)) > 0.9), int(k.min()) > 0
     (True, True)
     """
-    forest = grow_forest(X, y, mode="bagged", n_trees=n_trees, depth=depth,
-                         features_per_node=features_per_node, sample_fraction=sample_fraction,
-                         random_state=random_state, progress=progress, n_jobs=n_jobs,
-                         keep_estimators=True)
+    for fixed in ("mode", "keep_estimators"):
+        if fixed in options:
+            raise TypeError(f"oob_scores grows a bagged forest that keeps its trees; {fixed} is fixed")
+    forest = grow_forest(X, y, mode="bagged", keep_estimators=True, **options)
     scores, trees_out = forest_oob_scores(forest, X)
     return scores, trees_out, forest

@@ -527,21 +527,8 @@ def image_size(path: str | os.PathLike) -> tuple[int, int]:
     """Width and height of an image as :func:`read_gray` would return it, read cheaply.
 
     PNG, JPEG, BMP and TIFF sizes come from the file header (with the orientation tag applied, so
-    a JPEG turned by a quarter turn reports its displayed size); other files are decoded.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-        The image file.
-
-    Returns
-    -------
-    (width, height) : tuple of int
-
-    Raises
-    ------
-    InputError
-        ``"<path>: cannot read image: <reason>"`` when the file cannot be opened or read.
+    a JPEG turned by a quarter turn reports its displayed size); other files are decoded. Returns
+    ``(width, height)``; raises :class:`InputError` as :func:`header_size` does.
 
     Examples
     --------

@@ -32,7 +32,7 @@ import numpy as np
 from detector.errors import InputError
 from detector.io.files import atomic_write, open_regular
 
-__all__ = ["ArraySpec", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
+__all__ = ["ArraySpec", "header_arrays", "save_npz", "read_npz", "check_arrays", "load_npz", "file_sha256"]
 
 #: Entry time written for every member; the earliest time a zip archive can store.
 ZIP_EPOCH = (1980, 1, 1, 0, 0, 0)
@@ -91,6 +91,17 @@ def _npy_bytes(array: np.ndarray) -> bytes:
     array = array if array.flags.c_contiguous else array.copy(order="C")  # keeps 0-d arrays 0-d
     np.lib.format.write_array(buf, array, allow_pickle=False)
     return buf.getvalue()
+
+
+def header_arrays(kind: str, version: int, window) -> dict[str, np.ndarray]:
+    """The arrays every file the project writes with :func:`save_npz` starts with: its format
+    version, its kind and the window.
+
+    >>> {k: v.tolist() for k, v in header_arrays("model", 3, (24, 24)).items()}
+    {'format_version': 3, 'kind': 'model', 'window': [24, 24]}
+    """
+    return {"format_version": np.array(version, dtype=np.int64), "kind": np.array(kind),
+            "window": np.array(window, dtype=np.int32)}
 
 
 def save_npz(path: str | os.PathLike, arrays: dict[str, np.ndarray]) -> None:

@@ -480,16 +480,9 @@ def audit_thumbnail(gray: np.ndarray, box: Sequence[float], kind: str,
         A key of :data:`AUDIT_STYLES` other than ``"labelled"``.
     others : sequence of boxes
         Other labelled boxes of the image, drawn where they fall inside the thumbnail.
-    size : int, default 128
-    context : float, default 0.5
-        Margin around the box on every side, as a share of its longer side (the crop is
-        ``1 + 2 * context`` times the longer side, at least 32 pixels; outside the image dark
-        gray).
-
-    Returns
-    -------
-    ndarray of uint8, shape (size, size, 3)
-        BGR, as cv2 writes it.
+    size, context : int, float
+        As :func:`detector.reporting.drawing.thumbnail` (here a margin of half the longer side by
+        default); it returns the same BGR square.
 
     Examples
     --------
