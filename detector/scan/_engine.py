@@ -94,9 +94,9 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
 
     ``channels`` (one per feature, 0 = grey; see :mod:`detector.features`): a feature on channel
     c reads plane c of a stack of integral images ``plane`` cells apart (its offsets grow by
-    ``c * plane``), subtracts no window mean (its const is 0), and its weights are multiplied by
-    ``scale``: a gradient measured in image pixels is ``1 / scale`` of the same edge measured in
-    window pixels, the unit training used.
+    ``c * plane``) and subtracts no window mean (its const is 0). Channel features are planned at
+    scale 1 only: gradients do not scale with the rectangles (see :class:`LevelPlan`), so models
+    with them are scanned on an image pyramid.
 
     Examples
     --------
@@ -129,7 +129,8 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
     if channels is not None:
         channel = np.asarray(channels, dtype=np.int64)
         gradient = channel > 0
-        coefs = np.where(gradient[:, None], coefs * scale, coefs)
+        if gradient.any() and scale != 1.0:
+            raise ValueError("channel features are scanned at scale 1, on an image pyramid")
         consts = np.where(gradient, 0.0, consts)
         corners = corners + (channel * plane)[:, None, None]
     signs = np.array([1.0, -1.0, -1.0, 1.0])
@@ -344,6 +345,33 @@ class FramePlan:
             counts=np.array([plan.counts for plan, _, _ in scales], np.int64).reshape(S, n_features),
             consts=np.array([plan.consts for plan, _, _ in scales], np.float64).reshape(S, n_features),
         )
+
+
+@dataclass
+class LevelPlan:
+    """One scale of a pyramid scan: the frame shrunk to ``size`` (``cv2.resize`` with area
+    averaging, ``factor`` frame pixels per level pixel along x and y), padded by ``pad`` pixels of
+    repeated border, and scanned at the window's own size (``plan`` is :func:`scale_plan` at scale
+    1) at the positions ``xs``, ``ys`` of the padded level.
+
+    Gradient channels are not scale-invariant the way grey means are: the same object seen in a
+    frame shows more gradient per pixel than the patch ``harvest`` shrank it into, because the
+    shrinking averages fine detail away. On the cross-data sets the mean gradient magnitude of a
+    labelled box read in the frame (scaled by ``1 / scale``, what the rectangle scaling assumes)
+    was 1.5 to 3 times the patch's at scales 1.4 to 5 on the textured objects (horses, coin
+    crops), and 1.0 to 1.3 times on the smooth galaxies. Aggregated channel features compute the
+    channels on every level of an image pyramid for this reason (Dollár, Appel, Belongie and
+    Perona, "Fast Feature Pyramids for Object Detection", PAMI 2014, whose power law describes how
+    channels change with scale); so does this scan for models with channel features.
+    """
+
+    scale: float
+    size: tuple  # (width, height) of the level before padding
+    factor: tuple  # frame pixels per level pixel, (x, y)
+    pad: int
+    plan: "ScalePlan"
+    xs: np.ndarray
+    ys: np.ndarray
 
 
 @dataclass
@@ -734,6 +762,9 @@ class Engine:
         self.threshold = float(self.settings.threshold)
         self.cutoff = kernel_cutoff(model, self.threshold)
         self.normalize = bool(model.normalize)
+        # a model with gradient channel features is scanned on an image pyramid (see LevelPlan);
+        # a grey model by scaling its rectangles over one integral image
+        self.pyramid = self.channels is not None
         self._grids: dict = {}
         self._lock = threading.Lock()
         self._work = _Workspace()
@@ -766,48 +797,60 @@ class Engine:
         farthest any window reaches past an edge; 0 with ``overhang=0``)."""
         return self._grid(image_size, enlarged).pad
 
+    def _cached(self, key, build):
+        """``build()``, cached by ``key`` (16 entries at most, the oldest dropped). Thread-safe."""
+        with self._lock:
+            value = self._grids.get(key)
+        if value is None:
+            value = build()
+            with self._lock:
+                self._grids[key] = value
+                while len(self._grids) > 16:
+                    self._grids.pop(next(iter(self._grids)))
+        return value
+
+    def _scales(self, image_size, enlarged: float = 1.0) -> list:
+        """The scales to scan in an image of ``(width, height)``, already enlarged ``enlarged``
+        times: :func:`scales_for` between the object sizes looked for."""
+        lo, hi = self.object_scale_range()
+        start = max(lo * enlarged, 1.0)
+        top = None if hi is None else hi * enlarged
+        return scales_for(image_size, self.window, self.settings.scale_step, start, top)
+
     def _grid(self, image_size, enlarged: float = 1.0) -> FramePlan:
         """The :class:`FramePlan` of an image of this size: every scale's plan and the windows'
         top-left positions in the image padded by ``pad`` pixels on every side, cached by image
         size (a small frame spends a fifth of its scan on them otherwise)."""
-        key = (tuple(image_size), enlarged)
-        with self._lock:
-            grid = self._grids.get(key)
-        if grid is None:
-            lo, hi = self.object_scale_range()
-            start = max(lo * enlarged, 1.0)
-            top = None if hi is None else hi * enlarged
-            iw, ih = image_size
-            W, H = self.window
-            over = self.settings.overhang
-            axes, pad = [], 0
-            for s in scales_for(image_size, self.window, self.settings.scale_step, start, top):
-                Ws, Hs = int(_round(W * s)), int(_round(H * s))
-                step = max(1, int(_round(self.settings.stride * s)))
-                xs = edge_positions(iw, Ws, step, over)
-                ys = edge_positions(ih, Hs, step, over)
-                if len(xs) and len(ys):
-                    axes.append((s, xs, ys))
-                    # the farthest this scale's windows reach past any edge
-                    pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
-                              int(ys[-1]) + Hs - ih)
-            plane = (iw + 2 * pad + 1) * (ih + 2 * pad + 1)
-            grid = FramePlan.stack([(scale_plan(self.features, self.window, s,
-                                                iw + 2 * pad + 1, self.normalize, self.channels,
-                                                plane),
-                                     xs + pad, ys + pad) for s, xs, ys in axes], pad,
-                                   len(self.features))
-            with self._lock:
-                self._grids[key] = grid
-                while len(self._grids) > 16:
-                    self._grids.pop(next(iter(self._grids)))
-        return grid
+        return self._cached((tuple(image_size), enlarged),
+                            lambda: self._build_grid(image_size, enlarged))
+
+    def _build_grid(self, image_size, enlarged: float) -> FramePlan:
+        iw, ih = image_size
+        W, H = self.window
+        axes, pad = [], 0
+        for s in self._scales(image_size, enlarged):
+            Ws, Hs = int(_round(W * s)), int(_round(H * s))
+            step = max(1, int(_round(self.settings.stride * s)))
+            xs = edge_positions(iw, Ws, step, self.settings.overhang)
+            ys = edge_positions(ih, Hs, step, self.settings.overhang)
+            if len(xs) and len(ys):
+                axes.append((s, xs, ys))
+                # the farthest this scale's windows reach past any edge
+                pad = max(pad, int(-xs[0]), int(-ys[0]), int(xs[-1]) + Ws - iw,
+                          int(ys[-1]) + Hs - ih)
+        plane = (iw + 2 * pad + 1) * (ih + 2 * pad + 1)
+        return FramePlan.stack([(scale_plan(self.features, self.window, s, iw + 2 * pad + 1,
+                                            self.normalize, self.channels, plane),
+                                 xs + pad, ys + pad) for s, xs, ys in axes], pad,
+                               len(self.features))
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
         """Every window whose score (:func:`detection_scores`) reaches the threshold: ``(boxes
         (K,4) window boxes, raw (K,), windows, trees)``, before the margin and non-maximum
         suppression. Window boxes may reach past the image's edges (see
         ``ScanSettings.overhang``)."""
+        if self.pyramid:
+            return self._pyramid_candidates(gray, use_numpy)
         grid, up, (out_x, out_y, out_s, out_scale), _, kept, trees = self._run(gray, use_numpy)
         if grid is None:
             return np.zeros((0, 4)), np.zeros(0), 0, 0
@@ -817,12 +860,9 @@ class Engine:
         boxes[:, 2:] = grid.sizes[out_scale[:kept]] / up
         return boxes, out_s[:kept].copy(), grid.windows, int(trees)
 
-    def _run(self, gray, use_numpy: bool = False):
-        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, outputs, scores, kept,
-        trees)``, the windows kept being the first ``kept`` entries of the four ``outputs`` (x, y,
-        raw score, scale index; :meth:`_Workspace.out`), in window order, and ``scores`` their
-        detection scores, every one at least the threshold; ``grid`` None when the frame has no
-        window."""
+    def _enlarged(self, gray):
+        """``(gray, up)``: the frame enlarged ``up`` times (``cv2.resize``, bilinear) when the
+        smallest object looked for is smaller than the window's, else as it is with ``up = 1``."""
         lo, _ = self.object_scale_range()
         up = 1.0
         if lo < 1.0:
@@ -839,6 +879,88 @@ class Engine:
             import cv2
 
             gray = cv2.resize(gray, None, fx=up, fy=up, interpolation=cv2.INTER_LINEAR)
+        return gray, up
+
+    def _levels(self, image_size, enlarged: float = 1.0) -> list:
+        """The :class:`LevelPlan` of every scale of an image of ``(width, height)`` (already
+        enlarged ``enlarged`` times), cached by size like :meth:`_grid`."""
+        return self._cached(("levels", tuple(image_size), enlarged),
+                            lambda: self._build_levels(image_size, enlarged))
+
+    def _build_levels(self, image_size, enlarged: float) -> list:
+        iw, ih = image_size
+        W, H = self.window
+        step = max(1, int(_round(self.settings.stride)))
+        levels = []
+        for s in self._scales(image_size, enlarged):
+            lw, lh = max(W, int(_round(iw / s))), max(H, int(_round(ih / s)))
+            xs = edge_positions(lw, W, step, self.settings.overhang)
+            ys = edge_positions(lh, H, step, self.settings.overhang)
+            if not (len(xs) and len(ys)):
+                continue
+            pad = max(0, int(-xs[0]), int(-ys[0]), int(xs[-1]) + W - lw, int(ys[-1]) + H - lh)
+            row = lw + 2 * pad + 1
+            plan = scale_plan(self.features, self.window, 1.0, row, self.normalize, self.channels,
+                              row * (lh + 2 * pad + 1))
+            levels.append(LevelPlan(s, (lw, lh), (iw / lw, ih / lh), pad, plan, xs + pad, ys + pad))
+        return levels
+
+    def _pyramid_candidates(self, gray, use_numpy: bool = False):
+        """:meth:`candidates` of a pyramid scan (see :class:`LevelPlan`): every level is the frame
+        shrunk with area averaging, as ``harvest`` shrinks a labelled box to the window, and its
+        windows are scored at the window's own size, as training scored the patches."""
+        import cv2
+
+        gray, up = self._enlarged(gray)
+        ih, iw = gray.shape
+        levels = self._levels((iw, ih), up)
+        windows = sum(len(lv.xs) * len(lv.ys) for lv in levels)
+        if not windows:
+            return np.zeros((0, 4)), np.zeros(0), 0, 0
+        out_x, out_y, out_s, out_scale = self._work.out(windows)
+        rules = (SIGMA_FLOOR, self.min_var, self.normalize)
+        trees_and_exits = (self.node_features, self.split_bounds, self.leaf_values, self.exits,
+                           self.cutoff, self.bound)
+        scan = scan_scale_numpy if use_numpy else _kernels.scan_scale
+        kept = trees = 0
+        for i, lv in enumerate(levels):
+            level = gray
+            if lv.size != (iw, ih):
+                level = cv2.resize(np.ascontiguousarray(gray), lv.size, interpolation=cv2.INTER_AREA)
+            if lv.pad:
+                level = self._work.padded(level, lv.pad)
+            if self.channels is None:
+                ii, sq = frame_integrals(level, self._work.tables(level.shape))
+            else:
+                from detector.features import N_CHANNELS
+
+                ii, sq = channel_frame_integrals(level, self._work.tables(level.shape, N_CHANNELS))
+            plan = lv.plan
+            k, t = scan(ii, sq, lv.size[0] + 2 * lv.pad + 1, lv.xs, lv.ys, plan.win, plan.inv_area,
+                        *rules, plan.offsets, plan.weights, plan.counts, plan.consts,
+                        *trees_and_exits, out_x[kept:], out_y[kept:], out_s[kept:])
+            out_scale[kept:kept + k] = i
+            kept, trees = kept + int(k), trees + int(t)
+        scores = detection_scores(self.model, out_s[:kept])
+        keep = np.flatnonzero(scores >= self.threshold)
+        index = out_scale[keep]
+        pads = np.array([lv.pad for lv in levels], np.float64)[index]
+        factors = np.array([lv.factor for lv in levels], np.float64).reshape(-1, 2)[index]
+        W, H = self.window
+        boxes = np.empty((len(keep), 4))
+        boxes[:, 0] = (out_x[keep] - pads) * factors[:, 0] / up
+        boxes[:, 1] = (out_y[keep] - pads) * factors[:, 1] / up
+        boxes[:, 2] = W * factors[:, 0] / up
+        boxes[:, 3] = H * factors[:, 1] / up
+        return boxes, out_s[keep].copy(), windows, trees
+
+    def _run(self, gray, use_numpy: bool = False):
+        """Run the kernel (or its numpy twin) over one frame: ``(grid, up, outputs, scores, kept,
+        trees)``, the windows kept being the first ``kept`` entries of the four ``outputs`` (x, y,
+        raw score, scale index; :meth:`_Workspace.out`), in window order, and ``scores`` their
+        detection scores, every one at least the threshold; ``grid`` None when the frame has no
+        window."""
+        gray, up = self._enlarged(gray)
         ih, iw = gray.shape
         grid = self._grid((iw, ih), up)
         pad = grid.pad
@@ -892,8 +1014,8 @@ class Engine:
         the windows kept into detections in one compiled call (:func:`detector.scan._kernels.finish`):
         the two dozen numpy calls of that way cost a tenth of a small frame's scan.
         """
-        if use_numpy:
-            wboxes, raw, windows, trees = self.candidates(gray, use_numpy=True)
+        if use_numpy or self.pyramid:
+            wboxes, raw, windows, trees = self.candidates(gray, use_numpy=use_numpy)
             boxes, scores = self.detections(wboxes, raw, image_size=gray.shape[::-1])
             return FrameResult(boxes, scores, windows, trees)
         grid, up, (out_x, out_y, out_s, out_scale), scores, kept, trees = self._run(gray)
