@@ -95,6 +95,22 @@ class _Rate(TextColumn):
         return Text(f"{rate:6.1f} {self.unit}/s")
 
 
+def channels_option():
+    """``--channels``, declared once for ``train`` and ``tune`` (the default is train's)."""
+    from detector.training import DEFAULT_TRAIN
+
+    return typer.Option(DEFAULT_TRAIN["channels"], "--channels", help="Features the pool draws: gradient (half of the pool as rectangles and rectangle differences over the gradient magnitude and six orientation channels, the rest grey rectangle differences; scanned on an image pyramid) or grey (rectangle differences of the grey image only; scanned by scaling the rectangles, faster on busy frames).")
+
+
+def check_channels_option(value: str) -> str:
+    """The ``--channels`` value, or a usage error naming the choices."""
+    from detector.features import CHOICES
+
+    if value not in CHOICES:
+        raise typer.BadParameter(f"--channels must be {' or '.join(CHOICES)}, got {value!r}")
+    return value
+
+
 @contextlib.contextmanager
 def progress_bar(description: str, total: int | None = None, unit: str = "items"):
     """A progress bar on stderr with rate and time left; yields ``update(done, total=None)``.

@@ -72,7 +72,8 @@ def demo(
          f"{c['background']} background patches -> {human_path(bank_path)}")
 
     echo(f"[3/5] training {trees} {mode} trees with {mine_rounds} mining round(s)")
-    params = dict(n_trees=trees, depth=2, mode=mode, pool=pool, random_state=seed, n_jobs=jobs)
+    params = dict(n_trees=trees, depth=2, mode=mode, pool=pool, random_state=seed, n_jobs=jobs,
+                  channels=DEFAULT_TRAIN["channels"])
 
     def report(r, found, counts):
         what = "first model" if r == 0 else f"after round {r}"

@@ -8,9 +8,9 @@ from typing import Optional
 
 import typer
 
-from cli.common import (check_not_an_input, check_output_file, echo, given, human_path,
+from cli.common import (channels_option, check_channels_option, check_not_an_input,
+                        check_output_file, echo, given, human_path,
                         progress_bar, usage_error)
-from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.harvest import load_bank, save_bank
 from detector.io.labels import read_labels
 from detector.model import save_model
@@ -36,7 +36,7 @@ def train(
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
     sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
     exit_recall: float = typer.Option(0.995, "--exit-recall", min=0.5, max=1.0, help="Share of held-out object patches that must survive every early exit."),
-    channels: str = typer.Option("grey", "--channels", help="Features the pool draws: grey (rectangle differences of the grey image) or gradient (half of the pool as rectangles and rectangle differences over the gradient magnitude and six orientation channels)."),
+    channels: str = channels_option(),
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the model does not depend on it)."),
@@ -53,8 +53,7 @@ def train(
     """Grow a forest of shallow trees on the bank's patches and write the model file."""
     if mode not in ("bagged", "boosted"):
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
-    if channels not in CHANNEL_CHOICES:
-        raise typer.BadParameter(f"--channels must be {' or '.join(CHANNEL_CHOICES)}, got {channels!r}")
+    check_channels_option(channels)
     if (mine_images is None) != (mine_labels is None):
         raise typer.BadParameter("--mine-images and --mine-labels go together")
     unused = [option for name, option in MINING_OPTIONS.items() if given(ctx, name)]

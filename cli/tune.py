@@ -9,7 +9,8 @@ from typing import Optional
 
 import typer
 
-from cli.common import echo, human_path, parse_window_option, progress_bar
+from cli.common import (channels_option, check_channels_option, echo, human_path,
+                        parse_window_option, progress_bar)
 from detector.errors import InputError
 from detector.io.files import write_text
 from detector.harvest import save_bank
@@ -77,6 +78,7 @@ def tune(
     pool: str = typer.Option("1000..20000", "--pool", help="Feature pool size: a value or a range LOW..HIGH (log scale; capped at the features the window holds)."),
     features_per_node: str = typer.Option("10..300", "--features-per-node", help="Pool features tried at every node: a value or a range LOW..HIGH (log scale; capped at the pool)."),
     sample_fraction: str = typer.Option("0.3..1", "--sample-fraction", help="Bootstrap or subsample fraction: a value or a range LOW..HIGH within 0.01..1."),
+    channels: str = channels_option(),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     copies: int = typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
@@ -94,6 +96,7 @@ def tune(
     some images and is scored by the AP50 of its detections on the others."""
     started = time.perf_counter()
     size = parse_window_option(window)
+    check_channels_option(channels)
     space = SearchSpace(
         trees=parse_range(trees, int, "--trees", low=1, high=10000),
         depth=parse_range(depth, int, "--depth", low=1, high=TRAIN_MAX_DEPTH),
@@ -142,7 +145,7 @@ def tune(
 
     result = search(fold_data, space=space, trials=trials, budget_seconds=60.0 * budget_minutes,
                     seed=seed, started=started, settings=settings, mine_rounds=mine_rounds,
-                    n_jobs=jobs, on_trial=report)
+                    n_jobs=jobs, on_trial=report, channels=channels)
     plot_trials(files[PLOT_FILE], result.trials, modes=space.modes)
     echo(f"wrote {human_path(files[TRIALS_FILE])} and {human_path(files[PLOT_FILE])}")
     why = "trial limit reached" if result.stopped == "trials" else "time budget used"
@@ -153,7 +156,8 @@ def tune(
                          path=labels)
     command = train_command(best.values, human_path(files[BANK_FILE]),
                             human_path(out / "model.npz"), seed=seed, mine_rounds=mine_rounds,
-                            images_dir=human_path(images_dir), labels_path=human_path(labels))
+                            images_dir=human_path(images_dir), labels_path=human_path(labels),
+                            channels=channels)
     summary = {"trial": best.number, "parameters": best.values, "ap50_mean": best.mean,
                "ap50_per_fold": [float(a) for a in best.per_fold], "ap50_sd": best.spread,
                "folds": folds, "seed": seed, "trials": len(result.trials),

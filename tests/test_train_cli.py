@@ -24,7 +24,7 @@ from detector.io.images import read_gray
 from detector.io.labels import read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
-from detector.training import train_model
+from detector.training import DEFAULT_TRAIN, train_model
 from synthetic_images import render_scenario
 
 GROW = ["--trees", "10", "--pool", "500", "--mode", "bagged"]
@@ -84,7 +84,8 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     assert model.metadata["date"] == "1970-01-02"
     # the command trains what the library trains with the same parameters
     params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=None,
-                  sample_fraction=1.0, exit_recall=0.995, normalize=True, random_state=3, n_jobs=1)
+                  sample_fraction=1.0, exit_recall=0.995, normalize=True, random_state=3, n_jobs=1,
+                  channels=DEFAULT_TRAIN["channels"])
     lib, _ = train_model(load_bank(bank), params, bank_path=bank)
     for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
         np.testing.assert_array_equal(getattr(model, name), getattr(lib, name))
@@ -192,7 +193,8 @@ def first_round_recount(bank, test, settings, trees=10):
     first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_recall=0.995, normalize=True, random_state=0,
-                                                 n_jobs=1), bank_path=bank)
+                                                 n_jobs=1, channels=DEFAULT_TRAIN["channels"]),
+                         bank_path=bank)
     return recount(first, test, settings)
 
 

@@ -35,7 +35,7 @@ from detector.io.images import read_gray
 from detector.io.labels import ImageLabels, read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
-from detector.training import train_model
+from detector.training import DEFAULT_TRAIN, train_model
 from detector.training import (EVALUATION_THRESHOLD, PARAMETERS, SearchSpace, bank_subset,
                                classifier_params, evaluate_params, image_folds, prepare_folds,
                                search, trials_columns)
@@ -224,8 +224,10 @@ def test_classifier_params_maps_the_option_words():
               "sample_fraction": 0.75}
     p = classifier_params(values, seed=5, exit_recall=0.99)
     assert p == dict(n_trees=7, depth=3, mode="boosted", pool=123, features_per_node=9,
-                     sample_fraction=0.75, exit_recall=0.99, random_state=5, n_jobs=None)
+                     sample_fraction=0.75, exit_recall=0.99, random_state=5, n_jobs=None,
+                     channels=DEFAULT_TRAIN["channels"])  # train's features by default
     PatchClassifier(**p)._check_parameters()  # every key is a classifier parameter
+    assert classifier_params(values, channels="grey")["channels"] == "grey"
 
 
 # --------------------------------------------------------------------------------------------

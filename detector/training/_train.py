@@ -52,7 +52,7 @@ def bank_to_xy(bank: PatchBank):
 #: ``patchwood train``'s model parameters unless told otherwise, in tune's words (``tune`` starts
 #: its search here). ``features_per_node`` None is the square root of the pool.
 DEFAULT_TRAIN = {"trees": 300, "depth": 2, "mode": "boosted", "pool": 20000,
-                 "features_per_node": None, "sample_fraction": 1.0}
+                 "features_per_node": None, "sample_fraction": 1.0, "channels": "gradient"}
 
 #: Hard-negative mining rounds of ``patchwood train`` unless told otherwise (chosen on the
 #: cross-data benchmark, ``benchmarks/cross_data.py``; README, "Speed and accuracy").

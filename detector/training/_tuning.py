@@ -39,6 +39,7 @@ from detector.harvest import PatchBank, harvest
 from detector.io.labels import csv_writer
 from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings
+from detector.training._train import DEFAULT_TRAIN
 
 __all__ = [
     "EVALUATION_THRESHOLD",
@@ -229,8 +230,10 @@ def prepare_folds(images_dir, items, k: int = 3, seed: int = 0, *, bank: PatchBa
 # the objective
 
 
-def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_recall: float = 0.995) -> dict:
-    """Tune's parameter words -> :class:`detector.classifier.PatchClassifier` parameters.
+def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_recall: float = 0.995,
+                      channels: str | None = None) -> dict:
+    """Tune's parameter words -> :class:`detector.classifier.PatchClassifier` parameters, with the
+    features ``channels`` (default: ``patchwood train``'s).
 
     >>> p = classifier_params({"trees": 50, "depth": 2, "mode": "bagged", "pool": 800,
     ...                        "features_per_node": 30, "sample_fraction": 0.5}, seed=3)
@@ -240,7 +243,8 @@ def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_recall: flo
     return dict(n_trees=int(values["trees"]), depth=int(values["depth"]), mode=str(values["mode"]),
                 pool=int(values["pool"]), features_per_node=int(values["features_per_node"]),
                 sample_fraction=float(values["sample_fraction"]), exit_recall=float(exit_recall),
-                random_state=int(seed), n_jobs=n_jobs)
+                random_state=int(seed), n_jobs=n_jobs,
+                channels=DEFAULT_TRAIN["channels"] if channels is None else str(channels))
 
 
 def _scan_settings(settings: ScanSettings | None, threshold: float) -> ScanSettings:
@@ -376,8 +380,6 @@ class SearchSpace:
         ...             features_per_node=(10, 300), sample_fraction=(0.3, 0.5)).start()
         {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 20, 'sample_fraction': 0.5}
         """
-        from detector.training._train import DEFAULT_TRAIN
-
         d = dict(DEFAULT_TRAIN if defaults is None else defaults)
 
         def clip(value, pair):
@@ -472,7 +474,7 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
            budget_seconds: float = 600.0, seed: int = 0, started: float | None = None,
            settings: ScanSettings | None = None, mine_rounds: int = 0,
            mining_threshold: float = MINING_THRESHOLD, exit_recall: float = 0.995,
-           n_jobs=None, on_trial=None) -> SearchResult:
+           n_jobs=None, on_trial=None, channels: str | None = None) -> SearchResult:
     """Bayesian search (Optuna's seeded TPE sampler) for the parameters of best mean AP50. The first
     trial is ``patchwood train``'s defaults moved into the ranges (:meth:`SearchSpace.start`).
 
@@ -495,8 +497,8 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
         include its harvest in the budget.
     settings, mine_rounds, mining_threshold :
         See :func:`fold_average_precision`.
-    exit_recall, n_jobs :
-        Passed to every classifier.
+    exit_recall, n_jobs, channels :
+        Passed to every classifier (:func:`classifier_params`).
     on_trial : callable(TrialRecord, SearchResult), optional
         Called after every trial (for a progress line).
 
@@ -539,7 +541,8 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
             trial = study.ask()
             values = effective_values(space.suggest(trial), window)
             begun = time.perf_counter()
-            params = classifier_params(values, seed=seed, n_jobs=n_jobs, exit_recall=exit_recall)
+            params = classifier_params(values, seed=seed, n_jobs=n_jobs, exit_recall=exit_recall,
+                                       channels=channels)
             mean, per_fold = evaluate_params(folds, params, settings=settings,
                                              mine_rounds=mine_rounds,
                                              mining_threshold=mining_threshold)
@@ -659,19 +662,23 @@ def plot_trials(path, records, modes=("bagged", "boosted")) -> None:
 
 
 def train_command(values: dict, bank_path, model_path, seed: int = 0, mine_rounds: int = 0,
-                  images_dir=None, labels_path=None) -> str:
-    """A ready-to-run ``patchwood train`` line for ``values`` (paths quoted for a POSIX shell).
+                  images_dir=None, labels_path=None, channels: str | None = None) -> str:
+    """A ready-to-run ``patchwood train`` line for ``values`` (paths quoted for a POSIX shell),
+    with the features ``channels`` (default: ``patchwood train``'s).
 
     >>> train_command({"trees": 80, "depth": 2, "mode": "boosted", "pool": 5000,
-    ...                "features_per_node": 70, "sample_fraction": 0.8}, "b.npz", "m.npz", seed=1)
-    'patchwood train b.npz --out m.npz --trees 80 --depth 2 --mode boosted --pool 5000 --features-per-node 70 --sample-fraction 0.8 --seed 1 --mine-rounds 0'
+    ...                "features_per_node": 70, "sample_fraction": 0.8}, "b.npz", "m.npz", seed=1,
+    ...               channels="grey")
+    'patchwood train b.npz --out m.npz --trees 80 --depth 2 --mode boosted --pool 5000 --features-per-node 70 --sample-fraction 0.8 --channels grey --seed 1 --mine-rounds 0'
     """
     q = shlex.quote
     parts = ["patchwood", "train", q(os.fspath(bank_path)), "--out", q(os.fspath(model_path)),
              "--trees", str(int(values["trees"])), "--depth", str(int(values["depth"])),
              "--mode", str(values["mode"]), "--pool", str(int(values["pool"])),
              "--features-per-node", str(int(values["features_per_node"])),
-             "--sample-fraction", f"{float(values['sample_fraction']):g}", "--seed", str(int(seed))]
+             "--sample-fraction", f"{float(values['sample_fraction']):g}",
+             "--channels", DEFAULT_TRAIN["channels"] if channels is None else str(channels),
+             "--seed", str(int(seed))]
     parts += ["--mine-rounds", str(int(mine_rounds))]
     if mine_rounds:
         parts += ["--mine-images", q(os.fspath(images_dir)), "--mine-labels", q(os.fspath(labels_path))]
