@@ -362,11 +362,14 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         n_pool, n = len(pool), len(patches)
         bins = np.empty((n_pool, n), np.uint8)
         cuts = None
+        # the channel images of the patches, made once for every block
+        made = (_features.patch_channels(patches)
+                if channels is not None and np.any(channels) else None)
         for a in range(0, n_pool, VALUE_BLOCK):
             b = min(n_pool, a + VALUE_BLOCK)
             block = _features.evaluate_features(
                 pool[a:b], patches, normalize=bool(self.normalize), transpose=True,
-                channels=None if channels is None else channels[a:b])
+                channels=None if channels is None else channels[a:b], channel_images=made)
             block_cuts, n_cuts = quantile_cuts(block.T, int(self.max_bins), random_state=bin_ss)
             bin_columns(block.T, block_cuts, n_cuts, n_jobs=self.n_jobs)
             if cuts is None:

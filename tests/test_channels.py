@@ -129,6 +129,13 @@ def test_channel_features_compiled_equal_numpy_twin(normalize, transpose):
     order = rng.permutation(600)
     c = evaluate_features(features[order], patches, channels=channels[order], normalize=normalize)
     np.testing.assert_array_equal(c, (a.T if transpose else a)[:, order])
+    # channel images made once and passed in (as training does block by block): the same values
+    made = patch_channels(patches)
+    d = evaluate_features(features, patches, channels=channels, normalize=normalize,
+                          transpose=transpose, channel_images=made)
+    np.testing.assert_array_equal(d, a)
+    with pytest.raises(InputError, match="channel images must have shape"):
+        evaluate_features(features, patches, channels=channels, channel_images=made[:-1])
 
 
 def test_channel_feature_value_by_hand():

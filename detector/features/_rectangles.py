@@ -540,7 +540,8 @@ def _check_out(out, shape):
 
 
 def evaluate_features(features, patches=None, *, integrals=None, squared=None, normalize=True,
-                      out=None, transpose=False, channels=None) -> np.ndarray:
+                      out=None, transpose=False, channels=None,
+                      channel_images=None) -> np.ndarray:
     """Values of F features on N patches at once (compiled loop).
 
     Raw value (``normalize=False``): ``sum_i weight_i * S_i``, with ``S_i`` the pixel sum of
@@ -578,6 +579,9 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
         on channel c >= 1 sums its rectangles over that channel, made from each 8-bit patch with
         its border repeated; normalised, its value is ``sum_i weight_i * S_i / (max(sigma,
         SIGMA_FLOOR) * A_window)`` with the grey patch's ``sigma`` (no mean is subtracted).
+    channel_images : (N, 7, h, w) ndarray of uint8, optional
+        ``patch_channels(patches)``, when already at hand (training evaluates its pool block by
+        block on the same patches).
 
     Returns
     -------
@@ -605,7 +609,7 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
         return out
     if channels is not None:
         _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
-                             transpose)
+                             transpose, channel_images)
     else:
         _evaluate(features, patches, integrals, squared, normalize, out, transpose)
     return out
@@ -628,14 +632,16 @@ def _grey_patches(patches, integrals, squared):
 
 
 def _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
-                         transpose):
+                         transpose, made=None):
     """:func:`evaluate_features` for features on several channels: each channel's block of
     features on its own channel images (a channel feature's value is its rectangles' weighted sum
     over the channel, divided by the grey patch's ``max(sigma, SIGMA_FLOOR) * area``: no mean is
     subtracted, a gradient has none)."""
     patches, (mean, scale) = _grey_patches(patches, integrals, squared)
     n = len(patches)
-    made = None
+    if made is not None and made.shape != (n, N_CHANNELS - 1) + patches.shape[1:]:
+        raise InputError(f"channel images must have shape {(n, N_CHANNELS - 1) + patches.shape[1:]}"
+                         f", got {made.shape}")
     for c in np.unique(channels):
         idx = np.flatnonzero(channels == c)
         contiguous = int(idx[-1] - idx[0] + 1) == len(idx)

@@ -58,8 +58,10 @@ DEFAULT_TRAIN = {"trees": 300, "depth": 2, "mode": "boosted", "pool": 20000,
 #: cross-data benchmark, ``benchmarks/cross_data.py``; README, "Speed and accuracy").
 DEFAULT_MINE_ROUNDS = 2
 #: The models that only mine (every round but the last) grow this share of the trees: they need to
-#: find false alarms, not to rank them finely, and growing dominates training time.
+#: find false alarms, not to rank them finely, and their training time goes on feature values and growing.
 MINE_TREE_SHARE = 0.25
+#: ... from the same share of the feature pool, but no fewer features than this.
+MINE_POOL_MIN = 2000
 
 
 def mining_source(bank: PatchBank, bank_path=None):
@@ -86,15 +88,21 @@ def mining_source(bank: PatchBank, bank_path=None):
 
 
 def mining_params(params: dict, share: float = MINE_TREE_SHARE) -> dict:
-    """The parameters of a model that only mines: ``share`` of the trees (at least 10).
+    """The parameters of a model that only mines: ``share`` of the trees (at least 10) drawn from
+    ``share`` of the feature pool (at least :data:`MINE_POOL_MIN` features): computing the pool's
+    values on every patch is most of a model's training time.
 
-    >>> mining_params({"n_trees": 200, "mode": "boosted"})
-    {'n_trees': 50, 'mode': 'boosted'}
-    >>> mining_params({"n_trees": 12})["n_trees"]
-    10
+    >>> mining_params({"n_trees": 200, "mode": "boosted", "pool": 20000})
+    {'n_trees': 50, 'mode': 'boosted', 'pool': 5000}
+    >>> p = mining_params({"n_trees": 12, "pool": 1500}); p["n_trees"], p["pool"]
+    (10, 1500)
     """
     trees = params["n_trees"]
-    return {**params, "n_trees": max(min(trees, 10), int(round(trees * share)))}
+    out = {**params, "n_trees": max(min(trees, 10), int(round(trees * share)))}
+    if "pool" in params:
+        pool = int(params["pool"])
+        out["pool"] = max(min(pool, MINE_POOL_MIN), int(round(pool * share)))
+    return out
 
 
 def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_dir=None,
