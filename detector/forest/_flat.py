@@ -7,7 +7,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 __all__ = [
     "MODES", "MAX_DEPTH", "FlatForest", "float32_thresholds", "flatten_tree", "forest_leaves",
@@ -185,6 +184,7 @@ def flatten_tree(estimator, depth: int) -> tuple[np.ndarray, np.ndarray, np.ndar
 
     Examples
     --------
+    >>> from sklearn.tree import DecisionTreeClassifier
     >>> X = np.array([[0.0], [1.0], [2.0], [3.0]], np.float32)
     >>> t = DecisionTreeClassifier(max_depth=2).fit(X, [0, 0, 1, 1])
     >>> f, thr, leaves, m = flatten_tree(t, 2)

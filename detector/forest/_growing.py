@@ -9,7 +9,6 @@ from dataclasses import replace
 from functools import partial
 
 import numpy as np
-from sklearn.tree import DecisionTreeClassifier, DecisionTreeRegressor
 
 from detector._validation import check_choice, check_int, check_real, seed_sequence
 from detector.forest._flat import MAX_DEPTH, MODES, FlatForest, flatten_tree, forest_leaves
@@ -223,6 +222,8 @@ def grow_forest(
     if mode == "bagged":
         n_draw = max(1, int(round(fraction * n)))
         classes = y.astype(np.float64)
+        from sklearn.tree import DecisionTreeClassifier  # scikit-learn loads only to grow
+
         entropy_tree = partial(DecisionTreeClassifier, criterion="entropy")
 
         def fit_one(t):
@@ -256,6 +257,8 @@ def grow_forest(
             oob_error = float(np.mean(predicted != (y[seen] == 1)))
     else:
         signed = np.where(y == 1, 1.0, -1.0)
+        from sklearn.tree import DecisionTreeRegressor
+
         squared_tree = partial(DecisionTreeRegressor, criterion="squared_error")
         weights = np.ones(n, np.float64)
         n_sub = max(1, int(round(fraction * n)))
