@@ -174,8 +174,9 @@ def _adjust(patch: np.ndarray, gain: float, bias: float) -> np.ndarray:
     return np.clip(patch.astype(np.float32) * gain + bias, 0, 255).round().astype(np.uint8)
 
 
-def sample_background(gray, gt_boxes, window, margin, count, rng, max_iou=0.3,
-                      max_tries_factor=20):
+def sample_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
+                      count: int, rng: np.random.Generator, max_iou: float = 0.3,
+                      max_tries_factor: int = 20) -> tuple[np.ndarray, np.ndarray]:
     """Random background windows from one image whose reported box overlaps no labelled box.
 
     Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)`` with ``n <= count``.
@@ -204,7 +205,9 @@ def sample_background(gray, gt_boxes, window, margin, count, rng, max_iou=0.3,
     return np.stack(patches), np.asarray(boxes, np.float32)
 
 
-def sample_near_background(gray, gt_boxes, window, margin, per_box, rng, max_iou=0.3):
+def sample_near_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
+                           per_box: int, rng: np.random.Generator,
+                           max_iou: float = 0.3) -> tuple[np.ndarray, np.ndarray]:
     """Background windows close to the labelled boxes, where a detector goes wrong most: windows
     much smaller than a box inside it (a hole or a corner of the object) and windows much larger
     than it (the object with too much around it). Kept only when the reported box has IoU below
