@@ -11,6 +11,7 @@ import typer
 from cli.common import (channels_option, check_channels_option, check_not_an_input,
                         check_output_file, echo, given, human_path,
                         progress_bar, usage_error)
+from detector.cascade import EXIT_BUDGET
 from detector.harvest import load_bank, save_bank
 from detector.io.labels import read_labels
 from detector.model import save_model
@@ -35,7 +36,8 @@ def train(
     pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
     sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
-    exit_recall: float = typer.Option(0.995, "--exit-recall", min=0.5, max=1.0, help="Share of held-out object patches that must survive every early exit."),
+    exit_budget: float = typer.Option(EXIT_BUDGET, "--exit-budget", min=0.0, max=0.5, help="Share of the held-out object patches that the contrast gate and all the early exits together may give up: a larger budget lets background leave after fewer trees."),
+    exit_recall: Optional[float] = typer.Option(None, "--exit-recall", hidden=True),
     channels: str = channels_option(),
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
@@ -54,6 +56,10 @@ def train(
     if mode not in ("bagged", "boosted"):
         raise typer.BadParameter(f"--mode must be bagged or boosted, got {mode!r}")
     check_channels_option(channels)
+    if exit_recall is not None:
+        usage_error(f"--exit-recall is now --exit-budget, the share of held-out objects all the "
+                    f"exits together may give up: --exit-recall {exit_recall:g} is "
+                    f"--exit-budget {round(1.0 - exit_recall, 6):g}")
     if (mine_images is None) != (mine_labels is None):
         raise typer.BadParameter("--mine-images and --mine-labels go together")
     unused = [option for name, option in MINING_OPTIONS.items() if given(ctx, name)]
@@ -92,7 +98,7 @@ def train(
          f"of {b.window[0]}x{b.window[1]}")
     params = dict(n_trees=trees, depth=depth, mode=mode, pool=pool,
                   features_per_node=features_per_node, sample_fraction=sample_fraction,
-                  exit_recall=exit_recall, normalize=normalize, random_state=seed,
+                  exit_budget=exit_budget, normalize=normalize, random_state=seed,
                   n_jobs=jobs, channels=channels)
 
     def report(r, found, counts):

@@ -44,12 +44,18 @@ __all__ = [
     "calibrate_exit",
     "calibrate_contrast_gate",
     "calibrate_exit_table",
+    "EXIT_BUDGET",
     "EXIT_LEVELS",
     "exit_kept",
     "kept_objects",
     "order_for_early_exit",
     "trees_evaluated",
 ]
+
+#: Share of the held-out calibration objects that the contrast gate and all the exits together
+#: may give up (``patchwood train --exit-budget``), chosen by measurement (DEVELOPERS.md, "The
+#: early exit's budget"): a budget, not a rate each exit must keep.
+EXIT_BUDGET = 0.005
 
 #: What seeds a random draw here (as scikit-learn's ``random_state``).
 RandomState = int | np.random.SeedSequence | np.random.Generator | None
@@ -166,26 +172,26 @@ def fit_temperature(object_totals: ArrayLike, background_totals: ArrayLike) -> f
     return 1.0 if t < 1.0 + 1e-3 else round(t, 6)
 
 
-def calibrate_exit(running_scores: ArrayLike, exit_recall: float = 0.995,
+def calibrate_exit(running_scores: ArrayLike, exit_budget: float = EXIT_BUDGET,
                    background: ArrayLike | None = None,
                    lost: ArrayLike | None = None) -> np.ndarray:
     """Early-exit thresholds from the running scores of held-out object patches.
 
-    At most ``floor((1 - exit_recall) * N)`` objects are set aside (:func:`exit_kept`: the ones
+    At most ``floor(exit_budget * N)`` objects are set aside (:func:`exit_kept`: the ones
     with the lowest final score, or, given background windows, the ones that hold the exits down
     most); each threshold is the minimum running score, after that tree, of the objects kept,
     rounded down to float32 (the common
     approach for soft cascades; Bourdev and Brandt, CVPR 2005, calibrate a rejection trace on
     positives). A window is dropped after tree ``t`` when ``s_t < thresholds[t]``, so no kept object
-    is ever dropped and at most ``1 - exit_recall`` of the calibration objects are dropped over the
+    is ever dropped and at most ``exit_budget`` of the calibration objects are dropped over the
     whole cascade.
 
     Parameters
     ----------
     running_scores : ndarray of float64, shape (N, T)
         From :func:`forest_running_scores` on object patches.
-    exit_recall : float in (0, 1]
-        Fraction of calibration objects that must survive every exit.
+    exit_budget : float in [0, 1)
+        Share of the calibration objects that all the exits together may give up.
     background : ndarray (M, T), optional
         Running scores of background windows past the contrast gate (see :func:`exit_kept`).
     lost : boolean ndarray (N,), optional
@@ -199,18 +205,18 @@ def calibrate_exit(running_scores: ArrayLike, exit_recall: float = 0.995,
     Examples
     --------
     >>> r = np.array([[1, 2], [0, 3], [2, 1]], np.float32)   # final scores 2, 3, 1
-    >>> calibrate_exit(r, exit_recall=0.5).tolist()            # floor(0.5*3)=1 dropped: row 3
+    >>> calibrate_exit(r, exit_budget=0.5).tolist()            # floor(0.5*3)=1 dropped: row 3
     [0.0, 2.0]
     """
     r = np.asarray(running_scores, dtype=np.float64)
     if r.ndim != 2:
         raise ValueError("running_scores must be (N, T)")
-    if not 0.0 < exit_recall <= 1.0:
-        raise ValueError(f"exit_recall must be in (0, 1], got {exit_recall}")
+    if not 0.0 <= exit_budget < 1.0:
+        raise ValueError(f"exit_budget must be in [0, 1), got {exit_budget}")
     n, t = r.shape
     if n == 0:
         return np.full(t, -np.inf, np.float32)
-    return float32_thresholds(r[exit_kept(r, background, exit_recall, lost)].min(axis=0))
+    return float32_thresholds(r[exit_kept(r, background, exit_budget, lost)].min(axis=0))
 
 
 #: Trees at the front of the order whose exits :func:`exit_kept` tries to raise.
@@ -218,10 +224,10 @@ EXIT_SEARCH_TREES = 64
 
 
 def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = None,
-              exit_recall: float = 0.995, lost: ArrayLike | None = None,
+              exit_budget: float = EXIT_BUDGET, lost: ArrayLike | None = None,
               search_trees: int = EXIT_SEARCH_TREES) -> np.ndarray:
     """Which calibration objects the early exit keeps (a boolean mask): all but at most
-    ``floor((1 - exit_recall) * N)``, given up where that lets background windows exit soonest.
+    ``floor(exit_budget * N)``, given up where that lets background windows exit soonest.
 
     A soft cascade may spread the misses it is allowed over its stages (Bourdev and Brandt,
     CVPR 2005, call the spread a rejection distribution vector). Here the objects are given up
@@ -243,7 +249,7 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
         Running scores of the calibration objects.
     background_running : ndarray, shape (M, T), optional
         Running scores of background windows that pass the contrast gate.
-    exit_recall : float in (0, 1]
+    exit_budget : float in [0, 1)
     lost : boolean ndarray (N,), optional
         Objects lost anyway; never kept.
     search_trees : int
@@ -252,17 +258,17 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
     --------
     >>> r = np.array([[0., 6.], [2., 4.], [2., 5.], [3., 6.]])    # final scores 6, 4, 5, 6
     >>> bg = np.array([[1., 1.], [1., 1.], [1.5, 1.5], [5., 5.]])
-    >>> sorted(kept_objects(r[:, -1], 0.75).tolist())   # budget 1: the lowest final score goes
+    >>> sorted(kept_objects(r[:, -1], 0.25).tolist())   # budget 1: the lowest final score goes
     [0, 2, 3]
     >>> # giving up row 0 instead lifts the first exit from 0 to 2: three background windows
     >>> # leave after one tree (5 evaluations in all, against 8 with the plain rule's exits 0, 5)
-    >>> exit_kept(r, bg, 0.75).tolist()
+    >>> exit_kept(r, bg, 0.25).tolist()
     [False, True, True, True]
     """
     r = np.asarray(running_scores, dtype=np.float64)
     n, t = r.shape
     lost = np.zeros(n, bool) if lost is None else np.asarray(lost, dtype=bool).copy()
-    budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))
+    budget = min(int(np.floor(exit_budget * n + 1e-9)), max(n - 1, 0))
     if n and lost.all():
         lost[:] = False  # nothing would be left to calibrate on: keep every object
     # the plain rule: after the lost objects, the lowest final scores go while the budget lasts
@@ -333,7 +339,7 @@ EXIT_LEVELS = (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95)
 
 
 def calibrate_exit_table(running_scores: ArrayLike, final_scores: ArrayLike,
-                         exit_recall: float = 0.995, levels: Sequence[float] = EXIT_LEVELS,
+                         exit_budget: float = EXIT_BUDGET, levels: Sequence[float] = EXIT_LEVELS,
                          background: ArrayLike | None = None,
                          lost: ArrayLike | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Exit thresholds for scans at given score thresholds (direct backward pruning).
@@ -349,7 +355,7 @@ def calibrate_exit_table(running_scores: ArrayLike, final_scores: ArrayLike,
     running_scores : ndarray, shape (N, T)
     final_scores : ndarray, shape (N,)
         The objects' final scores in 0..1 (:func:`final_score` of the last running score).
-    exit_recall : float in (0, 1]
+    exit_budget : float in [0, 1)
     levels : sequence of float in 0..1, rising
     background, lost :
         As for :func:`calibrate_exit` (``lost`` indexes all N objects).
@@ -361,7 +367,7 @@ def calibrate_exit_table(running_scores: ArrayLike, final_scores: ArrayLike,
     Examples
     --------
     >>> r = np.array([[1, 2], [0, 3], [2, 1]], np.float64)      # final scores 0.9, 0.95, 0.2
-    >>> lv, tab = calibrate_exit_table(r, np.array([0.9, 0.95, 0.2]), 1.0, levels=(0.5, 0.99))
+    >>> lv, tab = calibrate_exit_table(r, np.array([0.9, 0.95, 0.2]), 0.0, levels=(0.5, 0.99))
     >>> lv.tolist(), tab.tolist()        # level 0.5 keeps rows 1 and 2: minima 0 and 2
     ([0.5], [[0.0, 2.0]])
     """
@@ -373,26 +379,26 @@ def calibrate_exit_table(running_scores: ArrayLike, final_scores: ArrayLike,
         if not sel.any():
             break
         out_levels.append(level)
-        rows.append(calibrate_exit(r[sel], exit_recall, background,
+        rows.append(calibrate_exit(r[sel], exit_budget, background,
                                    None if lost is None else np.asarray(lost, bool)[sel]))
     t = r.shape[1]
     return (np.asarray(out_levels, np.float32),
             np.asarray(rows, np.float32).reshape(len(rows), t))
 
 
-def kept_objects(final_scores: ArrayLike, exit_recall: float = 0.995) -> np.ndarray:
+def kept_objects(final_scores: ArrayLike, exit_budget: float = EXIT_BUDGET) -> np.ndarray:
     """Indices of the calibration objects the early exit promises to keep: all but the
-    ``floor((1 - exit_recall) * N)`` with the lowest final score (at least one is kept).
+    ``floor(exit_budget * N)`` with the lowest final score (at least one is kept).
 
     Examples
     --------
     >>> # floor(0.5 * 4) = 2 given up: the final scores 0.5 and 1.0; the rest in rising order
-    >>> kept_objects(np.array([2.0, 3.0, 1.0, 0.5]), exit_recall=0.5).tolist()
+    >>> kept_objects(np.array([2.0, 3.0, 1.0, 0.5]), exit_budget=0.5).tolist()
     [0, 1]
     """
     final = np.asarray(final_scores, dtype=np.float64)
     n = len(final)
-    n_drop = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))
+    n_drop = min(int(np.floor(exit_budget * n + 1e-9)), max(n - 1, 0))
     return np.argsort(final, kind="stable")[n_drop:]
 
 
@@ -403,7 +409,7 @@ def kept_objects(final_scores: ArrayLike, exit_recall: float = 0.995) -> np.ndar
 CONTRAST_GATE_VARIANCE_FRACTION = 0.5
 
 
-def calibrate_contrast_gate(sigmas: ArrayLike, final_scores: ArrayLike, exit_recall: float = 0.995,
+def calibrate_contrast_gate(sigmas: ArrayLike, final_scores: ArrayLike, exit_budget: float = EXIT_BUDGET,
                             variance_fraction: float = CONTRAST_GATE_VARIANCE_FRACTION) -> float:
     """The lowest grey-level standard deviation a window may have and still be scored.
 
@@ -419,7 +425,7 @@ def calibrate_contrast_gate(sigmas: ArrayLike, final_scores: ArrayLike, exit_rec
         per window: population standard deviation of the pixels).
     final_scores : array_like, shape (N,)
         Their running score after the last tree.
-    exit_recall : float in (0, 1]
+    exit_budget : float in [0, 1)
     variance_fraction : float in [0, 1]
 
     Returns
@@ -438,11 +444,11 @@ def calibrate_contrast_gate(sigmas: ArrayLike, final_scores: ArrayLike, exit_rec
         return 0.0
     if not 0.0 <= variance_fraction <= 1.0:
         raise ValueError(f"variance_fraction must be in [0, 1], got {variance_fraction}")
-    return float(sig[kept_objects(final_scores, exit_recall)].min() * math.sqrt(variance_fraction))
+    return float(sig[kept_objects(final_scores, exit_budget)].min() * math.sqrt(variance_fraction))
 
 
 def order_for_early_exit(object_leaves: ArrayLike, background_leaves: ArrayLike,
-                         exit_recall: float = 0.995) -> np.ndarray:
+                         exit_budget: float = EXIT_BUDGET) -> np.ndarray:
     """A tree order that drops background windows as early as the exit rule allows.
 
     The final score is a sum over trees, so any order gives the same scores; only the early exit
@@ -457,7 +463,7 @@ def order_for_early_exit(object_leaves: ArrayLike, background_leaves: ArrayLike,
         Leaf value each held-out object patch gets from each tree.
     background_leaves : ndarray, shape (N_b, T)
         The same for background patches.
-    exit_recall : float in (0, 1]
+    exit_budget : float in [0, 1)
 
     Returns
     -------
@@ -468,30 +474,32 @@ def order_for_early_exit(object_leaves: ArrayLike, background_leaves: ArrayLike,
     --------
     >>> obj = np.array([[1.0, 1.0, 1.0], [1.0, 1.0, 1.0]])
     >>> bg = np.array([[1.0, 1.0, 0.0], [1.0, 0.0, 1.0], [1.0, 0.0, 0.0]])
-    >>> order_for_early_exit(obj, bg, exit_recall=1.0).tolist()   # tree 1 drops 2, then tree 2 drops 1
+    >>> order_for_early_exit(obj, bg, exit_budget=0.0).tolist()   # tree 1 drops 2, then tree 2 drops 1
     [1, 2, 0]
     """
-    o, b = _ordering_inputs(object_leaves, background_leaves, exit_recall)
+    o, b = _ordering_inputs(object_leaves, background_leaves, exit_budget)
     if o is None:
         return np.arange(np.shape(object_leaves)[1])
     return greedy_order(np.ascontiguousarray(o), np.ascontiguousarray(b))
 
 
-def _ordering_inputs(object_leaves, background_leaves, exit_recall):
+def _ordering_inputs(object_leaves, background_leaves, exit_budget):
     """float64 leaves of the objects the ordering keeps (all but the lowest sums the exit may give
     up) and of the background; ``(None, None)`` when either is empty."""
     o = np.asarray(object_leaves, dtype=np.float64)
     b = np.asarray(background_leaves, dtype=np.float64)
     if len(o) == 0 or len(b) == 0:
         return None, None
-    n_drop = min(int(np.floor((1.0 - exit_recall) * len(o) + 1e-9)), len(o) - 1)
+    if not 0.0 <= exit_budget < 1.0:
+        raise ValueError(f"exit_budget must be in [0, 1), got {exit_budget}")
+    n_drop = min(int(np.floor(exit_budget * len(o) + 1e-9)), len(o) - 1)
     return o[np.argsort(o.sum(axis=1), kind="stable")[n_drop:]], b
 
 
-def _order_for_early_exit_numpy(object_leaves, background_leaves, exit_recall: float = 0.995):
+def _order_for_early_exit_numpy(object_leaves, background_leaves, exit_budget: float = EXIT_BUDGET):
     """Plain-numpy form of :func:`order_for_early_exit` (the tests hold the compiled loop equal to
     it)."""
-    o, b = _ordering_inputs(object_leaves, background_leaves, exit_recall)
+    o, b = _ordering_inputs(object_leaves, background_leaves, exit_budget)
     T = np.shape(object_leaves)[1]
     if o is None:
         return np.arange(T)
@@ -565,7 +573,7 @@ class Cascade:
 
 
 def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, objects: np.ndarray,
-              background: np.ndarray, *, exit_recall: float = 0.995, shift: float = 1.0,
+              background: np.ndarray, *, exit_budget: float = EXIT_BUDGET, shift: float = 1.0,
               scale: float = 1.1, contrast_gate: bool = True,
               random_state: RandomState = None) -> Cascade:
     """Calibrate the early exit of a grown forest.
@@ -580,8 +588,9 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
         Object patches held out from growing (K may be 0: no exits, no gate, temperature 1).
     background : ndarray of uint8, shape (M, h, w)
         Background patches (those of growing).
-    exit_recall : float in (0, 1]
-        Share of the calibration objects (copies included) that must pass every exit.
+    exit_budget : float in [0, 1)
+        Share of the calibration objects (copies included) that the contrast gate and all the
+        exits together may give up (:data:`EXIT_BUDGET` by default).
     shift, scale : float
         How far the misaligned copies of each object may be off (:func:`misaligned_copies`).
     contrast_gate : bool
@@ -594,17 +603,17 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
     >>> leaves = lambda p: np.c_[p[:, 0, 0] > 100, p[:, 0, 1] > 100].astype(np.float32)
     >>> obj = np.full((8, 4, 4), 200, np.uint8); obj[:, 1:] = 0
     >>> bg = np.zeros((8, 4, 4), np.uint8); bg[:, 2:] = 90
-    >>> c = calibrate(leaves, "bagged", obj, bg, exit_recall=1.0, shift=0.0, scale=1.0,
+    >>> c = calibrate(leaves, "bagged", obj, bg, exit_budget=0.0, shift=0.0, scale=1.0,
     ...               random_state=0)
     >>> c.order.tolist(), c.exit_thresholds.tolist()    # objects score 1 then 2, background 0
     ([0, 1], [1.0, 2.0])
     >>> c.min_sigma > 45.0, c.report["background_dropped_by_contrast_gate"]   # background sigma 45
     (True, 1.0)
-    >>> calibrate(leaves, "bagged", obj, bg, exit_recall=1.0, shift=0.0, scale=1.0,
+    >>> calibrate(leaves, "bagged", obj, bg, exit_budget=0.0, shift=0.0, scale=1.0,
     ...           contrast_gate=False, random_state=0).report["mean_trees_background"]
     1.0
     """
-    recall = float(exit_recall)
+    share = float(exit_budget)
     bg_leaf = leaf_scores(background)
     n_trees = bg_leaf.shape[1]
     # leaf values once; running scores in any tree order are their cumulative sums
@@ -622,7 +631,7 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
         cal_leaf = leaf_scores(calibration)
         running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
         cal_sigma = window_sigma(calibration)
-        gate = calibrate_contrast_gate(cal_sigma, running[:, -1], recall) if contrast_gate else 0.0
+        gate = calibrate_contrast_gate(cal_sigma, running[:, -1], share) if contrast_gate else 0.0
         lost = cal_sigma < gate  # dropped by the gate: they count against the exit's budget
         # the background windows the exit calibration counts trees on: those of the ordering
         # sample that pass the gate
@@ -638,21 +647,21 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
         at = final_score(mode, running[:, -1], n_trees, temperature) >= np.float32(ORDER_LEVEL)
         if not at.any():
             at[:] = True
-        keep = exit_kept(running[at], None, recall, lost[at])
+        keep = exit_kept(running[at], None, share, lost[at])
         for _ in range(EXIT_ORDER_ROUNDS):
             step_order = order_for_early_exit(cal_leaf[at][keep].astype(np.float64),
-                                              bg_leaf[::step].astype(np.float64), 1.0)
+                                              bg_leaf[::step].astype(np.float64), 0.0)
             order = order[step_order]
             cal_leaf, bg_leaf = cal_leaf[:, step_order], bg_leaf[:, step_order]
             running = np.cumsum(cal_leaf, axis=1, dtype=np.float64)
             bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)
-            keep = exit_kept(running[at], bg_running[past_gate], recall, lost[at])
+            keep = exit_kept(running[at], bg_running[past_gate], share, lost[at])
         exits = float32_thresholds(
-            running[exit_kept(running, bg_running[past_gate], recall, lost)].min(axis=0))
+            running[exit_kept(running, bg_running[past_gate], share, lost)].min(axis=0))
         mean_objects = float(trees_evaluated(running, exits).mean())
         levels, table = calibrate_exit_table(
             running, final_score(mode, running[:, -1], n_trees, temperature),
-            recall, background=bg_running[past_gate], lost=lost)
+            share, background=bg_running[past_gate], lost=lost)
     bg_gated = bg_sigma < gate
     mean_background = float(np.where(bg_gated, 0, trees_evaluated(bg_running, exits)).mean())
     report = {

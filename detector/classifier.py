@@ -22,7 +22,7 @@ from sklearn.utils.validation import check_is_fitted
 from detector import features as _features
 from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.errors import InputError
-from detector.cascade import calibrate, calibration_count
+from detector.cascade import EXIT_BUDGET, calibrate, calibration_count
 from detector.forest import (GROWERS, MAX_DEPTH, MODES, bin_columns, final_score, grow_forest,
                              quantile_cuts, seed_sequence, thresholds_from_bins)
 from detector.model import Model, library_versions, training_date
@@ -84,8 +84,9 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         Bootstrap size (bagged) or per-stage subsample (boosted), as a fraction of the patches.
     normalize : bool, default=True
         Contrast-normalise feature values per patch.
-    exit_recall : float in (0, 1], default=0.995
-        Fraction of held-out object patches that must pass every early exit.
+    exit_budget : float in [0, 1), default=EXIT_BUDGET
+        Share of the held-out object patches (and their copies) that the contrast gate and all
+        the early exits together may give up (:data:`detector.cascade.EXIT_BUDGET`).
     exit_shift : float >= 0, default=1.0
         The early exit is calibrated on every held-out object patch and on 8 copies of it shifted
         by up to this many pixels (at the window's size) along x and y, ...
@@ -148,7 +149,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         features_per_node=None,
         sample_fraction=1.0,
         normalize=True,
-        exit_recall=0.995,
+        exit_budget=EXIT_BUDGET,
         exit_shift=1.0,
         exit_scale=1.1,
         max_bins=256,
@@ -164,7 +165,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         self.features_per_node = features_per_node
         self.sample_fraction = sample_fraction
         self.normalize = normalize
-        self.exit_recall = exit_recall
+        self.exit_budget = exit_budget
         self.exit_shift = exit_shift
         self.exit_scale = exit_scale
         self.max_bins = max_bins
@@ -200,10 +201,12 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
         scale = self.exit_scale
         if isinstance(scale, bool) or not isinstance(scale, numbers.Real) or not 1.0 <= scale <= 2.0:
             raise InputError(f"exit_scale must be a number in [1, 2], got {scale!r}")
-        for name in ("sample_fraction", "exit_recall"):
-            v = getattr(self, name)
-            if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
-                raise InputError(f"{name} must be a number in (0, 1], got {v!r}")
+        v = self.sample_fraction
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
+            raise InputError(f"sample_fraction must be a number in (0, 1], got {v!r}")
+        v = self.exit_budget
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 <= v < 1.0:
+            raise InputError(f"exit_budget must be a number in [0, 1), got {v!r}")
 
     def fit(self, patches, y, *, progress=None, metadata=None, margin: float = 0.0):
         """Grow the forest on grey patches.
@@ -300,7 +303,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
             feature_channels=None if pool_channels is None else pool_channels[used],
         )
         cascade = calibrate(grown_model.leaf_scores, self.mode, patches[held],
-                            grow_patches[grow_y == 0], exit_recall=float(self.exit_recall),
+                            grow_patches[grow_y == 0], exit_budget=float(self.exit_budget),
                             shift=float(self.exit_shift), scale=float(self.exit_scale),
                             contrast_gate=bool(self.normalize), random_state=exit_ss)
         order = cascade.order
@@ -324,7 +327,7 @@ class PatchClassifier(ClassifierMixin, BaseEstimator):
                         "window": [int(width), int(height)]},
             "oob_error": forest.oob_error,
             "calibration": {
-                "exit_recall": float(self.exit_recall),
+                "exit_budget": float(self.exit_budget),
                 "objects": cascade.report["objects"],
                 "copies_per_object": cascade.report["copies_per_object"],
                 "shift": float(self.exit_shift),

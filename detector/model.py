@@ -66,7 +66,7 @@ from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores, tree_depth)
 
-__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe",
+__all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe", "exit_budget_of",
            "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
            "metadata_sha256"]
 
@@ -357,9 +357,9 @@ class Model:
         ee = d["early_exit"]
         cal = ee["calibration"]
         text = f"early exit: {ee['trees_with_exit']} of {d['trees']} trees have an exit threshold"
-        recall = _real(cal.get("exit_recall"))
-        if recall is not None:
-            text += (f", calibrated for recall {_plain(recall)} on "
+        budget = exit_budget_of(cal)
+        if budget is not None:
+            text += (f", calibrated to give up at most {_plain(round(100 * budget, 6))} % of "
                      f"{_plain(_real(cal.get('objects')) or 0)} held-out objects")
         if ee["levels"]:
             text += (f"; tighter exits for scan thresholds from {ee['levels'][0]:g} "
@@ -478,6 +478,20 @@ def metadata_sha256(model: Model) -> str:
     import hashlib
 
     return hashlib.sha256(metadata_text(model).encode("utf-8")).hexdigest()
+
+
+def exit_budget_of(calibration: dict) -> float | None:
+    """The exit budget a model's calibration record states: ``exit_budget``, or, in models
+    trained before the budget had that name, ``1 - exit_recall``; None when neither is a number.
+
+    >>> exit_budget_of({"exit_budget": 0.01}), exit_budget_of({"exit_recall": 0.995})
+    (0.01, 0.005)
+    """
+    budget = _real(calibration.get("exit_budget"))
+    if budget is None:
+        recall = _real(calibration.get("exit_recall"))
+        budget = None if recall is None else round(1.0 - recall, 12)
+    return budget
 
 
 def model_arrays(model: Model) -> dict[str, np.ndarray]:

@@ -84,8 +84,8 @@ MUTATIONS = (
     Mutation(
         "E1", "early exit: exit_kept gives up one calibration object more than the budget",
         "detector/cascade.py",
-        "budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)), max(n - 1, 0))",
-        "budget = min(int(np.floor((1.0 - exit_recall) * n + 1e-9)) + 1, max(n - 1, 0))",
+        "budget = min(int(np.floor(exit_budget * n + 1e-9)), max(n - 1, 0))",
+        "budget = min(int(np.floor(exit_budget * n + 1e-9)) + 1, max(n - 1, 0))",
         ("tests/test_early_exit.py", "tests/test_forest.py")),
     Mutation(
         "E2", "early exit: the compiled scan drops a window whose running score equals the exit",
@@ -108,8 +108,8 @@ MUTATIONS = (
     Mutation(
         "G1", "contrast gate: the variance fraction applied to the standard deviation",
         "detector/cascade.py",
-        "return float(sig[kept_objects(final_scores, exit_recall)].min() * math.sqrt(variance_fraction))",
-        "return float(sig[kept_objects(final_scores, exit_recall)].min() * variance_fraction)",
+        "return float(sig[kept_objects(final_scores, exit_budget)].min() * math.sqrt(variance_fraction))",
+        "return float(sig[kept_objects(final_scores, exit_budget)].min() * variance_fraction)",
         ("tests/test_early_exit.py",)),
     Mutation(
         "G2", "contrast gate: the scan compares the window variance with the gate unsquared",

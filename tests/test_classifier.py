@@ -76,7 +76,7 @@ def test_predictions_agree_with_each_other_and_the_model():
 
 def test_early_exit_keeps_the_calibration_objects():
     patches, y = _patches(n_objects=300, n_background=100, seed=3)
-    clf = PatchClassifier(n_trees=30, pool=300, exit_recall=0.98, random_state=0).fit(patches, y)
+    clf = PatchClassifier(n_trees=30, pool=300, exit_budget=0.02, random_state=0).fit(patches, y)
     held = clf.calibration_indices_
     assert len(held) == calibration_count(300) == 30 and (y[held] == 1).all()
     # the calibration set: every held-out object and 8 misaligned copies of it (seeded stream 5)
@@ -145,7 +145,7 @@ def test_pool_values_binned_in_blocks_equal_the_whole_pool_binned(monkeypatch):
         (dict(n_trees=0), "n_trees must be an integer >= 1"),
         (dict(depth=13), "depth must be an integer 1..12"),
         (dict(sample_fraction=0.0), "sample_fraction must be a number in (0, 1]"),
-        (dict(exit_recall=1.5), "exit_recall must be a number in (0, 1]"),
+        (dict(exit_budget=1.0), "exit_budget must be a number in [0, 1)"),
         (dict(pool=2.5), "pool must be an integer >= 1"),
         (dict(max_bins=1), "max_bins must be an integer 2..256"),
         (dict(grower="fast"), "grower must be one of sklearn, histogram"),

@@ -13,7 +13,7 @@ from detector.model import Model
 from shared import calibration_copies, top_bright
 
 
-def _dropped_after_first(o, b, t, exit_recall=1.0):
+def _dropped_after_first(o, b, t, exit_budget=0.0):
     thr = o[:, t].min()
     return int((b[:, t] < thr).sum())
 
@@ -24,7 +24,7 @@ def test_order_is_a_permutation_and_first_tree_drops_most(t, n_obj, n_bg, seed):
     rng = np.random.default_rng(seed)
     o = rng.integers(0, 5, (n_obj, t)).astype(float)
     b = rng.integers(0, 5, (n_bg, t)).astype(float)
-    order = order_for_early_exit(o, b, exit_recall=1.0)
+    order = order_for_early_exit(o, b, exit_budget=0.0)
     assert sorted(order.tolist()) == list(range(t))
     # brute force: no tree drops more background at step one than the one chosen
     best = max(_dropped_after_first(o, b, k) for k in range(t))
@@ -39,13 +39,13 @@ def test_reordering_keeps_scores_and_never_costs_trees_on_first_exit(t, seed):
     rng = np.random.default_rng(seed)
     o = rng.integers(0, 9, (20, t)) / 8
     b = rng.integers(0, 7, (50, t)) / 8
-    order = order_for_early_exit(o, b, exit_recall=1.0)
+    order = order_for_early_exit(o, b, exit_budget=0.0)
     # the final score is a sum: any order gives the same totals
     np.testing.assert_allclose(o[:, order].sum(axis=1), o.sum(axis=1))
     trees = {}
     for name, perm in (("given", np.arange(t)), ("greedy", order)):
         run_o = np.cumsum(o[:, perm], axis=1)
-        thr = calibrate_exit(run_o, 1.0)
+        thr = calibrate_exit(run_o, 0.0)
         # with exit thresholds calibrated for each order, no kept object is ever dropped
         assert (trees_evaluated(run_o, thr) == t).all()
         trees[name] = trees_evaluated(np.cumsum(b[:, perm], axis=1), thr)
@@ -59,7 +59,7 @@ def test_hand_worked_order():
     # tree 1 gives background rows 2 and 3 a 0 -> drops 2 windows; tree 2 then drops row 1.
     obj = np.ones((2, 3))
     bg = np.array([[1.0, 1.0, 0.0], [1.0, 0.0, 1.0], [1.0, 0.0, 0.0]])
-    assert order_for_early_exit(obj, bg, exit_recall=1.0).tolist() == [1, 2, 0]
+    assert order_for_early_exit(obj, bg, exit_budget=0.0).tolist() == [1, 2, 0]
 
 
 def test_misaligned_copies_follow_crop_region():
@@ -102,11 +102,11 @@ def test_misaligned_copies_follow_crop_region():
 
 def test_fitted_exit_keeps_every_kept_calibration_copy():
     patches, y = top_bright(0, 60, 120, spread=60, lift=150)
-    clf = PatchClassifier(n_trees=15, pool=400, exit_recall=1.0, random_state=0).fit(patches, y)
+    clf = PatchClassifier(n_trees=15, pool=400, exit_budget=0.0, random_state=0).fit(patches, y)
     m = clf.model_
     cal = calibration_copies(clf, patches)
     run = m.running_scores(cal)
-    # exit_recall 1.0: no calibration copy may be dropped by any exit
+    # exit budget 0: no calibration copy may be dropped by any exit
     assert (trees_evaluated(run, m.exit_thresholds) == m.n_trees).all()
     assert m.metadata["calibration"]["copies_per_object"] == 9
     # ... nor by the contrast gate: every copy's standard deviation (numpy's population std of its
@@ -118,37 +118,37 @@ def test_fitted_exit_keeps_every_kept_calibration_copy():
 
 
 @given(st.lists(st.tuples(st.floats(0, 100), st.floats(-10, 10)), min_size=1, max_size=40),
-       st.floats(0.5, 1.0), st.floats(0.0, 1.0))
+       st.floats(0.0, 0.5), st.floats(0.0, 1.0))
 @settings(max_examples=60, deadline=None)
-def test_contrast_gate_never_drops_a_kept_object(pairs, exit_recall, fraction):
+def test_contrast_gate_never_drops_a_kept_object(pairs, exit_budget, fraction):
     sig, fin = (np.array(v) for v in zip(*pairs))
-    gate = calibrate_contrast_gate(sig, fin, exit_recall, variance_fraction=fraction)
-    kept = kept_objects(fin, exit_recall)
+    gate = calibrate_contrast_gate(sig, fin, exit_budget, variance_fraction=fraction)
+    kept = kept_objects(fin, exit_budget)
     # the same objects calibrate_exit keeps: none of them falls below the gate ...
     assert (sig[kept] >= gate).all()
     # ... and the gate is the stated fraction of the lowest of them (variance fraction -> sqrt)
     assert gate == pytest.approx(np.sqrt(fraction) * sig[kept].min())
-    n_drop = int(np.floor((1 - exit_recall) * len(fin) + 1e-9))
+    n_drop = int(np.floor(exit_budget * len(fin) + 1e-9))
     assert len(kept) == len(fin) - min(n_drop, len(fin) - 1)
 
 
-@given(st.integers(1, 40), st.integers(1, 8), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+@given(st.integers(1, 40), st.integers(1, 8), st.floats(0.0, 0.5), st.integers(0, 2**32 - 1))
 @settings(max_examples=100, deadline=None)
-def test_exit_table_keeps_every_object_that_reaches_its_level(n, t, exit_recall, seed):
+def test_exit_table_keeps_every_object_that_reaches_its_level(n, t, exit_budget, seed):
     """Direct backward pruning (Zhang and Viola, NIPS 2007): at score level c, every calibration
     object that ends at or above c and that calibrate_exit keeps among those is never dropped."""
     rng = np.random.default_rng(seed)
     r = np.cumsum(rng.normal(size=(n, t)), axis=1)
     fin = 1 / (1 + np.exp(-r[:, -1]))
-    levels, table = calibrate_exit_table(r, fin, exit_recall)
+    levels, table = calibrate_exit_table(r, fin, exit_budget)
     assert table.shape == (len(levels), t)
     assert (np.diff(levels) > 0).all()
     for level, row in zip(levels, table):
         sel = fin >= np.float32(level)
         assert sel.any()  # a level is stored only while some object reaches it
-        kept = r[sel][kept_objects(fin[sel], exit_recall)]
+        kept = r[sel][kept_objects(fin[sel], exit_budget)]
         assert (trees_evaluated(kept, row) == t).all()
-        np.testing.assert_array_equal(row, calibrate_exit(r[sel], exit_recall))
+        np.testing.assert_array_equal(row, calibrate_exit(r[sel], exit_budget))
     # levels no object reaches are left out
     assert len(levels) == sum(bool((fin >= np.float32(v)).any()) for v in
                               (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95))
@@ -160,19 +160,19 @@ def _leaf_sums(rng, n, t, levels=3):
     return np.cumsum(rng.integers(0, levels, (n, t)).astype(np.float64), axis=1)
 
 
-@given(st.integers(1, 60), st.integers(1, 8), st.integers(0, 40), st.floats(0.5, 1.0),
+@given(st.integers(1, 60), st.integers(1, 8), st.integers(0, 40), st.floats(0.0, 0.5),
        st.integers(0, 6), st.integers(0, 2**32 - 1))
 @settings(max_examples=150, deadline=None)
-def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit_recall, n_lost,
+def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit_budget, n_lost,
                                                                 seed):
     rng = np.random.default_rng(seed)
     r = _leaf_sums(rng, n, t)
     bg = _leaf_sums(rng, n_bg, t) - 1.0
     lost = np.zeros(n, bool)
     lost[rng.choice(n, min(n_lost, n - 1), replace=False)] = True
-    keep = exit_kept(r, bg, exit_recall, lost)
-    plain = exit_kept(r, None, exit_recall, lost)
-    budget = int(np.floor((1 - exit_recall) * n + 1e-9))
+    keep = exit_kept(r, bg, exit_budget, lost)
+    plain = exit_kept(r, None, exit_budget, lost)
+    budget = int(np.floor(exit_budget * n + 1e-9))
     for mask in (keep, plain):
         assert mask.dtype == bool and mask.shape == (n,)
         assert mask.any()
@@ -182,7 +182,7 @@ def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit
         assert (trees_evaluated(r[mask], exits) == t).all()   # no kept object is dropped
     # the plain rule without lost objects is kept_objects' set
     if not lost.any():
-        assert set(np.flatnonzero(plain)) == set(kept_objects(r[:, -1], exit_recall).tolist())
+        assert set(np.flatnonzero(plain)) == set(kept_objects(r[:, -1], exit_budget).tolist())
     # on the background it was chosen for, never more tree evaluations than the plain rule
     if n_bg:
         spend = [trees_evaluated(bg, float32_thresholds(r[m].min(axis=0))).sum() for m in (keep, plain)]
@@ -191,44 +191,44 @@ def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit
 
 def test_exit_kept_gives_up_a_tied_group_when_that_pays():
     """Hand-worked: objects 0 and 1 tie at the lowest score after tree 0 (0), object 2 alone holds
-    tree 1's exit down. Budget 2 of 6 (exit_recall 2/3): giving up the pair lifts exit 0 from 0 to
+    tree 1's exit down. Budget 2 of 6 (exit budget 1/3): giving up the pair lifts exit 0 from 0 to
     1, which drops all three background windows (score 0.5) after one tree: 3 evaluations saved,
     1.5 per object. Giving up object 2 lifts exit 1 from 1 to 2: the windows would leave one tree
     later, nothing saved there."""
     r = np.array([[0., 3.], [0., 3.], [1., 1.], [1., 3.], [2., 3.], [2., 4.]])
     bg = np.array([[0.5, 0.5]] * 3)
-    keep = exit_kept(r, bg, 2 / 3)
+    keep = exit_kept(r, bg, 1 / 3)
     assert keep.tolist() == [False, False, True, True, True, True]
-    assert calibrate_exit(r, 2 / 3, bg).tolist() == [1.0, 1.0]
+    assert calibrate_exit(r, 1 / 3, bg).tolist() == [1.0, 1.0]
     # the plain rule gives up the two lowest final scores (object 2, then object 0 of the tied
     # 3s): exits 0 (object 1) and 3
-    assert calibrate_exit(r, 2 / 3).tolist() == [0.0, 3.0]
+    assert calibrate_exit(r, 1 / 3).tolist() == [0.0, 3.0]
 
 
-@given(st.integers(2, 40), st.integers(1, 6), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
+@given(st.integers(2, 40), st.integers(1, 6), st.floats(0.0, 0.5), st.integers(0, 2**32 - 1))
 @settings(max_examples=60, deadline=None)
-def test_exit_table_with_background_keeps_its_budget_at_every_level(n, t, exit_recall, seed):
+def test_exit_table_with_background_keeps_its_budget_at_every_level(n, t, exit_budget, seed):
     rng = np.random.default_rng(seed)
     r = _leaf_sums(rng, n, t) - t
     fin = 1 / (1 + np.exp(-r[:, -1]))
     bg = _leaf_sums(rng, 30, t) - t - 1
     lost = rng.random(n) < 0.1
-    levels, table = calibrate_exit_table(r, fin, exit_recall, background=bg, lost=lost)
+    levels, table = calibrate_exit_table(r, fin, exit_budget, background=bg, lost=lost)
     for level, row in zip(levels, table):
         sel = fin >= np.float32(level)
         dropped = (trees_evaluated(r[sel], row) < t) | lost[sel]
-        assert dropped.sum() <= max(int(np.floor((1 - exit_recall) * sel.sum() + 1e-9)),
+        assert dropped.sum() <= max(int(np.floor(exit_budget * sel.sum() + 1e-9)),
                                     lost[sel].sum())
 
 
 def test_fitted_exit_gives_up_at_most_its_budget():
-    """exit_recall 0.9: of the calibration copies (9 per held-out object), the contrast gate and
+    """Exit budget 0.1: of the calibration copies (9 per held-out object), the contrast gate and
     every exit together drop at most a tenth, at every score level."""
     from detector.forest import final_score
 
     patches, y = top_bright(1, 80, 160, spread=90, lift=120)
     for mode in ("bagged", "boosted"):
-        clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
+        clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_budget=0.1,
                               random_state=0).fit(patches, y)
         m = clf.model_
         cal = calibration_copies(clf, patches)
@@ -242,10 +242,10 @@ def test_fitted_exit_gives_up_at_most_its_budget():
             assert dropped.sum() <= int(np.floor(0.1 * sel.sum() + 1e-9)), (mode, level)
 
 
-@given(st.integers(1, 12), st.integers(1, 30), st.integers(0, 40), st.floats(0.5, 1.0),
+@given(st.integers(1, 12), st.integers(1, 30), st.integers(0, 40), st.floats(0.0, 0.5),
        st.integers(0, 2**32 - 1))
 @settings(max_examples=80, deadline=None)
-def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed):
+def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_budget, seed):
     """The compiled greedy loop gives exactly the order of the plain-numpy one, ties included
     (leaves take few values, so many trees drop as many windows)."""
     from detector.cascade import _order_for_early_exit_numpy
@@ -253,8 +253,8 @@ def test_compiled_order_equals_the_numpy_form(t, n_obj, n_bg, exit_recall, seed)
     rng = np.random.default_rng(seed)
     o = rng.integers(-2, 3, (n_obj, t)) * 0.25
     b = rng.integers(-3, 2, (n_bg, t)) * 0.25
-    np.testing.assert_array_equal(order_for_early_exit(o, b, exit_recall),
-                                  _order_for_early_exit_numpy(o, b, exit_recall))
+    np.testing.assert_array_equal(order_for_early_exit(o, b, exit_budget),
+                                  _order_for_early_exit_numpy(o, b, exit_budget))
 
 
 # ------------------------------------------------------------------ the scan's exit row
@@ -340,17 +340,17 @@ def test_scan_uses_the_exit_row_of_the_highest_level_not_above_its_threshold():
 
 @pytest.mark.parametrize("mode", ["bagged", "boosted"])
 def test_scan_gives_up_at_most_the_budget_of_calibration_objects_at_any_threshold(mode):
-    """The promise of ``exit_recall``, kept by the compiled scan itself: the calibration copies
+    """The promise of ``exit_budget``, kept by the compiled scan itself: the calibration copies
     (9 per held-out object), laid side by side in one frame so that each is one window of the
     scan, are scanned with early exit (contrast gate included) at thresholds below the first exit
     level, at every level, between levels and above the last. Of the copies whose score without
-    early exit reaches the threshold, at most floor((1 - 0.9) * n) are dropped, n being the copies
+    early exit reaches the threshold, at most floor(0.1 * n) are dropped, n being the copies
     scoring at least the level whose exits the scan uses (``exit_level=c``: the highest level not
     above c, all of the copies below the first level)."""
     from detector.scan import Engine, ScanSettings, final_scores
 
     patches, y = top_bright(1, 80, 160, spread=90, lift=120)
-    clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_recall=0.9,
+    clf = PatchClassifier(n_trees=20, pool=400, mode=mode, exit_budget=0.1,
                           random_state=0).fit(patches, y)
     m = clf.model_
     cal = calibration_copies(clf, patches)

@@ -225,14 +225,14 @@ def test_running_scores_and_trees_evaluated_by_hand():
 
 
 @settings(max_examples=50, deadline=None)
-@given(st.integers(1, 60), st.integers(1, 12), st.floats(0.5, 1.0), st.integers(0, 2**32 - 1))
-def test_calibrated_exit_keeps_the_promised_recall(n, t, recall, seed):
+@given(st.integers(1, 60), st.integers(1, 12), st.floats(0.0, 0.5), st.integers(0, 2**32 - 1))
+def test_calibrated_exit_gives_up_at_most_its_budget(n, t, budget, seed):
     rng = np.random.default_rng(seed)
     running = np.cumsum(rng.normal(size=(n, t)).astype(np.float32), axis=1, dtype=np.float64)
-    thr = calibrate_exit(running, recall)
+    thr = calibrate_exit(running, budget)
     assert thr.dtype == np.float32
     dropped = (running < thr.astype(np.float64)).any(axis=1)
-    assert dropped.sum() <= np.floor((1 - recall) * n + 1e-9)
+    assert dropped.sum() <= np.floor(budget * n + 1e-9)
     assert ((trees_evaluated(running, thr) < t) | (running[:, -1] < thr[-1]) == dropped).all()
     # tight: every threshold is the kept objects' minimum, rounded down to float32 (raising it to the
     # next float32 would drop one more object)

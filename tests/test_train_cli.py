@@ -24,6 +24,7 @@ from detector.io.images import read_gray
 from detector.io.labels import read_labels
 from detector.model import load_model
 from detector.scan import Engine, ScanSettings
+from detector.cascade import EXIT_BUDGET
 from detector.training import DEFAULT_TRAIN, train_model
 from synthetic_images import render_scenario
 
@@ -84,7 +85,7 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     assert model.metadata["date"] == "1970-01-02"
     # the command trains what the library trains with the same parameters
     params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=None,
-                  sample_fraction=1.0, exit_recall=0.995, normalize=True, random_state=3, n_jobs=1,
+                  sample_fraction=1.0, exit_budget=EXIT_BUDGET, normalize=True, random_state=3, n_jobs=1,
                   channels=DEFAULT_TRAIN["channels"])
     lib, _ = train_model(load_bank(bank), params, bank_path=bank)
     for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
@@ -99,13 +100,19 @@ def test_train_options_reach_the_model(scenario, cli_env, tmp_path):
     out = tmp_path / "boosted.npz"
     code, text, err = cli_env("train", scenario / "bank.npz", "--out", out, "--trees", 6, "--pool", 300,
                               "--depth", 3, "--mode", "boosted", "--features-per-node", 40,
-                              "--sample-fraction", 0.5, "--exit-recall", 0.9, "--no-normalize")
+                              "--sample-fraction", 0.5, "--exit-budget", 0.1, "--no-normalize")
     assert code == 0, err
     model = load_model(out)
     assert (model.n_trees, model.depth, model.mode, model.normalize) == (6, 3, "boosted", False)
     assert "trees: 6 of depth 3, Gentle AdaBoost (boosted)" in text
     p = model.metadata["parameters"]
-    assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_recall"]) == (300, 40, 0.5, 0.9)
+    assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_budget"]) == (300, 40, 0.5, 0.1)
+    # the option's old name, recall kept rather than budget given up, says what to write instead
+    code, _, err = cli_env("train", scenario / "bank.npz", "--out", tmp_path / "old.npz",
+                           "--exit-recall", 0.995)
+    assert code == 2 and "--exit-recall is now --exit-budget" in err
+    assert "--exit-recall 0.995 is --exit-budget 0.005" in err and "Traceback" not in err
+    assert not (tmp_path / "old.npz").exists()
 
 
 def test_bank_and_model_record_the_library_versions_that_made_them(scenario, cli_env, tmp_path):
@@ -192,7 +199,7 @@ def first_round_recount(bank, test, settings, trees=10):
     mining scans) and match with detector.evaluation (IoU 0.5)."""
     first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
-                                                 exit_recall=0.995, normalize=True, random_state=0,
+                                                 exit_budget=EXIT_BUDGET, normalize=True, random_state=0,
                                                  n_jobs=1, channels=DEFAULT_TRAIN["channels"]),
                          bank_path=bank)
     return recount(first, test, settings)

@@ -43,7 +43,7 @@ import numpy as np
 from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
 from detector.reporting import drawing
-from detector.model import describe
+from detector.model import describe, exit_budget_of
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -374,12 +374,13 @@ def report_lines(report: dict) -> list[str]:
     cal = ee["calibration"]
     if cal:
         parts = []
-        if cal.get("exit_recall") is not None:
-            parts.append(f"exit recall {_number(cal['exit_recall'], 4)}")
+        budget = exit_budget_of(cal)
+        if budget is not None:
+            parts.append(f"an exit budget of {_number(budget, 4)}")
         if cal.get("objects") is not None:
             parts.append(f"{cal['objects']} held-out object patches")
         if parts:
-            lines.append("  calibrated for " + " on ".join(parts))
+            lines.append("  calibrated with " + " on ".join(parts))
         means = []
         if finite_or_none(cal.get("mean_trees_objects")) is not None:
             means.append(f"objects {cal['mean_trees_objects']:.2f}")
@@ -390,7 +391,7 @@ def report_lines(report: dict) -> list[str]:
             means.append(bg)
         if means:
             lines.append(f"  mean trees evaluated per window (of {r['trees']}): {', '.join(means)}")
-        known = {"exit_recall", "objects", "mean_trees_objects", "mean_trees_background",
+        known = {"exit_budget", "exit_recall", "objects", "mean_trees_objects", "mean_trees_background",
                  "background_source"}
         for key in sorted(set(cal) - known):
             value = cal[key]

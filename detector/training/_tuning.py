@@ -38,6 +38,7 @@ from detector.features import count_features
 from detector.harvest import PatchBank, harvest
 from detector.io.labels import csv_writer
 from detector.io.images import read_gray
+from detector.cascade import EXIT_BUDGET
 from detector.scan import Engine, ScanSettings
 from detector.training._train import DEFAULT_TRAIN
 
@@ -230,7 +231,7 @@ def prepare_folds(images_dir, items, k: int = 3, seed: int = 0, *, bank: PatchBa
 # the objective
 
 
-def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_recall: float = 0.995,
+def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_budget: float = EXIT_BUDGET,
                       channels: str | None = None) -> dict:
     """Tune's parameter words -> :class:`detector.classifier.PatchClassifier` parameters, with the
     features ``channels`` (default: ``patchwood train``'s).
@@ -242,7 +243,7 @@ def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_recall: flo
     """
     return dict(n_trees=int(values["trees"]), depth=int(values["depth"]), mode=str(values["mode"]),
                 pool=int(values["pool"]), features_per_node=int(values["features_per_node"]),
-                sample_fraction=float(values["sample_fraction"]), exit_recall=float(exit_recall),
+                sample_fraction=float(values["sample_fraction"]), exit_budget=float(exit_budget),
                 random_state=int(seed), n_jobs=n_jobs,
                 channels=DEFAULT_TRAIN["channels"] if channels is None else str(channels))
 
@@ -473,7 +474,7 @@ def _better(a: float, b: float) -> bool:
 def search(folds, *, space: SearchSpace | None = None, trials: int | None = None,
            budget_seconds: float = 600.0, seed: int = 0, started: float | None = None,
            settings: ScanSettings | None = None, mine_rounds: int = 0,
-           mining_threshold: float = MINING_THRESHOLD, exit_recall: float = 0.995,
+           mining_threshold: float = MINING_THRESHOLD, exit_budget: float = EXIT_BUDGET,
            n_jobs=None, on_trial=None, channels: str | None = None) -> SearchResult:
     """Bayesian search (Optuna's seeded TPE sampler) for the parameters of best mean AP50. The first
     trial is ``patchwood train``'s defaults moved into the ranges (:meth:`SearchSpace.start`).
@@ -497,7 +498,7 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
         include its harvest in the budget.
     settings, mine_rounds, mining_threshold :
         See :func:`fold_average_precision`.
-    exit_recall, n_jobs, channels :
+    exit_budget, n_jobs, channels :
         Passed to every classifier (:func:`classifier_params`).
     on_trial : callable(TrialRecord, SearchResult), optional
         Called after every trial (for a progress line).
@@ -541,7 +542,7 @@ def search(folds, *, space: SearchSpace | None = None, trials: int | None = None
             trial = study.ask()
             values = effective_values(space.suggest(trial), window)
             begun = time.perf_counter()
-            params = classifier_params(values, seed=seed, n_jobs=n_jobs, exit_recall=exit_recall,
+            params = classifier_params(values, seed=seed, n_jobs=n_jobs, exit_budget=exit_budget,
                                        channels=channels)
             mean, per_fold = evaluate_params(folds, params, settings=settings,
                                              mine_rounds=mine_rounds,
