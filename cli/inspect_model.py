@@ -22,7 +22,7 @@ from detector.reporting.inspection import (
     top_features,
     write_png,
 )
-from detector.model import load_model
+from detector.model import load_model, old_format_note
 
 #: The pictures written into the output folder.
 HEAT_MAP_FILE = "heat-map.png"
@@ -75,6 +75,9 @@ def inspect(
     where its features look: an importance heat map over the window and its most important
     features over the mean object patch."""
     m = load_model(model)
+    note = old_format_note(m, human_path(model))
+    if note:
+        typer.echo(note, err=True)
     mean_patch = None
     bank_note = None
     if bank is not None:

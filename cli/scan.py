@@ -106,12 +106,13 @@ def scan(
             typer.echo(f"warning: the report's detections were made with other settings: "
                        f"{', '.join(other)}; its precision and recall hold for those",
                        err=True)
-    from detector.model import load_model
+    from detector.model import load_model, old_format_note
     from detector.scan import skipped_sizes_note
 
-    note = skipped_sizes_note(load_model(model), settings)
-    if note:
-        echo(note)
+    loaded = load_model(model)
+    for note in (old_format_note(loaded, human_path(model)), skipped_sizes_note(loaded, settings)):
+        if note:
+            echo(note)
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
                        resume=resume, force=force, draw_dir=draw, fmt=format, labels=labels,

@@ -7,12 +7,14 @@ One ``.npz`` archive (written by :func:`detector.io.npzfile.save_npz`, determini
 =====================  =================  =====================================================
 array                  dtype, shape       meaning
 =====================  =================  =====================================================
-``format_version``     int64, ()          3 (files of versions 1 and 2 are read too, see
+``format_version``     int64, ()          4 (files of versions 1 to 3 are read too, see
                                           :func:`load_model`)
 ``kind``               str, ()            ``"model"``
 ``window``             int32, (2,)        window width and height in pixels
-``features``           int32, (F, 4, 5)   rectangles ``(x, y, width, height, weight)`` of the
-                                          features the trees use (unused slots all zero)
+``features``           int32, (F, 4, 5)   rectangles ``(x0, y0, x1, y1, weight)`` of the
+                                          features the trees use: the pixels ``x0 <= x < x1``,
+                                          ``y0 <= y < y1`` of the window (corner form; unused
+                                          slots all zero)
 ``feature_channels``   int8, (F,)         the channel each feature reads (0 grey, 1..7 the
                                           gradient channels of :mod:`detector.features`);
                                           absent: all grey (format 1; optional)
@@ -45,6 +47,10 @@ array                  dtype, shape       meaning
 Versions 1 (grey features) and 2 (with ``feature_channels``) kept ``margin``,
 ``score_temperature`` and ``exit_min_sigma`` in the metadata JSON (and the object range in the
 bank's harvest record there); :func:`load_model` converts them to the typed values of version 3.
+Versions 1 to 3 stored each rectangle as ``(x, y, width, height, weight)``; version 4 stores its
+corners, and :func:`load_model` converts the older form (``x1 = x + width``, exact). In memory
+(:class:`Model`, :mod:`detector.features`) a rectangle is ``(x, y, width, height, weight)``, the
+form the feature enumeration and the scan plans compute with; only the file holds corners.
 
 See :mod:`detector.forest` for the tree layout, the running score and the final score.
 """
@@ -62,23 +68,25 @@ import numpy as np
 from detector._validation import json_safe
 from detector.io import npzfile
 from detector.errors import InputError
-from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE
+from detector.features import MAX_WINDOW_SIDE, MIN_WINDOW_SIDE, from_corners, to_corners
 from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
                              forest_running_scores, tree_depth)
 
 __all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe", "exit_budget_of",
            "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
-           "metadata_sha256"]
+           "metadata_sha256", "old_format_note", "CORNERS_FORMAT_VERSION"]
 
 #: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
-#: arrays instead of metadata JSON.
-FORMAT_VERSION = 3
+#: arrays instead of metadata JSON; version 4 stores rectangles by their corners.
+FORMAT_VERSION = 4
+#: The first version whose rectangles are ``(x0, y0, x1, y1, weight)``.
+CORNERS_FORMAT_VERSION = 4
 #: Files with channel features (``feature_channels``) are version 2 or later, so that a patchwood
 #: that does not know channels refuses them instead of scanning their features as grey ones.
 CHANNELS_FORMAT_VERSION = 2
 #: The versions before 3, whose scan settings :func:`load_model` takes from the metadata.
 METADATA_SETTINGS_VERSIONS = (1, CHANNELS_FORMAT_VERSION)
-READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, FORMAT_VERSION)
+READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, 3, FORMAT_VERSION)
 #: The scan settings: model array (and metadata key before version 3) -> default.
 SCAN_SETTINGS = {"margin": 0.0, "score_temperature": 1.0, "exit_min_sigma": 0.0}
 
@@ -193,6 +201,8 @@ class Model:
     temperature: float = 1.0
     exit_min_sigma: float = 0.0
     object_range: np.ndarray | None = None
+    #: The format version of the file the model was read from (None: not read from a file).
+    file_version: int | None = field(default=None, compare=False)
 
     def __post_init__(self):
         self.window = tuple(int(v) for v in self.window)
@@ -498,7 +508,7 @@ def model_arrays(model: Model) -> dict[str, np.ndarray]:
     """The arrays of the model file (see the module docstring)."""
     arrays = {
         **npzfile.header_arrays("model", FORMAT_VERSION, model.window),
-        "features": model.features,
+        "features": to_corners(model.features),
         "node_features": model.node_features,
         "node_thresholds": model.node_thresholds,
         "leaf_values": model.leaf_values,
@@ -539,6 +549,14 @@ def save_model(path: str | os.PathLike, model: Model) -> None:
     npzfile.save_npz(path, arrays)
 
 
+def file_features(a: dict[str, np.ndarray]) -> np.ndarray:
+    """The rectangles of a model file's arrays in the in-memory form ``(x, y, width, height,
+    weight)``: converted from the corners of format 4 and later, as they are before."""
+    if int(a["format_version"]) >= CORNERS_FORMAT_VERSION:
+        return from_corners(a["features"])
+    return np.asarray(a["features"])
+
+
 def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[dict, dict]:
     """Check a model's arrays beyond dtypes and shapes; returns the parsed metadata and the scan
     settings (:data:`SCAN_SETTINGS`: from the arrays, or from the metadata before version 3)."""
@@ -570,7 +588,7 @@ def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[d
     ex = a["exit_thresholds"]
     if np.isnan(ex).any() or np.isposinf(ex).any():
         raise InputError("model exit thresholds must be finite or -inf", path=path)
-    f = a["features"].astype(np.int64)
+    f = file_features(a).astype(np.int64)
     used = f[:, :, 4] != 0
     if (f[~used] != 0).any():
         raise InputError("model feature has a rectangle with weight 0 that is not all zeros", path=path)
@@ -703,7 +721,7 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
     metadata, settings = validate_model(a, path)
     return Model(
         window=tuple(int(v) for v in a["window"]),
-        features=a["features"],
+        features=file_features(a),
         node_features=a["node_features"],
         node_thresholds=a["node_thresholds"],
         leaf_values=a["leaf_values"],
@@ -719,4 +737,22 @@ def load_model(path: str | os.PathLike, data: bytes | None = None) -> Model:
         temperature=settings["score_temperature"],
         exit_min_sigma=settings["exit_min_sigma"],
         object_range=settings["object_range"],
+        file_version=int(version),
     )
+
+
+def old_format_note(model: Model, path) -> str | None:
+    """One line for a model read from a file of an older format (converted in memory, the file left
+    as it is); None for a current one.
+
+    >>> m = Model((2, 2), np.zeros((1, 4, 5), np.int32), [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf],
+    ...           file_version=3)
+    >>> old_format_note(m, "old.npz")
+    'note: old.npz is a format 3 model file (rectangles as x, y, width, height); it was converted on reading and left as it is (patchwood train writes format 4)'
+    """
+    version = model.file_version
+    if version is None or version >= FORMAT_VERSION:
+        return None
+    return (f"note: {path} is a format {version} model file (rectangles as x, y, width, height); "
+            f"it was converted on reading and left as it is (patchwood train writes format "
+            f"{FORMAT_VERSION})")

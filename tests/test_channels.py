@@ -19,7 +19,8 @@ from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_
                                gradient_channels, orientation_bins, patch_channels)
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.features import channel_pool, evaluate_features, evaluate_features_numpy, random_pool
+from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
+                               from_corners, random_pool)
 from detector.harvest import harvest
 from detector.io.labels import read_labels
 from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \
@@ -320,8 +321,9 @@ def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
 ])
 def test_bad_channel_files_are_refused(channel_model, tmp_path, change, message):
     arrays = model_arrays(channel_model)
-    if "format_version" in change:
+    if "format_version" in change:   # a format 1 file: rectangles as (x, y, width, height)
         arrays["format_version"] = np.array(change["format_version"], np.int64)
+        arrays["features"] = from_corners(arrays["features"])
     else:
         arrays["feature_channels"] = arrays["feature_channels"].copy()
         arrays["feature_channels"][0] = change["feature_channels"]

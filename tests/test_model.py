@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from detector.io import npzfile
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
-from detector.features import evaluate_features
+from detector.features import evaluate_features, from_corners
 from detector.forest import forest_score
 from detector.model import FORMAT_VERSION, Model, load_model, model_arrays, save_model, training_date
 
@@ -198,7 +198,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
 @pytest.mark.parametrize(
     "change, message",
     [
-        (dict(format_version=np.array(4, np.int64)), "unsupported model format version 4 (this patchwood reads 1, 2 and 3; train the model again with `patchwood train`)"),
+        (dict(format_version=np.array(5, np.int64)), "unsupported model format version 5 (this patchwood reads 1, 2, 3 and 4; train the model again with `patchwood train`)"),
         (dict(format_version=None), "not a model file: array 'format_version' is missing"),
         (dict(node_thresholds=None), "not a complete model file: array 'node_thresholds' is missing"),
         (dict(kind=np.array("patch-bank")), "this is a patch bank, not a model"),
@@ -224,7 +224,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
         (dict(score_temperature=np.array(0.0)), "model array 'score_temperature' must be a number > 0"),
         (dict(margin=np.array(np.nan)), "model array 'margin' must be a number >= 0, got NaN"),
         (dict(margin=np.array(6.0)), "model array 'margin' 6 leaves less than one pixel of the object"),
-        (dict(margin=None), "model array 'margin' is missing (format version 3 needs it)"),
+        (dict(margin=None), "model array 'margin' is missing (format version 4 needs it)"),
         (dict(object_range=np.array([30.0, 6.0])), "model array 'object_range' must hold two sizes > 0, the smaller first"),
         (dict(object_range=np.array([0.0, 6.0])), "model array 'object_range' must hold two sizes > 0"),
         (dict(score_temperature=np.array(2.0, np.float32)), "model array 'score_temperature' has dtype float32; expected float64"),
@@ -272,8 +272,10 @@ def test_load_refuses_each_bad_case(model_file, tmp_path, change, message):
 
 
 def _older_file(model_file, tmp_path, version, **metadata):
-    """The model file as format ``version`` (1 or 2) wrote it: the scan settings in the metadata."""
+    """The model file as format ``version`` (1 or 2) wrote it: the scan settings in the metadata,
+    the rectangles as (x, y, width, height, weight)."""
     arrays = npzfile.read_npz(model_file)
+    arrays["features"] = from_corners(arrays["features"])
     md = json.loads(str(arrays["metadata"]))
     for name in ("margin", "score_temperature", "exit_min_sigma"):
         md[name] = arrays.pop(name).item()
@@ -457,3 +459,68 @@ def test_from_forest_keeps_only_used_features(fitted):
     m = Model.from_forest((6, 2), pool, forest)
     assert m.features[:, 0, 0].tolist() == [1, 4] and m.node_features.tolist() == [[1, 0, 1]]
     assert np.isneginf(m.exit_thresholds).all()
+
+
+# ------------------------------------------------------------------ rectangles in corner form
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 40), st.integers(0, 40), st.integers(1, 40),
+                          st.integers(1, 40), st.integers(-4, 4)), min_size=1, max_size=4))
+def test_corner_form_round_trips(rects):
+    """(x, y, width, height, weight) -> (x0, y0, x1, y1, weight) -> back is the identity; a
+    rectangle of weight 0 is an unused slot, all zeros in both forms."""
+    from detector.features import to_corners
+
+    f = np.zeros((1, 4, 5), np.int32)
+    for i, (x, y, w, h, wt) in enumerate(rects):
+        f[0, i] = (x, y, w, h, wt) if wt else (0, 0, 0, 0, 0)
+    c = to_corners(f)
+    used = f[0, :, 4] != 0
+    np.testing.assert_array_equal(c[0, used, 2], f[0, used, 0] + f[0, used, 2])   # x1 = x + w
+    np.testing.assert_array_equal(c[0, used, 3], f[0, used, 1] + f[0, used, 3])   # y1 = y + h
+    assert (c[0, ~used] == 0).all()
+    np.testing.assert_array_equal(from_corners(c), f)
+
+
+def test_model_file_stores_corners(fitted, model_file):
+    """The file holds (x0, y0, x1, y1, weight): a two-rectangle feature at (0, 0, 2, 4) and
+    (2, 0, 2, 4) is stored as (0, 0, 2, 4) and (2, 0, 4, 4), and loads back as it was."""
+    m = Model((4, 4), np.array([[[0, 0, 2, 4, -1], [2, 0, 2, 4, 1]] + [[0] * 5] * 2], np.int32),
+              [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf], "bagged")
+    arrays = model_arrays(m)
+    assert arrays["features"][0, :2].tolist() == [[0, 0, 2, 4, -1], [2, 0, 4, 4, 1]]
+    with np.load(model_file, allow_pickle=False) as npz:
+        assert int(npz["format_version"]) == FORMAT_VERSION == 4
+        np.testing.assert_array_equal(from_corners(npz["features"]), fitted[0].model_.features)
+    np.testing.assert_array_equal(load_model(model_file).features, fitted[0].model_.features)
+
+
+def test_format_3_files_are_converted_with_a_note(fitted, model_file, tmp_path):
+    """A format 3 file (rectangles as x, y, width, height) loads as the same model, scores every
+    patch bit for bit as the format 4 file does, and the commands that read it say so in one line
+    (the file is left as it is)."""
+    from typer.testing import CliRunner
+
+    from cli import main as cli_main
+
+    arrays = npzfile.read_npz(model_file)
+    arrays["features"] = from_corners(arrays["features"])
+    arrays["format_version"] = np.array(3, np.int64)
+    old = tmp_path / "old.npz"
+    npzfile.save_npz(old, arrays)
+    before = old.read_bytes()
+    a, b = load_model(old), load_model(model_file)
+    assert (a.file_version, b.file_version) == (3, 4)
+    np.testing.assert_array_equal(a.features, b.features)
+    patches = fitted[1]
+    np.testing.assert_array_equal(a.running_scores(patches), b.running_scores(patches))
+    result = CliRunner().invoke(cli_main.app, ["inspect", str(old), "--out", str(tmp_path / "i")])
+    assert result.exit_code == 0, result.output
+    notes = [ln for ln in result.output.splitlines() if ln.startswith("note: ")]
+    assert notes == [f"note: {old} is a format 3 model file (rectangles as x, y, width, height); "
+                     "it was converted on reading and left as it is (patchwood train writes "
+                     "format 4)"]
+    assert old.read_bytes() == before
+    result = CliRunner().invoke(cli_main.app, ["inspect", str(model_file), "--out",
+                                               str(tmp_path / "j")])
+    assert result.exit_code == 0 and "note: " not in result.output

@@ -20,7 +20,8 @@ from detector.features._integral import (integral_image, integral_images, square
 from detector.features._rectangles import (CHANNEL_SHAPES, MAX_WINDOW_SIDE, MIN_WINDOW_SIDE,
                                            SHAPES, SIGMA_FLOOR, channel_pool, check_channels,
                                            count_features, enumerate_features, evaluate_features,
-                                           evaluate_features_numpy, feature_corners, random_pool)
+                                           evaluate_features_numpy, feature_corners, from_corners,
+                                           random_pool, to_corners)
 
 __all__ = [
     # integral images
@@ -32,5 +33,6 @@ __all__ = [
     # rectangle features
     "SHAPES", "SIGMA_FLOOR", "MIN_WINDOW_SIDE", "MAX_WINDOW_SIDE", "count_features",
     "enumerate_features", "random_pool", "feature_corners", "evaluate_features",
-    "evaluate_features_numpy", "CHANNEL_SHAPES", "channel_pool", "check_channels",
+    "evaluate_features_numpy", "CHANNEL_SHAPES", "channel_pool", "check_channels", "to_corners",
+    "from_corners",
 ]

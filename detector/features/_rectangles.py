@@ -59,6 +59,8 @@ __all__ = [
     "CHANNEL_SHAPES",
     "channel_pool",
     "check_channels",
+    "to_corners",
+    "from_corners",
 ]
 
 SHAPES = ("two-side-by-side", "two-stacked", "three-side-by-side", "three-stacked", "four-diagonal")
@@ -348,6 +350,35 @@ def check_channels(channels, n_features: int) -> np.ndarray | None:
 
 # ----------------------------------------------------------------------------------------------
 # evaluation
+
+def to_corners(features) -> np.ndarray:
+    """Rectangles ``(x, y, width, height, weight)`` -> ``(x0, y0, x1, y1, weight)`` with
+    ``x1 = x + width``, ``y1 = y + height`` (the pixels ``x0 <= x < x1`` of the window): the form
+    model files store (:mod:`detector.model`). Unused slots (weight 0) stay all zeros.
+
+    >>> to_corners(np.array([[[2, 3, 4, 5, -1], [0, 0, 0, 0, 0]]])).tolist()
+    [[[2, 3, 6, 8, -1], [0, 0, 0, 0, 0]]]
+    """
+    f = np.array(features, dtype=np.int32)
+    used = f[..., 4] != 0
+    f[..., 2] += np.where(used, f[..., 0], 0)
+    f[..., 3] += np.where(used, f[..., 1], 0)
+    return f
+
+
+def from_corners(corners) -> np.ndarray:
+    """The inverse of :func:`to_corners`: ``(x0, y0, x1, y1, weight)`` -> ``(x, y, width, height,
+    weight)``.
+
+    >>> from_corners(np.array([[[2, 3, 6, 8, -1], [0, 0, 0, 0, 0]]])).tolist()
+    [[[2, 3, 4, 5, -1], [0, 0, 0, 0, 0]]]
+    """
+    f = np.array(corners, dtype=np.int64)
+    used = f[..., 4] != 0
+    f[..., 2] -= np.where(used, f[..., 0], 0)
+    f[..., 3] -= np.where(used, f[..., 1], 0)
+    return f.astype(np.int32)
+
 
 def _check_features(features) -> np.ndarray:
     array = np.asarray(features)
