@@ -29,7 +29,7 @@ $(VENV)/.installed-test: pyproject.toml $(LOCK) $(LOCK_TEST) | $(BIN)/python
 	touch $(VENV)/.installed $@
 
 demo: $(VENV)/.installed
-	$(BIN)/patchwood demo --out $(DEMO_OUT) --force
+	$(BIN)/patchwood demo --out $(DEMO_OUT) --jobs $(JOBS) --force
 
 test: $(VENV)/.installed-test
 	$(BIN)/python -m pytest -n $(JOBS) -q

@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import echo, human_path, parse_window_option, progress_bar, usage_error
+from cli.common import quiet_option, jobs_option, echo, given, human_path, parse_window_option, progress_bar, usage_error
 from detector.reporting.audit import (BACKGROUND_CALLED_OBJECT, DEFAULT_PARAMS, OBJECT_CALLED_BACKGROUND,
                             audit_bank, check_audit_folder, harvest_for_audit, write_audit)
 from detector.harvest import load_bank
@@ -35,6 +35,7 @@ def _table(listed) -> list[str]:
 
 
 def audit(
+    ctx: typer.Context,
     images_dir: Optional[Path] = typer.Argument(
         None, help="Folder the labels' image paths are relative to (with --bank: optional, for "
                    "thumbnails in the whole image)."),
@@ -63,18 +64,19 @@ def audit(
     label: Optional[str] = typer.Option(None, "--label", help="Audit only boxes of this class."),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH. Default: the "
                                                                 "median box aspect ratio, shorter side 24."),
-    negatives_per_image: Optional[int] = typer.Option(
-        None, "--negatives-per-image", min=0,
-        help="Random background windows drawn from each image [default: 50]; more of them give "
-             "an unlabelled object more chances to show up."),
-    jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the result does not "
-                                                      "depend on it)."),
+    negatives_per_image: int = typer.Option(
+        50, "--negatives-per-image", min=0,
+        help="Background windows drawn from each image; more of them give an unlabelled object "
+             "more chances to show up."),
+    jobs: int = jobs_option(),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace the files of an earlier audit in "
                                                       "the folder."),
 ) -> None:
     """List the labels a bagged forest finds suspicious: labelled objects it calls background and
     background windows it calls object, each judged only by the trees that did not train on it
     (out-of-bag scores). Writes suspicious-labels.csv and audit.html with thumbnails."""
+    negatives_given = given(ctx, "negatives_per_image")
     if bank is None:
         if images_dir is None or labels is None:
             raise typer.BadParameter("give IMAGES_DIR and LABELS, or --bank BANK.npz")
@@ -82,11 +84,10 @@ def audit(
         if labels is not None:
             raise typer.BadParameter("give IMAGES_DIR and LABELS, or --bank BANK.npz (with "
                                      "IMAGES_DIR only for thumbnails), not both")
-        given = [name for name, value in (("--label", label), ("--window", window),
-                                          ("--negatives-per-image", negatives_per_image))
-                 if value is not None]
-        if given:
-            raise typer.BadParameter(f"{', '.join(given)} shape a new harvest; a --bank is "
+        shaping = [name for name, value in (("--label", label), ("--window", window))
+                   if value is not None] + (["--negatives-per-image"] if negatives_given else [])
+        if shaping:
+            raise typer.BadParameter(f"{', '.join(shaping)} shape a new harvest; a --bank is "
                                      "already harvested")
     if features_per_node is not None and features_per_node > pool:
         usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
@@ -101,7 +102,7 @@ def audit(
         with progress_bar("harvesting", len(lf), "images") as update:
             patches = harvest_for_audit(
                 images_dir, lf.items, window=size,
-                negatives_per_image=50 if negatives_per_image is None else negatives_per_image,
+                negatives_per_image=negatives_per_image,
                 seed=seed, labels_path=labels, progress=update)
         inputs = {"labels": human_path(labels), "images": human_path(images_dir)}
     else:

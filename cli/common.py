@@ -95,6 +95,15 @@ class _Rate(TextColumn):
         return Text(f"{rate:6.1f} {self.unit}/s")
 
 
+#: ``--jobs`` everywhere: how many workers, of whatever kind the command runs.
+MAX_JOBS = 256
+
+
+def jobs_option():
+    """``--jobs``, declared once for every command that takes it: one meaning, one default."""
+    return typer.Option(1, "--jobs", min=1, max=MAX_JOBS, help="Workers: the threads that grow trees and the processes that scan, whichever this command runs (results do not depend on it).")
+
+
 def channels_option():
     """``--channels``, declared once for ``train`` and ``tune`` (the default is train's)."""
     from detector.training import DEFAULT_TRAIN
@@ -111,12 +120,30 @@ def check_channels_option(value: str) -> str:
     return value
 
 
+#: Set by ``--quiet``: no progress bars or progress lines.
+_QUIET = {"on": False}
+
+
+def _set_quiet(value: bool) -> bool:
+    _QUIET["on"] = bool(value)
+    return value
+
+
+def quiet_option():
+    """``--quiet``, declared once for the commands that show progress."""
+    return typer.Option(False, "--quiet", "-q", callback=_set_quiet, help="No progress bars or progress lines on stderr (results, warnings and errors are still printed).")
+
+
 @contextlib.contextmanager
 def progress_bar(description: str, total: int | None = None, unit: str = "items"):
     """A progress bar on stderr with rate and time left; yields ``update(done, total=None)``.
 
-    Quiet when stderr is not a terminal except for one closing line, so logs stay readable.
+    Quiet when stderr is not a terminal except for one closing line, so logs stay readable; silent
+    with ``--quiet``.
     """
+    if _QUIET["on"]:
+        yield lambda done, new_total=None: None
+        return
     live = console.is_terminal
     start = time.perf_counter()
     state = {"done": 0, "total": total}

@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
+from typing import Literal
 
 import typer
 
-from cli.common import echo, human_path, progress_bar
+from cli.common import quiet_option, jobs_option, echo, human_path, progress_bar
 from detector.scan import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
@@ -27,12 +28,13 @@ DEMO_ENTRIES = ("scenario", "bank.npz", "model.npz", "detections.csv", "detectio
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for everything the demo writes."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seed for the scenario, the harvest and training."),
-    images: int = typer.Option(200, "--images", min=4, max=5000, help="Frames to render, split 80/20 into training and test frames."),
-    trees: int = typer.Option(DEFAULT_TRAIN["trees"], "--trees", min=1, max=2000, help="Trees in the forest."),
-    mode: str = typer.Option("boosted", "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
-    pool: int = typer.Option(10000, "--pool", min=100, help="Random feature pool size."),
-    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=5, help="Hard-negative mining rounds on the training images (as `patchwood train`: the models before the last grow a quarter of the trees)."),
-    jobs: int = typer.Option(2, "--jobs", min=1, max=64, help="Threads for growing and processes for scanning."),
+    frames: int = typer.Option(200, "--frames", min=2, max=5000, help="Frames to render, split 80/20 into training and test frames."),
+    trees: int = typer.Option(DEFAULT_TRAIN["trees"], "--trees", min=1, max=10000, help="Trees in the forest."),
+    mode: Literal["boosted", "bagged"] = typer.Option(DEFAULT_TRAIN["mode"], "--mode", help="bagged (random forest) or boosted (Gentle AdaBoost)."),
+    pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Random feature pool size."),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds on the training images (as `patchwood train`: the models before the last grow a quarter of the trees)."),
+    jobs: int = jobs_option(),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace what an earlier demo wrote in --out (other files there are left alone)."),
 ) -> None:
     """Run the whole workflow on the demo scenario (hex nuts on a conveyor belt): render frames,
@@ -52,7 +54,7 @@ def demo(
     echo(f"[1/5] rendering the demo scenario into {human_path(scenario)}")
     from synthetic_images import split_counts
 
-    train_n, test_n = split_counts(images)
+    train_n, test_n = split_counts(frames)
     summary = render_scenario(scenario, train_n, test_n, seed=seed, force=force)
     for split in ("train", "test"):
         s = summary[split]

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import (check_not_an_input, check_output_file, count, echo, given, human_path,
+from cli.common import (quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
@@ -38,6 +38,7 @@ def harvest(
     near_negatives: int = typer.Option(4, "--near-negatives", min=0, max=100, help="Background windows per box drawn close to it: much smaller inside it, much larger around it."),
     background_iou: float = typer.Option(0.3, "--background-iou", min=0.0, max=1.0, help="A background window must overlap every labelled box less than this (IoU)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed gives the same bank."),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace an existing bank file."),
 ) -> None:
     """Cut object patches (with augmented copies) from the labelled boxes and background patches

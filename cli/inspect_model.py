@@ -66,7 +66,7 @@ def inspect(
         None, "--bank",
         help="Patch bank whose mean object patch the features are drawn over (without it: a "
              "neutral grey window)."),
-    top: int = typer.Option(12, "--top", min=1, max=48, help="How many of the most important "
+    top: int = typer.Option(12, "--top-features", min=1, max=48, help="How many of the most important "
                             "features to list and draw."),
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON (for scripts)."),
     force: bool = typer.Option(False, "--force", help="Replace existing pictures."),

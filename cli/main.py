@@ -31,6 +31,32 @@ COMMANDS = {
 }
 
 
+#: Every command answers ``-h`` as well as ``--help``.
+CONTEXT = {"help_option_names": ["-h", "--help"]}
+
+
+def _version(value: bool) -> None:
+    if value:
+        from importlib.metadata import version
+
+        typer.echo(f"patchwood {version('patchwood')}")
+        raise typer.Exit()
+
+
+#: Commands whose arguments are really optional. (``audit``'s are not: it needs IMAGES_DIR and
+#: LABELS unless it is given ``--bank``, which its help says.)
+OPTIONAL_ARGUMENTS: set = set()
+
+
+def _plain_argument(param, optional: bool = False) -> None:
+    """Show an argument as its upper-case name (``IMAGES_DIR``, ``PATHS...``) in the usage line,
+    as errors name it, without Typer's braces; in brackets only where it is optional."""
+    name = param.metavar or param.name.upper()
+    param.metavar = name
+    text = name + ("..." if param.nargs == -1 else "")
+    param.get_usage_pieces = lambda *args, **kwargs: [f"[{text}]" if optional else text]
+
+
 class LazyCommands(typer.core.TyperGroup):
     """A command group that imports a command's module only when that command is used."""
 
@@ -45,8 +71,12 @@ class LazyCommands(typer.core.TyperGroup):
         module, function = COMMANDS[name][:2]
         single = typer.Typer(add_completion=False, pretty_exceptions_enable=False,
                              rich_markup_mode=None)
-        single.command(name)(getattr(importlib.import_module(f"cli.{module}"), function))
+        single.command(name, context_settings=CONTEXT)(
+            getattr(importlib.import_module(f"cli.{module}"), function))
         command = typer.main.get_command(single)
+        for param in command.params:
+            if param.param_type_name == "argument":
+                _plain_argument(param, optional=name in OPTIONAL_ARGUMENTS)
         self.commands[name] = command
         return command
 
@@ -69,13 +99,42 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
     rich_markup_mode=None,
+    context_settings=CONTEXT,
 )
 
 
 @app.callback()
-def _group() -> None:
+def _group(
+    version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
+                                 help="Print patchwood's version and exit."),
+) -> None:
     """Train fast single-class object detectors on the CPU, scan folders of images with them, and
     score what they find. Start with `patchwood demo`."""
+
+
+#: Options renamed so that one word has one meaning across the commands: (command, old) -> new.
+RENAMED = {
+    ("synth", "--images"): "--frames", ("synth", "--train-images"): "--train-frames",
+    ("synth", "--test-images"): "--test-frames", ("demo", "--images"): "--frames",
+    ("score", "--report"): "--out", ("train", "--threshold"): "--mine-threshold",
+    ("inspect", "--top"): "--top-features",
+}
+
+
+def renamed_hint(command_path: str, message: str) -> str | None:
+    """The usage error for an option that was renamed, naming the new word; None otherwise.
+
+    >>> renamed_hint("patchwood score", "No such option: --report")
+    'score --report is now --out'
+    >>> renamed_hint("patchwood scan", "No such option: --report") is None
+    True
+    """
+    prefix = "No such option: "
+    if not message.startswith(prefix):
+        return None
+    old = message[len(prefix):].split()[0].split("=")[0]
+    new = RENAMED.get((command_path.split()[-1], old))
+    return None if new is None else f"{command_path.split()[-1]} {old} is now {new}"
 
 
 # Typer ships its own copy of click; reach its exception classes through Typer's public names.
@@ -92,7 +151,8 @@ def run() -> None:
             typer.echo(err.format_message())
             sys.exit(0)
         where = err.ctx.command_path if err.ctx is not None else "patchwood"
-        typer.echo(f"error: {err.format_message()} (see '{where} --help')", err=True)
+        message = renamed_hint(where, err.format_message()) or err.format_message()
+        typer.echo(f"error: {message} (see '{where} --help')", err=True)
         sys.exit(2)
     except _ClickError as err:
         typer.echo(f"error: {err.format_message()}", err=True)

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import List, Optional
+from typing import List, Literal, Optional
 
 import typer
 
-from cli.common import (check_not_an_input, echo, given, human_path, progress_bar,
+from cli.common import (quiet_option, jobs_option, check_not_an_input, echo, given, human_path, progress_bar,
                         refuse_together, usage_error)
 from detector.scan import FORMATS, scan_paths
 from detector.scan import ScanSettings
@@ -18,7 +18,7 @@ def scan(
     model: Path = typer.Argument(..., help="Model file from `patchwood train`."),
     paths: List[Path] = typer.Argument(..., help="Image files and folders (searched recursively for png, jpg, jpeg, bmp, tif, tiff)."),
     out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco or coco-results."),
-    format: str = typer.Option("csv", "--format", help="csv; coco (a COCO JSON object: the images scanned and the detections as scored annotations); or coco-results (the COCO results list, [{image_id, category_id, bbox, score}, ...], that pycocotools' COCO.loadRes and COCOeval read; image ids from --labels)."),
+    format: Literal["csv", "coco", "coco-results"] = typer.Option("csv", "--format", help="csv; coco (a COCO JSON object: the images scanned and the detections as scored annotations); or coco-results (the COCO results list, [{image_id, category_id, bbox, score}, ...], that pycocotools' COCO.loadRes and COCOeval read; image ids from --labels)."),
     labels: Optional[Path] = typer.Option(None, "--labels", help="With --format coco-results: the COCO labels file (JSON) the results are for; its image ids, matched by file name, and its category id are written (without it, images are numbered 1, 2, ... in the order written)."),
     label: Optional[str] = typer.Option(None, "--label", help="With --labels: the category the detections are for, when the labels file has several."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales."),
@@ -32,9 +32,10 @@ def scan(
     exit_level: Optional[float] = typer.Option(None, "--exit-level", min=0.0, max=1.0, metavar="LEVEL", help="Speed option: use the tighter early exits calibrated for scans at LEVEL or above (fewer trees per window). They may drop objects that would score LEVEL or more, so scan the curve you score with the same --exit-level; --threshold-from then reuses it. Default: the exits for every threshold, so that a scan keeps exactly the detections a scan at a lower threshold finds at or above its own."),
     overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window may reach past the image's edges, as a share of its size (border pixels repeated there), so that objects cut by the edge are found: 0.25 finds objects about four fifths inside, 0.5 those at least half inside; 0 keeps windows inside."),
     draw: Optional[Path] = typer.Option(None, "--draw", help="Also write annotated copies of the images into this folder (never into an input folder)."),
-    jobs: int = typer.Option(1, "--jobs", min=1, max=256, help="Worker processes."),
+    jobs: int = jobs_option(),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest (only when its provenance side file names this model and these settings)."),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace an existing --out and its failures side file (never an input); with --threshold-from, also use a summary made from another model's detections."),
 ) -> None:
     """Find objects in images: a multi-scale sliding-window scan with early exit and non-maximum
@@ -127,7 +128,9 @@ def scan(
     if len(s.failures) > 10:
         echo(f"  ... and {len(s.failures) - 10} more")
     if s.skipped_files:
-        echo(f"other files skipped: {s.skipped_files}")
+        from detector.scan._batch import named_list
+
+        echo(f"other files skipped: {s.skipped_files} ({named_list(s.skipped_names)})")
     echo(f"time: {s.seconds:.1f} s ({s.images_per_second:.1f} images/s), "
          f"mean trees per window: {s.mean_trees:.2f}")
     if draw is not None:

@@ -1,4 +1,4 @@
-"""`patchwood score DETECTIONS LABELS --report DIR`: match detections to labels, print the headline
+"""`patchwood score DETECTIONS LABELS --out DIR`: match detections to labels, print the headline
 figures and write the report folder (report.html, summary.json, plots, galleries)."""
 
 from __future__ import annotations
@@ -29,8 +29,8 @@ def score(
         ..., help="Detections file (CSV or COCO JSON), as `patchwood scan` writes it."
     ),
     labels: Path = typer.Argument(..., help="Labels file (CSV or COCO JSON) of the same images."),
-    report: Path = typer.Option(
-        ..., "--report", help="Folder for report.html, summary.json and the pictures; created if missing."
+    out: Path = typer.Option(
+        ..., "--out", help="Folder for report.html, summary.json and the pictures; created if missing."
     ),
     iou: float = typer.Option(
         0.5, "--iou", callback=_iou, help="IoU at or above which a detection matches a labelled box."
@@ -66,7 +66,7 @@ def score(
     at or above the recommended threshold."""
     if target_precision is not None and target_recall is not None:
         raise typer.BadParameter("give --target-precision or --target-recall, not both")
-    result = score_files(detections, labels, report, iou_threshold=iou, images_dir=images,
+    result = score_files(detections, labels, out, iou_threshold=iou, images_dir=images,
                          label=label, target_precision=target_precision,
                          target_recall=target_recall, force=force, strict=strict)
     for warning in result.warnings:

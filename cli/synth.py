@@ -40,14 +40,14 @@ def synth(
     out_dir: Path = typer.Argument(
         ..., help="Folder to write train/ and test/ into (each: images/ + labels.csv); created if missing."
     ),
-    images: int = typer.Option(
-        200, "--images", min=2, help="Total frames, split 80/20: 200 gives 160 in train/ and 40 in test/."
+    frames: int = typer.Option(
+        200, "--frames", min=2, max=5000, help="Total frames, split 80/20: 200 gives 160 in train/ and 40 in test/."
     ),
-    train_images: Optional[int] = typer.Option(
-        None, "--train-images", min=1, help="Frames in train/, overriding its 80% share of --images."
+    train_frames: Optional[int] = typer.Option(
+        None, "--train-frames", min=1, help="Frames in train/, overriding its 80% share of --frames."
     ),
-    test_images: Optional[int] = typer.Option(
-        None, "--test-images", min=1, help="Frames in test/, overriding its 20% share of --images."
+    test_frames: Optional[int] = typer.Option(
+        None, "--test-frames", min=1, help="Frames in test/, overriding its 20% share of --frames."
     ),
     seed: int = typer.Option(
         0, "--seed", min=0, help="Random seed; the same seed, counts and size give identical files."
@@ -62,13 +62,13 @@ def synth(
     """Render the demo scenario: hex nuts among washers, square nuts, screw heads and debris on a
     conveyor belt, 15% of frames without nuts, nuts 20-120 px. Nuts more than half hidden under a
     guard rail or past the frame edge are drawn but not labelled."""
-    if given(ctx, "images") and train_images is not None and test_images is not None:
-        usage_error("--images is split into train/ and test/, but --train-images and "
-                    "--test-images set both counts; give --images or the two counts")
+    if given(ctx, "frames") and train_frames is not None and test_frames is not None:
+        usage_error("--frames is split into train/ and test/, but --train-frames and "
+                    "--test-frames set both counts; give --frames or the two counts")
     width, height = parse_size(size)
-    train_default, test_default = split_counts(images)
-    train_n = train_default if train_images is None else train_images
-    test_n = test_default if test_images is None else test_images
+    train_default, test_default = split_counts(frames)
+    train_n = train_default if train_frames is None else train_frames
+    test_n = test_default if test_frames is None else test_frames
     summary = render_scenario(out_dir, train_n, test_n, seed=seed, size=(width, height), force=force)
     typer.echo(f"demo scenario in {summary['out_dir']}  (seed {seed}, {width}x{height})")
     for split in ("train", "test"):

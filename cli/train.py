@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import Optional
+from typing import Literal, Optional
 
 import typer
 
-from cli.common import (channels_option, check_channels_option, check_not_an_input,
+from cli.common import (quiet_option, jobs_option, channels_option, check_channels_option, check_not_an_input,
                         check_output_file, echo, given, human_path,
                         progress_bar, usage_error)
 from detector.cascade import EXIT_BUDGET
@@ -23,7 +23,7 @@ from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params
 #: Options that only shape hard-negative mining (parameter name -> option).
 MINING_OPTIONS = {"mine_images": "--mine-images", "mine_labels": "--mine-labels",
                   "mine_per_image": "--mine-per-image", "mine_per_round": "--mine-per-round",
-                  "mine_overhang": "--mine-overhang", "threshold": "--threshold"}
+                  "mine_overhang": "--mine-overhang", "mine_threshold": "--mine-threshold"}
 
 
 def train(
@@ -32,24 +32,25 @@ def train(
     out: Path = typer.Option(..., "--out", help="Model file to write (.npz)."),
     trees: int = typer.Option(DEFAULT_TRAIN["trees"], "--trees", min=1, max=10000, help="Number of trees."),
     depth: int = typer.Option(DEFAULT_TRAIN["depth"], "--depth", min=1, max=8, help="Depth of every tree."),
-    mode: str = typer.Option(DEFAULT_TRAIN["mode"], "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
+    mode: Literal["boosted", "bagged"] = typer.Option(DEFAULT_TRAIN["mode"], "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
     pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
     sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
     exit_budget: float = typer.Option(EXIT_BUDGET, "--exit-budget", min=0.0, max=0.5, help="Share of the held-out object patches that the contrast gate and all the early exits together may give up: a larger budget lets background leave after fewer trees."),
     exit_recall: Optional[float] = typer.Option(None, "--exit-recall", hidden=True),
-    channels: str = channels_option(),
+    channels: Literal["gradient", "grey"] = channels_option(),
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
-    jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the model does not depend on it)."),
-    mine_rounds: Optional[int] = typer.Option(None, "--mine-rounds", min=0, max=10, help=f"Hard-negative mining rounds: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees). Default: {DEFAULT_MINE_ROUNDS} when the images can be found, else 0."),
+    jobs: int = jobs_option(),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees). Without --mine-images, the images the bank came from; none when the bank does not record them and this option is not given."),
     mine_images: Optional[Path] = typer.Option(None, "--mine-images", help="Folder of labelled images to mine false alarms from. Default: the images the bank was harvested from."),
     mine_labels: Optional[Path] = typer.Option(None, "--mine-labels", help="Labels of --mine-images (CSV or COCO JSON); objects there are never mined. Default: the labels the bank was harvested from."),
     mine_per_image: int = typer.Option(20, "--mine-per-image", min=1, help="Most new background patches from one image per round."),
     mine_per_round: int = typer.Option(4000, "--mine-per-round", min=1, help="Most new background patches per round (the highest-scoring are kept)."),
-    threshold: float = typer.Option(0.5, "--threshold", min=0.0, max=1.0, help="Score at which mining counts recall and false alarms."),
+    mine_threshold: float = typer.Option(0.5, "--mine-threshold", min=0.0, max=1.0, help="Score at which mining counts recall and false alarms (a detection at or above it that matches no label is a false alarm to add)."),
     mine_overhang: float = typer.Option(0.25, "--mine-overhang", min=0.0, max=0.5, help="How far the mining scan's windows may reach past the image's edges (as `patchwood scan --overhang`; mine at least as far as you will scan)."),
     save_bank_to: Optional[Path] = typer.Option(None, "--save-bank", help="Also write the bank with the mined patches added."),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace existing output files."),
 ) -> None:
     """Grow a forest of shallow trees on the bank's patches and write the model file."""
@@ -76,13 +77,12 @@ def train(
     if mine_images is None and mine_rounds != 0:
         mine_images, mine_labels = mining_source(b, bank)
         if mine_images is None:
-            if mine_rounds:
+            if given(ctx, "mine_rounds"):
                 raise typer.BadParameter("--mine-rounds needs --mine-images and --mine-labels "
                                          "(this bank does not record the images it came from)")
             echo("note: no mining (the bank does not record the images it came from; give "
                  "--mine-images and --mine-labels)")
-    if mine_rounds is None:
-        mine_rounds = DEFAULT_MINE_ROUNDS if mine_images is not None else 0
+            mine_rounds = 0
     inputs = [bank, mine_labels]
     check_output_file(out, force, "model", inputs=inputs)
     if save_bank_to is not None:
@@ -105,11 +105,11 @@ def train(
         what = "first model" if r == 0 else f"after round {r}"
         added = "" if r == mine_rounds else f"; adding {len(found.patches)} false alarms as background"
         echo(f"mining images, {what}: {found.false_alarms_per_image:.2f} false alarms per image, "
-             f"recall {found.recall:.3f} at score {threshold:g}{added}")
+             f"recall {found.recall:.3f} at score {mine_threshold:g}{added}")
 
     model, clf, final_bank = train_with_mining(
         b, params, rounds=mine_rounds, images_dir=mine_images, items=items,
-        settings=ScanSettings(threshold=threshold, overhang=mine_overhang), per_image=mine_per_image,
+        settings=ScanSettings(threshold=mine_threshold, overhang=mine_overhang), per_image=mine_per_image,
         per_round=mine_per_round, bank_path=bank, mine_params=mining_params(params),
         progress_factory=lambda d, n: progress_bar(d, n, "trees" if d.startswith("growing") else "images"),
         report=report)

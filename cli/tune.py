@@ -5,11 +5,11 @@ from __future__ import annotations
 import json
 import time
 from pathlib import Path
-from typing import Optional
+from typing import Literal, Optional
 
 import typer
 
-from cli.common import (channels_option, check_channels_option, echo, human_path,
+from cli.common import (quiet_option, jobs_option, channels_option, check_channels_option, echo, human_path,
                         parse_window_option, progress_bar)
 from detector.errors import InputError
 from detector.io.files import write_text
@@ -78,18 +78,19 @@ def tune(
     pool: str = typer.Option("1000..20000", "--pool", help="Feature pool size: a value or a range LOW..HIGH (log scale; capped at the features the window holds)."),
     features_per_node: str = typer.Option("10..300", "--features-per-node", help="Pool features tried at every node: a value or a range LOW..HIGH (log scale; capped at the pool)."),
     sample_fraction: str = typer.Option("0.3..1", "--sample-fraction", help="Bootstrap or subsample fraction: a value or a range LOW..HIGH within 0.01..1."),
-    channels: str = channels_option(),
+    channels: Literal["gradient", "grey"] = channels_option(),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     copies: int = typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
     negatives_per_image: int = typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image."),
     mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds inside every fold, on that fold's training images only (as many as train mines by default; the models before the last grow a quarter of the trees, as train's do)."),
-    scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=4.0, help="Ratio between neighbouring scales of the held-out scans."),
-    stride: float = typer.Option(2.0, "--stride", min=1.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
+    scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales of the held-out scans."),
+    stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
     min_object: Optional[float] = typer.Option(None, "--min-object", min=1.0, help="Shorter side of the smallest object to look for, in pixels."),
     max_object: Optional[float] = typer.Option(None, "--max-object", min=1.0, help="Shorter side of the largest object to look for, in pixels."),
     overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window of the held-out scans may reach past the image's edges, as a share of its size (as `patchwood scan --overhang`)."),
-    jobs: int = typer.Option(1, "--jobs", min=1, help="Threads growing trees (the results do not depend on it)."),
+    jobs: int = jobs_option(),
+    quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace files an earlier tune wrote into --out."),
 ) -> None:
     """Search the forest's parameters by cross-validation over images: every trial trains on

@@ -23,7 +23,7 @@ EMPTY_SHARE = 0.15
 """Share of frames in each split that show no nuts (rounded to a whole count)."""
 
 TEST_SHARE = 0.2
-"""Share of ``--images`` that goes to ``test/`` when only a total is given."""
+"""Share of ``--frames`` that goes to ``test/`` when only a total is given."""
 
 SPLITS = ("train", "test")
 

@@ -130,7 +130,7 @@ def test_folder_scan_writes_every_image_as_the_engine_finds_it(trained, folder, 
     assert "images scanned: 7\n" in result.stdout
     assert f"detections: {found} at score >= 0.5\n" in result.stdout
     assert "failures: 0\n" in result.stdout
-    assert "other files skipped: 1\n" in result.stdout  # notes.txt
+    assert "other files skipped: 1 (notes.txt)\n" in result.stdout  # named, not only counted
     assert f"mean trees per window: {trees / windows:.2f}\n" in result.stdout
     assert " s (" in result.stdout and "images/s)" in result.stdout
 

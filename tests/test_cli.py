@@ -51,8 +51,8 @@ CONFLICTS = [
     (["train", "bank.npz", "--out", "m.npz", "--mine-rounds", "0", "--mine-images", "imgs",
       "--mine-labels", "l.csv"],
      "--mine-images, --mine-labels only shape mining rounds; leave out --mine-rounds 0"),
-    (["train", "bank.npz", "--out", "m.npz", "--mine-rounds", "0", "--threshold", "0.3"],
-     "--threshold only shapes mining rounds"),
+    (["train", "bank.npz", "--out", "m.npz", "--mine-rounds", "0", "--mine-threshold", "0.3"],
+     "--mine-threshold only shapes mining rounds"),
     (["train", "bank.npz", "--out", "m.npz", "--mine-images", "imgs"],
      "--mine-images and --mine-labels go together"),
     (["train", "bank.npz", "--out", "m.npz", "--mine-rounds", "0", "--mine-per-image", "5"],
@@ -64,8 +64,8 @@ CONFLICTS = [
     (["harvest", "imgs", "labels.csv", "--out", "b.npz", "--copies", "0", "--rotate", "30",
       "--no-mirror", "--jitter", "0.1"],  # --no-mirror asks for nothing: not named
      "--jitter, --rotate only shape the augmented copies, and --copies 0 makes none"),
-    (["synth", "out", "--images", "50", "--train-images", "30", "--test-images", "10"],
-     "--images is split into train/ and test/, but --train-images and --test-images set both"),
+    (["synth", "out", "--frames", "50", "--train-frames", "30", "--test-frames", "10"],
+     "--frames is split into train/ and test/, but --train-frames and --test-frames set both"),
 ]
 
 
@@ -89,13 +89,117 @@ def test_options_that_would_override_each_other_are_usage_errors(tmp_path, monke
 
 
 def test_one_option_of_a_refused_pair_is_accepted(tmp_path):
-    """The refusal is about the pair: --train-images with --test-images, or --images alone,
+    """The refusal is about the pair: --train-frames with --test-frames, or --frames alone,
     render as asked."""
     runner = CliRunner()
-    both = runner.invoke(app, ["synth", str(tmp_path / "a"), "--train-images", "3",
-                               "--test-images", "2"])
+    both = runner.invoke(app, ["synth", str(tmp_path / "a"), "--train-frames", "3",
+                               "--test-frames", "2"])
     assert both.exit_code == 0, both.output
     assert len(list((tmp_path / "a" / "train" / "images").glob("*.png"))) == 3
-    alone = runner.invoke(app, ["synth", str(tmp_path / "b"), "--images", "5"])
+    alone = runner.invoke(app, ["synth", str(tmp_path / "b"), "--frames", "5"])
     assert alone.exit_code == 0, alone.output
     assert len(list((tmp_path / "b" / "test" / "images").glob("*.png"))) == 1  # 20 % of 5
+
+
+# ------------------------------------------------------------------ renamed options
+
+def _run_main(argv):
+    code = (f"import sys; sys.argv = {['patchwood'] + argv!r}\nimport cli.main\ncli.main.run()")
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+
+
+def test_renamed_options_name_their_new_word():
+    """An option renamed so that one word has one meaning (``cli.main.RENAMED``) is a one-line
+    usage error that names the new word; the new word is an option of that command."""
+    from cli.main import RENAMED
+
+    for (command, old), new in RENAMED.items():
+        out = _run_main([command, "x", old, "1"])
+        assert out.returncode == 2, (command, old, out.stderr)
+        assert out.stderr == (f"error: {command} {old} is now {new} "
+                              f"(see 'patchwood {command} --help')\n")
+        assert new in CliRunner().invoke(app, [command, "--help"]).output
+
+
+# ------------------------------------------------------------------ one word, one meaning
+
+#: Options that may differ between commands, and why:
+#: - ``--out``: where each command writes (a bank file, a model file, a detections file, a
+#:   folder), so each has its own default (or none);
+#: - tune's search options take a value or a range LOW..HIGH to search (``--trees 20..300``,
+#:   ``--mode bagged,boosted``), so their defaults are ranges; a single value means what it means
+#:   to ``train``.
+DIFFERENT_BY_DESIGN = {("--out", None)} | {
+    (option, "tune") for option in ("--trees", "--depth", "--mode", "--pool",
+                                    "--features-per-node", "--sample-fraction")}
+
+
+def _options():
+    """{option: [(command, default, min, max, is_flag), ...]} over every command."""
+    import typer
+
+    group = typer.main.get_command(app)
+    ctx = typer.Context(group)
+    found = {}
+    for name in COMMANDS:
+        command = group.get_command(ctx, name)
+        for p in command.params:
+            if p.param_type_name != "option" or p.hidden or p.name == "help":
+                continue
+            for opt in p.opts:
+                found.setdefault(opt, []).append((name, p.default, p.min, p.max, p.is_flag))
+    return found
+
+
+def test_an_option_has_one_default_and_one_range_in_every_command():
+    """Every option name that several commands take has the same default, range and kind in all
+    of them, but for the differences listed (and explained) in DIFFERENT_BY_DESIGN."""
+    problems = []
+    for option, uses in _options().items():
+        kept = [u for u in uses if (option, None) not in DIFFERENT_BY_DESIGN
+                and (option, u[0]) not in DIFFERENT_BY_DESIGN]
+        if len({repr(u[1:]) for u in kept}) > 1:
+            problems.append(f"{option}: " + "; ".join(
+                f"{u[0]} default {u[1]!r} range {u[2]}..{u[3]}" for u in kept))
+    assert not problems, "\n".join(problems)
+
+
+def test_the_walk_sees_the_shared_options():
+    """The walk above reads real parameters: --jobs is one declaration (cli.common.jobs_option)
+    in every command that runs workers, --seed is in every command that draws at random."""
+    from cli.common import MAX_JOBS
+
+    found = _options()
+    assert {u[0] for u in found["--jobs"]} == {"train", "scan", "tune", "audit", "demo"}
+    assert {u[1:4] for u in found["--jobs"]} == {(1, 1, MAX_JOBS)}
+    assert {"synth", "harvest", "train", "tune", "audit", "demo"} <= {u[0] for u in found["--seed"]}
+
+
+def test_version_short_help_and_quiet(tmp_path):
+    """``patchwood --version`` prints the installed version (importlib.metadata); ``-h`` is
+    ``--help`` in every command; ``--quiet`` leaves out the progress lines, not the results."""
+    from importlib.metadata import version
+
+    out = _run_main(["--version"])
+    assert (out.returncode, out.stdout) == (0, f"patchwood {version('patchwood')}\n")
+    for name in COMMANDS:
+        short = CliRunner().invoke(app, [name, "-h"])
+        assert short.exit_code == 0 and short.output == CliRunner().invoke(app, [name, "--help"]).output
+    data = tmp_path / "s"
+    assert _run_main(["synth", str(data), "--frames", "3"]).returncode == 0
+    args = ["harvest", str(data / "train" / "images"), str(data / "train" / "labels.csv"),
+            "--copies", "1"]
+    loud = _run_main(args + ["--out", str(tmp_path / "a.npz")])
+    quiet = _run_main(args + ["--out", str(tmp_path / "b.npz"), "--quiet"])
+    assert loud.returncode == quiet.returncode == 0
+    assert "harvesting: " in loud.stderr and quiet.stderr == ""
+    assert quiet.stdout == loud.stdout.replace("a.npz", "b.npz")
+
+
+def test_usage_lines_name_arguments_as_errors_do():
+    """IMAGES_DIR in the usage line is IMAGES_DIR in the error, with no braces around it."""
+    usage = CliRunner().invoke(app, ["harvest", "-h"]).output.splitlines()[0]
+    assert usage == "Usage: patchwood harvest [OPTIONS] IMAGES_DIR LABELS"
+    assert "{" not in CliRunner().invoke(app, ["scan", "-h"]).output.splitlines()[0]
+    out = _run_main(["harvest"])
+    assert out.returncode == 2 and "Missing argument 'IMAGES_DIR'" in out.stderr

@@ -91,7 +91,7 @@ def test_scan_results_evaluate_in_pycocotools_as_patchwood_scores_them(scenario,
 
     # patchwood score on the same file and the same labels
     report = tmp_path / "report"
-    scored = invoke("score", out, root / "gt.json", "--report", report)
+    scored = invoke("score", out, root / "gt.json", "--out", report)
     assert scored.exit_code == 0, scored.output
     summary = json.loads((report / "summary.json").read_text())
     assert summary["objects"] == sum(len(it.boxes) for it in read_labels(root / "test" / "labels.csv"))
@@ -120,7 +120,7 @@ def test_an_image_missing_from_the_labels_is_a_one_line_error(scenario, tmp_path
 @pytest.mark.parametrize("args, message", [
     (["--format", "csv", "--labels", "GT"], "--labels gives image ids to --format coco-results only"),
     (["--format", "coco-results", "--label", "nut"], "--label chooses a category of the --labels"),
-    (["--format", "coco-result"], "--format must be csv, coco or coco-results"),
+    (["--format", "coco-result"], "'coco-result' is not one of 'csv', 'coco', 'coco-results'"),
 ])
 def test_labels_options_are_usage_errors_elsewhere(scenario, tmp_path, args, message):
     root = scenario

@@ -12,7 +12,7 @@ from detector.model import load_model
 
 def test_demo_runs_the_whole_workflow_on_small_data(tmp_path):
     out = tmp_path / "demo"
-    args = ["demo", "--out", str(out), "--images", "10", "--trees", "8", "--pool", "300",
+    args = ["demo", "--out", str(out), "--frames", "10", "--trees", "8", "--pool", "300",
             "--mine-rounds", "1", "--jobs", "1"]
     result = CliRunner().invoke(app, args)
     assert result.exit_code == 0, result.output

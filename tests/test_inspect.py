@@ -368,7 +368,7 @@ def test_cli_with_a_bank_draws_over_the_mean_object_patch(trained, tmp_path):
     m = trained["loaded"]
     out = tmp_path / "with-bank"
     result = runner.invoke(cli_main.app, ["inspect", str(trained["model"]), "--out", str(out),
-                                          "--bank", str(trained["bank"]), "--top", "3"])
+                                          "--bank", str(trained["bank"]), "--top-features", "3"])
     assert result.exit_code == 0, result.output
     mean = trained["patches"][trained["y"] == 1].astype(np.float64).mean(0)
     top_png = cv2.imread(str(out / "top-features.png"), cv2.IMREAD_COLOR)[:, :, ::-1]

@@ -69,7 +69,7 @@ def test_the_scan_at_the_recommended_threshold_reproduces_the_report(scenario, t
     code, _, err = patchwood(monkeypatch, capsys, "scan", model, images, "--out", curve,
                              "--threshold", 0.05, *level)
     assert code == 0, err
-    code, _, err = patchwood(monkeypatch, capsys, "score", curve, labels, "--report",
+    code, _, err = patchwood(monkeypatch, capsys, "score", curve, labels, "--out",
                              tmp_path / "report")
     assert code == 0, err
     summary = json.loads((tmp_path / "report" / "summary.json").read_text())
@@ -104,7 +104,7 @@ def test_the_scan_at_the_recommended_threshold_reproduces_the_report(scenario, t
                 for r in (group or [(image, "", "", "", "", "")])]
     assert rows(daily) == expected
 
-    code, _, err = patchwood(monkeypatch, capsys, "score", daily, labels, "--report",
+    code, _, err = patchwood(monkeypatch, capsys, "score", daily, labels, "--out",
                              tmp_path / "again")
     assert code == 0, err
     again = json.loads((tmp_path / "again" / "summary.json").read_text())["operating_point"]
@@ -124,7 +124,7 @@ def test_threshold_from_refuses_another_models_summary(scenario, tmp_path, monke
     curve = tmp_path / "curve.csv"
     assert patchwood(monkeypatch, capsys, "scan", scenario / "bagged.npz", images, "--out", curve,
                      "--threshold", 0.05)[0] == 0
-    assert patchwood(monkeypatch, capsys, "score", curve, labels, "--report",
+    assert patchwood(monkeypatch, capsys, "score", curve, labels, "--out",
                      tmp_path / "report")[0] == 0
     summary = tmp_path / "report" / "summary.json"
     daily = tmp_path / "daily.csv"

@@ -360,7 +360,7 @@ def test_a_folder_without_images_is_a_one_line_error(trained, tmp_path, monkeypa
     (empty / "notes.txt").write_text("nothing here\n")
     line = fails(monkeypatch, capsys, 1, "scan", trained.model, empty, "--out", tmp_path / "d.csv")
     assert line == (f"error: {empty}: no image files to scan (png, jpg, jpeg, bmp, tif, tiff); "
-                    "1 other file skipped")
+                    "1 other file skipped (notes.txt)")
     assert not (tmp_path / "d.csv").exists()
 
 
@@ -466,7 +466,7 @@ def test_whole_workflow_in_folders_with_spaces_and_non_ascii_names(awkward, tmp_
     assert f"annotated images: {len(awkward.good)} in " in out
 
     code, out, err = patchwood(monkeypatch, capsys, "score", detections, labels,
-                               "--report", report, "--images", awkward.folder)
+                               "--out", report, "--images", awkward.folder)
     assert code == 0, err
     summary = json.loads((report / "summary.json").read_text(encoding="utf-8"))
     assert (report / "report.html").is_file()
@@ -533,7 +533,7 @@ def test_bad_label_rows_through_score(tmp_path, monkeypatch, capsys, field, valu
                       encoding="utf-8")
     detections = tmp_path / "detections.csv"
     detections.write_text("image,x,y,width,height,score\na.png,1,1,20,20,0.9\n")
-    line = fails(monkeypatch, capsys, 1, "score", detections, labels, "--report", tmp_path / "r")
+    line = fails(monkeypatch, capsys, 1, "score", detections, labels, "--out", tmp_path / "r")
     assert line == f"error: {labels}:3: {message}"
     assert not (tmp_path / "r").exists()
 
@@ -544,7 +544,7 @@ def test_bad_detection_rows_through_score(tmp_path, monkeypatch, capsys):
     detections = tmp_path / "detections.csv"
     detections.write_bytes(b"\xef\xbb\xbfimage,x,y,width,height,score\r\n"
                            b"a.png,1,1,20,20,0.9\r\na.png,1,1,20,20,NaN\r\n")
-    line = fails(monkeypatch, capsys, 1, "score", detections, labels, "--report", tmp_path / "r")
+    line = fails(monkeypatch, capsys, 1, "score", detections, labels, "--out", tmp_path / "r")
     assert line == f"error: {detections}:3: score must be a number in 0..1, found NaN"
 
 
@@ -700,9 +700,9 @@ def _existing_output_cases(trained, tmp_path):
         "scan": (["scan", trained.model, trained.test / "images", "--out", target], target),
         "scan --format coco": (["scan", trained.model, trained.test / "images", "--out", target,
                                 "--format", "coco"], target),
-        "score": (["score", _detections(trained, tmp_path), t / "labels.csv", "--report", folder],
+        "score": (["score", _detections(trained, tmp_path), t / "labels.csv", "--out", folder],
                   folder / "report.html"),
-        "synth": (["synth", folder, "--images", "2"], folder / "train" / "labels.csv"),
+        "synth": (["synth", folder, "--frames", "2"], folder / "train" / "labels.csv"),
         "tune": (["tune", imgs, labels, "--out", folder, "--trials", "1"],
                  folder / "trials.csv"),
         "audit": (["audit", imgs, labels, "--out", folder], folder / "suspicious-labels.csv"),
@@ -746,7 +746,7 @@ def test_an_output_that_is_in_the_way_is_a_one_line_error(trained, tmp_path, mon
         in_the_way.write_text("not a folder\n")
     else:
         in_the_way.mkdir()
-    option = {"score": "--report", "synth": None}.get(command, "--out")
+    option = {"synth": None}.get(command, "--out")
     args = list(args)
     if option is None:
         args[1] = in_the_way
@@ -770,10 +770,10 @@ def test_an_output_that_is_in_the_way_is_a_one_line_error(trained, tmp_path, mon
     ["harvest", "images", "labels.csv", "--out", "b.npz", "--window", "0x24"],
     ["train", "b.npz", "--out", "m.npz", "--mode", "stacked"],
     ["synth", "out", "--size", "5x5"],
-    ["score", "d.csv", "labels.csv", "--report", "r", "--iou", "0"],
+    ["score", "d.csv", "labels.csv", "--out", "r", "--iou", "0"],
     ["tune", "images", "labels.csv", "--trees", "300..20"],
     ["audit", "images"],
-    ["inspect", "m.npz", "--top", "0"],
+    ["inspect", "m.npz", "--top-features", "0"],
     ["scan", "M.npz"],
 ])
 def test_bad_options_exit_2_with_one_line(tmp_path, monkeypatch, capsys, args):
@@ -1450,7 +1450,7 @@ def test_a_full_disk_is_one_line_naming_the_file(trained, tmp_path, monkeypatch,
                  out)
     assert line == f"error: {out}: cannot write the file: No space left on device"
     found = _detections(trained, tmp_path)
-    line = fails(monkeypatch, capsys, 1, "score", found, trained.test / "labels.csv", "--report",
+    line = fails(monkeypatch, capsys, 1, "score", found, trained.test / "labels.csv", "--out",
                  tmp_path / "report")
     assert re.fullmatch(f"error: {re.escape(str(tmp_path / 'report'))}/[^/]+: cannot write the "
                         "file: No space left on device", line), line
@@ -1681,7 +1681,7 @@ def test_a_report_never_replaces_its_inputs(trained, tmp_path, monkeypatch, caps
     shutil.copy(trained.test / "labels.csv", labels)
     before = labels.read_bytes()
     line = fails(monkeypatch, capsys, 1, "score", _detections(trained, tmp_path), labels,
-                 "--report", report, "--force")
+                 "--out", report, "--force")
     assert line == (f"error: {labels}: the report would replace its own input ({labels}); "
                     "choose another report folder")
     assert labels.read_bytes() == before and sorted(p.name for p in report.iterdir()) == [

@@ -68,7 +68,7 @@ def run(*args):
 @pytest.fixture(scope="module")
 def scored(tmp_path_factory):
     root = make_folder(tmp_path_factory.mktemp("score"))
-    result = run(root / "detections.csv", root / "labels.csv", "--report", root / "report",
+    result = run(root / "detections.csv", root / "labels.csv", "--out", root / "report",
                  "--label", "nut")
     assert result.exit_code == 0, (result.output, result.exception)
     return root, result
@@ -199,7 +199,7 @@ def test_report_folder_refused_then_forced(tmp_path):
     (out / "my notes.txt").write_text("keep me")
     (out / "gallery").mkdir()
     (out / "gallery" / "missed-99.png").write_bytes(b"old report picture")
-    args = [root / "detections.csv", root / "labels.csv", "--report", out, "--label", "nut",
+    args = [root / "detections.csv", root / "labels.csv", "--out", out, "--label", "nut",
             "--target-recall", "0.8"]
     refused = run(*args)
     assert refused.exit_code == 1 and isinstance(refused.exception, InputError)
@@ -227,7 +227,7 @@ def test_unreachable_target_precision(tmp_path):
     (root / "detections.csv").write_text("image,x,y,width,height,score\n"
                                          "a.png,40,30,8,8,0.99\na.png,4,4,16,16,0.9\n")
     (root / "images" / "b.png").unlink()  # a missing picture costs its thumbnail, not the report
-    result = run(root / "detections.csv", root / "labels.csv", "--report", tmp_path / "r",
+    result = run(root / "detections.csv", root / "labels.csv", "--out", tmp_path / "r",
                  "--images", root / "images", "--target-precision", "0.9")
     assert result.exit_code == 0, (result.output, result.exception)
     assert "cannot be met: no threshold reaches precision 0.9 (the highest is 0.500)" in result.output
@@ -245,7 +245,7 @@ def test_mismatched_names_hint(tmp_path):
     root = make_folder(tmp_path)
     (root / "detections.csv").write_text("image,x,y,width,height,score\n"
                                          "Test/images/A.png,4,4,16,16,0.9\n")
-    result = run(root / "detections.csv", root / "labels.csv", "--report", root / "report")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", root / "report")
     assert result.exit_code == 1 and isinstance(result.exception, InputError)
     message = str(result.exception)
     assert message.startswith(f"{root / 'detections.csv'}: no detection image matches")
@@ -256,7 +256,7 @@ def test_mismatched_names_hint(tmp_path):
 def test_bad_row_names_file_and_line(tmp_path):
     root = make_folder(tmp_path)
     (root / "labels.csv").write_text("image,x,y,width,height\na.png,1,2,3,4\na.png,1,2,0,4\n")
-    result = run(root / "detections.csv", root / "labels.csv", "--report", root / "report")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", root / "report")
     assert result.exit_code == 1
     assert str(result.exception) == f"{root / 'labels.csv'}:3: width must be > 0, found 0"
 
@@ -268,7 +268,7 @@ def test_bad_row_names_file_and_line(tmp_path):
 ])
 def test_usage_errors(tmp_path, extra, message):
     root = make_folder(tmp_path)
-    result = run(root / "detections.csv", root / "labels.csv", "--report", root / "r", *extra)
+    result = run(root / "detections.csv", root / "labels.csv", "--out", root / "r", *extra)
     assert result.exit_code == 2
     assert message in result.output
     assert not (root / "r").exists()
@@ -276,7 +276,7 @@ def test_usage_errors(tmp_path, extra, message):
 
 def test_missing_images_folder_is_an_error(tmp_path):
     root = make_folder(tmp_path)
-    result = run(root / "detections.csv", root / "labels.csv", "--report", root / "r",
+    result = run(root / "detections.csv", root / "labels.csv", "--out", root / "r",
                  "--images", root / "nowhere")
     assert result.exit_code == 1 and "no such images folder" in str(result.exception)
 
@@ -286,7 +286,7 @@ def test_strict_turns_the_name_warnings_into_an_error(tmp_path):
     and the count, before any report file is written (issue 16)."""
     root = make_folder(tmp_path / "data")
     out = tmp_path / "report"
-    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", out, "--strict")
     assert result.exit_code == 1 and isinstance(result.exception, InputError)
     assert str(result.exception) == (
         f"{root / 'detections.csv'}: 1 of 4 labelled images has no rows in it (not scanned: "
@@ -295,7 +295,7 @@ def test_strict_turns_the_name_warnings_into_an_error(tmp_path):
     # detections of unlabelled images alone are refused the same way
     (root / "labels.csv").write_text(LABELS_CSV + "e.png,,,,,\n".replace("e.png", "z.png"))
     (root / "detections.csv").write_text(DETECTIONS_CSV + "e.png,,,,,\nz.png,,,,,\n")
-    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", out, "--strict")
     assert result.exit_code == 1
     assert str(result.exception).endswith("1 image has rows but is not in "
                                           f"{root / 'labels.csv'}; left out of every figure: "
@@ -304,7 +304,7 @@ def test_strict_turns_the_name_warnings_into_an_error(tmp_path):
     (root / "detections.csv").write_text(
         "\n".join(line for line in (DETECTIONS_CSV + "e.png,,,,,\nz.png,,,,,\n").splitlines()
                   if not line.startswith("d.png")) + "\n")
-    result = run(root / "detections.csv", root / "labels.csv", "--report", out, "--strict")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", out, "--strict")
     assert result.exit_code == 0, result.output
     assert "warning" not in result.stderr
 
@@ -315,7 +315,7 @@ def test_many_missing_images_are_counted_and_the_first_few_named(tmp_path):
     root = make_folder(tmp_path / "data")
     (root / "detections.csv").write_text("image,x,y,width,height,score\n"
                                          "other.png,1,1,5,5,0.5\n")
-    result = run(root / "detections.csv", root / "labels.csv", "--report", tmp_path / "r")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", tmp_path / "r")
     assert result.exit_code == 0, result.output
     lines = result.stderr.splitlines()
     assert lines[0] == (f"warning: {root / 'detections.csv'}: 4 of 4 labelled images have no "
@@ -337,7 +337,7 @@ def test_table_and_galleries_describe_the_operating_point(tmp_path):
     (tmp_path / "d.csv").write_text("image,x,y,width,height,score\na.png,0,0,10,10,0.9\n"
                                     "a.png,80,80,10,10,0.8\na.png,60,60,10,10,0.7\n"
                                     "a.png,20,60,10,10,0.6\na.png,40,0,10,10,0.3\n")
-    result = run(tmp_path / "d.csv", tmp_path / "labels.csv", "--report", tmp_path / "r")
+    result = run(tmp_path / "d.csv", tmp_path / "labels.csv", "--out", tmp_path / "r")
     assert result.exit_code == 0, result.output
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["operating_point"]["threshold"] == 0.9

@@ -301,7 +301,7 @@ def _app():
 
 def test_cli_synth_writes_and_reports(tmp_path):
     out = tmp_path / "demo"
-    result = CliRunner().invoke(_app(), ["synth", str(out), "--images", "3", "--seed", "3", "--size", "640x480"])
+    result = CliRunner().invoke(_app(), ["synth", str(out), "--frames", "3", "--seed", "3", "--size", "640x480"])
     assert result.exit_code == 0, result.output
     # 3 images split 80/20 -> round(0.6) = 1 test, 2 train
     assert "train 2 frames (0 without nuts)" in result.output
@@ -309,7 +309,7 @@ def test_cli_synth_writes_and_reports(tmp_path):
     assert len(list((out / "train" / "images").glob("frame_*.png"))) == 2
     img = cv2.imread(str(out / "test" / "images" / "frame_0001.png"), cv2.IMREAD_UNCHANGED)
     assert img.shape == (480, 640)
-    result = CliRunner().invoke(_app(), ["synth", str(tmp_path / "d2"), "--train-images", "2", "--test-images", "2"])
+    result = CliRunner().invoke(_app(), ["synth", str(tmp_path / "d2"), "--train-frames", "2", "--test-frames", "2"])
     assert result.exit_code == 0, result.output
     assert len(list((tmp_path / "d2" / "test" / "images").glob("*.png"))) == 2
 
@@ -326,7 +326,7 @@ def test_cli_bad_size_is_a_usage_error(tmp_path, size):
 def test_cli_non_empty_folder_is_a_one_line_error(tmp_path, monkeypatch, capsys):
     import cli.main as main
     render_scenario(tmp_path, train_images=1, test_images=1)
-    monkeypatch.setattr(sys, "argv", ["patchwood", "synth", str(tmp_path), "--images", "2"])
+    monkeypatch.setattr(sys, "argv", ["patchwood", "synth", str(tmp_path), "--frames", "2"])
     with pytest.raises(SystemExit) as stop:
         main.run()
     assert stop.value.code == 1

@@ -275,7 +275,7 @@ def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
         assert code == 2 and err.count("\n") == 1
         assert "--mine-images and --mine-labels go together" in err
     code, _, err = cli_env("train", bank, "--out", out, "--mode", "stacked")
-    assert code == 2 and "--mode must be bagged or boosted" in err
+    assert code == 2 and "'stacked' is not one of 'boosted', 'bagged'" in err
     assert out.read_bytes() == b"keep me"
     out.unlink()
     # input errors: one line naming the file, exit 1, no model written

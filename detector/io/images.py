@@ -588,8 +588,8 @@ def _is_image_name(name: str) -> bool:
     return name.lower().endswith(IMAGE_SUFFIXES)
 
 
-def list_images(paths: Iterable[str | os.PathLike],
-                failures: list | None = None) -> tuple[list[tuple[str, str]], int]:
+def list_images(paths: Iterable[str | os.PathLike], failures: list | None = None,
+                skipped_names: list | None = None) -> tuple[list[tuple[str, str]], int]:
     """Find the image files among files and folders, in a fixed order.
 
     Folders are walked recursively; files and sub-folders whose names start with a dot are left
@@ -605,6 +605,8 @@ def list_images(paths: Iterable[str | os.PathLike],
         Where to note folders that cannot be read (no permission, vanished while listed): as
         ``(display_name + "/", reason)``, so that a scan lists them among its failures. Without
         it, such a folder is an :class:`InputError`; it is never skipped silently.
+    skipped_names : list, optional
+        Where to note the files left out (display names, in the order found).
 
     Returns
     -------
@@ -660,6 +662,9 @@ def list_images(paths: Iterable[str | os.PathLike],
                         continue
                     if not _is_image_name(name):
                         skipped += 1
+                        if skipped_names is not None:
+                            rel = name if rel_folder == "." else os.path.join(rel_folder, name)
+                            skipped_names.append(display_name(rel.replace(os.sep, "/")))
                         continue
                     rel = name if rel_folder == "." else os.path.join(rel_folder, name)
                     names.append((rel.replace(os.sep, "/"), os.path.join(folder, name)))
@@ -670,6 +675,8 @@ def list_images(paths: Iterable[str | os.PathLike],
                 found.append((text, display_name(text)))
             else:
                 skipped += 1
+                if skipped_names is not None:
+                    skipped_names.append(display_name(text))
         else:
             raise InputError("no such file or folder", path=text)
     return found, skipped

@@ -53,6 +53,7 @@ from detector.forest import bin_columns, oob_scores, quantile_cuts
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
 from detector.io.labels import csv_writer
 from detector.reporting._html import card, esc, page, swatch
+from detector.training import DEFAULT_TRAIN
 from detector.reporting.drawing import crop_around, draw_box, write_png
 
 __all__ = [
@@ -93,11 +94,13 @@ AUDIT_STYLES = {
     "labelled": ((86, 180, 233), "solid", "other labelled object"),
 }
 
-#: Forest parameters of the audit (names as for :class:`detector.classifier.PatchClassifier`).
+#: Forest parameters of the audit (names as for :class:`detector.classifier.PatchClassifier`):
+#: the trees, depth and pool of ``patchwood train`` (one option, one default), grown bagged for
+#: their out-of-bag scores.
 DEFAULT_PARAMS = {
-    "n_trees": 200,
-    "depth": 2,
-    "pool": 5000,
+    "n_trees": DEFAULT_TRAIN["trees"],
+    "depth": DEFAULT_TRAIN["depth"],
+    "pool": DEFAULT_TRAIN["pool"],
     "features_per_node": None,
     "sample_fraction": 1.0,
     "normalize": True,

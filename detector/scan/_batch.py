@@ -52,6 +52,16 @@ class ImageResult:
     seconds: float = 0.0
 
 
+def named_list(names, first: int = 5) -> str:
+    """The first few names, and how many more.
+
+    >>> named_list(["a.webp"]), named_list([f"{i}.txt" for i in range(7)], first=3)
+    ('a.webp', '0.txt, 1.txt, 2.txt and 4 more')
+    """
+    shown = ", ".join(names[:first])
+    return shown + (f" and {len(names) - first} more" if len(names) > first else "")
+
+
 @dataclass
 class RunSummary:
     """Totals of a scan run."""
@@ -61,6 +71,7 @@ class RunSummary:
     detections: int = 0
     failures: list = field(default_factory=list)  # (image, reason)
     skipped_files: int = 0
+    skipped_names: list = field(default_factory=list)  # the files left out (not images)
     seconds: float = 0.0
     windows: int = 0
     trees: int = 0
@@ -461,9 +472,11 @@ def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, r
         if not os.path.lexists(p):
             raise InputError("no such file or folder", path=p)
     folder_failures: list = []
-    listed, skipped = list_images(paths, failures=folder_failures)
+    skipped_names: list = []
+    listed, skipped = list_images(paths, failures=folder_failures, skipped_names=skipped_names)
     if not listed and not folder_failures and not (resume and out.exists()):
-        others = f"; {skipped} other file{'s' if skipped != 1 else ''} skipped" if skipped else ""
+        others = (f"; {skipped} other file{'s' if skipped != 1 else ''} skipped "
+                  f"({named_list(skipped_names)})" if skipped else "")
         where = paths[0] if len(paths) == 1 else None
         raise InputError("no image files to scan (png, jpg, jpeg, bmp, tif, tiff)" + others,
                          path=where)
@@ -476,7 +489,7 @@ def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, r
         result_ids = coco_result_ids(labels, label)
         for _, name in listed:  # every image needs its id before any is scanned
             result_ids.image_id(name)
-    summary = RunSummary(skipped_files=skipped, out=str(out))
+    summary = RunSummary(skipped_files=skipped, skipped_names=skipped_names, out=str(out))
     record = scan_record(model_path, model, settings, paths, threshold_from)
     done: list[ImageResult] = []
     if resume and out.exists():
