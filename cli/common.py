@@ -99,6 +99,48 @@ class _Rate(TextColumn):
 MAX_JOBS = 256
 
 
+# The harvest options, declared once for `harvest` and `tune` (tune harvests its folds).
+
+def margin_option():
+    return typer.Option(0.1, "--margin", min=0.0, max=1.0, help="Context added around each box, as a fraction of its size on every side.")
+
+
+def copies_option():
+    return typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself.")
+
+
+def jitter_option():
+    return typer.Option(0.05, "--jitter", min=0.0, max=0.5, help="Largest random shift and scale change of a copy, as a fraction of the box.")
+
+
+def mirror_option():
+    return typer.Option(True, "--mirror/--no-mirror", help="Mirror every second copy left to right.")
+
+
+def rotate_option():
+    return typer.Option(10.0, "--rotate", min=0.0, max=180.0, help="Largest random rotation of a copy, degrees.")
+
+
+def brightness_option():
+    return typer.Option(20.0, "--brightness", min=0.0, max=128.0, help="Largest random brightness change of a copy, grey levels.")
+
+
+def contrast_option():
+    return typer.Option(0.2, "--contrast", min=0.0, max=0.9, help="Largest random relative contrast change of a copy.")
+
+
+def negatives_per_image_option():
+    return typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image.")
+
+
+def near_negatives_option():
+    return typer.Option(4, "--near-negatives", min=0, max=100, help="Background windows per box drawn close to it: much smaller inside it, much larger around it.")
+
+
+def background_iou_option():
+    return typer.Option(0.3, "--background-iou", min=0.0, max=1.0, help="A background window must overlap every labelled box less than this (IoU).")
+
+
 def jobs_option():
     """``--jobs``, declared once for every command that takes it: one meaning, one default."""
     return typer.Option(1, "--jobs", min=1, max=MAX_JOBS, help="Workers: the threads that grow trees and the processes that scan, whichever this command runs (results do not depend on it).")

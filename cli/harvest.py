@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli.common import (quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
+from cli.common import (margin_option, copies_option, jitter_option, mirror_option, rotate_option, brightness_option, contrast_option, negatives_per_image_option, near_negatives_option, background_iou_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
@@ -27,16 +27,16 @@ def harvest(
     out: Path = typer.Option(..., "--out", help="Patch bank to write (.npz)."),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
-    margin: float = typer.Option(0.1, "--margin", min=0.0, max=1.0, help="Context added around each box, as a fraction of its size on every side."),
-    copies: int = typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
-    jitter: float = typer.Option(0.05, "--jitter", min=0.0, max=0.5, help="Largest random shift and scale change of a copy, as a fraction of the box."),
-    mirror: bool = typer.Option(True, "--mirror/--no-mirror", help="Mirror every second copy left to right."),
-    rotate: float = typer.Option(10.0, "--rotate", min=0.0, max=180.0, help="Largest random rotation of a copy, degrees."),
-    brightness: float = typer.Option(20.0, "--brightness", min=0.0, max=128.0, help="Largest random brightness change of a copy, grey levels."),
-    contrast: float = typer.Option(0.2, "--contrast", min=0.0, max=0.9, help="Largest random relative contrast change of a copy."),
-    negatives_per_image: int = typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image."),
-    near_negatives: int = typer.Option(4, "--near-negatives", min=0, max=100, help="Background windows per box drawn close to it: much smaller inside it, much larger around it."),
-    background_iou: float = typer.Option(0.3, "--background-iou", min=0.0, max=1.0, help="A background window must overlap every labelled box less than this (IoU)."),
+    margin: float = margin_option(),
+    copies: int = copies_option(),
+    jitter: float = jitter_option(),
+    mirror: bool = mirror_option(),
+    rotate: float = rotate_option(),
+    brightness: float = brightness_option(),
+    contrast: float = contrast_option(),
+    negatives_per_image: int = negatives_per_image_option(),
+    near_negatives: int = near_negatives_option(),
+    background_iou: float = background_iou_option(),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed gives the same bank."),
     quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace an existing bank file."),

@@ -9,7 +9,7 @@ from typing import Literal, Optional
 
 import typer
 
-from cli.common import (quiet_option, jobs_option, channels_option, check_channels_option, echo, human_path,
+from cli.common import (margin_option, copies_option, jitter_option, mirror_option, rotate_option, brightness_option, contrast_option, negatives_per_image_option, near_negatives_option, background_iou_option, quiet_option, jobs_option, channels_option, check_channels_option, echo, human_path,
                         parse_window_option, progress_bar)
 from detector.errors import InputError
 from detector.io.files import write_text
@@ -81,8 +81,16 @@ def tune(
     channels: Literal["gradient", "grey"] = channels_option(),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
-    copies: int = typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
-    negatives_per_image: int = typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image."),
+    margin: float = margin_option(),
+    copies: int = copies_option(),
+    jitter: float = jitter_option(),
+    mirror: bool = mirror_option(),
+    rotate: float = rotate_option(),
+    brightness: float = brightness_option(),
+    contrast: float = contrast_option(),
+    negatives_per_image: int = negatives_per_image_option(),
+    near_negatives: int = near_negatives_option(),
+    background_iou: float = background_iou_option(),
     mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds inside every fold, on that fold's training images only (as many as train mines by default; the models before the last grow a quarter of the trees, as train's do)."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales of the held-out scans."),
     stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
@@ -122,8 +130,12 @@ def tune(
     echo(f"labels: {len(lf)} images, {n_boxes} boxes from {human_path(labels)}")
     with progress_bar("harvesting", len(lf), "images") as update:
         bank, fold_data = prepare_folds(images_dir, lf.items, folds, seed, labels_path=labels,
-                                        progress=update, window=size, copies=copies,
-                                        negatives_per_image=negatives_per_image)
+                                        progress=update, window=size, margin=margin,
+                                        copies=copies, jitter=jitter, mirror=mirror,
+                                        rotate=rotate, brightness=brightness, contrast=contrast,
+                                        negatives_per_image=negatives_per_image,
+                                        near_negatives=near_negatives,
+                                        max_background_iou=background_iou)
     out.mkdir(parents=True, exist_ok=True)
     save_bank(files[BANK_FILE], bank)
     c = bank.counts()

@@ -43,7 +43,7 @@ from synthetic_images import render_scenario
 
 SEED = 3
 FOLDS = 3
-HARVEST = dict(copies=2, negatives_per_image=20)
+HARVEST = dict(copies=2, negatives_per_image=20, rotate=30.0, jitter=0.08, mirror=False)
 # a small fixed parameter set (a few tenths of a second per fold)
 PARAMS = dict(n_trees=8, depth=2, mode="bagged", pool=300, features_per_node=15,
               sample_fraction=1.0, random_state=0)
@@ -51,7 +51,8 @@ TINY = SearchSpace(trees=(4, 10), depth=(1, 2), modes=("bagged", "boosted"), poo
                    features_per_node=(8, 16), sample_fraction=(0.6, 1.0))
 TINY_OPTIONS = ["--trees", "4..10", "--depth", "1..2", "--mode", "bagged,boosted",
                 "--pool", "150..300", "--features-per-node", "8..16",
-                "--sample-fraction", "0.6..1", "--copies", "2", "--negatives-per-image", "20"]
+                "--sample-fraction", "0.6..1", "--copies", "2", "--negatives-per-image", "20",
+                "--rotate", "30", "--jitter", "0.08", "--no-mirror"]   # as the README's harvest
 
 
 @pytest.fixture(scope="module")
