@@ -55,7 +55,7 @@ __all__ = [
 #: Share of the held-out calibration objects that the contrast gate and all the exits together
 #: may give up (``patchwood train --exit-budget``), chosen by measurement (DEVELOPERS.md, "The
 #: early exit's budget"): a budget, not a rate each exit must keep.
-EXIT_BUDGET = 0.005
+EXIT_BUDGET = 0.05
 
 #: What seeds a random draw here (as scikit-learn's ``random_state``).
 RandomState = int | np.random.SeedSequence | np.random.Generator | None

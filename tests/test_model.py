@@ -440,7 +440,7 @@ def test_summary_reads_at_a_glance(fitted):
     assert "trees: 12 of depth 2, random forest (bagged)" in text
     assert f"features used: {len(fitted[0].model_.features)} of a pool of 400" in text
     assert "out-of-bag error: " in text and "%" in text
-    assert "calibrated to give up at most 0.5 % of" in text and "mean trees evaluated per window" in text
+    assert "calibrated to give up at most 5 % of" in text and "mean trees evaluated per window" in text
     model = fitted[0].model_
     model.metadata["bank_sha256"] = "ab" * 32
     assert "bank sha256 abababababab" in model.summary()[-1]
