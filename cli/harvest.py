@@ -7,10 +7,13 @@ from typing import Optional
 
 import typer
 
+from detector.errors import InputError
+
 from cli.common import (margin_option, copies_option, jitter_option, mirror_option, rotate_option, brightness_option, contrast_option, negatives_per_image_option, near_negatives_option, background_iou_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
+from detector._validation import named_list
 
 
 #: Options that only shape the augmented copies: parameter name -> (option, the value that
@@ -18,6 +21,28 @@ from detector.io.labels import read_labels
 COPY_OPTIONS = {"jitter": ("--jitter", 0.0), "mirror": ("--mirror", False),
                 "rotate": ("--rotate", 0.0), "brightness": ("--brightness", 0.0),
                 "contrast": ("--contrast", 0.0)}
+
+
+def check_image_folder(images_dir: Path, labels: Path) -> None:
+    """IMAGES_DIR must be a folder: one line when it does not exist, is a file, or when the two
+    arguments look swapped (a folder given as LABELS)."""
+    if images_dir.is_dir():
+        return
+    if images_dir.is_file() and labels.is_dir():
+        raise InputError(f"is a file and {human_path(labels)} a folder: the arguments look "
+                         "swapped (give IMAGES_DIR first, then LABELS)", path=images_dir)
+    if images_dir.exists():
+        raise InputError("IMAGES_DIR must be a folder of images, but this is a file",
+                         path=images_dir)
+    raise InputError("the images folder does not exist", path=images_dir)
+
+
+def unlabelled_images(images_dir: Path, lf) -> list[str]:
+    """The images under IMAGES_DIR (as the labels name them) that have no row in the labels."""
+    from detector.io.images import list_images
+
+    named = {it.image for it in lf} | set(lf.missing)
+    return [name for _, name in list_images([images_dir])[0] if name not in named]
 
 
 def harvest(
@@ -38,6 +63,7 @@ def harvest(
     near_negatives: int = near_negatives_option(),
     background_iou: float = background_iou_option(),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed gives the same bank."),
+    skip_missing: bool = typer.Option(False, "--skip-missing", help="Harvest past labelled images that are not in IMAGES_DIR, naming them (without it the first one stops the harvest)."),
     quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace an existing bank file."),
 ) -> None:
@@ -50,8 +76,16 @@ def harvest(
                     "augmented copies, and --copies 0 makes none; raise --copies or leave "
                     f"{'it' if len(unused) == 1 else 'them'} out")
     size = parse_window_option(window)
+    check_image_folder(images_dir, labels)
     check_output_file(out, force, "patch bank", inputs=[labels])
-    lf = read_labels(labels, images_dir=images_dir, label=label)
+    try:
+        lf = read_labels(labels, images_dir=images_dir, label=label, skip_missing=skip_missing)
+    except InputError as err:
+        if "image file not found" in err.message:
+            raise InputError(f"{err.message} (--skip-missing harvests the others)", path=err.path,
+                             line=err.line) from None
+        raise
+
     check_not_an_input(out, [images_dir / it.image for it in lf], "patch bank")
     n_boxes = sum(len(it.boxes) for it in lf)
     echo(f"labels: {count(len(lf), 'image')}, {count(n_boxes, 'box', 'boxes')} from "
@@ -87,3 +121,14 @@ def harvest(
              f"{'it gave' if small == 1 else 'they gave'} no background patches")
     save_bank(out, bank)
     echo(f"wrote {human_path(out)}")
+    # after the harvest, so that a failure stays the one line it is
+    if lf.missing:
+        typer.echo(f"warning: {count(len(lf.missing), 'labelled image')} not in "
+                   f"{human_path(images_dir)}, left out: {named_list(lf.missing)}", err=True)
+    unlabelled = unlabelled_images(images_dir, lf)
+    if unlabelled:
+        typer.echo(f"warning: {count(len(unlabelled), 'image')} in {human_path(images_dir)} "
+                   f"{'has' if len(unlabelled) == 1 else 'have'} no row in "
+                   f"{human_path(labels)} and {'is' if len(unlabelled) == 1 else 'are'} not "
+                   f"harvested (unlabelled objects there would go unseen): "
+                   f"{named_list(unlabelled)}", err=True)

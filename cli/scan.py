@@ -128,7 +128,7 @@ def scan(
     if len(s.failures) > 10:
         echo(f"  ... and {len(s.failures) - 10} more")
     if s.skipped_files:
-        from detector.scan._batch import named_list
+        from detector._validation import named_list
 
         echo(f"other files skipped: {s.skipped_files} ({named_list(s.skipped_names)})")
     echo(f"time: {s.seconds:.1f} s ({s.images_per_second:.1f} images/s), "

@@ -223,3 +223,13 @@ def json_safe(value: Any) -> Any:
     if isinstance(value, float) and not math.isfinite(value):
         return None
     return value
+
+
+def named_list(names, first: int = 5) -> str:
+    """The first few names, and how many more.
+
+    >>> named_list(["a.webp"]), named_list([f"{i}.txt" for i in range(7)], first=3)
+    ('a.webp', '0.txt, 1.txt, 2.txt and 4 more')
+    """
+    shown = ", ".join(names[:first])
+    return shown + (f" and {len(names) - first} more" if len(names) > first else "")

@@ -203,3 +203,33 @@ def test_usage_lines_name_arguments_as_errors_do():
     assert "{" not in CliRunner().invoke(app, ["scan", "-h"]).output.splitlines()[0]
     out = _run_main(["harvest"])
     assert out.returncode == 2 and "Missing argument 'IMAGES_DIR'" in out.stderr
+
+
+def test_harvest_is_strict_where_it_matters(tmp_path):
+    """A missing folder says so; swapped arguments get a hint; a missing labelled image stops the
+    harvest with a pointer to --skip-missing, which harvests the rest and names what it left out;
+    images with no labels row are counted and named in a warning."""
+    data = tmp_path / "s"
+    assert _run_main(["synth", str(data), "--frames", "6"]).returncode == 0
+    images, labels = data / "train" / "images", data / "train" / "labels.csv"
+    out = tmp_path / "b.npz"
+    gone = _run_main(["harvest", str(tmp_path / "nope"), str(labels), "--out", str(out)])
+    assert gone.returncode == 1 and gone.stderr == f"error: {tmp_path / 'nope'}: the images folder does not exist\n"
+    swapped = _run_main(["harvest", str(labels), str(images), "--out", str(out)])
+    assert swapped.returncode == 1 and "the arguments look swapped" in swapped.stderr
+    first = sorted(images.iterdir())[0]
+    first.rename(tmp_path / first.name)
+    stopped = _run_main(["harvest", str(images), str(labels), "--out", str(out)])
+    assert stopped.returncode == 1 and stopped.stderr.count("\n") == 1
+    assert f"image file not found: {first}" in stopped.stderr and "--skip-missing" in stopped.stderr
+    assert not out.exists()
+    (tmp_path / first.name).rename(images / "unlabelled.png")   # in the folder, in no row
+    went_on = _run_main(["harvest", str(images), str(labels), "--out", str(out), "--skip-missing",
+                         "--quiet"])
+    assert went_on.returncode == 0 and out.exists()
+    assert went_on.stderr.splitlines() == [
+        f"warning: 1 labelled image not in {images}, left out: {first.name}",
+        f"warning: 1 image in {images} has no row in {labels} and is not harvested (unlabelled "
+        "objects there would go unseen): unlabelled.png"]
+    named = {row.split(",")[0] for row in labels.read_text().splitlines()[1:]}
+    assert f"labels: {len(named) - 1} images" in went_on.stdout   # less the missing one

@@ -129,6 +129,8 @@ class LabelFile:
         COCO annotations marked ``iscrowd`` that were left out (the project has no crowd regions).
     notes : list of str
         One line per clipped box or dropped row, naming the file and line.
+    missing : list of str
+        Labelled images not found in the images folder and left out (``skip_missing``).
 
     Examples
     --------
@@ -144,6 +146,7 @@ class LabelFile:
     duplicates: int = 0
     crowd: int = 0
     notes: list[str] = field(default_factory=list)
+    missing: list[str] = field(default_factory=list)
 
     @property
     def warnings(self) -> int:
@@ -561,7 +564,7 @@ def _place_box(box, size, path, rec: _Record):
 
 
 def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir, label,
-                     has_labels: bool) -> LabelFile:
+                     has_labels: bool, skip_missing: bool = False) -> LabelFile:
     shown_path = os.fspath(path)
 
     def place(rec):  # "labels.csv:7" or "labels.json annotations[3]"
@@ -601,9 +604,13 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
     if images_dir is not None:
         from detector.io.images import image_size
 
-        for image, rec in first.items():
+        for image, rec in list(first.items()):
             full = os.path.join(os.fspath(images_dir), *image.split("/"))
             if not os.path.isfile(full):
+                if skip_missing and not os.path.exists(full):
+                    result.missing.append(image)
+                    del first[image]
+                    continue
                 raise _error(f"image file not found: {full}", path, rec)
             try:
                 result.image_sizes[image] = image_size(full)
@@ -628,7 +635,7 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
 
 
 def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = None,
-                label: str | None = None) -> LabelFile:
+                label: str | None = None, skip_missing: bool = False) -> LabelFile:
     """Read and check a labels file: the labels CSV contract, or COCO JSON.
 
     A file ending in ``.json``, or whose first character is ``{`` or ``[``, is read as COCO JSON
@@ -652,6 +659,9 @@ def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = 
     label : str, optional
         Keep only boxes of this class (the ``label`` column, or the COCO category name); images
         keep their place even when no box is left, and then count as object-free.
+    skip_missing : bool, default False
+        With ``images_dir``: leave out labelled images that are not in the folder (listed in
+        ``missing``) instead of stopping at the first.
 
     Returns
     -------
@@ -692,7 +702,7 @@ def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = 
                                            with_score=False)
     if images_dir is not None:
         result.image_sizes = {}
-    return _assemble_labels(records, path, result, images_dir, label, has_labels)
+    return _assemble_labels(records, path, result, images_dir, label, has_labels, skip_missing)
 
 
 def read_coco(path: str | os.PathLike, images_dir: str | os.PathLike | None = None,

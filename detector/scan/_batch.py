@@ -24,6 +24,7 @@ import cv2
 import numpy as np
 
 from detector.errors import InputError
+from detector._validation import named_list
 from detector.io.files import output_lock, read_bytes, same_file, write_bytes, write_text
 from detector.io.images import (decode_gray, header_size, list_images, max_file_bytes,
                              max_pixels_limit, read_gray)
@@ -50,16 +51,6 @@ class ImageResult:
     trees: int = 0
     error: str | None = None
     seconds: float = 0.0
-
-
-def named_list(names, first: int = 5) -> str:
-    """The first few names, and how many more.
-
-    >>> named_list(["a.webp"]), named_list([f"{i}.txt" for i in range(7)], first=3)
-    ('a.webp', '0.txt, 1.txt, 2.txt and 4 more')
-    """
-    shown = ", ".join(names[:first])
-    return shown + (f" and {len(names) - first} more" if len(names) > first else "")
 
 
 @dataclass
