@@ -19,6 +19,7 @@ def scan(
     paths: List[Path] = typer.Argument(..., help="Image files and folders (searched recursively for png, jpg, jpeg, bmp, tif, tiff)."),
     out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco or coco-results."),
     format: Literal["csv", "coco", "coco-results"] = typer.Option("csv", "--format", help="csv; coco (a COCO JSON object: the images scanned and the detections as scored annotations); or coco-results (the COCO results list, [{image_id, category_id, bbox, score}, ...], that pycocotools' COCO.loadRes and COCOeval read; image ids from --labels)."),
+    box_format: Literal["xywh", "corners"] = typer.Option("xywh", "--box-format", help="Box columns of the CSV: x,y,width,height, or corners x_min,y_min,x_max,y_max (score and harvest read either by the header)."),
     labels: Optional[Path] = typer.Option(None, "--labels", help="With --format coco-results: the COCO labels file (JSON) the results are for; its image ids, matched by file name, and its category id are written (without it, images are numbered 1, 2, ... in the order written)."),
     label: Optional[str] = typer.Option(None, "--label", help="With --labels: the category the detections are for, when the labels file has several."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales."),
@@ -117,6 +118,7 @@ def scan(
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
                        resume=resume, force=force, draw_dir=draw, fmt=format, labels=labels,
+                       box_format=box_format,
                        label=label, progress=update, threshold_from=threshold_from)
     echo(f"images scanned: {s.images}" + (f" (+{s.resumed} kept from the earlier run)" if s.resumed else ""))
     echo(f"detections: {s.detections} at score >= {threshold:g}")

@@ -46,6 +46,11 @@ from detector.io.files import atomic_write, read_bytes
 LABEL_COLUMNS = ("image", "x", "y", "width", "height")
 DETECTION_COLUMNS = ("image", "x", "y", "width", "height", "score")
 BOX_COLUMNS = ("x", "y", "width", "height")
+#: The box columns of a corner CSV (``--box-format corners``): the pixels ``x_min <= x < x_max``,
+#: ``y_min <= y < y_max``; read whenever a header names them instead of ``x,y,width,height``.
+CORNER_COLUMNS = ("x_min", "y_min", "x_max", "y_max")
+#: ``--box-format`` choices for the CSV files the project writes.
+BOX_FORMATS = ("xywh", "corners")
 
 
 @dataclass
@@ -299,12 +304,31 @@ def _exact_image(name: str) -> str:
     return name
 
 
+def _delimiter(text: str) -> str:
+    """``;`` for a file whose first line is separated by semicolons (as spreadsheets write CSV
+    where the decimal mark is a comma), else ``,``.
+
+    >>> _delimiter("image;x;y;width;height"), _delimiter("image,x,y,width,height")
+    (';', ',')
+    """
+    first = next((ln for ln in text.splitlines() if ln.strip()), "")
+    fields = [f.strip().strip('"').lower() for f in first.split(";")]
+    return ";" if len(fields) > 1 and "image" in fields else ","
+
+
 def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
-                 with_score: bool) -> tuple[list[_Record], bool]:
+                 with_score: bool, notes: list | None = None) -> tuple[list[_Record], bool]:
     """Rows of a CSV with ``columns`` as validated records; also whether a label column exists.
     Labels' image names are normalised (:func:`normalise_image_name`); a detections file's
-    (``with_score``) are kept exactly."""
-    reader = csv.reader(io.StringIO(text, newline=""), strict=False)
+    (``with_score``) are kept exactly. A header that names ``x_min,y_min,x_max,y_max`` instead
+    of ``x,y,width,height`` is read as corners; a file separated by semicolons is read as such,
+    with decimal commas, and says so in ``notes``."""
+    delimiter = _delimiter(text)
+    if delimiter == ";" and notes is not None:
+        notes.append(f"{os.fspath(path)}:1: the fields are separated by semicolons; read that way "
+                     "(decimal commas accepted)")
+    reader = csv.reader(io.StringIO(text, newline=""), strict=False, delimiter=delimiter)
+    box_columns = BOX_COLUMNS
     header: list[str] | None = None
     header_line = 1
     records: list[_Record] = []
@@ -323,6 +347,11 @@ def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
             continue  # blank line
         if header is None:
             header, header_line = [h.strip().lower() for h in row], line
+            if all(c in header for c in CORNER_COLUMNS) and not any(
+                    c in header for c in BOX_COLUMNS):
+                box_columns = CORNER_COLUMNS
+                columns = tuple(c for c in columns if c not in BOX_COLUMNS)[:1] + CORNER_COLUMNS \
+                    + tuple(c for c in columns if c not in BOX_COLUMNS)[1:]
             for name in (*columns, "label"):  # repeats of ignored columns do no harm
                 if header.count(name) > 1:
                     raise InputError(f"column {name!r} appears twice in the header", path=path,
@@ -351,17 +380,23 @@ def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
             except ValueError as err:
                 raise _error(str(err), path, rec) from None
         rec.image = names[raw]
-        fields = [row[index[c]].strip() for c in BOX_COLUMNS]
-        empty = [c for c, f in zip(BOX_COLUMNS, fields) if not f]
-        if len(empty) not in (0, len(BOX_COLUMNS)):
+        fields = [row[index[c]].strip() for c in box_columns]
+        if delimiter == ";":
+            fields = [f.replace(",", ".") for f in fields]
+        empty = [c for c, f in zip(box_columns, fields) if not f]
+        if len(empty) not in (0, len(box_columns)):
             raise _error("the box fields must be all filled or all empty (empty here: "
                          f"{', '.join(empty)})", path, rec)
         score_text = row[index["score"]].strip() if with_score else ""
+        if delimiter == ";":
+            score_text = score_text.replace(",", ".")
         if not empty:
             try:
-                box = tuple(_parse_number(f, c) for f, c in zip(fields, BOX_COLUMNS))
+                box = tuple(_parse_number(f, c) for f, c in zip(fields, box_columns))
             except ValueError as err:
                 raise _error(str(err), path, rec) from None
+            if box_columns == CORNER_COLUMNS:  # x_min, y_min, x_max, y_max -> x, y, width, height
+                box = (box[0], box[1], box[2] - box[0], box[3] - box[1])
             _check_box(box, path, rec)
             rec.box = box
             if with_score:
@@ -638,8 +673,9 @@ def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = 
                 label: str | None = None, skip_missing: bool = False) -> LabelFile:
     """Read and check a labels file: the labels CSV contract, or COCO JSON.
 
-    A file ending in ``.json``, or whose first character is ``{`` or ``[``, is read as COCO JSON
-    (see :func:`read_coco`); anything else as the labels CSV: a header naming at least
+    A folder, or a file ending in ``.xml``, is read as Pascal VOC annotations
+    (:func:`detector.io.voc.read_voc`); a file ending in ``.json``, or whose first character is
+    ``{`` or ``[``, as COCO JSON (see :func:`read_coco`); anything else as the labels CSV: a header naming at least
     ``image,x,y,width,height`` (any order, any letter case; an optional ``label`` column; other
     columns are ignored) and one row per box, with as many fields as the header (extra empty
     fields at the end of a row are tolerated). A row whose four box fields are empty marks an
@@ -692,6 +728,10 @@ def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = 
     >>> labels.clipped
     1
     """
+    from detector.io.voc import is_voc, read_voc
+
+    if is_voc(path):   # a folder of Pascal VOC annotations, or one of them
+        return read_voc(path, images_dir, label, skip_missing)
     text = _read_text(path)
     result = LabelFile(path=os.fspath(path))
     if _looks_like_json(path, text):
@@ -699,6 +739,7 @@ def read_labels(path: str | os.PathLike, images_dir: str | os.PathLike | None = 
             _json_document(text, path), path, inside_folder=True, with_score=False)
     else:
         records, has_labels = _csv_records(text, path, LABEL_COLUMNS, inside_folder=True,
+                                           notes=result.notes,
                                            with_score=False)
     if images_dir is not None:
         result.image_sizes = {}
@@ -896,11 +937,26 @@ def _number(v: float) -> str:
     return str(int(v)) if v.is_integer() and abs(v) < 2**53 else repr(v)
 
 
-def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
+def _box_fields(box, box_format: str) -> list[str]:
+    """A box's CSV fields: ``x, y, width, height``, or with ``corners`` ``x_min, y_min, x_max,
+    y_max`` (``x_max = x + width``, rounded once in float64)."""
+    x, y, w, h = (float(v) for v in box)
+    return [_number(v) for v in ((x, y, w, h) if box_format == "xywh" else (x, y, x + w, y + h))]
+
+
+def _box_header(box_format: str) -> list[str]:
+    if box_format not in BOX_FORMATS:
+        raise InputError(f"box format must be {' or '.join(BOX_FORMATS)}, got {box_format!r}")
+    return list(BOX_COLUMNS if box_format == "xywh" else CORNER_COLUMNS)
+
+
+def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels],
+                     box_format: str = "xywh") -> None:
     """Write the labels CSV contract: header, one row per box, one empty row per object-free image.
 
     A ``label`` column is written only when some box has a class name. Numbers are written in
-    the shortest form that reads back to the same float64.
+    the shortest form that reads back to the same float64. ``box_format="corners"`` writes
+    ``image,x_min,y_min,x_max,y_max`` instead, which :func:`read_labels` reads by its header.
 
     Examples
     --------
@@ -914,7 +970,7 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
     b.png,,,,
     """
     with_label = any(c for it in items for c in it.classes)
-    header = list(LABEL_COLUMNS) + (["label"] if with_label else [])
+    header = ["image"] + _box_header(box_format) + (["label"] if with_label else [])
     with atomic_write(path, "w", newline="") as fh:
         w = csv_writer(fh)
         w.writerow(header)
@@ -922,7 +978,7 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels]) -> None:
             if len(it.boxes) == 0:
                 w.writerow([it.image, "", "", "", ""] + ([""] if with_label else []))
             for box, cls in zip(it.boxes, it.classes):
-                row = [it.image] + [_number(v) for v in box]
+                row = [it.image] + _box_fields(box, box_format)
                 w.writerow(row + ([cls] if with_label else []))
 
 
@@ -1016,8 +1072,11 @@ def _merged_detections(items) -> list[tuple[str, np.ndarray, np.ndarray]]:
     return out
 
 
-def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) -> None:
-    """Write the detections CSV contract: ``image,x,y,width,height,score``.
+def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections],
+                         box_format: str = "xywh") -> None:
+    """Write the detections CSV contract: ``image,x,y,width,height,score`` (with
+    ``box_format="corners"``: ``image,x_min,y_min,x_max,y_max,score``, which
+    :func:`read_detections` reads by its header).
 
     Rows are grouped by image (in order of first appearance; items with the same image are
     merged), score descending; an image with no detections gets one row with empty box and score
@@ -1037,12 +1096,12 @@ def write_detections_csv(path: str | os.PathLike, items: list[ImageDetections]) 
     """
     with atomic_write(path, "w", newline="") as fh:
         w = csv_writer(fh)
-        w.writerow(DETECTION_COLUMNS)
+        w.writerow(["image"] + _box_header(box_format) + ["score"])
         for image, boxes, scores in _merged_detections(items):
             if len(boxes) == 0:
                 w.writerow([image, "", "", "", "", ""])
             for box, score in zip(boxes, scores):
-                w.writerow([image] + [_number(v) for v in box] + [_number(score)])
+                w.writerow([image] + _box_fields(box, box_format) + [_number(score)])
 
 
 def write_detections_coco(path: str | os.PathLike, items: list[ImageDetections],

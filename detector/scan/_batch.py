@@ -268,7 +268,7 @@ def _write(out, fmt, results: list[ImageResult], record: dict, result_ids=None):
             write_detections_coco_results(out, items, {r.image: result_ids.image_id(r.image)
                                                        for r in results}, result_ids.category_id)
     else:
-        write_detections_csv(out, items)
+        write_detections_csv(out, items, "corners" if fmt == "csv-corners" else "xywh")
     write_provenance(out, record, len(results))
 
 
@@ -315,6 +315,7 @@ def _check_unique_names(listed) -> None:
 def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
                cluster: str | None = None, resume: bool = False, force: bool = False,
                draw_dir=None, fmt: str = "csv", labels=None, label: str | None = None,
+               box_format: str = "xywh",
                batch_images: int = 16, batch_seconds: float = 2.0, progress=None,
                on_image=None, threshold_from=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
@@ -351,6 +352,8 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     draw_dir : path, optional
         Write annotated copies here (never inside an input folder; existing files are replaced
         only with ``force`` or ``resume``).
+    box_format : {"xywh", "corners"}
+        The CSV's box columns: ``x,y,width,height`` or ``x_min,y_min,x_max,y_max``.
     fmt : {"csv", "coco", "coco-results"}
     labels : path, optional
         Only with ``fmt="coco-results"``: the COCO labels file whose image ids (matched by file
@@ -387,6 +390,13 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     out = Path(out)
     if fmt not in FORMATS:
         raise InputError(f"unknown output format {fmt!r} ({', '.join(FORMATS)})")
+    if box_format not in ("xywh", "corners"):
+        raise InputError(f"box format must be xywh or corners, got {box_format!r}")
+    if box_format == "corners":
+        if fmt != "csv":
+            raise InputError(f"--box-format corners is for the CSV format; {fmt} boxes are "
+                             "x, y, width, height")
+        fmt = "csv-corners"
     if (labels is not None or label is not None) and fmt != "coco-results":
         raise InputError("a labels file gives image ids to the coco-results format only")
     if cluster:
@@ -484,7 +494,7 @@ def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, r
     record = scan_record(model_path, model, settings, paths, threshold_from)
     done: list[ImageResult] = []
     if resume and out.exists():
-        if fmt != "csv":
+        if fmt not in ("csv", "csv-corners"):
             raise InputError("--resume continues CSV output only", path=out)
         kept = read_detections(out)
         check_same_scan(out, model_path, settings)
