@@ -548,3 +548,45 @@ def test_bad_input_names_the_image():
 def test_recall_points_match_pycocotools_grid():
     # the 101 points are built the way pycocotools builds them, so searchsorted ties agree
     assert np.array_equal(COCO_RECALL_POINTS, np.linspace(0.0, 1.0, int(np.round(1.0 / 0.01)) + 1))
+
+
+# ------------------------------------------------------------------ ignore regions, size range
+
+def test_ignore_regions_by_hand():
+    """PASCAL VOC's rule for difficult objects (Everingham et al., IJCV 2010): a detection on an
+    ignore region is neither found nor a false alarm, and the region is never missed. Labels: A
+    (regular) and B (ignore). Detections by score: on A (0.9), on B (0.8), on B again (0.7),
+    nowhere (0.6). Without the flag: A and B found, the second hit on B and the stray one false:
+    precision 1, 1, 2/3, 2/4 at recall 1/2, 1, 1, 1. With it: only A counts (1 object); the two
+    hits on B are left out; the stray one is a false alarm: precision 1, 1/2 at recall 1, 1, AP 1."""
+    det = {"a.png": ([[0, 0, 10, 10], [50, 50, 10, 10], [51, 50, 10, 10], [90, 0, 10, 10]],
+                     [0.9, 0.8, 0.7, 0.6])}
+    gt = {"a.png": [[0, 0, 10, 10], [50, 50, 10, 10]]}
+    plain = evaluate(det, gt, size_buckets=None)
+    assert plain.precision.tolist() == [1.0, 1.0, 2 / 3, 0.5] and plain.objects == 2
+    ev = evaluate(det, gt, size_buckets=None, ignore={"a.png": [False, True]})
+    assert (ev.objects, ev.true_detections, ev.false_alarms, ev.misses) == (1, 1, 1, 0)
+    assert ev.precision.tolist() == [1.0, 0.5] and ev.recall.tolist() == [1.0, 1.0]
+    assert ev.average_precision == 1.0
+    assert [a.score for a in ev.false_alarm_list] == [0.6] and ev.miss_list == []
+    image = ev.per_image[0]
+    assert (image.objects, image.true_detections, image.false_alarms, image.misses) == (1, 1, 1, 0)
+    # an ignore region nothing hits is not a miss either
+    alone = evaluate({"a.png": ([[0, 0, 10, 10]], [0.9])}, gt, size_buckets=None,
+                     ignore={"a.png": [False, True]})
+    assert (alone.misses, alone.recall.tolist()) == (0, [1.0])
+
+
+def test_size_range_restricts_the_headline_as_a_bucket_does():
+    """Objects of sqrt(area) 10 and 50, range [20, 100): the small one is ignored, a detection on
+    it matched only to it is left out, and a stray 8-pixel detection (outside the range, matching
+    nothing) too; the figures equal those of the same range given as a bucket, which the tests
+    above hold to pycocotools' area ranges."""
+    det = {"a.png": ([[0, 0, 10, 10], [100, 100, 50, 50], [200, 0, 8, 8]], [0.9, 0.8, 0.7])}
+    gt = {"a.png": [[0, 0, 10, 10], [100, 100, 50, 50]]}
+    ev = evaluate(det, gt, size_buckets={"mid": (20, 100)}, size_range=(20, 100))
+    assert (ev.objects, ev.true_detections, ev.false_alarms) == (1, 1, 0)
+    assert ev.precision.tolist() == [1.0] and ev.average_precision == 1.0
+    assert ev.size_range == (20.0, 100.0)
+    assert ev.average_precision == ev.buckets["mid"].average_precision
+    assert ev.average_precision_50_to_95 == ev.buckets["mid"].average_precision_50_to_95

@@ -353,3 +353,29 @@ def test_table_and_galleries_describe_the_operating_point(tmp_path):
     assert "nearest score 0.300, below the threshold" in html
     assert "Highest-scoring false alarms (0 of 0)" in html and "Missed objects (1 of 1)" in html
     assert sorted(p.name for p in (tmp_path / "r" / "gallery").iterdir()) == ["missed-01.png"]
+
+
+def test_ignore_label_and_size_range_reach_the_report(tmp_path):
+    """--label nut --ignore-label washer: the washer at (2, 30) becomes an ignore region, so the
+    detection at (30, 2, 10, 10) that misses everything stays a false alarm, and the figures equal
+    evaluate() with the washer flagged; --min-size 15 leaves out the 8-pixel detection on c.png
+    and the 10-pixel ones, as evaluate's size_range does; --size-buckets names the buckets."""
+    root = make_folder(tmp_path / "s")
+    result = run(root / "detections.csv", root / "labels.csv", "--out", tmp_path / "r",
+                 "--label", "nut", "--ignore-label", "washer", "--min-size", 15,
+                 "--size-buckets", "tiny:0-12,big:12-")
+    assert result.exit_code == 0, result.output
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
+    gt = dict(GROUND_TRUTH)
+    gt["a.png"] = [[4, 4, 16, 16], [36, 20, 16, 16], [2, 30, 10, 10]]
+    expected = evaluate(DETECTIONS, gt, size_buckets={"tiny": (0, 12), "big": (12, float("inf"))},
+                        size_range=(15, float("inf")),
+                        ignore={"a.png": [False, False, True]})
+    assert summary["average_precision"] == pytest.approx(expected.average_precision, abs=1e-12)
+    assert summary["inputs"]["ignore_label"] == "washer"
+    assert summary["inputs"]["ignore_regions"] == 1
+    assert summary["inputs"]["size_range"] == [15.0, None]   # no upper limit
+    assert set(summary["buckets"]) == {"tiny", "big"}
+    bad = run(root / "detections.csv", root / "labels.csv", "--out", tmp_path / "r2",
+              "--size-buckets", "small:32-0")
+    assert bad.exit_code == 2 and "--size-buckets takes NAME:LOW-HIGH" in bad.output

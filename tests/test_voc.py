@@ -38,7 +38,7 @@ HAND_WRITTEN = """<annotation>
 def test_hand_written_voc_file(tmp_path):
     """xmin 48 .. xmax 195 inclusive, 1-based: x = 47, width = 195 - 48 + 1 = 148; ymin 240 ..
     ymax 371: y = 239, height = 132. The second box, 8..352 x 12..498: x 7, y 11, width 345,
-    height 487; it is marked difficult, read as a box and counted in a note."""
+    height 487; it is marked difficult: an ignore region, counted in a note."""
     path = tmp_path / "000042.xml"
     path.write_text(HAND_WRITTEN)
     lf = read_voc(path)
@@ -46,7 +46,8 @@ def test_hand_written_voc_file(tmp_path):
     assert lf[0].boxes.tolist() == [[47.0, 239.0, 148.0, 132.0], [7.0, 11.0, 345.0, 487.0]]
     assert lf[0].classes == ["dog", "person"]
     assert lf.image_sizes == {"000042.jpg": (353, 500)}
-    assert any("1 object(s) marked difficult" in n for n in lf.notes)
+    assert lf[0].ignore.tolist() == [False, True]
+    assert any("1 object(s) marked difficult, read as ignore regions" in n for n in lf.notes)
     # read_labels takes the same file (and a folder of them) by its suffix
     assert read_labels(path)[0].boxes.tolist() == lf[0].boxes.tolist()
     assert read_labels(tmp_path, label="dog")[0].boxes.tolist() == [[47.0, 239.0, 148.0, 132.0]]

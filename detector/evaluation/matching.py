@@ -22,7 +22,8 @@ __all__ = ["match_image"]
 
 
 def _greedy_match(ious: np.ndarray, order: np.ndarray, thresholds: np.ndarray,
-                  regular: np.ndarray | None = None) -> np.ndarray:
+                  regular: np.ndarray | None = None,
+                  reusable: np.ndarray | None = None) -> np.ndarray:
     """Greedy matching of one image for several (threshold, ignore-mask) rows at once.
 
     Parameters
@@ -34,6 +35,9 @@ def _greedy_match(ious: np.ndarray, order: np.ndarray, thresholds: np.ndarray,
     regular : (R, G) bool, optional
         ``False`` marks ground truth to ignore in that row: a detection is matched to the best
         regular box if it can be, and only otherwise to the best ignored one (pycocotools' rule).
+    reusable : (G,) bool, optional
+        Ground truth that any number of detections may match (ignore regions: the PASCAL VOC
+        protocol's ``difficult`` objects, whose every detection is left out of the counts).
 
     Returns
     -------
@@ -62,7 +66,8 @@ def _greedy_match(ious: np.ndarray, order: np.ndarray, thresholds: np.ndarray,
         j = n_gt - 1 - np.argmax(candidate[:, ::-1], axis=1)
         hit = ok[rows, j]
         matched[hit, d] = j[hit]
-        taken[rows[hit], j[hit]] = True
+        keep = hit if reusable is None else hit & ~reusable[j]
+        taken[rows[keep], j[keep]] = True
     return matched
 
 

@@ -86,7 +86,8 @@ def _figures(scores, is_true, coco_true, n_objects, n_images, iou_threshold, siz
 
 
 def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 0.5,
-             size_buckets: Mapping | None = DEFAULT_SIZE_BUCKETS) -> Evaluation:
+             size_buckets: Mapping | None = DEFAULT_SIZE_BUCKETS, size_range=None,
+             ignore: Mapping | None = None) -> Evaluation:
     """Score detections against ground truth over a set of images.
 
     Parameters
@@ -105,6 +106,14 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
     size_buckets : mapping of str to (low, high), optional
         Object-size buckets by ``sqrt(width * height)`` in pixels, half-open ``[low, high)``;
         default :data:`DEFAULT_SIZE_BUCKETS` (COCO's limits 32 and 96). ``None`` or ``{}`` for none.
+    size_range : (low, high), optional
+        Restrict every headline figure to objects of ``sqrt(width * height)`` in ``[low, high)``
+        pixels, as a bucket is: labelled boxes outside it are ignored and detections outside it
+        that match nothing are left out (pycocotools' area ranges).
+    ignore : mapping of str to bool array (G,), optional
+        Per image, the labelled boxes that are ignore regions: never a miss, and every detection
+        matched to one is left out of every count (neither true nor a false alarm), as the PASCAL
+        VOC protocol treats ``difficult`` objects (Everingham et al., IJCV 2010).
 
     Returns
     -------
@@ -129,6 +138,8 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
     """
     t = _check_threshold(iou_threshold)
     buckets = dict(size_buckets or {})
+    if size_range is not None:
+        buckets = {"__range__": size_range, **buckets}
     for name, rng in buckets.items():
         try:
             lo, hi = (float(v) for v in rng)
@@ -137,6 +148,7 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
         if not 0.0 <= lo < hi:
             raise InputError(f"size bucket {name!r}: need 0 <= low < high, got ({lo}, {hi})")
         buckets[name] = (lo, hi)
+    headline = buckets.pop("__range__", None)
 
     labelled = sorted(ground_truth)
     unlabelled = sorted(set(detections) - set(ground_truth))
@@ -149,7 +161,7 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
 
     thresholds = np.concatenate([[t], COCO_IOU_THRESHOLDS])
     n_thr = len(thresholds)
-    configs = [None] + list(buckets.values())  # None: every size
+    configs = [headline] + list(buckets.values())  # None: every size
     n_rows = n_thr * len(configs)
     row_thresholds = np.tile(thresholds, len(configs))
 
@@ -165,18 +177,25 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
         order = np.argsort(-scores, kind="stable")
         ious = iou(det, gt)
         gt_area, det_area = gt[:, 2] * gt[:, 3], det[:, 2] * det[:, 3]
+        region = np.zeros(len(gt), dtype=bool)
+        if ignore is not None and name in ignore:
+            region = np.asarray(ignore[name], dtype=bool).reshape(-1)
+            if region.shape != (len(gt),):
+                raise InputError(f"image {name!r}: {len(region)} ignore flags for {len(gt)} boxes")
         regular = np.ones((n_rows, len(gt)), dtype=bool)
         outside = np.zeros((n_rows, len(det)), dtype=bool)
         for c, rng in enumerate(configs):
             if rng is None:
-                n_objects[c] += len(gt)
+                regular[c * n_thr:(c + 1) * n_thr] = ~region
+                n_objects[c] += int((~region).sum())
                 continue
             lo2, hi2 = rng[0] ** 2, rng[1] ** 2
-            inside_gt = (gt_area >= lo2) & (gt_area < hi2)
+            inside_gt = (gt_area >= lo2) & (gt_area < hi2) & ~region
             n_objects[c] += int(inside_gt.sum())
             regular[c * n_thr:(c + 1) * n_thr] = inside_gt
             outside[c * n_thr:(c + 1) * n_thr] = ~((det_area >= lo2) & (det_area < hi2))
-        matched = _greedy_match(ious, order, row_thresholds, regular)
+        matched = _greedy_match(ious, order, row_thresholds, regular,
+                                region if region.any() else None)
         hit = matched >= 0
         hit_regular = hit & np.take_along_axis(regular, np.maximum(matched, 0), axis=1) \
             if len(gt) else hit
@@ -185,19 +204,22 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
         per_true.append(hit_regular[:, order])
         per_ignored.append(ignored[:, order])
 
-        # error rows and galleries: every size, at the evaluation's threshold (row 0)
+        # error rows and galleries: the headline's sizes, at the evaluation's threshold (row 0)
         m0 = matched[0]
-        n_true = int((m0 >= 0).sum())
-        per_image.append(ImageErrors(image=name, objects=len(gt), detections=len(det),
-                                     true_detections=n_true, false_alarms=len(det) - n_true,
-                                     misses=len(gt) - n_true))
+        true0, left_out0 = hit_regular[0], ignored[0]
+        n_true = int(true0.sum())
+        n_false = int((~true0 & ~left_out0).sum())
+        n_regular = int(regular[0].sum())
+        per_image.append(ImageErrors(image=name, objects=n_regular, detections=len(det),
+                                     true_detections=n_true, false_alarms=n_false,
+                                     misses=n_regular - n_true))
         best_iou = ious.max(axis=1) if len(gt) else np.zeros(len(det))
         for d in order:
-            if m0[d] < 0:
+            if not true0[d] and not left_out0[d]:
                 false_alarms.append(FalseAlarm(image=name, box=det[d].copy(), score=float(scores[d]),
                                                iou=float(best_iou[d])))
-        found = np.zeros(len(gt), dtype=bool)
-        found[m0[m0 >= 0]] = True
+        found = ~regular[0].copy()
+        found[m0[true0]] = True
         for g in np.flatnonzero(~found):
             near = ious[:, g] > 0
             misses.append(Miss(image=name, box=gt[g].copy(),

@@ -65,11 +65,16 @@ class ImageLabels:
         ``x, y, width, height`` of each box; K may be 0 (an object-free image).
     classes : list of str
         One class name per box ('' where the file has no label column).
+    ignore : ndarray of bool, shape (K,)
+        Ignore regions: boxes that are neither objects to find nor background (an ``ignore``
+        column of 1, or a Pascal VOC ``difficult`` object); scoring leaves them and the
+        detections on them out.
     """
 
     image: str
     boxes: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
     classes: list[str] = field(default_factory=list)
+    ignore: np.ndarray | None = None
 
     def __post_init__(self):
         self.boxes = np.asarray(self.boxes, dtype=np.float64).reshape(-1, 4)
@@ -77,6 +82,10 @@ class ImageLabels:
             self.classes = [""] * len(self.boxes)
         if len(self.classes) != len(self.boxes):
             raise ValueError("one class name per box")
+        self.ignore = (np.zeros(len(self.boxes), bool) if self.ignore is None
+                       else np.asarray(self.ignore, dtype=bool).reshape(-1))
+        if len(self.ignore) != len(self.boxes):
+            raise ValueError("one ignore flag per box")
 
 
 @dataclass
@@ -186,6 +195,7 @@ class _Record:
     cls: str = ""
     score: float | None = None
     line: int | None = None
+    ignore: bool = False
     where: str = ""  # COCO element, e.g. "annotations[3]: "
 
 
@@ -411,6 +421,11 @@ def _csv_records(text: str, path, columns: tuple[str, ...], inside_folder: bool,
             raise _error("a score without a box (the box fields are empty)", path, rec)
         if "label" in index:
             rec.cls = row[index["label"]].strip()
+        if "ignore" in index:
+            flag = row[index["ignore"]].strip().lower()
+            if flag not in ("", "0", "1", "true", "false", "yes", "no"):
+                raise _error(f"ignore must be 1 or 0 (or empty), found {flag!r}", path, rec)
+            rec.ignore = flag in ("1", "true", "yes")
         records.append(rec)
     if header is None:
         raise InputError("the file is empty", path=path)
@@ -654,7 +669,7 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
 
     for image, rec in first.items():
         size = result.image_sizes.get(image)
-        boxes, classes = [], []
+        boxes, classes, flags = [], [], []
         for r in kept[image]:
             box, clipped = _place_box(r.box, size, path, r)
             if clipped:
@@ -664,8 +679,9 @@ def _assemble_labels(records: list[_Record], path, result: LabelFile, images_dir
                                     f"{extent}")
             boxes.append(box)
             classes.append(r.cls)
+            flags.append(r.ignore)
         result.items.append(ImageLabels(image, np.array(boxes, np.float64).reshape(-1, 4),
-                                        classes))
+                                        classes, np.array(flags, bool)))
     return result
 
 
@@ -970,16 +986,22 @@ def write_labels_csv(path: str | os.PathLike, items: list[ImageLabels],
     b.png,,,,
     """
     with_label = any(c for it in items for c in it.classes)
-    header = ["image"] + _box_header(box_format) + (["label"] if with_label else [])
+    with_ignore = any(np.any(getattr(it, "ignore", ())) for it in items)
+    header = (["image"] + _box_header(box_format) + (["label"] if with_label else [])
+              + (["ignore"] if with_ignore else []))
     with atomic_write(path, "w", newline="") as fh:
         w = csv_writer(fh)
         w.writerow(header)
         for it in items:
             if len(it.boxes) == 0:
-                w.writerow([it.image, "", "", "", ""] + ([""] if with_label else []))
-            for box, cls in zip(it.boxes, it.classes):
+                w.writerow([it.image, "", "", "", ""] + ([""] if with_label else [])
+                           + ([""] if with_ignore else []))
+            flags = getattr(it, "ignore", None)
+            for k, (box, cls) in enumerate(zip(it.boxes, it.classes)):
+                hard = bool(flags[k]) if flags is not None else False
                 row = [it.image] + _box_fields(box, box_format)
-                w.writerow(row + ([cls] if with_label else []))
+                w.writerow(row + ([cls] if with_label else [])
+                           + (["1" if hard else "0"] if with_ignore else []))
 
 
 def _coco_image_entries(images: list[str], image_sizes, image_ids) -> list[dict]:

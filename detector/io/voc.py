@@ -11,9 +11,8 @@ Coordinates: the development kit numbers pixels from 1 and a box covers the pixe
 ``xmax`` inclusive, so a box is ``x = xmin - 1``, ``y = ymin - 1``, ``width = xmax - xmin + 1``,
 ``height = ymax - ymin + 1`` in the project's pixel-edge coordinates (GLOSSARY.md: ``x, y`` the
 top-left corner, the first pixel's corner at 0); :func:`write_voc` writes the inverse. Objects
-marked ``<difficult>1</difficult>`` are read as ordinary boxes and counted in a note: the VOC
-protocol leaves them out of both misses and false alarms, and patchwood's scoring has no such
-ignore regions yet.
+marked ``<difficult>1</difficult>`` are read as ignore regions (``ImageLabels.ignore``), as the
+VOC protocol leaves them out of both misses and false alarms, and counted in a note.
 
 Files are parsed with the standard library's ``xml.etree.ElementTree`` after refusing document
 type declarations and entities (which is where XML's expansion attacks live) and files larger
@@ -145,13 +144,14 @@ def read_voc(path: str | os.PathLike, images_dir: str | os.PathLike | None = Non
             if x1 - x0 + 1.0 <= 0 or y1 - y0 + 1.0 <= 0:   # inclusive: width xmax - xmin + 1
                 raise InputError(f"<object> {k + 1}: xmax/ymax leave no pixel after xmin/ymin",
                                  path=file)
-            difficult += (obj.findtext("difficult") or "0").strip() == "1"
+            hard = (obj.findtext("difficult") or "0").strip() == "1"
+            difficult += hard
             records.append(_Record(image, (x0 - 1.0, y0 - 1.0, x1 - x0 + 1.0, y1 - y0 + 1.0),
-                                   cls=(obj.findtext("name") or "").strip(),
+                                   cls=(obj.findtext("name") or "").strip(), ignore=hard,
                                    where=f"{os.path.basename(file)} <object> {k + 1}: "))
     if difficult:
-        result.notes.append(f"{os.fspath(path)}: {difficult} object(s) marked difficult read as "
-                            "ordinary boxes (no ignore regions yet)")
+        result.notes.append(f"{os.fspath(path)}: {difficult} object(s) marked difficult, read as "
+                            "ignore regions")
     if images_dir is None:
         result.image_sizes = sizes
     else:
@@ -198,11 +198,11 @@ def write_voc(folder: str | os.PathLike, items: list[ImageLabels],
             _element(s, "width", str(int(size[0])))
             _element(s, "height", str(int(size[1])))
             _element(s, "depth", "1")
-        for box, cls in zip(it.boxes, it.classes):
+        for box, cls, hard in zip(it.boxes, it.classes, it.ignore):
             x, y, w, h = (float(v) for v in box)
             obj = _element(root, "object")
             _element(obj, "name", cls or "object")
-            _element(obj, "difficult", "0")
+            _element(obj, "difficult", "1" if hard else "0")
             b = _element(obj, "bndbox")
             for tag, value in (("xmin", x + 1), ("ymin", y + 1), ("xmax", x + w), ("ymax", y + h)):
                 _element(b, tag, _coordinate(value))

@@ -46,6 +46,8 @@ class ScoreInputs:
     labels_path: str
     label: str | None = None
     notes: list = field(default_factory=list)
+    #: image name -> bool flags of its labelled boxes that are ignore regions
+    ignore: dict = field(default_factory=dict)
 
 
 def _looks_like_json(path) -> bool:
@@ -195,7 +197,7 @@ def at_threshold(detections: dict, threshold: float) -> dict:
 
 
 def read_score_inputs(detections_path: str | os.PathLike, labels_path: str | os.PathLike,
-                      label: str | None = None) -> ScoreInputs:
+                      label: str | None = None, ignore_label: str | None = None) -> ScoreInputs:
     """Read a detections file and a labels file (CSV or COCO JSON each) for scoring.
 
     A detections file that is empty (no bytes, or a header row only) means no detections: the
@@ -231,7 +233,19 @@ def read_score_inputs(detections_path: str | os.PathLike, labels_path: str | os.
     """
     from detector.io.labels import normalise_image_name, read_detections, read_labels
 
-    labels = read_labels(labels_path, label=label)
+    if ignore_label is None:
+        labels = read_labels(labels_path, label=label)
+        ignore = {it.image: it.ignore for it in labels if it.ignore.any()}
+    else:   # the ignore class is kept beside the class scored, and flagged
+        labels = read_labels(labels_path)
+        ignore = {}
+        for it in labels:
+            classes = np.array(it.classes, dtype=object)
+            region = it.ignore | (classes == ignore_label)
+            keep = region | (classes == label) if label is not None else np.ones(len(classes), bool)
+            it.boxes, it.classes, it.ignore = it.boxes[keep], list(classes[keep]), region[keep]
+            if it.ignore.any():
+                ignore[it.image] = it.ignore
     if len(labels) == 0:
         raise InputError("the labels file lists no images", path=labels_path)
     notes = list(labels.notes[:20])
@@ -261,4 +275,5 @@ def read_score_inputs(detections_path: str | os.PathLike, labels_path: str | os.
     check_image_names(list(detections), list(ground_truth), detections_path)
     return ScoreInputs(detections=detections, ground_truth=ground_truth,
                        detections_path=os.fspath(detections_path),
-                       labels_path=os.fspath(labels_path), label=label, notes=notes)
+                       labels_path=os.fspath(labels_path), label=label, notes=notes,
+                       ignore=ignore)

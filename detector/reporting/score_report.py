@@ -31,7 +31,7 @@ from urllib.parse import quote
 import numpy as np
 
 from detector.errors import InputError
-from detector.evaluation import Evaluation, check_targets, choose_operating_point, evaluate, match_image
+from detector.evaluation import DEFAULT_SIZE_BUCKETS, Evaluation, check_targets, choose_operating_point, evaluate, match_image
 from detector.io.files import same_file, write_text
 from detector.io.npzfile import file_sha256
 from detector.scan import describe_settings, provenance_of
@@ -207,7 +207,8 @@ def write_report(report_dir: str | os.PathLike, evaluation: Evaluation, point: d
                  detections: dict | None = None, ground_truth: dict | None = None,
                  images_dir: str | os.PathLike | None = None, inputs: dict | None = None,
                  notes: Iterable[str] = (), force: bool = False, gallery_size: int = GALLERY_SIZE,
-                 provenance: dict | None = None, warnings: Iterable[str] = ()) -> dict:
+                 provenance: dict | None = None, warnings: Iterable[str] = (),
+                 ignore: dict | None = None) -> dict:
     """Write the report folder: ``report.html``, ``summary.json``, plots and galleries.
 
     The curves, AP and the figures of the headline describe every detection in the file; the
@@ -264,7 +265,8 @@ def write_report(report_dir: str | os.PathLike, evaluation: Evaluation, point: d
     errors, shown = evaluation, detections
     if detections is not None and ground_truth is not None and point.get("threshold") is not None:
         shown = at_threshold(detections, point["threshold"])
-        errors = evaluate(shown, ground_truth, evaluation.iou_threshold, size_buckets=None)
+        errors = evaluate(shown, ground_truth, evaluation.iou_threshold, size_buckets=None,
+                          size_range=evaluation.size_range, ignore=ignore)
         _nearest_scores(errors.miss_list, detections)
     galleries = None
     if images_dir is not None and detections is not None and ground_truth is not None:
@@ -306,7 +308,8 @@ def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLi
                 images_dir: str | os.PathLike | None = None, label: str | None = None,
                 target_precision: float | None = None, target_recall: float | None = None,
                 force: bool = False, gallery_size: int = GALLERY_SIZE,
-                strict: bool = False) -> ScoreResult:
+                strict: bool = False, size_range=None, size_buckets=DEFAULT_SIZE_BUCKETS,
+                ignore_label: str | None = None) -> ScoreResult:
     """Score a detections file against a labels file and write the report folder.
 
     Parameters
@@ -369,7 +372,8 @@ def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLi
             notes.append(f"galleries skipped: no images folder at {folder} "
                          "(give --images DIR)")
             folder = None
-    inputs = read_score_inputs(detections_path, labels_path, label=label)
+    inputs = read_score_inputs(detections_path, labels_path, label=label,
+                               ignore_label=ignore_label)
     notes = inputs.notes + notes
     warnings = name_mismatches(list(inputs.detections), list(inputs.ground_truth),
                                detections_path, labels_path)
@@ -384,7 +388,20 @@ def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLi
                      f"{level:g} or above (--exit-level {level:g}); below {level:g} the curve "
                      "lacks objects those exits give up; a scan with the same exits (scan "
                      "--threshold-from reuses them) reproduces the operating point")
-    evaluation = evaluate(inputs.detections, inputs.ground_truth, iou_threshold)
+    evaluation = evaluate(inputs.detections, inputs.ground_truth, iou_threshold,
+                          size_buckets=size_buckets, size_range=size_range, ignore=inputs.ignore)
+    if size_range is not None:
+        lo, hi = size_range
+        notes.append(f"every figure counts objects of {lo:g} to "
+                     f"{'any size' if math.isinf(hi) else f'under {hi:g}'} pixels (square root of "
+                     "the box's area) only; labels outside are ignored, as are detections outside "
+                     "that match nothing")
+    regions = sum(int(f.sum()) for f in inputs.ignore.values())
+    if regions:
+        notes.append(f"{regions} labelled box{'es are' if regions != 1 else ' is an'} ignore "
+                     f"region{'s' if regions != 1 else ''}: never missed, and detections on "
+                     f"{'them' if regions != 1 else 'it'} count neither as found nor as false "
+                     "alarms")
     point = choose_operating_point(evaluation, p_target, r_target)
     if not point["met"]:
         notes.append(f"operating point ({point['rule']}): {point['note']}")
@@ -394,6 +411,10 @@ def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLi
         "images_dir": None if folder is None else os.path.abspath(folder),
         "iou_threshold": float(iou_threshold),
         "label": label,
+        "ignore_label": ignore_label,
+        "ignore_regions": int(sum(int(f.sum()) for f in inputs.ignore.values())),
+        "size_range": None if size_range is None else [
+            None if math.isinf(float(v)) else float(v) for v in size_range],   # None: no limit
         "target_precision": p_target,
         "target_recall": r_target,
         "labelled_images": len(inputs.ground_truth),
@@ -402,7 +423,7 @@ def score_files(detections_path: str | os.PathLike, labels_path: str | os.PathLi
     }
     summary = write_report(out, evaluation, point, inputs.detections, inputs.ground_truth,
                            folder, record, notes, force=True, gallery_size=gallery_size,
-                           provenance=provenance, warnings=warnings)
+                           provenance=provenance, warnings=warnings, ignore=inputs.ignore)
     return ScoreResult(summary=summary, evaluation=evaluation, report=str(out / "report.html"),
                        notes=list(summary["notes"]), warnings=warnings)
 
