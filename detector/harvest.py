@@ -300,7 +300,11 @@ def harvest(
         pixels, or a window larger than every image (found from the image headers, before any
         patch is cut).
     """
-    all_boxes = [b for it in items for b in it.boxes]
+    def objects(it):   # ignore regions (ImageLabels.ignore) are no objects to learn from
+        flags = getattr(it, "ignore", None)
+        return it.boxes if flags is None or not np.any(flags) else it.boxes[~np.asarray(flags)]
+
+    all_boxes = [b for it in items for b in objects(it)]
     if not all_boxes:
         raise InputError("no labelled boxes to learn from (every image is object-free)",
                          path=labels_path)
@@ -322,7 +326,8 @@ def harvest(
     names = [it.image for it in items]
     for i, it in enumerate(items):
         gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
-        for box in it.boxes:
+        # background windows stay off every labelled box, ignore regions included
+        for box in objects(it):
             x, y, bw, bh = (float(v) for v in box)
             if bw < 2 or bh < 2:
                 continue

@@ -152,3 +152,19 @@ def test_commands_read_voc_folders_and_write_corner_csv(tmp_path):
         figures[fmt] = json.loads((tmp_path / f"r-{fmt}" / "summary.json").read_text())
     assert (tmp_path / "d-corners.csv").read_text().startswith("image,x_min,y_min,x_max,y_max,score\n")
     assert figures["corners"]["average_precision"] == figures["xywh"]["average_precision"]
+
+
+def test_harvest_cuts_no_object_patches_from_ignore_regions(tmp_path):
+    """A box flagged ignore (a VOC difficult object) gives no object patch: the bank of labels
+    with one box flagged holds the patches of the others only (background stays off every box)."""
+    from detector.harvest import harvest
+    from synthetic_images import render_scenario
+
+    render_scenario(tmp_path / "s", 3, 1, seed=2)
+    images = tmp_path / "s" / "train" / "images"
+    items = [it for it in read_labels(tmp_path / "s" / "train" / "labels.csv") if len(it.boxes)]
+    flagged = [ImageLabels(it.image, it.boxes, it.classes, np.arange(len(it.boxes)) == 0)
+               for it in items]
+    plain = harvest(images, items, copies=0, negatives_per_image=0, near_negatives=0, seed=0)
+    fewer = harvest(images, flagged, copies=0, negatives_per_image=0, near_negatives=0, seed=0)
+    assert plain.counts()["objects"] - fewer.counts()["objects"] == len(items)
