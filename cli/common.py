@@ -100,45 +100,23 @@ MAX_JOBS = 256
 
 
 # The harvest options, declared once for `harvest` and `tune` (tune harvests its folds).
-
-def margin_option():
-    return typer.Option(0.1, "--margin", min=0.0, max=1.0, help="Context added around each box, as a fraction of its size on every side.")
-
-
-def copies_option():
-    return typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself.")
-
-
-def jitter_option():
-    return typer.Option(0.05, "--jitter", min=0.0, max=0.5, help="Largest random shift and scale change of a copy, as a fraction of the box.")
-
-
-def mirror_option():
-    return typer.Option(True, "--mirror/--no-mirror", help="Mirror every second copy left to right.")
+HARVEST_OPTIONS = {
+    "margin": lambda: typer.Option(0.1, "--margin", min=0.0, max=1.0, help="Context added around each box, as a fraction of its size on every side."),
+    "copies": lambda: typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
+    "jitter": lambda: typer.Option(0.05, "--jitter", min=0.0, max=0.5, help="Largest random shift and scale change of a copy, as a fraction of the box."),
+    "mirror": lambda: typer.Option(True, "--mirror/--no-mirror", help="Mirror every second copy left to right."),
+    "rotate": lambda: typer.Option(10.0, "--rotate", min=0.0, max=180.0, help="Largest random rotation of a copy, degrees."),
+    "brightness": lambda: typer.Option(20.0, "--brightness", min=0.0, max=128.0, help="Largest random brightness change of a copy, grey levels."),
+    "contrast": lambda: typer.Option(0.2, "--contrast", min=0.0, max=0.9, help="Largest random relative contrast change of a copy."),
+    "negatives_per_image": lambda: typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image."),
+    "near_negatives": lambda: typer.Option(4, "--near-negatives", min=0, max=100, help="Background windows per box drawn close to it: much smaller inside it, much larger around it."),
+    "background_iou": lambda: typer.Option(0.3, "--background-iou", min=0.0, max=1.0, help="A background window must overlap every labelled box less than this (IoU)."),
+}
 
 
-def rotate_option():
-    return typer.Option(10.0, "--rotate", min=0.0, max=180.0, help="Largest random rotation of a copy, degrees.")
-
-
-def brightness_option():
-    return typer.Option(20.0, "--brightness", min=0.0, max=128.0, help="Largest random brightness change of a copy, grey levels.")
-
-
-def contrast_option():
-    return typer.Option(0.2, "--contrast", min=0.0, max=0.9, help="Largest random relative contrast change of a copy.")
-
-
-def negatives_per_image_option():
-    return typer.Option(50, "--negatives-per-image", min=0, help="Background windows drawn from each image.")
-
-
-def near_negatives_option():
-    return typer.Option(4, "--near-negatives", min=0, max=100, help="Background windows per box drawn close to it: much smaller inside it, much larger around it.")
-
-
-def background_iou_option():
-    return typer.Option(0.3, "--background-iou", min=0.0, max=1.0, help="A background window must overlap every labelled box less than this (IoU).")
+def harvest_option(name: str):
+    """The declaration of the harvest option ``name`` (a key of :data:`HARVEST_OPTIONS`)."""
+    return HARVEST_OPTIONS[name]()
 
 
 def jobs_option():

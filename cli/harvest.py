@@ -9,7 +9,7 @@ import typer
 
 from detector.errors import InputError
 
-from cli.common import (margin_option, copies_option, jitter_option, mirror_option, rotate_option, brightness_option, contrast_option, negatives_per_image_option, near_negatives_option, background_iou_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
+from cli.common import (harvest_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
@@ -52,16 +52,16 @@ def harvest(
     out: Path = typer.Option(..., "--out", help="Patch bank to write (.npz)."),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
-    margin: float = margin_option(),
-    copies: int = copies_option(),
-    jitter: float = jitter_option(),
-    mirror: bool = mirror_option(),
-    rotate: float = rotate_option(),
-    brightness: float = brightness_option(),
-    contrast: float = contrast_option(),
-    negatives_per_image: int = negatives_per_image_option(),
-    near_negatives: int = near_negatives_option(),
-    background_iou: float = background_iou_option(),
+    margin: float = harvest_option("margin"),
+    copies: int = harvest_option("copies"),
+    jitter: float = harvest_option("jitter"),
+    mirror: bool = harvest_option("mirror"),
+    rotate: float = harvest_option("rotate"),
+    brightness: float = harvest_option("brightness"),
+    contrast: float = harvest_option("contrast"),
+    negatives_per_image: int = harvest_option("negatives_per_image"),
+    near_negatives: int = harvest_option("near_negatives"),
+    background_iou: float = harvest_option("background_iou"),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed gives the same bank."),
     skip_missing: bool = typer.Option(False, "--skip-missing", help="Harvest past labelled images that are not in IMAGES_DIR, naming them (without it the first one stops the harvest)."),
     quiet: bool = quiet_option(),

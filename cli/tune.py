@@ -9,7 +9,7 @@ from typing import Literal, Optional
 
 import typer
 
-from cli.common import (margin_option, copies_option, jitter_option, mirror_option, rotate_option, brightness_option, contrast_option, negatives_per_image_option, near_negatives_option, background_iou_option, quiet_option, jobs_option, channels_option, check_channels_option, echo, human_path,
+from cli.common import (harvest_option, quiet_option, jobs_option, channels_option, check_channels_option, echo, human_path,
                         parse_window_option, progress_bar)
 from detector.errors import InputError
 from detector.io.files import write_text
@@ -81,16 +81,16 @@ def tune(
     channels: Literal["gradient", "grey"] = channels_option(),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
-    margin: float = margin_option(),
-    copies: int = copies_option(),
-    jitter: float = jitter_option(),
-    mirror: bool = mirror_option(),
-    rotate: float = rotate_option(),
-    brightness: float = brightness_option(),
-    contrast: float = contrast_option(),
-    negatives_per_image: int = negatives_per_image_option(),
-    near_negatives: int = near_negatives_option(),
-    background_iou: float = background_iou_option(),
+    margin: float = harvest_option("margin"),
+    copies: int = harvest_option("copies"),
+    jitter: float = harvest_option("jitter"),
+    mirror: bool = harvest_option("mirror"),
+    rotate: float = harvest_option("rotate"),
+    brightness: float = harvest_option("brightness"),
+    contrast: float = harvest_option("contrast"),
+    negatives_per_image: int = harvest_option("negatives_per_image"),
+    near_negatives: int = harvest_option("near_negatives"),
+    background_iou: float = harvest_option("background_iou"),
     mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds inside every fold, on that fold's training images only (as many as train mines by default; the models before the last grow a quarter of the trees, as train's do)."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales of the held-out scans."),
     stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows of the held-out scans, in pixels at the window's own size."),
