@@ -20,7 +20,7 @@ def scan(
     out: Path = typer.Option(..., "--out", help="Detections file to write: CSV (image,x,y,width,height,score), or COCO JSON with --format coco or coco-results."),
     format: Literal["csv", "coco", "coco-results"] = typer.Option("csv", "--format", help="csv; coco (a COCO JSON object: the images scanned and the detections as scored annotations); or coco-results (the COCO results list, [{image_id, category_id, bbox, score}, ...], that pycocotools' COCO.loadRes and COCOeval read; image ids from --labels)."),
     box_format: Literal["xywh", "corners"] = typer.Option("xywh", "--box-format", help="Box columns of the CSV: x,y,width,height, or corners x_min,y_min,x_max,y_max (score and harvest read either by the header)."),
-    labels: Optional[Path] = typer.Option(None, "--labels", help="With --format coco-results: the COCO labels file (JSON) the results are for; its image ids, matched by file name, and its category id are written (without it, images are numbered 1, 2, ... in the order written)."),
+    labels: Optional[Path] = typer.Option(None, "--labels", help="With --format coco-results: the COCO labels file (JSON) the results are for; its image ids, matched by file name, and its category id are written (without it, images are numbered 1, 2, ... in the order written). With --draw: the labels (CSV, COCO or VOC) of the images, drawn beside the detections: matched, false alarm and missed, each in its own colour and line style."),
     label: Optional[str] = typer.Option(None, "--label", help="With --labels: the category the detections are for, when the labels file has several."),
     scale_step: float = typer.Option(1.2, "--scale-step", min=1.01, max=3.0, help="Ratio between neighbouring scales."),
     stride: float = typer.Option(2.0, "--stride", min=0.5, max=64.0, help="Step between windows in pixels at the window's own size; it grows with the scale."),
@@ -32,7 +32,8 @@ def scan(
     early_exit: bool = typer.Option(True, "--early-exit/--no-early-exit", help="Drop windows early with the model's calibrated exit thresholds."),
     exit_level: Optional[float] = typer.Option(None, "--exit-level", min=0.0, max=1.0, metavar="LEVEL", help="Speed option: use the tighter early exits calibrated for scans at LEVEL or above (fewer trees per window). They may drop objects that would score LEVEL or more, so scan the curve you score with the same --exit-level; --threshold-from then reuses it. Default: the exits for every threshold, so that a scan keeps exactly the detections a scan at a lower threshold finds at or above its own."),
     overhang: float = typer.Option(0.25, "--overhang", min=0.0, max=0.5, help="How far a window may reach past the image's edges, as a share of its size (border pixels repeated there), so that objects cut by the edge are found: 0.25 finds objects about four fifths inside, 0.5 those at least half inside; 0 keeps windows inside."),
-    draw: Optional[Path] = typer.Option(None, "--draw", help="Also write annotated copies of the images into this folder (never into an input folder)."),
+    draw: Optional[Path] = typer.Option(None, "--draw", help="Also write annotated copies of the images into this folder (never into an input folder), with the detections at the operating threshold: --draw-threshold, else the threshold --threshold-from gives, else the larger of --threshold and 0.5."),
+    draw_threshold: Optional[float] = typer.Option(None, "--draw-threshold", min=0.0, max=1.0, help="With --draw: draw the detections scoring at least this (at least --threshold)."),
     jobs: int = jobs_option(),
     cluster: Optional[str] = typer.Option(None, "--cluster", help="Run the images on a Dask distributed cluster at this scheduler address (e.g. tcp://10.0.0.5:8786)."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted run: keep the images already in --out and scan the rest (only when its provenance side file names this model and these settings)."),
@@ -56,8 +57,11 @@ def scan(
     if format not in FORMATS:
         raise typer.BadParameter(f"--format must be {', '.join(FORMATS[:-1])} or {FORMATS[-1]}, "
                                  f"got {format!r}")
-    if labels is not None and format != "coco-results":
-        raise typer.BadParameter("--labels gives image ids to --format coco-results only")
+    if labels is not None and format != "coco-results" and draw is None:
+        raise typer.BadParameter("--labels gives image ids to --format coco-results, or labels "
+                                 "to the frames --draw draws")
+    if draw_threshold is not None and draw is None:
+        raise typer.BadParameter("--draw-threshold goes with --draw")
     if label is not None and labels is None:
         raise typer.BadParameter("--label chooses a category of the --labels file; give that file")
     if min_object and max_object and min_object > max_object:
@@ -115,14 +119,31 @@ def scan(
     for note in (old_format_note(loaded, human_path(model)), skipped_sizes_note(loaded, settings)):
         if note:
             echo(note)
+    drawer = None
+    if draw is not None:
+        import functools
+
+        from detector.io.labels import read_labels
+        from detector.reporting.drawing import draw_frame
+
+        shown = draw_threshold if draw_threshold is not None else (
+            threshold if threshold_from is not None else max(threshold, 0.5))
+        truth = None
+        if labels is not None:
+            truth = {it.image: it.boxes for it in read_labels(labels, label=label)}
+        drawer = functools.partial(draw_frame, threshold=max(shown, threshold), truth=truth)
+        echo(f"drawing detections at score >= {max(shown, threshold):g}"
+             + (f" against {human_path(labels)}" if labels is not None else ""))
     with progress_bar("scanning", None, "images") as update:
         s = scan_paths(model, paths, out, settings=settings, jobs=jobs, cluster=cluster,
-                       resume=resume, force=force, draw_dir=draw, fmt=format, labels=labels,
-                       box_format=box_format,
-                       label=label, progress=update, threshold_from=threshold_from)
+                       resume=resume, force=force, draw_dir=draw, fmt=format,
+                       labels=labels if format == "coco-results" else None,
+                       box_format=box_format, drawer=drawer,
+                       label=label if format == "coco-results" else None, progress=update,
+                       threshold_from=threshold_from)
     echo(f"images scanned: {s.images}" + (f" (+{s.resumed} kept from the earlier run)" if s.resumed else ""))
     echo(f"detections: {s.detections} at score >= {threshold:g}")
-    if labels is not None:
+    if labels is not None and format == "coco-results":
         echo(f"image ids: from {human_path(labels)}")
     echo(f"failures: {len(s.failures)}" + (f" (listed in {human_path(s.failures_file)})" if s.failures else ""))
     for image, reason in s.failures[:10]:

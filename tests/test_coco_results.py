@@ -118,7 +118,7 @@ def test_an_image_missing_from_the_labels_is_a_one_line_error(scenario, tmp_path
 
 
 @pytest.mark.parametrize("args, message", [
-    (["--format", "csv", "--labels", "GT"], "--labels gives image ids to --format coco-results only"),
+    (["--format", "csv", "--labels", "GT"], "--labels gives image ids to --format coco-results, or labels to the frames --draw draws"),
     (["--format", "coco-results", "--label", "nut"], "--label chooses a category of the --labels"),
     (["--format", "coco-result"], "'coco-result' is not one of 'csv', 'coco', 'coco-results'"),
 ])

@@ -145,7 +145,14 @@ def test_report_html_is_offline_and_links_exist(scored):
     report = root / "report"
     text = (report / "report.html").read_text(encoding="utf-8")
     assert not re.search(r"https?://", text)
-    assert "<script" not in text.lower()
+    # one script, inlined from the package (the per-image table's sorting): nothing fetched
+    assert text.lower().count("<script") == 1 and "<script src" not in text.lower()
+    from detector.reporting._html import asset
+
+    assert asset("sort-table.js") in text
+    table = text[text.index('<table class="sortable" id="per-image">'):]
+    table = table[:table.index("</table>")]
+    assert table.count('<th data-type="number">') == 5 and "<thead>" in table and "<tbody>" in table
     parser = Links()
     parser.feed(text)
     assert len(parser.links) >= 3 + 2 + 2  # plots, false alarms and misses at the threshold

@@ -60,9 +60,10 @@ def swatch(rgb: tuple[int, int, int], style: str, text: str) -> str:
             f'{hex_colour(rgb)}"></span>{esc(text)}</span>')
 
 
-def page(title: str, style_sheet: str, body: Iterable[str]) -> str:
+def page(title: str, style_sheet: str, body: Iterable[str], script: str | None = None) -> str:
     """A whole page: ``page.html`` with ``base.css`` and ``style_sheet`` (a file in ``assets/``)
-    inlined, and ``body`` (lines of HTML) inside ``<main>``.
+    inlined, and ``body`` (lines of HTML) inside ``<main>``; ``script``, a file in ``assets/``,
+    inlined after it.
 
     Examples
     --------
@@ -71,5 +72,6 @@ def page(title: str, style_sheet: str, body: Iterable[str]) -> str:
     (True, True)
     """
     style = "\n" + asset("base.css") + asset(style_sheet)
+    code = "" if script is None else "\n<script>\n" + asset(script) + "</script>\n"
     return Template(asset("page.html")).substitute(title=esc(title), style=style,
-                                                   body="\n".join(body))
+                                                   body="\n".join(body), script=code)

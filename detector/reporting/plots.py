@@ -222,10 +222,15 @@ def plot_score_histogram(evaluation: Evaluation, path: str | os.PathLike,
     bins = np.linspace(0.0, 1.0, 26)
     ax.set_xlim(0, 1)
     ax.set_xlabel("score")
-    ax.set_ylabel("detections")
     ax.set_title("Scores of true detections and false alarms", fontsize=11)
     ax.grid(True, axis="y", color="#dddddd", linewidth=0.6)
-    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+    if len(scores):
+        # log counts: the few true detections stay visible beside thousands of low false alarms
+        ax.set_yscale("log")
+        ax.set_ylabel("detections (log scale)")
+    else:
+        ax.set_ylabel("detections")
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     if len(scores) == 0:
         ax.set_ylim(0, 1)
         _nothing_to_draw(ax, "no detections on labelled images")

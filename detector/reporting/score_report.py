@@ -589,15 +589,17 @@ def _html(summary: dict, evaluation: Evaluation, galleries,
              f'counts are those of the detections scoring {point["threshold"]:.6g} or more')
     parts.append('<p class="read">How to read this: one row per labelled image, the images '
                  f'with the most errors (false alarms plus misses) first; {esc(which)}. '
-                 'Shaded rows have errors.</p>')
-    parts.append('<table><tr><th>image</th><th>objects</th><th>detections</th><th>true</th>'
-                 '<th>false alarms</th><th>misses</th></tr>')
+                 'Shaded rows have errors. Click a column\'s header to sort by it.</p>')
+    parts.append('<table class="sortable" id="per-image"><thead><tr><th>image</th>'
+                 + "".join(f'<th data-type="number">{name}</th>' for name in
+                           ("objects", "detections", "true", "false alarms", "misses"))
+                 + '</tr></thead><tbody>')
     for r in rows:
         cls = "bad" if r.false_alarms + r.misses else "clean"
         parts.append(f'<tr class="{cls}"><td>{esc(r.image)}</td><td>{r.objects}</td>'
                      f'<td>{r.detections}</td><td>{r.true_detections}</td>'
                      f'<td>{r.false_alarms}</td><td>{r.misses}</td></tr>')
-    parts.append('</table>')
+    parts.append('</tbody></table>')
     if evaluation.unlabelled_images:
         parts.append(f'<h3>Detected images not in the labels '
                      f'({len(evaluation.unlabelled_images)}, left out of every figure)</h3>')
@@ -609,4 +611,4 @@ def _html(summary: dict, evaluation: Evaluation, galleries,
                  'Lin et al., 2014); all-point and 11-point AP as in PASCAL VOC (Everingham et '
                  'al., 2010); log-average miss rate as in Dollar et al. (PAMI 2012). Every figure '
                  'is in summary.json beside this page.</p>')
-    return page("patchwood score report", "score-report.css", parts)
+    return page("patchwood score report", "score-report.css", parts, script="sort-table.js")

@@ -315,7 +315,7 @@ def _check_unique_names(listed) -> None:
 def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, jobs: int = 1,
                cluster: str | None = None, resume: bool = False, force: bool = False,
                draw_dir=None, fmt: str = "csv", labels=None, label: str | None = None,
-               box_format: str = "xywh",
+               box_format: str = "xywh", drawer=None,
                batch_images: int = 16, batch_seconds: float = 2.0, progress=None,
                on_image=None, threshold_from=None) -> RunSummary:
     """Scan image files and folders with a model file; write the detections file.
@@ -352,6 +352,9 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     draw_dir : path, optional
         Write annotated copies here (never inside an input folder; existing files are replaced
         only with ``force`` or ``resume``).
+    drawer : callable(gray, name, boxes, scores) -> BGR image, optional
+        How a frame is drawn into ``draw_dir`` (default :func:`draw_detections`: every
+        detection of the scan).
     box_format : {"xywh", "corners"}
         The CSV's box columns: ``x,y,width,height`` or ``x_min,y_min,x_max,y_max``.
     fmt : {"csv", "coco", "coco-results"}
@@ -410,7 +413,7 @@ def scan_paths(model_path, paths, out, *, settings: ScanSettings | None = None, 
     with output_lock(out):
         return _scan_locked(model, model_path, paths, out, settings, jobs, cluster, resume, force,
                             draw_dir, fmt, batch_images, batch_seconds, progress, on_image, limit,
-                            labels, label, threshold_from)
+                            labels, label, threshold_from, drawer)
 
 
 def check_cluster_address(address: str) -> str:
@@ -455,7 +458,7 @@ def _check_not_an_input(out: Path, model_path, listed) -> None:
 
 def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, resume, force,
                  draw_dir, fmt, batch_images, batch_seconds, progress, on_image,
-                 limit, labels, label, threshold_from) -> RunSummary:
+                 limit, labels, label, threshold_from, drawer=None) -> RunSummary:
     """:func:`scan_paths` once it holds the output's lock."""
     if out.exists() and not (force or resume):
         raise InputError("output exists; add --force to replace it or --resume to continue it",
@@ -531,7 +534,9 @@ def _scan_locked(model, model_path, paths, out: Path, settings, jobs, cluster, r
                     gray = read_gray(source[r.image])
                     dst = _draw_path(draw_dir, r.image)
                     dst.parent.mkdir(parents=True, exist_ok=True)
-                    ok, buf = cv2.imencode(".png", draw_detections(gray, r.boxes, r.scores))
+                    image = (draw_detections(gray, r.boxes, r.scores) if drawer is None
+                             else drawer(gray, r.image, r.boxes, r.scores))
+                    ok, buf = cv2.imencode(".png", image)
                     if ok:
                         write_bytes(dst, buf.tobytes())
                         summary.drawn += 1
