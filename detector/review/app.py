@@ -1,0 +1,181 @@
+"""The review web application (``patchwood review``): a Flask app over a :class:`LabelStore`.
+
+Every request must carry the token printed with the address (the ``token`` query parameter or the
+``X-Review-Token`` header) and a ``Host`` equal to the bound address; only files under the images
+folder are served, only the labels file (with its backup and journal) is written, and request
+bodies are limited to :data:`MAX_BODY` bytes.
+"""
+
+from __future__ import annotations
+
+import hmac
+import os
+import secrets
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+
+from detector.errors import InputError
+from detector.evaluation.matching import match_image
+from detector.io.images import IMAGE_SUFFIXES
+from detector.io.labels import read_detections
+from detector.reporting.drawing import BOX_STYLES
+from detector.review.store import Conflict, LabelStore
+
+__all__ = ["create_app", "serve", "MAX_BODY", "ASSETS"]
+
+#: Largest request body accepted, in bytes (an edit is a few hundred).
+MAX_BODY = 64 * 1024
+#: Files of the page, served from the package.
+ASSETS = ("review.html", "review.js", "review.css")
+#: How the page draws boxes: the drawn frames' styles (matched, false alarm, missed), and labels
+#: in Okabe & Ito's sky blue.
+STYLES = {"label": ((86, 180, 233), "solid", "label"),
+          **{k: v for k, v in BOX_STYLES.items() if k != "detection"}}
+_TYPES = {".html": "text/html; charset=utf-8", ".js": "text/javascript; charset=utf-8",
+          ".css": "text/css; charset=utf-8"}
+
+
+def _folder_images(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.iterdir()
+                  if p.suffix.lower() in IMAGE_SUFFIXES and p.is_file())
+
+
+class Review:
+    """What one review serves: the images folder, the labels store and the detections."""
+
+    def __init__(self, images_dir, labels, detections=None):
+        self.images_dir = Path(images_dir).resolve()
+        if not self.images_dir.is_dir():
+            raise InputError(f"{images_dir}: not a folder of images")
+        self.store = LabelStore(labels, _folder_images(self.images_dir))
+        self.detections: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+        if detections is not None:
+            for d in read_detections(detections):
+                self.detections[d.image] = (np.asarray(d.boxes, np.float64).reshape(-1, 4),
+                                            np.asarray(d.scores, np.float64))
+        self.detections_path = None if detections is None else str(detections)
+
+    def image_record(self, name: str) -> dict:
+        """One image for the page: labels, detections with the label each matches at IoU 0.5
+        (greedy in descending score, so a scan at any threshold matches a prefix the same way),
+        reviewed flag."""
+        labels = self.store.labels_of(name)
+        boxes, scores = self.detections.get(name, (np.zeros((0, 4)), np.zeros(0)))
+        matched = match_image(boxes, scores, np.asarray(labels, np.float64).reshape(-1, 4))[0] \
+            if len(boxes) else np.zeros(0, np.int64)
+        return {"name": name, "labels": labels, "reviewed": self.store.images[name].reviewed,
+                "listed": name in self.store.listed,
+                "detections": [{"box": [round(float(v), 2) for v in b], "score": float(s),
+                                "match": int(m)} for b, s, m in zip(boxes, scores, matched)]}
+
+    def state(self) -> dict:
+        return {"version": self.store.version, "labels_path": str(self.store.path),
+                "styles": STYLES,
+                "detections_path": self.detections_path,
+                "images": [self.image_record(n) for n in self.store.images]}
+
+
+def create_app(images_dir, labels, detections=None, *, token: str | None = None,
+               host: str = "127.0.0.1", port: int = 0):
+    """The Flask app of a review. ``host`` and ``port`` are the bound address, which every
+    request's ``Host`` header must name (set ``app.config["REVIEW_ADDRESS"]`` once the port is
+    known when ``port`` is 0)."""
+    from flask import Flask, abort, jsonify, request, send_file
+
+    review = Review(images_dir, labels, detections)
+    app = Flask("patchwood-review")
+    app.config["MAX_CONTENT_LENGTH"] = MAX_BODY
+    app.url_map.merge_slashes = False  # "/api/image//etc/x" names "/etc/x", which is refused
+    app.config["REVIEW_TOKEN"] = token or secrets.token_urlsafe(24)
+    app.config["REVIEW_ADDRESS"] = f"{host}:{port}"
+    app.review = review
+
+    @app.before_request
+    def guard():
+        if request.host != app.config["REVIEW_ADDRESS"]:
+            abort(403, "this review answers only at its own address")
+        given = request.headers.get("X-Review-Token") or request.args.get("token") or ""
+        if not hmac.compare_digest(given.encode(), app.config["REVIEW_TOKEN"].encode()):
+            abort(403, "a review needs the token printed with its address")
+
+    @app.errorhandler(403)
+    @app.errorhandler(404)
+    @app.errorhandler(413)
+    def refused(err):
+        return jsonify(error=getattr(err, "description", str(err))), err.code
+
+    def asset(name):
+        data = resources.files("detector.review").joinpath("assets", name).read_bytes()
+        return app.response_class(data, mimetype=_TYPES[Path(name).suffix].split(";")[0],
+                                  headers={"Cache-Control": "no-store"})
+
+    @app.get("/")
+    def page():
+        response = asset("review.html")
+        response.set_data(response.get_data().replace(b"TOKEN", app.config["REVIEW_TOKEN"].encode()))
+        return response
+
+    @app.get("/assets/<name>")
+    def assets(name):
+        if name not in ASSETS:
+            abort(404, f"no asset {name}")
+        return asset(name)
+
+    @app.get("/api/state")
+    def state():
+        return jsonify(review.state())
+
+    @app.get("/api/image/<path:name>")
+    def image(name):
+        path = (review.images_dir / name).resolve()
+        if review.images_dir not in path.parents or not path.is_file():
+            abort(404, f"no image {name!r} in the images folder")
+        return send_file(os.fspath(path), max_age=3600)
+
+    def edited(version, names):
+        return jsonify(version=version, images=[review.image_record(n) for n in names if n])
+
+    @app.post("/api/edit")
+    def edit():
+        body = request.get_json(silent=True)
+        if not isinstance(body, dict) or "edit" not in body or "image" not in body:
+            return jsonify(error="an edit is a JSON object with edit, image and version"), 400
+        try:
+            version = review.store.apply(body.get("version", -1), str(body["edit"]),
+                                         str(body["image"]),
+                                         **{k: v for k, v in body.items()
+                                            if k in ("box", "index", "cls", "value")})
+        except Conflict as err:
+            return jsonify(error=str(err), version=review.store.version), 409
+        except (InputError, ValueError, TypeError) as err:
+            return jsonify(error=str(err)), 400
+        return edited(version, [body["image"]])
+
+    @app.post("/api/undo")
+    def undo():
+        body = request.get_json(silent=True) or {}
+        try:
+            version, name = review.store.undo(body.get("version", -1))
+        except Conflict as err:
+            return jsonify(error=str(err), version=review.store.version), 409
+        return edited(version, [name])
+
+    return app
+
+
+def serve(app, host: str = "127.0.0.1", port: int = 0, ready=None) -> None:
+    """Run ``app`` with waitress on ``host:port`` (port 0: a free one) until interrupted;
+    ``ready(address)`` is called with the bound ``host:port`` once it listens."""
+    from waitress import create_server
+
+    server = create_server(app, host=host, port=port, threads=4, max_request_body_size=MAX_BODY)
+    bound = f"{host}:{server.effective_port}"
+    app.config["REVIEW_ADDRESS"] = bound
+    if ready is not None:
+        ready(bound)
+    try:
+        server.run()
+    finally:
+        server.close()

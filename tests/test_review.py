@@ -1,0 +1,177 @@
+"""`patchwood review`'s labels store and web application (Flask's test client): every edit saved
+at once in the file's own format, a backup kept once, undo across reloads from the journal, stale
+edits refused, and the safety rules (token, Host, folder, body size)."""
+
+from __future__ import annotations
+
+import json
+
+import cv2
+import numpy as np
+import pytest
+
+from detector.errors import InputError
+from detector.io.labels import read_labels, write_coco, write_labels_csv, ImageLabels
+from detector.review import MAX_BODY, Conflict, LabelStore, create_app
+
+CSV = "image,x,y,width,height\na.png,10,20,30,40\na.png,50,60,10,10\nb.png,,,,\n"
+
+
+def folder(tmp_path, labels_text=CSV):
+    images = tmp_path / "images"
+    images.mkdir()
+    for name in ("a.png", "b.png", "c.png"):
+        cv2.imwrite(str(images / name), np.full((100, 120), 128, np.uint8))
+    labels = tmp_path / "labels.csv"
+    labels.write_text(labels_text)
+    return images, labels
+
+
+def boxes_on_disk(path):
+    return {it.image: np.asarray(it.boxes).tolist() for it in read_labels(path).items}
+
+
+def test_every_edit_is_saved_and_the_first_version_kept(tmp_path):
+    images, labels = folder(tmp_path)
+    store = LabelStore(labels, ["a.png", "b.png", "c.png"])
+    assert store.version == 0 and store.format == "csv"
+    v = store.apply(0, "add", "c.png", box=[1, 2, 3, 4])
+    assert boxes_on_disk(labels) == {"a.png": [[10, 20, 30, 40], [50, 60, 10, 10]], "b.png": [],
+                                     "c.png": [[1, 2, 3, 4]]}
+    v = store.apply(v, "delete", "a.png", index=0)
+    v = store.apply(v, "move", "a.png", index=0, box=[51, 61, 12, 12])
+    v = store.apply(v, "object-free", "c.png")
+    assert v == 4
+    assert boxes_on_disk(labels) == {"a.png": [[51, 61, 12, 12]], "b.png": [], "c.png": []}
+    # the backup is the file before the first edit, byte for byte, and is never replaced
+    assert (tmp_path / "labels.csv.bak").read_text() == CSV
+    # one journal line per edit
+    assert len((tmp_path / "labels.csv.journal.jsonl").read_text().splitlines()) == 4
+    # only the labels file, its backup and its journal were written
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        "images", "labels.csv", "labels.csv.bak", "labels.csv.journal.jsonl"]
+
+
+def test_undo_works_across_a_reload(tmp_path):
+    images, labels = folder(tmp_path)
+    store = LabelStore(labels, ["a.png", "b.png", "c.png"])
+    v = store.apply(0, "delete", "a.png", index=1)
+    v = store.apply(v, "add", "b.png", box=[5, 5, 20, 20])
+    again = LabelStore(labels, ["a.png", "b.png", "c.png"])   # a new page, a restarted server
+    assert again.version == 2
+    v, name = again.undo(2)
+    assert name == "b.png" and boxes_on_disk(labels)["b.png"] == []
+    v, name = again.undo(v)
+    assert name == "a.png"
+    assert boxes_on_disk(labels)["a.png"] == [[10, 20, 30, 40], [50, 60, 10, 10]]
+    assert again.undo(v) == (v, None)  # nothing left to take back
+    # an edit by hand since the journal's last line starts a new undo stack
+    labels.write_text("image,x,y,width,height\na.png,1,1,5,5\n")
+    assert LabelStore(labels, ["a.png"]).undo(0) == (0, None)
+
+
+def test_a_stale_edit_is_refused_not_written_over(tmp_path):
+    """Two tabs load version 0; the first edits, the second's edit names version 0: refused,
+    and the first tab's edit is still on disk."""
+    images, labels = folder(tmp_path)
+    store = LabelStore(labels, ["a.png", "b.png", "c.png"])
+    store.apply(0, "add", "c.png", box=[1, 2, 3, 4])
+    with pytest.raises(Conflict, match="changed since"):
+        store.apply(0, "delete", "a.png", index=0)
+    assert boxes_on_disk(labels)["c.png"] == [[1, 2, 3, 4]]
+    assert len(boxes_on_disk(labels)["a.png"]) == 2
+
+
+def test_coco_stays_coco(tmp_path):
+    images, _ = folder(tmp_path)
+    labels = tmp_path / "labels.json"
+    write_coco(labels, [ImageLabels("a.png", [[10, 20, 30, 40]], ["nut"])], {"a.png": (120, 100)})
+    store = LabelStore(labels, ["a.png", "b.png"])
+    assert store.format == "coco"
+    store.apply(0, "add", "a.png", box=[60, 10, 20, 20])
+    data = json.loads(labels.read_text())
+    assert [a["bbox"] for a in data["annotations"]] == [[10, 20, 30, 40], [60, 10, 20, 20]]
+    assert {c["name"] for c in data["categories"]} == {"nut"}   # the new box takes the class
+    assert data["images"][0]["width"] == 120
+
+
+@pytest.mark.parametrize("edit, args, message", [
+    ("add", {"box": [1, 2, 0, 4]}, "width > 0"),
+    ("add", {"box": [1, 2, "x", 4]}, "four numbers"),
+    ("delete", {"index": 5}, "no label 5"),
+    ("rotate", {}, "unknown edit"),
+])
+def test_bad_edits_are_refused_with_one_line(tmp_path, edit, args, message):
+    images, labels = folder(tmp_path)
+    store = LabelStore(labels, ["a.png"])
+    with pytest.raises(InputError, match=message):
+        store.apply(0, edit, "a.png", **args)
+    assert labels.read_text() == CSV and store.version == 0
+
+
+def test_pascal_voc_is_refused(tmp_path):
+    (tmp_path / "ann").mkdir()
+    with pytest.raises(InputError, match="read-only"):
+        LabelStore(tmp_path / "ann")
+
+
+@pytest.fixture
+def client(tmp_path):
+    images, labels = folder(tmp_path)
+    dets = tmp_path / "dets.csv"
+    dets.write_text("image,x,y,width,height,score\na.png,10,20,30,40,0.9\na.png,80,10,10,10,0.7\n")
+    app = create_app(images, labels, dets, token="secret", host="127.0.0.1", port=5000)
+    c = app.test_client()
+    c.tmp = tmp_path
+    return c
+
+
+GOOD = {"headers": {"X-Review-Token": "secret", "Host": "127.0.0.1:5000"}}
+
+
+def test_state_judges_each_detection(client):
+    r = client.get("/api/state", **GOOD)
+    assert r.status_code == 200
+    a = next(im for im in r.json["images"] if im["name"] == "a.png")
+    # the 0.9 box equals label 0 (IoU 1); the 0.7 box overlaps nothing: a false alarm
+    assert [(d["score"], d["match"]) for d in a["detections"]] == [(0.9, 0), (0.7, -1)]
+
+
+def test_requests_without_the_token_or_at_another_host_are_refused(client):
+    assert client.get("/api/state", headers={"Host": "127.0.0.1:5000"}).status_code == 403
+    bad = {"X-Review-Token": "wrong", "Host": "127.0.0.1:5000"}
+    assert client.get("/api/state", headers=bad).status_code == 403
+    # DNS rebinding: the right token at another name is still refused
+    other = {"X-Review-Token": "secret", "Host": "attacker.example:5000"}
+    assert client.get("/api/state", headers=other).status_code == 403
+    assert client.get("/?token=secret", headers={"Host": "127.0.0.1:5000"}).status_code == 200
+
+
+def test_only_files_under_the_images_folder_are_served(client):
+    assert client.get("/api/image/a.png", **GOOD).status_code == 200
+    for name in ("../labels.csv", "..%2Flabels.csv", "/etc/passwd", "nothing.png"):
+        assert client.get(f"/api/image/{name}", **GOOD).status_code == 404, name
+    assert client.get("/assets/../store.py", **GOOD).status_code == 404
+
+
+def test_edits_through_the_api(client):
+    labels = client.tmp / "labels.csv"
+    r = client.post("/api/edit", json={"version": 0, "edit": "add", "image": "a.png",
+                                       "box": [80, 10, 10, 10]}, **GOOD)
+    assert r.status_code == 200 and r.json["version"] == 1
+    # the accepted false alarm now matches the new label (index 2)
+    assert [d["match"] for d in r.json["images"][0]["detections"]] == [0, 2]
+    assert boxes_on_disk(labels)["a.png"][-1] == [80, 10, 10, 10]
+    stale = client.post("/api/edit", json={"version": 0, "edit": "delete", "image": "a.png",
+                                           "index": 0}, **GOOD)
+    assert stale.status_code == 409 and "reload" in stale.json["error"]
+    assert client.post("/api/undo", json={"version": 1}, **GOOD).json["version"] == 2
+    assert len(boxes_on_disk(labels)["a.png"]) == 2
+    assert client.post("/api/edit", data="not json", **GOOD).status_code == 400
+
+
+def test_request_bodies_are_limited(client):
+    big = {"version": 0, "edit": "add", "image": "a.png", "box": [1, 1, 1, 1],
+           "pad": "x" * (MAX_BODY + 1)}
+    assert client.post("/api/edit", json=big, **GOOD).status_code == 413
+    assert (client.tmp / "labels.csv").read_text() == CSV
