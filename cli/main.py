@@ -26,6 +26,7 @@ COMMANDS = {
     "score": ("score", "score", "Score detections against labels: PR curve, AP, miss rate, an HTML report."),
     "tune": ("tune", "tune", "Search the training settings by cross-validation, scored by held-out detection AP."),
     "audit": ("audit", "audit", "List labels the forest finds suspicious: likely mislabelled or missing boxes."),
+    "review": ("review", "review", "Look at detections against labels in the browser and fix the labels in place."),
     "inspect": ("inspect_model", "inspect", "Summarise a model and draw where its features look."),
     "demo": ("demo", "demo", "Run the whole workflow on the demo scenario, ending in a report."),
 }

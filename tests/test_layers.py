@@ -3,7 +3,8 @@
 Every ``import`` of a ``detector`` module, at the top of a file or inside a function, is read
 from the source with :mod:`ast`; a module may import only from its own layer or a lower one. The
 order is the data flow: files in, features, trees, the early exit, the model, the scan, its
-evaluation, training (which scans and evaluates), reporting, and the command line on top.
+evaluation, training (which scans and evaluates), reporting, the review web application, and
+the command line on top.
 """
 
 from __future__ import annotations
@@ -30,6 +31,7 @@ LAYERS = [
     ("evaluation",),
     ("training",),
     ("reporting",),
+    ("review",),
 ]
 RANK = {name: i for i, names in enumerate(LAYERS) for name in names}
 
