@@ -69,6 +69,16 @@ def enlarge_split(src: Path, dst: Path) -> list[ImageLabels]:
     return out
 
 
+def timed_scans(detector, grays) -> tuple[list[float], float]:
+    """Seconds of ``detector.scan`` on each frame, and milliseconds per megapixel over them."""
+    seconds = []
+    for g in grays:
+        t0 = time.perf_counter()
+        detector.scan(g)
+        seconds.append(time.perf_counter() - t0)
+    return seconds, 1000.0 * sum(seconds) / (len(seconds) * SIZE[0] * SIZE[1] / 1e6)
+
+
 def run(argv: list[str]) -> subprocess.CompletedProcess:
     done = subprocess.run(patchwood_command() + argv, capture_output=True, text=True)
     if done.returncode:
@@ -147,23 +157,13 @@ def main(argv=None) -> int:
     det, _ = bl.train_baseline(bank, train_frames, truth, mining_rounds=HOG_MINING_ROUNDS,
                                random_state=args.seed)
     print(f"HOG + linear SVM trained in {time.perf_counter() - t0:.0f} s")
-    hog = []
-    for g in grays[:args.hog_frames]:
-        t0 = time.perf_counter()
-        det.scan(g)
-        hog.append(time.perf_counter() - t0)
-    hog_ms_mp = 1000.0 * sum(hog) / (len(hog) * SIZE[0] * SIZE[1] / 1e6)
+    hog, hog_ms_mp = timed_scans(det, grays[:args.hog_frames])
     print(f"HOG + linear SVM scan: {hog_ms_mp:.0f} ms per megapixel ({len(hog)} frames, "
           f"{1000.0 * statistics.median(hog):.0f} ms median per frame; the baseline's numpy HOG, "
           f"the same numbers as skimage's)")
     # the same detector with skimage.feature.hog computing the blocks (the issue's peer)
     det.route = "skimage"
-    sk = []
-    for g in grays[:args.hog_frames]:
-        t0 = time.perf_counter()
-        det.scan(g)
-        sk.append(time.perf_counter() - t0)
-    sk_ms_mp = 1000.0 * sum(sk) / (len(sk) * SIZE[0] * SIZE[1] / 1e6)
+    _, sk_ms_mp = timed_scans(det, grays[:args.hog_frames])
     print(f"HOG + linear SVM scan with skimage.feature.hog: {sk_ms_mp:.0f} ms per megapixel; "
           f"ratio to patchwood's whole command: {sk_ms_mp / command_ms_mp:.1f}x")
     print(f"ratio (HOG ms per MP / patchwood whole command ms per MP): "
