@@ -158,15 +158,17 @@ def quiet_option():
 def progress_bar(description: str, total: int | None = None, unit: str = "items"):
     """A progress bar on stderr with rate and time left; yields ``update(done, total=None)``.
 
-    Quiet when stderr is not a terminal except for one closing line, so logs stay readable; silent
-    with ``--quiet``.
+    Quiet when stderr is not a terminal except for one closing line, so logs stay readable (with
+    the environment variable ``PATCHWOOD_PROGRESS_LINES`` set, also a line at most once a second:
+    how ``patchwood review`` follows a retraining job); silent with ``--quiet``.
     """
     if _QUIET["on"]:
         yield lambda done, new_total=None: None
         return
     live = console.is_terminal
     start = time.perf_counter()
-    state = {"done": 0, "total": total}
+    state = {"done": 0, "total": total, "shown": start}
+    lines = not live and bool(os.environ.get("PATCHWOOD_PROGRESS_LINES"))
     if live:
         bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                        _Rate(unit), TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
@@ -181,6 +183,10 @@ def progress_bar(description: str, total: int | None = None, unit: str = "items"
                 state["total"] = new_total
             if live:
                 bar.update(task, completed=done, total=state["total"])
+            elif lines and time.perf_counter() - state["shown"] >= 1.0:
+                state["shown"] = time.perf_counter()
+                of = f"/{state['total']}" if state["total"] else ""
+                console.print(f"{description}: {done}{of} {unit}")
 
         yield update
     except BaseException:

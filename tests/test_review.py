@@ -134,7 +134,7 @@ def test_state_judges_each_detection(client):
     assert r.status_code == 200
     a = next(im for im in r.json["images"] if im["name"] == "a.png")
     # the 0.9 box equals label 0 (IoU 1); the 0.7 box overlaps nothing: a false alarm
-    assert [(d["score"], d["match"]) for d in a["detections"]] == [(0.9, 0), (0.7, -1)]
+    assert [(d["score"], d["match"]) for d in a["runs"][0]] == [(0.9, 0), (0.7, -1)]
 
 
 def test_requests_without_the_token_or_at_another_host_are_refused(client):
@@ -160,7 +160,7 @@ def test_edits_through_the_api(client):
                                        "box": [80, 10, 10, 10]}, **GOOD)
     assert r.status_code == 200 and r.json["version"] == 1
     # the accepted false alarm now matches the new label (index 2)
-    assert [d["match"] for d in r.json["images"][0]["detections"]] == [0, 2]
+    assert [d["match"] for d in r.json["images"][0]["runs"][0]] == [0, 2]
     assert boxes_on_disk(labels)["a.png"][-1] == [80, 10, 10, 10]
     stale = client.post("/api/edit", json={"version": 0, "edit": "delete", "image": "a.png",
                                            "index": 0}, **GOOD)
@@ -175,3 +175,119 @@ def test_request_bodies_are_limited(client):
            "pad": "x" * (MAX_BODY + 1)}
     assert client.post("/api/edit", json=big, **GOOD).status_code == 413
     assert (client.tmp / "labels.csv").read_text() == CSV
+
+
+def test_a_second_run_is_judged_on_its_own(tmp_path):
+    images, labels = folder(tmp_path)
+    dets = tmp_path / "dets.csv"
+    dets.write_text("image,x,y,width,height,score\na.png,10,20,30,40,0.9\n")
+    other = tmp_path / "other.csv"
+    # label 1 of a.png is (50, 60, 10, 10): this box overlaps it by IoU 1; label 0 is missed
+    other.write_text("image,x,y,width,height,score\na.png,50,60,10,10,0.8\nb.png,0,0,5,5,0.4\n")
+    app = create_app(images, labels, dets, compare=other, token="secret", host="127.0.0.1",
+                     port=5000)
+    state = app.test_client().get("/api/state", **GOOD).json
+    assert [r["name"] for r in state["runs"]] == ["dets.csv", "other.csv"]
+    a, b = (next(im for im in state["images"] if im["name"] == n) for n in ("a.png", "b.png"))
+    assert [[d["match"] for d in run] for run in a["runs"]] == [[0], [1]]
+    # b.png has no labels: the 0.4 box of the second run is a false alarm, the first has none
+    assert [[d["match"] for d in run] for run in b["runs"]] == [[], [-1]]
+    with pytest.raises(InputError, match="--compare needs --detections"):
+        create_app(images, labels, None, compare=other)
+
+
+def test_audit_findings_flag_their_images(tmp_path):
+    from detector.reporting.audit_files import CSV_NAME
+
+    images, labels = folder(tmp_path)
+    audit = tmp_path / "audit"
+    audit.mkdir()
+    (audit / CSV_NAME).write_text("image,x,y,width,height,kind,score\n"
+                                  "a.png,50,60,10,10,object-called-background,0.0800\n"
+                                  "c.png,5,5,20,20,background-called-object,0.9300\n")
+    app = create_app(images, labels, None, audit=audit, token="secret", host="127.0.0.1", port=5000)
+    state = app.test_client().get("/api/state", **GOOD).json
+    flags = {im["name"]: im["flags"] for im in state["images"]}
+    assert state["audit_images"] == 2 and flags["b.png"] == []
+    assert flags["a.png"] == [{"box": [50, 60, 10, 10], "kind": "object-called-background",
+                               "score": 0.08}]
+    assert flags["c.png"][0]["kind"] == "background-called-object"
+    (audit / CSV_NAME).write_text("image,x,y,width,height,kind,score\na.png,1,2,0,4,"
+                                  "object-called-background,0.5\n")
+    with pytest.raises(InputError, match=r"suspicious-labels.csv:2: expected image"):
+        create_app(images, labels, None, audit=audit)
+    with pytest.raises(InputError, match="not an audit folder"):
+        create_app(images, labels, None, audit=tmp_path / "images")
+
+
+# A stand-in for `patchwood`: prints two progress lines per command, and for `scan` writes the
+# detections file its --out names (one box on a.png equal to label 0), so the job's bookkeeping
+# is tested without growing a forest (tests/test_review_browser.py runs the real commands).
+FAKE = """
+import sys, pathlib
+args = sys.argv[1:]
+print(args[0] + ": 1/2 steps", flush=True)
+if "fail" in pathlib.Path(args[1]).name:
+    print("error: " + args[1] + ": broken", flush=True)
+    sys.exit(1)
+print(args[0] + ": 2/2 steps", flush=True)
+out = pathlib.Path(args[args.index("--out") + 1])
+if args[0] == "scan":
+    out.write_text("image,x,y,width,height,score\\na.png,10,20,30,40,0.95\\n")
+else:
+    out.write_bytes(b"made by the stand-in")
+"""
+
+
+def test_retraining_runs_the_three_commands_into_a_new_folder(tmp_path):
+    import sys
+    from detector.review.jobs import Retrainer
+
+    images, labels = folder(tmp_path)
+    fake = tmp_path / "fake.py"
+    fake.write_text(FAKE)
+    dets = tmp_path / "dets.csv"
+    dets.write_text("image,x,y,width,height,score\na.png,80,10,10,10,0.7\n")
+    # the scan under review was made at threshold 0.1 with stride 3: the new scan repeats both
+    (tmp_path / "dets.provenance.json").write_text(json.dumps({
+        "format": "patchwood scan provenance", "version": 1, "model": {"sha256": "0" * 64},
+        "settings": {"threshold": 0.1, "scale_step": 1.2, "stride": 3.0, "min_object": None,
+                     "max_object": None, "nms_iou": 0.3, "early_exit": True, "overhang": 0.25,
+                     "exit_level": None}}))
+    runs = tmp_path / "runs"
+    app = create_app(images, labels, dets, runs_dir=runs, token="secret", host="127.0.0.1",
+                     port=5000)
+    app.review.retrainer.program = [sys.executable, str(fake)]
+    c = app.test_client()
+    job = c.get("/api/retrain", **GOOD).json
+    assert job["state"] == "idle" and not runs.exists()  # nothing written before a job
+    first = runs / "retrain-1"
+    assert job["commands"] == [
+        f"patchwood harvest {images.resolve()} {labels} --out {first / 'bank.npz'}",
+        f"patchwood train {first / 'bank.npz'} --out {first / 'model.npz'}",
+        f"patchwood scan {first / 'model.npz'} {images.resolve()} --out {first / 'detections.csv'} "
+        "--threshold 0.1 --scale-step 1.2 --stride 3 --nms-iou 0.3 --overhang 0.25"]
+    assert c.post("/api/retrain/open", json={}, **GOOD).status_code == 409  # nothing to open yet
+    assert c.post("/api/retrain", json={}, **GOOD).status_code == 200
+    done = app.review.retrainer.wait(timeout=60)
+    assert done["state"] == "done" and done["step"] == 3 and done["error"] is None
+    assert done["tail"] == ["harvest: 1/2 steps", "harvest: 2/2 steps", "train: 1/2 steps",
+                            "train: 2/2 steps", "scan: 1/2 steps", "scan: 2/2 steps"]
+    assert sorted(p.name for p in first.iterdir()) == ["bank.npz", "detections.csv", "model.npz"]
+    # the new scan becomes the comparison run: its box matches label 0 of a.png
+    state = c.post("/api/retrain/open", json={}, **GOOD).json
+    assert [r["name"] for r in state["runs"]] == ["dets.csv", "retrain-1/detections.csv"]
+    a = next(im for im in state["images"] if im["name"] == "a.png")
+    assert [[d["match"] for d in run] for run in a["runs"]] == [[-1], [0]]
+    # a second job gets a folder of its own; one that fails says which step and why
+    app.review.retrainer.images_dir = tmp_path / "fail-images"
+    c.post("/api/retrain", json={}, **GOOD)
+    failed = app.review.retrainer.wait(timeout=60)
+    assert failed["state"] == "failed" and failed["folder"].endswith("retrain-2")
+    assert failed["error"] == f"step 1 stopped with exit code 1: error: {tmp_path / 'fail-images'}: broken"
+    assert (tmp_path / "labels.csv").read_text() == CSV  # the job never writes the labels
+
+
+def test_without_a_runs_folder_the_page_runs_no_jobs(client):
+    assert client.get("/api/retrain", **GOOD).status_code == 404
+    assert client.post("/api/retrain", json={}, **GOOD).status_code == 404

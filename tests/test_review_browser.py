@@ -1,18 +1,26 @@
 """`patchwood review` in a real browser (headless Chromium, tests/browser.py) against a real
 server (waitress on a free port): the slider changes the counts, a detection is accepted, a label
-deleted, a box drawn, and after a reload every edit is still there and on disk."""
+deleted, a box drawn, and after a reload every edit is still there and on disk; a second run is
+compared, the audit's flags filter the list, an image is opened from the address, and a real
+retraining job (harvest, train, scan) runs from the page and opens as the comparison.
+
+With ``PATCHWOOD_SCREENSHOTS=DIR`` set, the tests also save the README's screenshots there
+(``make screenshots``)."""
 
 from __future__ import annotations
 
+import os
 import threading
 import time
+from pathlib import Path
 
 import cv2
 import numpy as np
 import pytest
 
 import browser
-from detector.io.labels import read_labels
+from detector.evaluation.matching import match_image
+from detector.io.labels import read_detections, read_labels
 
 pytestmark = pytest.mark.skipif(browser.missing() is not None, reason=str(browser.missing()))
 
@@ -21,9 +29,31 @@ def boxes_on_disk(path):
     return {it.image: np.asarray(it.boxes).tolist() for it in read_labels(path).items}
 
 
+def start_server(app):
+    from detector.review import serve
+
+    bound = []
+    thread = threading.Thread(target=serve, args=(app, "127.0.0.1", 0), kwargs={"ready": bound.append},
+                              daemon=True)
+    thread.start()
+    for _ in range(100):
+        if bound:
+            break
+        time.sleep(0.05)
+    return bound[0]
+
+
+def screenshot(driver, name):
+    """Save the README's screenshot ``name`` when PATCHWOOD_SCREENSHOTS names a folder."""
+    folder = os.environ.get("PATCHWOOD_SCREENSHOTS")
+    if folder:
+        Path(folder).mkdir(parents=True, exist_ok=True)
+        driver.save_screenshot(str(Path(folder) / name))
+
+
 @pytest.fixture
 def served(tmp_path):
-    from detector.review import create_app, serve
+    from detector.review import create_app
 
     images = tmp_path / "images"
     images.mkdir()
@@ -36,15 +66,7 @@ def served(tmp_path):
     dets.write_text("image,x,y,width,height,score\na.png,20,20,60,60,0.9\n"
                     "a.png,120,20,40,40,0.6\n")
     app = create_app(images, labels, dets, token="tok", host="127.0.0.1", port=0)
-    bound = []
-    thread = threading.Thread(target=serve, args=(app, "127.0.0.1", 0), kwargs={"ready": bound.append},
-                              daemon=True)
-    thread.start()
-    for _ in range(100):
-        if bound:
-            break
-        time.sleep(0.05)
-    yield f"http://{bound[0]}/?token=tok", labels
+    yield f"http://{start_server(app)}/?token=tok", labels
 
 
 def test_review_in_the_browser(served, tmp_path):
@@ -103,7 +125,100 @@ def test_review_in_the_browser(served, tmp_path):
         driver.get(url)
         wait.until(lambda d: d.execute_script("return document.body.dataset.shown"))
         a = driver.execute_script("return S.images.find((im) => im.name === 'a.png')")
-        assert len(a["labels"]) == 3 and [d["match"] for d in a["detections"]] == [0, 1]
+        assert len(a["labels"]) == 3 and [d["match"] for d in a["runs"][0]] == [0, 1]
         assert int(driver.execute_script("return document.body.dataset.version")) == 3
+    finally:
+        driver.quit()
+
+
+def test_compare_audit_and_retrain_in_the_browser(tmp_path):
+    """The demo scenario's training frames under review with a made-up first run (each label
+    found, plus one false alarm in frame 1), an audit flag on frame 2, and a real retraining job
+    from the page whose scan becomes the second run."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+
+    from detector.reporting.audit_files import CSV_NAME
+    from detector.review import create_app
+    from synthetic_images import render_scenario
+
+    render_scenario(tmp_path / "sc", train_images=8, test_images=1, seed=3)
+    images, labels = tmp_path / "sc" / "train" / "images", tmp_path / "sc" / "train" / "labels.csv"
+    items = read_labels(labels).items
+    boxed = [it for it in items if len(it.boxes)]
+    first, second = boxed[0], boxed[1]
+    rows = [f"{it.image},{','.join(f'{v:g}' for v in b)},0.9" for it in items for b in it.boxes]
+    rows.append(f"{first.image},1,1,20,20,0.8")  # the false alarm: a corner of frame 1
+    dets = tmp_path / "first.csv"
+    dets.write_text("image,x,y,width,height,score\n" + "\n".join(rows) + "\n")
+    audit = tmp_path / "audit"
+    audit.mkdir()
+    b = second.boxes[0]
+    (audit / CSV_NAME).write_text("image,x,y,width,height,kind,score\n"
+                                  f"{second.image},{b[0]:g},{b[1]:g},{b[2]:g},{b[3]:g},"
+                                  "object-called-background,0.1000\n")
+    app = create_app(images, labels, dets, audit=audit, runs_dir=tmp_path / "runs", token="tok",
+                     host="127.0.0.1", port=0)
+    url = f"http://{start_server(app)}/?token=tok"
+    driver = browser.start(tmp_path / "profile")
+    try:
+        driver.set_window_size(1300, 800)
+        # the address names an image: that one opens first
+        driver.get(url + "#image=" + second.image)
+        wait = WebDriverWait(driver, 10)
+        wait.until(lambda d: d.execute_script("return document.body.dataset.ready") == "1")
+        wait.until(lambda d: d.execute_script("return document.body.dataset.shown") == second.image)
+        text = lambda i: driver.find_element(By.ID, i).text  # noqa: E731
+        # the audit filter lists frame 2 alone
+        Select(driver.find_element(By.ID, "filter")).select_by_value("flagged")
+        listed = driver.execute_script(
+            "return [...document.querySelectorAll('#images li')].map((li) => li.dataset.name)")
+        assert listed == [second.image]
+        Select(driver.find_element(By.ID, "filter")).select_by_value("all")
+        # one run so far: every label found, one false alarm among them
+        n = sum(len(it.boxes) for it in items)
+        assert text("precision") == f"{n / (n + 1):.3f}" and text("recall") == "1.000"
+        assert not driver.find_element(By.ID, "run-choice").is_displayed()
+        # retrain from the page: the real harvest, train and scan, into runs/retrain-1
+        driver.find_element(By.CSS_SELECTOR, "#retrain summary").click()
+        commands = text("retrain-commands").splitlines()
+        assert [c.split()[:2] for c in commands] == [["patchwood", "harvest"],
+                                                      ["patchwood", "train"],
+                                                      ["patchwood", "scan"]]
+        driver.find_element(By.ID, "retrain-run").click()
+        WebDriverWait(driver, 300).until(
+            lambda d: d.execute_script("return document.body.dataset.job") in ("done", "failed"))
+        assert driver.execute_script("return document.body.dataset.job") == "done", text("job-state")
+        new = tmp_path / "runs" / "retrain-1" / "detections.csv"
+        assert new.is_file() and (tmp_path / "runs" / "retrain-1" / "model.npz").is_file()
+        driver.find_element(By.ID, "retrain-open").click()
+        wait.until(lambda d: d.execute_script("return document.body.dataset.runs") == "2")
+        # the new run is shown; its precision and recall are its own, from the file on disk
+        assert driver.execute_script("return document.body.dataset.run") == "1"
+        assert text("run-1").startswith("retrain-1/detections.csv: precision")
+        ActionChains(driver).send_keys("c").perform()
+        assert driver.execute_script("return document.body.dataset.run") == "0"
+        assert text("precision") == f"{n / (n + 1):.3f}"
+        # "runs disagree" lists the images where, at 0.5, the runs find other labels or another
+        # number of false alarms, judged here from the two files with the project's matching
+        Select(driver.find_element(By.ID, "filter")).select_by_value("disagree")
+        listed = driver.execute_script(
+            "return [...document.querySelectorAll('#images li')].map((li) => li.dataset.name)")
+        runs = [{d.image: d for d in read_detections(path)} for path in (dets, new)]
+
+        def judged(run, it):
+            d = run.get(it.image)
+            keep = [] if d is None else [k for k, s in enumerate(d.scores) if s >= 0.5]
+            if not keep:
+                return 0, sorted(range(len(it.boxes)))
+            matched = match_image(np.asarray(d.boxes, float)[keep], np.asarray(d.scores)[keep],
+                                  np.asarray(it.boxes, float).reshape(-1, 4))[0]
+            found = set(int(m) for m in matched if m >= 0)
+            return int(sum(matched < 0)), sorted(set(range(len(it.boxes))) - found)
+
+        expected = [it.image for it in items if judged(runs[0], it) != judged(runs[1], it)]
+        assert sorted(listed) == sorted(expected)
+        screenshot(driver, "review-compare.png")
     finally:
         driver.quit()

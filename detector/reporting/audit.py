@@ -53,6 +53,9 @@ from detector.forest import bin_columns, oob_scores, quantile_cuts
 from detector.harvest import KIND_AUGMENTED, KIND_NAMES, KIND_OBJECT, PatchBank, harvest
 from detector.io.labels import csv_writer
 from detector.reporting._html import card, esc, page, swatch
+from detector.reporting.audit_files import (AUDIT_STYLES, BACKGROUND_CALLED_OBJECT, CSV_COLUMNS,
+                                            CSV_NAME, FINDING_KINDS, HTML_NAME,
+                                            OBJECT_CALLED_BACKGROUND, THUMBNAIL_DIR)
 from detector.training import DEFAULT_TRAIN
 from detector.reporting.drawing import crop_around, draw_box, write_png
 
@@ -75,24 +78,8 @@ __all__ = [
     "write_audit",
 ]
 
-OBJECT_CALLED_BACKGROUND = "object-called-background"
-BACKGROUND_CALLED_OBJECT = "background-called-object"
-#: Finding kind by label: index 0 for background patches, 1 for object patches.
-FINDING_KINDS = (BACKGROUND_CALLED_OBJECT, OBJECT_CALLED_BACKGROUND)
-
-CSV_NAME = "suspicious-labels.csv"
-HTML_NAME = "audit.html"
-THUMBNAIL_DIR = "thumbnails"
-CSV_COLUMNS = ("image", "x", "y", "width", "height", "kind", "score")
 _THUMBNAIL_FILE = re.compile(r"(object-called-background|background-called-object)-\d+\.png")
 THUMBNAIL_SIZE = 128
-
-#: How boxes are drawn: kind -> (RGB colour, line style, legend text). Hues from Okabe & Ito (2008).
-AUDIT_STYLES = {
-    OBJECT_CALLED_BACKGROUND: ((240, 228, 66), "dotted", "labelled object the forest calls background"),
-    BACKGROUND_CALLED_OBJECT: ((213, 94, 0), "dashed", "background window the forest calls object"),
-    "labelled": ((86, 180, 233), "solid", "other labelled object"),
-}
 
 #: Forest parameters of the audit (names as for :class:`detector.classifier.PatchClassifier`):
 #: the trees, depth and pool of ``patchwood train`` (one option, one default), grown bagged for

@@ -20,6 +20,7 @@ from detector.errors import InputError
 from detector.evaluation.matching import match_image
 from detector.io.images import IMAGE_SUFFIXES
 from detector.io.labels import read_detections
+from detector.reporting.audit_files import AUDIT_STYLES, FINDING_KINDS, read_audit_flags
 from detector.reporting.drawing import BOX_STYLES
 from detector.review.store import Conflict, LabelStore
 
@@ -32,7 +33,10 @@ ASSETS = ("review.html", "review.js", "review.css")
 #: How the page draws boxes: the drawn frames' styles (matched, false alarm, missed), and labels
 #: in Okabe & Ito's sky blue.
 STYLES = {"label": ((86, 180, 233), "solid", "label"),
-          **{k: v for k, v in BOX_STYLES.items() if k != "detection"}}
+          **{k: v for k, v in BOX_STYLES.items() if k != "detection"},
+          # the audit's own page draws its findings in the hues above; here they sit beside
+          # detections, so both kinds take Okabe & Ito's reddish purple, dash-dotted
+          **{k: ((204, 121, 167), "dashdot", "audit: " + AUDIT_STYLES[k][2]) for k in FINDING_KINDS}}
 _TYPES = {".html": "text/html; charset=utf-8", ".js": "text/javascript; charset=utf-8",
           ".css": "text/css; charset=utf-8"}
 
@@ -42,49 +46,87 @@ def _folder_images(folder: Path) -> list[str]:
                   if p.suffix.lower() in IMAGE_SUFFIXES and p.is_file())
 
 
-class Review:
-    """What one review serves: the images folder, the labels store and the detections."""
+def _read_run(path) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    run = {}
+    for d in read_detections(path):
+        run[d.image] = (np.asarray(d.boxes, np.float64).reshape(-1, 4),
+                        np.asarray(d.scores, np.float64))
+    return run
 
-    def __init__(self, images_dir, labels, detections=None):
+
+class Review:
+    """What one review serves: the images folder, the labels store, up to two detection runs (the
+    one under review and a comparison), the audit's flags, and the retraining job."""
+
+    def __init__(self, images_dir, labels, detections=None, compare=None, audit=None,
+                 runs_dir=None):
         self.images_dir = Path(images_dir).resolve()
         if not self.images_dir.is_dir():
             raise InputError(f"{images_dir}: not a folder of images")
         self.store = LabelStore(labels, _folder_images(self.images_dir))
-        self.detections: dict[str, tuple[np.ndarray, np.ndarray]] = {}
-        if detections is not None:
-            for d in read_detections(detections):
-                self.detections[d.image] = (np.asarray(d.boxes, np.float64).reshape(-1, 4),
-                                            np.asarray(d.scores, np.float64))
-        self.detections_path = None if detections is None else str(detections)
+        #: [(name shown, path, {image: (boxes, scores)})]: the run under review, then the other
+        self.runs: list[tuple[str, str, dict]] = []
+        for path in (detections, compare):
+            if path is not None:
+                self.runs.append((Path(path).name, str(path), _read_run(path)))
+        if compare is not None and detections is None:
+            raise InputError("--compare needs --detections: the run to compare it with")
+        self.flags = {} if audit is None else read_audit_flags(audit)
+        self.retrainer = None
+        if runs_dir is not None:
+            from detector.review.jobs import Retrainer
+            self.retrainer = Retrainer(self.images_dir, self.store.path, runs_dir,
+                                       _scan_settings(detections))
 
-    def image_record(self, name: str) -> dict:
-        """One image for the page: labels, detections with the label each matches at IoU 0.5
-        (greedy in descending score, so a scan at any threshold matches a prefix the same way),
-        reviewed flag."""
-        labels = self.store.labels_of(name)
-        boxes, scores = self.detections.get(name, (np.zeros((0, 4)), np.zeros(0)))
+    def open_comparison(self, path) -> None:
+        """Make the detections file ``path`` the comparison run (the second), replacing any."""
+        run = (f"{Path(path).parent.name}/{Path(path).name}", str(path), _read_run(path))
+        self.runs[1:] = [run]
+
+    def _judged(self, run: dict, name: str, labels) -> list[dict]:
+        boxes, scores = run.get(name, (np.zeros((0, 4)), np.zeros(0)))
         matched = match_image(boxes, scores, np.asarray(labels, np.float64).reshape(-1, 4))[0] \
             if len(boxes) else np.zeros(0, np.int64)
+        return [{"box": [round(float(v), 2) for v in b], "score": float(s), "match": int(m)}
+                for b, s, m in zip(boxes, scores, matched)]
+
+    def image_record(self, name: str) -> dict:
+        """One image for the page: labels; per run its detections, each with the label it matches
+        at IoU 0.5 (greedy in descending score, so a scan at any threshold matches a prefix the
+        same way); the audit's flags; the reviewed flag."""
+        labels = self.store.labels_of(name)
         return {"name": name, "labels": labels, "reviewed": self.store.images[name].reviewed,
                 "listed": name in self.store.listed,
-                "detections": [{"box": [round(float(v), 2) for v in b], "score": float(s),
-                                "match": int(m)} for b, s, m in zip(boxes, scores, matched)]}
+                "runs": [self._judged(run, name, labels) for _, _, run in self.runs],
+                "flags": self.flags.get(name, [])}
 
     def state(self) -> dict:
         return {"version": self.store.version, "labels_path": str(self.store.path),
-                "styles": STYLES,
-                "detections_path": self.detections_path,
+                "styles": STYLES, "runs": [{"name": n, "path": p} for n, p, _ in self.runs],
+                "audit_images": len(self.flags),
                 "images": [self.image_record(n) for n in self.store.images]}
 
 
-def create_app(images_dir, labels, detections=None, *, token: str | None = None,
-               host: str = "127.0.0.1", port: int = 0):
+def _scan_settings(detections) -> dict | None:
+    """The settings of the scan that made ``detections`` (its provenance), or None."""
+    if detections is None:
+        return None
+    from detector.scan._provenance import read_provenance
+
+    record = read_provenance(detections)
+    return None if record is None else record.get("settings")
+
+
+def create_app(images_dir, labels, detections=None, *, compare=None, audit=None, runs_dir=None,
+               token: str | None = None, host: str = "127.0.0.1", port: int = 0):
     """The Flask app of a review. ``host`` and ``port`` are the bound address, which every
     request's ``Host`` header must name (set ``app.config["REVIEW_ADDRESS"]`` once the port is
-    known when ``port`` is 0)."""
+    known when ``port`` is 0). ``compare`` is a second detections file of the same images,
+    ``audit`` an audit folder whose findings flag images, ``runs_dir`` where retraining jobs write
+    (without it the page shows the commands but cannot run them)."""
     from flask import Flask, abort, jsonify, request, send_file
 
-    review = Review(images_dir, labels, detections)
+    review = Review(images_dir, labels, detections, compare, audit, runs_dir)
     app = Flask("patchwood-review")
     app.config["MAX_CONTENT_LENGTH"] = MAX_BODY
     app.url_map.merge_slashes = False  # "/api/image//etc/x" names "/etc/x", which is refused
@@ -161,6 +203,38 @@ def create_app(images_dir, labels, detections=None, *, token: str | None = None,
         except Conflict as err:
             return jsonify(error=str(err), version=review.store.version), 409
         return edited(version, [name])
+
+    def retrainer():
+        if review.retrainer is None:
+            abort(404, "this review runs no jobs")
+        return review.retrainer
+
+    @app.get("/api/retrain")
+    def retrain_status():
+        return jsonify(retrainer().snapshot())
+
+    @app.post("/api/retrain")
+    def retrain_start():
+        job = retrainer()
+        if not job.start(review.store.version):
+            return jsonify(error="a retraining job is already running"), 409
+        return jsonify(job.snapshot())
+
+    @app.post("/api/retrain/cancel")
+    def retrain_cancel():
+        retrainer().cancel()
+        return jsonify(retrainer().snapshot())
+
+    @app.post("/api/retrain/open")
+    def retrain_open():
+        status = retrainer().snapshot()
+        if status["state"] != "done":
+            return jsonify(error="no finished retraining job to open"), 409
+        try:
+            review.open_comparison(status["detections"])
+        except InputError as err:
+            return jsonify(error=str(err)), 400
+        return jsonify(review.state())
 
     return app
 

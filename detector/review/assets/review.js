@@ -4,7 +4,11 @@
 const TOKEN = new URLSearchParams(location.search).get("token") || "";
 const $ = (id) => document.getElementById(id);
 const S = { images: [], version: 0, current: 0, selected: null, threshold: 0.5, styles: {},
-            view: { scale: 1, x: 0, y: 0 }, img: null, drag: null, total: 0, order: [] };
+            view: { scale: 1, x: 0, y: 0 }, img: null, drag: null, total: 0, orders: [],
+            runs: [], run: 0 };
+// each run's curve and point: Okabe & Ito's blue for the run under review, orange for the other
+const RUN_COLOURS = ["#0072b2", "#e69f00"];
+const dets = (im, r = S.run) => im.runs[r] || [];
 
 async function api(path, body) {
   const opts = { headers: { "X-Review-Token": TOKEN } };
@@ -26,10 +30,10 @@ async function api(path, body) {
 
 function message(text) { $("message").textContent = text || ""; }
 
-// per image at the current threshold: detections kept, their kinds, labels missed
-function judge(im) {
+// per image at the current threshold: detections kept (of run r), their kinds, labels missed
+function judge(im, r = S.run) {
   const t = S.threshold, kept = [], found = new Set();
-  im.detections.forEach((d, i) => {
+  dets(im, r).forEach((d, i) => {
     if (d.score >= t) {
       kept.push({ i, kind: d.match >= 0 ? "matched" : "false alarm" });
       if (d.match >= 0) found.add(d.match);
@@ -40,19 +44,19 @@ function judge(im) {
 }
 
 function curve() {
-  // every detection of every image, in descending score: a threshold keeps a prefix
-  const all = [];
+  // per run, every detection of every image in descending score: a threshold keeps a prefix
   S.total = 0;
-  for (const im of S.images) {
-    S.total += im.labels.length;
-    for (const d of im.detections) all.push([d.score, d.match >= 0 ? 1 : 0]);
-  }
-  all.sort((a, b) => b[0] - a[0]);
-  let tp = 0, fp = 0;
-  S.order = all.map(([s, ok]) => { tp += ok; fp += 1 - ok; return [s, tp, fp]; });
+  for (const im of S.images) S.total += im.labels.length;
+  S.orders = S.runs.map((_, r) => {
+    const all = [];
+    for (const im of S.images) for (const d of dets(im, r)) all.push([d.score, d.match >= 0 ? 1 : 0]);
+    all.sort((a, b) => b[0] - a[0]);
+    let tp = 0, fp = 0;
+    return all.map(([s, ok]) => { tp += ok; fp += 1 - ok; return [s, tp, fp]; });
+  });
 }
 
-function drawCurve(point) {
+function drawCurve(points) {
   const c = $("curve"), g = c.getContext("2d"), W = c.width, H = c.height, m = 24;
   g.clearRect(0, 0, W, H);
   g.strokeStyle = "#999"; g.strokeRect(m, 4, W - m - 4, H - m - 4);
@@ -60,42 +64,66 @@ function drawCurve(point) {
   g.fillText("recall", W / 2 - 12, H - 6); g.save(); g.translate(10, H / 2 + 20);
   g.rotate(-Math.PI / 2); g.fillText("precision", 0, 0); g.restore();
   const X = (r) => m + r * (W - m - 4), Y = (p) => 4 + (1 - p) * (H - m - 4);
-  g.strokeStyle = "#0072b2"; g.beginPath();
-  S.order.forEach(([_, tp, fp], k) => {
-    const r = S.total ? tp / S.total : 0, p = tp / (tp + fp);
-    k ? g.lineTo(X(r), Y(p)) : g.moveTo(X(r), Y(p));
+  S.orders.forEach((order, run) => {
+    g.strokeStyle = RUN_COLOURS[run]; g.lineWidth = run === S.run ? 2 : 1; g.beginPath();
+    order.forEach(([_, tp, fp], k) => {
+      const r = S.total ? tp / S.total : 0, p = tp / (tp + fp);
+      k ? g.lineTo(X(r), Y(p)) : g.moveTo(X(r), Y(p));
+    });
+    g.stroke();
   });
-  g.stroke();
-  if (point) {
-    g.fillStyle = "#d55e00"; g.beginPath();
-    g.arc(X(point[0]), Y(point[1]), 4, 0, 2 * Math.PI); g.fill();
-  }
+  g.lineWidth = 1;
+  points.forEach(([r, p], run) => {
+    g.fillStyle = RUN_COLOURS[run]; g.strokeStyle = "#000"; g.beginPath();
+    g.arc(X(r), Y(p), run === S.run ? 5 : 3.5, 0, 2 * Math.PI); g.fill(); g.stroke();
+  });
+}
+
+// matched, false alarms and missed over all images for run r at the current threshold
+function totals(r) {
+  let m = 0, a = 0, miss = 0;
+  for (const im of S.images) { const j = judge(im, r); m += j.matched; a += j.alarms; miss += j.missed.length; }
+  return { m, a, miss, p: m + a ? m / (m + a) : 1, r: S.total ? m / S.total : 0 };
+}
+
+// the two runs disagree on an image: other labels found, or another number of false alarms
+function disagree(im) {
+  if (S.runs.length < 2) return false;
+  const a = judge(im, 0), b = judge(im, 1);
+  return a.alarms !== b.alarms || a.missed.join() !== b.missed.join();
 }
 
 function refresh() {
   $("threshold-value").textContent = S.threshold.toFixed(2);
-  let tm = 0, ta = 0, tmiss = 0;
   const rows = S.images.map((im, k) => {
     const j = judge(im);
-    tm += j.matched; ta += j.alarms; tmiss += j.missed.length;
     return { k, im, j, errors: j.alarms + j.missed.length };
   });
-  $("all-matched").textContent = tm; $("all-alarms").textContent = ta;
-  $("all-missed").textContent = tmiss;
-  const p = tm + ta ? tm / (tm + ta) : 1, r = S.total ? tm / S.total : 0;
-  $("precision").textContent = p.toFixed(3); $("recall").textContent = r.toFixed(3);
-  drawCurve([r, p]);
+  const all = S.runs.map((_, r) => totals(r)), t = all[S.run] || totals(S.run);
+  $("all-matched").textContent = t.m; $("all-alarms").textContent = t.a;
+  $("all-missed").textContent = t.miss;
+  $("precision").textContent = t.p.toFixed(3); $("recall").textContent = t.r.toFixed(3);
+  $("runs-pr").replaceChildren(...all.map((x, r) => {
+    const li = document.createElement("li");
+    li.id = "run-" + r; li.style.borderLeftColor = RUN_COLOURS[r];
+    li.textContent = `${S.runs[r].name}: precision ${x.p.toFixed(3)}, recall ${x.r.toFixed(3)}` +
+      (r === S.run ? " (shown)" : "");
+    return li;
+  }));
+  drawCurve(all.map((x) => [x.r, x.p]));
   const f = $("filter").value;
   const shown = rows.filter(({ im, j }) =>
     f === "all" || (f === "unreviewed" && !im.reviewed) || (f === "misses" && j.missed.length) ||
-    (f === "alarms" && j.alarms));
+    (f === "alarms" && j.alarms) || (f === "disagree" && disagree(im)) ||
+    (f === "flagged" && im.flags.length));
   if ($("sort").value === "errors") shown.sort((a, b) => b.errors - a.errors || a.k - b.k);
   const list = $("images");
   list.replaceChildren(...shown.map(({ k, im, j }) => {
     const li = document.createElement("li");
     li.dataset.index = k; li.dataset.name = im.name;
     li.className = (k === S.current ? "current " : "") + (im.reviewed ? "done" : "");
-    li.innerHTML = `<span class="name"></span><span class="n">${j.alarms} fa · ${j.missed.length} miss</span>`;
+    li.innerHTML = `<span class="name"></span><span class="n">${j.alarms} fa · ${j.missed.length} miss` +
+      (im.flags.length ? ` · ${im.flags.length} flag` : "") + "</span>";
     li.querySelector(".name").textContent = im.name;
     li.onclick = () => show(k);
     return li;
@@ -136,7 +164,8 @@ function toImage(px, py) { const v = S.view; return [(px - v.x) / v.scale, (py -
 function stroke(g, box, kind, width) {
   const [rgb, style] = S.styles[kind];
   g.strokeStyle = `rgb(${rgb.join(",")})`; g.lineWidth = width;
-  g.setLineDash(style === "dashed" ? [8, 6] : style === "dotted" ? [2, 5] : []);
+  g.setLineDash(style === "dashed" ? [8, 6] : style === "dotted" ? [2, 5] :
+    style === "dashdot" ? [10, 4, 2, 4] : []);
   g.strokeRect(...toScreen(box));
   g.setLineDash([]);
 }
@@ -155,8 +184,14 @@ function draw() {
     stroke(g, b, missed.has(i) ? "missed" : "label", sel ? 4 : 2);
     if (sel) handles(g, b);
   });
+  for (const f of im.flags) {
+    stroke(g, f.box, f.kind, 2);
+    const [x, y, , h] = toScreen(f.box);
+    g.fillStyle = "#fff"; g.font = "11px sans-serif";
+    g.fillText(f.kind === "background-called-object" ? "unlabelled?" : "label?", x + 2, y + h + 12);
+  }
   for (const { i, kind } of j.kept) {
-    const d = im.detections[i], sel = S.selected && S.selected.type === "det" && S.selected.i === i;
+    const d = dets(im)[i], sel = S.selected && S.selected.type === "det" && S.selected.i === i;
     stroke(g, d.box, kind, sel ? 4 : 2);
     const [x, y] = toScreen(d.box);
     g.fillStyle = "#fff"; g.font = "11px sans-serif"; g.fillText(d.score.toFixed(2), x + 2, y - 3);
@@ -181,7 +216,7 @@ function hit(px, py) {
   let best = null;
   im.labels.forEach((b, i) => { if (inside(b) && (!best || area(b) < best.a)) best = { type: "label", i, a: area(b) }; });
   for (const { i } of judge(im).kept) {
-    const b = im.detections[i].box;
+    const b = dets(im)[i].box;
     if (inside(b) && (!best || area(b) < best.a)) best = { type: "det", i, a: area(b) };
   }
   return best;
@@ -206,7 +241,7 @@ function accept_data(data) {
 
 async function acceptSelected() {
   if (!S.selected || S.selected.type !== "det") return message("select a detection to accept");
-  const box = S.images[S.current].detections[S.selected.i].box;
+  const box = dets(S.images[S.current])[S.selected.i].box;
   S.selected = null;
   await edit({ edit: "add", box });
 }
@@ -299,32 +334,99 @@ function setupKeys() {
     else if (key === "u" || (key === "z" && (e.ctrlKey || e.metaKey))) undo();
     else if (key === "r") edit({ edit: "reviewed", value: !im.reviewed });
     else if (key === "o") edit({ edit: "object-free" });
+    else if (key === "c" && S.runs.length > 1) setRun(1 - S.run);
     else return;
     e.preventDefault();
   });
 }
 
+function setRun(r) {
+  S.run = r; S.selected = null; $("run").value = String(r);
+  document.body.dataset.run = r; refresh();
+}
+
+// the runs, the filters that need a second run or an audit, and the legend, from a state
+function load(data) {
+  S.images = data.images; S.version = data.version; S.styles = data.styles; S.runs = data.runs;
+  if (S.run >= S.runs.length) S.run = 0;
+  $("labels-path").textContent = data.labels_path;
+  $("legend").replaceChildren(...Object.entries(S.styles)
+    .filter(([kind]) => data.audit_images || !kind.includes("-called-"))
+    .map(([kind, [rgb, style, text]]) => {
+      const s = document.createElement("span");
+      const line = style === "dashdot" ? "dashed" : style;
+      s.innerHTML = `<i style="border-top: 3px ${line} rgb(${rgb.join(",")})"></i>`;
+      s.append(text); return s;
+    }));
+  $("run").replaceChildren(...S.runs.map((run, r) => new Option(run.name, String(r))));
+  $("run").value = String(S.run);
+  $("run-choice").hidden = S.runs.length < 2;
+  $("filter").querySelector("[value=disagree]").hidden = S.runs.length < 2;
+  $("filter").querySelector("[value=flagged]").hidden = !data.audit_images;
+  document.body.dataset.version = S.version; document.body.dataset.runs = S.runs.length;
+  curve();
+}
+
+// an image named in the address (#image=NAME, as the score report links it), else the one
+// with the most errors
+function wanted() {
+  const name = new URLSearchParams(location.hash.slice(1)).get("image");
+  const k = name === null ? -1 : S.images.findIndex((im) => im.name === name);
+  if (name !== null && k < 0) message(`no image ${name} in this review`);
+  if (k >= 0) return k;
+  const first = S.images.map((im, i) => [judge(im), i])
+    .sort((a, b) => (b[0].alarms + b[0].missed.length) - (a[0].alarms + a[0].missed.length) || a[1] - b[1]);
+  return first.length ? first[0][1] : 0;
+}
+
+// retraining: the commands, and the job's progress while it runs
+function showJob(job) {
+  $("retrain-commands").textContent = job.commands.join("\n");
+  document.body.dataset.job = job.state;
+  const step = job.step ? ` step ${job.step} of ${job.steps}` : "";
+  $("job-state").textContent = job.state === "idle" ? "" :
+    `${job.state}${job.state === "running" ? step : ""}, ${job.seconds.toFixed(0)} s` +
+    (job.error ? ` (${job.error})` : "") + (job.folder ? ` in ${job.folder}` : "");
+  $("job-tail").textContent = job.tail.slice(-4).join("\n");
+  $("job-progress").value = job.state === "done" ? job.steps : Math.max(0, job.step - 1);
+  $("retrain-run").disabled = job.state === "running";
+  $("retrain-cancel").hidden = job.state !== "running";
+  $("retrain-open").hidden = job.state !== "done";
+  if (job.state === "running") setTimeout(pollJob, 1000);
+}
+
+async function pollJob() {
+  const job = await api("api/retrain");
+  if (job) showJob(job);
+}
+
+async function setupJob() {
+  const res = await fetch("api/retrain", { headers: { "X-Review-Token": TOKEN } });
+  if (!res.ok) { $("retrain").hidden = true; return; }
+  showJob(await res.json());
+  $("retrain-run").onclick = async () => { const job = await api("api/retrain", {}); if (job) showJob(job); };
+  $("retrain-cancel").onclick = async () => { const job = await api("api/retrain/cancel", {}); if (job) showJob(job); };
+  $("retrain-open").onclick = async () => {
+    const data = await api("api/retrain/open", {});
+    if (data) { load(data); setRun(S.runs.length - 1); message(`comparing with ${S.runs[S.runs.length - 1].name}`); }
+  };
+}
+
 async function start() {
   const data = await api("api/state");
   if (!data) return;
-  S.images = data.images; S.version = data.version; S.styles = data.styles;
-  $("labels-path").textContent = data.labels_path;
-  $("legend").replaceChildren(...Object.entries(S.styles).map(([kind, [rgb, style, text]]) => {
-    const s = document.createElement("span");
-    s.innerHTML = `<i style="border-top: 3px ${style} rgb(${rgb.join(",")})"></i>`;
-    s.append(text); return s;
-  }));
+  load(data);
   S.threshold = parseFloat($("threshold").value);
   $("threshold").addEventListener("input", (e) => { S.threshold = parseFloat(e.target.value); refresh(); });
   $("filter").onchange = refresh; $("sort").onchange = refresh;
+  $("run").onchange = (e) => setRun(parseInt(e.target.value, 10));
   $("accept").onclick = acceptSelected; $("delete").onclick = deleteSelected; $("undo").onclick = undo;
   $("reviewed").onclick = () => edit({ edit: "reviewed", value: !S.images[S.current].reviewed });
   $("object-free").onclick = () => edit({ edit: "object-free" });
-  setupCanvas(); setupKeys(); curve();
-  document.body.dataset.version = S.version;
-  const first = S.images.map((im, k) => [judge(im), k])
-    .sort((a, b) => (b[0].alarms + b[0].missed.length) - (a[0].alarms + a[0].missed.length) || a[1] - b[1]);
-  show(first.length ? first[0][1] : 0);
+  setupCanvas(); setupKeys();
+  window.addEventListener("hashchange", () => show(wanted()));
+  show(wanted());
+  await setupJob();
   document.body.dataset.ready = "1";
 }
 
