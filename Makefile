@@ -11,7 +11,7 @@ LOCK_TEST := requirements/test.lock
 # the editable install of patchwood itself, built with the locked setuptools and nothing else
 SELF   := --quiet --no-deps --no-build-isolation -e .
 
-.PHONY: demo test test-newest lock bench clean
+.PHONY: demo test test-newest lock bench screenshots clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -57,6 +57,10 @@ bench: $(VENV)/.installed
 	$(BIN)/python benchmarks/memory.py
 	$(BIN)/python benchmarks/baseline.py
 	$(BIN)/python benchmarks/accuracy.py
+
+# The README's screenshots of the review page, saved by its browser tests (needs Chromium).
+screenshots: $(VENV)/.installed-test
+	PATCHWOOD_SCREENSHOTS=docs $(BIN)/python -m pytest -q tests/test_review_browser.py
 
 clean:
 	rm -rf $(VENV) .venv-newest $(DEMO_OUT) .pytest_cache

@@ -219,6 +219,11 @@ def test_compare_audit_and_retrain_in_the_browser(tmp_path):
 
         expected = [it.image for it in items if judged(runs[0], it) != judged(runs[1], it)]
         assert sorted(listed) == sorted(expected)
+        if listed:
+            driver.find_element(By.CSS_SELECTOR, "#images li").click()
+            wait.until(lambda d: d.execute_script("return document.body.dataset.shown") == listed[0])
+        driver.find_element(By.CSS_SELECTOR, "#retrain summary").click()  # folded again
+        driver.execute_script("document.querySelector('aside').scrollTop = 0")
         screenshot(driver, "review-compare.png")
     finally:
         driver.quit()

@@ -20,7 +20,8 @@ from detector.errors import InputError
 from detector.evaluation.matching import match_image
 from detector.io.images import IMAGE_SUFFIXES
 from detector.io.labels import read_detections
-from detector.reporting.audit_files import AUDIT_STYLES, FINDING_KINDS, read_audit_flags
+from detector.reporting.audit_files import (BACKGROUND_CALLED_OBJECT, OBJECT_CALLED_BACKGROUND,
+                                            read_audit_flags)
 from detector.reporting.drawing import BOX_STYLES
 from detector.review.store import Conflict, LabelStore
 
@@ -36,7 +37,8 @@ STYLES = {"label": ((86, 180, 233), "solid", "label"),
           **{k: v for k, v in BOX_STYLES.items() if k != "detection"},
           # the audit's own page draws its findings in the hues above; here they sit beside
           # detections, so both kinds take Okabe & Ito's reddish purple, dash-dotted
-          **{k: ((204, 121, 167), "dashdot", "audit: " + AUDIT_STYLES[k][2]) for k in FINDING_KINDS}}
+          OBJECT_CALLED_BACKGROUND: ((204, 121, 167), "dashdot", "audit: label? (called background)"),
+          BACKGROUND_CALLED_OBJECT: ((204, 121, 167), "dashdot", "audit: unlabelled? (called object)")}
 _TYPES = {".html": "text/html; charset=utf-8", ".js": "text/javascript; charset=utf-8",
           ".css": "text/css; charset=utf-8"}
 
