@@ -5,7 +5,9 @@ const TOKEN = new URLSearchParams(location.search).get("token") || "";
 const $ = (id) => document.getElementById(id);
 const S = { images: [], version: 0, current: 0, selected: null, threshold: 0.5, styles: {},
             view: { scale: 1, x: 0, y: 0 }, img: null, drag: null, total: 0, orders: [],
-            runs: [], run: 0 };
+            runs: [], run: 0, items: new Map(), decoded: new Map() };
+// images kept decoded for the next moves (the current one and its neighbours in the list)
+const DECODED_KEPT = 8;
 // each run's curve and point: Okabe & Ito's blue for the run under review, orange for the other
 const RUN_COLOURS = ["#0072b2", "#e69f00"];
 const dets = (im, r = S.run) => im.runs[r] || [];
@@ -128,13 +130,22 @@ function refresh() {
     li.onclick = () => show(k);
     return li;
   }));
+  S.items = new Map(shown.map(({ k }, n) => [k, list.children[n]]));
   S.listed = shown.map((row) => row.k);
-  const cur = rows[S.current];
-  if (cur) {
-    $("img-matched").textContent = cur.j.matched; $("img-alarms").textContent = cur.j.alarms;
-    $("img-missed").textContent = cur.j.missed.length;
-  }
+  mark();
   draw();
+}
+
+// what moving to another image changes besides the frame: the list's highlight, the counts
+function mark() {
+  for (const li of $("images").querySelectorAll("li.current")) li.classList.remove("current");
+  const li = S.items.get(S.current);
+  if (li) li.classList.add("current");
+  const im = S.images[S.current];
+  if (!im) return;
+  const j = judge(im);
+  $("img-matched").textContent = j.matched; $("img-alarms").textContent = j.alarms;
+  $("img-missed").textContent = j.missed.length;
 }
 
 function fit() {
@@ -145,13 +156,35 @@ function fit() {
   S.view = { scale: s, x: (cv.width - s * im.naturalWidth) / 2, y: (cv.height - s * im.naturalHeight) / 2 };
 }
 
+// the image of S.images[k], fetched and decoded off the main thread (HTMLImageElement.decode),
+// kept for DECODED_KEPT moves
+function decoded(k) {
+  const name = S.images[k].name;
+  let p = S.decoded.get(name);
+  if (!p) {
+    const img = new Image();
+    img.src = "api/image/" + encodeURIComponent(name) + "?token=" + encodeURIComponent(TOKEN);
+    p = img.decode().then(() => img);
+    p.catch(() => S.decoded.delete(name));
+    S.decoded.set(name, p);
+    while (S.decoded.size > DECODED_KEPT) S.decoded.delete(S.decoded.keys().next().value);
+  }
+  return p;
+}
+
+// the frame of image k once it is decoded (the previous one stays until then); the highlight
+// and counts at once; then its neighbours in the list are fetched for the next move
 function show(k) {
   if (k < 0 || k >= S.images.length) return;
   S.current = k; S.selected = null;
-  const img = new Image();
-  img.onload = () => { S.img = img; fit(); refresh(); document.body.dataset.shown = S.images[k].name; };
-  img.src = "api/image/" + encodeURIComponent(S.images[k].name) + "?token=" + encodeURIComponent(TOKEN);
-  refresh();
+  mark();
+  decoded(k).then((img) => {
+    if (S.current !== k) return;  // moved on before it arrived
+    S.img = img; fit(); draw(); document.body.dataset.shown = S.images[k].name;
+    const order = S.listed && S.listed.length ? S.listed : S.images.map((_, i) => i);
+    const at = order.indexOf(k);
+    for (const step of [1, -1, 2]) if (order[at + step] !== undefined) decoded(order[at + step]);
+  }, () => message("could not load " + S.images[k].name));
 }
 
 function toScreen(b) {
@@ -425,7 +458,8 @@ async function start() {
   $("object-free").onclick = () => edit({ edit: "object-free" });
   setupCanvas(); setupKeys();
   window.addEventListener("hashchange", () => show(wanted()));
-  show(wanted());
+  show(wanted());  // fetched and decoded while the list is made
+  refresh();
   await setupJob();
   document.body.dataset.ready = "1";
 }
