@@ -33,8 +33,8 @@ it also asks for the next animation frame and records when that frame begins (th
 to the screen at the end of that frame).
 
 (a) Opening: ``--opens`` navigations to the page (the first in a fresh browser); per open, the
-time from the navigation's start to the first ``data-shown``, to ``data-ready`` (after /api/state
-is loaded and the page built), and the Resource Timing entry of /api/state (request sent to
+time from the navigation's start to the first ``data-shown``, to ``data-ready`` (which the page
+sets once it is built from /api/state), and the Resource Timing entry of /api/state (request sent to
 response complete, bytes transferred); on the server, the /api/state handling time. The state is
 also timed in-process, through Flask's test client (``--repeats`` times).
 
