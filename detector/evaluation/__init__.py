@@ -49,7 +49,7 @@ from detector.evaluation.matching import match_image
 from detector.evaluation.operating_point import (check_targets, choose_operating_point, fppi_at_recall,
                                                  operating_point, recall_at_fppi)
 from detector.evaluation.results import (COCO_IOU_THRESHOLDS, COCO_RECALL_POINTS, DEFAULT_SIZE_BUCKETS,
-                                         LOG_AVERAGE_FPPI, VOC2007_RECALL_POINTS, Evaluation, FalseAlarm,
+                                         FALSE_ALARM, LEFT_OUT, LOG_AVERAGE_FPPI, VOC2007_RECALL_POINTS, Evaluation, FalseAlarm,
                                          Figures, ImageErrors, Miss, OperatingPoint)
 from detector.evaluation.scoring import evaluate
 
@@ -57,6 +57,8 @@ __all__ = [
     "COCO_IOU_THRESHOLDS",
     "COCO_RECALL_POINTS",
     "DEFAULT_SIZE_BUCKETS",
+    "FALSE_ALARM",
+    "LEFT_OUT",
     "LOG_AVERAGE_FPPI",
     "VOC2007_RECALL_POINTS",
     "Evaluation",

@@ -11,7 +11,7 @@ import numpy as np
 
 from detector._validation import json_safe
 
-__all__ = ["COCO_IOU_THRESHOLDS", "COCO_RECALL_POINTS", "DEFAULT_SIZE_BUCKETS", "LOG_AVERAGE_FPPI", "VOC2007_RECALL_POINTS", "Evaluation", "FalseAlarm", "Figures", "ImageErrors", "Miss", "OperatingPoint"]
+__all__ = ["COCO_IOU_THRESHOLDS", "COCO_RECALL_POINTS", "DEFAULT_SIZE_BUCKETS", "FALSE_ALARM", "LEFT_OUT", "LOG_AVERAGE_FPPI", "VOC2007_RECALL_POINTS", "Evaluation", "FalseAlarm", "Figures", "ImageErrors", "Miss", "OperatingPoint"]
 
 #: IoU thresholds 0.50:0.05:0.95 of the COCO average precision, built exactly as pycocotools builds
 #: them (``np.linspace``), so that threshold comparisons agree bit for bit.
@@ -24,6 +24,11 @@ VOC2007_RECALL_POINTS = np.arange(11) / 10.0
 #: Nine false-positives-per-image values evenly spaced in log space from 0.01 to 1
 #: (Dollar et al., PAMI 2012, log-average miss rate).
 LOG_AVERAGE_FPPI = np.logspace(-2.0, 0.0, 9)
+#: :attr:`Evaluation.matches` of a detection that matches no labelled box.
+FALSE_ALARM = -1
+#: :attr:`Evaluation.matches` of a detection counted neither as true nor as a false alarm.
+LEFT_OUT = -2
+
 #: Object-size buckets by the square root of the box area, in pixels: ``name -> (low, high)``,
 #: half-open ``low <= sqrt(area) < high``; COCO's limits 32 and 96.
 DEFAULT_SIZE_BUCKETS = {"small": (0.0, 32.0), "medium": (32.0, 96.0), "large": (96.0, math.inf)}
@@ -194,6 +199,14 @@ class Evaluation(Figures):
         Images that have detections but are not in the ground truth (left out of every figure).
     unlabelled_detections : int
         The detections on those images.
+    matches : dict of str to ndarray of int64
+        Per labelled image, per detection in the order given: the index of the labelled box it
+        is a true detection of at ``iou_threshold``, :data:`FALSE_ALARM` (-1) or
+        :data:`LEFT_OUT` (-2: matched to an ignore region, or outside ``size_range`` and matching
+        nothing; counted neither way). Matching is greedy in descending score, so a score
+        threshold keeps a prefix of that order and these outcomes hold at every threshold: the
+        counts of the detections scoring ``t`` or more are those of :func:`evaluate` run on them
+        alone. Not written by :meth:`to_dict`.
     """
 
     buckets: dict = field(default_factory=dict)
@@ -202,3 +215,4 @@ class Evaluation(Figures):
     miss_list: list = field(default_factory=list)
     unlabelled_images: list = field(default_factory=list)
     unlabelled_detections: int = 0
+    matches: dict = field(default_factory=dict, metadata={"json": False})

@@ -14,7 +14,7 @@ from detector.errors import InputError
 from detector.evaluation.curves import _sampled_ap, average_precision, log_average_miss_rate, reachable
 from detector.evaluation.matching import _check_threshold, _greedy_match, _image_arrays
 from detector.evaluation.results import (COCO_IOU_THRESHOLDS, COCO_RECALL_POINTS, DEFAULT_SIZE_BUCKETS,
-                                        Evaluation, FalseAlarm, Figures, ImageErrors, Miss)
+                                        FALSE_ALARM, LEFT_OUT, Evaluation, FalseAlarm, Figures, ImageErrors, Miss)
 
 __all__ = ["evaluate"]
 
@@ -135,6 +135,11 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
     (1, 1, 1, [1.0, 0.5], [0.5, 0.5])
     >>> ev.average_precision
     0.5
+
+    Per detection, the labelled box it found (-1: a false alarm); they hold at every threshold:
+
+    >>> ev.matches["a.png"].tolist()
+    [0, -1]
     """
     t = _check_threshold(iou_threshold)
     buckets = dict(size_buckets or {})
@@ -167,7 +172,7 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
 
     per_scores, per_true, per_ignored = [], [], []
     n_objects = np.zeros(len(configs), dtype=np.int64)
-    per_image, false_alarms, misses = [], [], []
+    per_image, false_alarms, misses, matches = [], [], [], {}
     for name in labelled:
         gt = _image_arrays(name, ground_truth[name])
         value = detections.get(name, (np.zeros((0, 4)), np.zeros(0)))
@@ -210,6 +215,8 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
         n_true = int(true0.sum())
         n_false = int((~true0 & ~left_out0).sum())
         n_regular = int(regular[0].sum())
+        outcome = np.where(true0, m0, np.where(left_out0, LEFT_OUT, FALSE_ALARM))
+        matches[name] = outcome.astype(np.int64)
         per_image.append(ImageErrors(image=name, objects=n_regular, detections=len(det),
                                      true_detections=n_true, false_alarms=n_false,
                                      misses=n_regular - n_true))
@@ -249,4 +256,4 @@ def evaluate(detections: Mapping, ground_truth: Mapping, iou_threshold: float = 
         **results[0],
         buckets={name: Figures(**res) for name, res in zip(buckets, results[1:])},
         per_image=per_image, false_alarm_list=false_alarms, miss_list=misses,
-        unlabelled_images=unlabelled, unlabelled_detections=unlabelled_count)
+        unlabelled_images=unlabelled, unlabelled_detections=unlabelled_count, matches=matches)
