@@ -399,7 +399,8 @@ def test_pages_share_one_template_and_base_style_sheet():
 
     assets = resources.files("detector.reporting").joinpath("assets")
     names = sorted(p.name for p in assets.iterdir())
-    assert names == ["audit.css", "base.css", "page.html", "score-report.css", "sort-table.js"]
+    assert names == ["audit.css", "base.css", "page.html", "score-report.css", "sort-table.js",
+                     "threshold-slider.js"]
     base = _html.asset("base.css")
     pages = {sheet: _html.page("t", sheet, ["<h1>x</h1>"]) for sheet in ("score-report.css", "audit.css")}
     for sheet, text in pages.items():

@@ -145,11 +145,13 @@ def test_report_html_is_offline_and_links_exist(scored):
     report = root / "report"
     text = (report / "report.html").read_text(encoding="utf-8")
     assert not re.search(r"https?://", text)
-    # one script, inlined from the package (the per-image table's sorting): nothing fetched
-    assert text.lower().count("<script") == 1 and "<script src" not in text.lower()
+    # two scripts inlined from the package (the per-image table's sorting, the threshold slider)
+    # and the slider's data as JSON: nothing fetched
+    assert text.lower().count("<script") == 3 and "<script src" not in text.lower()
+    assert text.count('<script type="application/json" id="threshold-data">') == 1
     from detector.reporting._html import asset
 
-    assert asset("sort-table.js") in text
+    assert asset("sort-table.js") in text and asset("threshold-slider.js") in text
     table = text[text.index('<table class="sortable" id="per-image">'):]
     table = table[:table.index("</table>")]
     assert table.count('<th data-type="number">') == 5 and "<thead>" in table and "<tbody>" in table
@@ -165,7 +167,8 @@ def test_report_html_is_offline_and_links_exist(scored):
     assert order == sorted(order)
     # every section opens with its "How to read this" note: the headline figures, the curves,
     # the size table (when there is one), both galleries and the per-image table; no other
-    headings = ["<h2>Curves</h2>", "<h3>Highest-scoring false alarms", "<h3>Missed objects",
+    headings = ["<h2>Curves</h2>", '<h2 id="choose-threshold">Choose a threshold</h2>',
+                "<h3>Highest-scoring false alarms", "<h3>Missed objects",
                 "<h2>Per image</h2>"] + (["<h3>By object size</h3>"]
                                          if "<h3>By object size</h3>" in text else [])
     for heading in headings:
@@ -175,7 +178,7 @@ def test_report_html_is_offline_and_links_exist(scored):
     # the per-image table is sorted by errors at the threshold 0.6: b.png (1 false alarm + 1
     # miss) first; c.png's only detection (0.5) is below it, so c.png is clean
     table = text[text.index("<h2>Per image</h2>"):]
-    rows = re.findall(r"<tr class=\"(\w+)\"><td>([^<]+)</td>", table)
+    rows = re.findall(r"<tr class=\"(\w+)\"(?: data-index=\"\d+\")?><td>([^<]+)</td>", table)
     assert rows[:1] == [("bad", "b.png")]
     assert sorted(rows, key=lambda r: r[1]) == [("bad", "a.png"), ("bad", "b.png"),
                                                 ("clean", "c.png"), ("bad", "e.png")]

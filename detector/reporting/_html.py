@@ -8,6 +8,7 @@ package finds them.
 from __future__ import annotations
 
 import html
+import json
 from functools import lru_cache
 from importlib import resources
 from string import Template
@@ -15,7 +16,7 @@ from typing import Any, Iterable
 
 from detector.reporting.drawing import hex_colour
 
-__all__ = ["asset", "card", "esc", "page", "swatch"]
+__all__ = ["asset", "card", "esc", "json_script", "page", "swatch"]
 
 
 @lru_cache(maxsize=None)
@@ -60,10 +61,27 @@ def swatch(rgb: tuple[int, int, int], style: str, text: str) -> str:
             f'{hex_colour(rgb)}"></span>{esc(text)}</span>')
 
 
-def page(title: str, style_sheet: str, body: Iterable[str], script: str | None = None) -> str:
+def json_script(element_id: str, data: Any) -> str:
+    """``data`` as JSON inside ``<script type="application/json">``, for a page's script to read
+    with ``JSON.parse(element.textContent)``. ``<``, ``>`` and ``&`` are written as ``\\u`` escapes,
+    so no value (an image name, say) can end the element; non-ASCII text too, so names that are
+    not UTF-8 survive.
+
+    Examples
+    --------
+    >>> print(json_script("d", {"image": "</script>é"}))
+    <script type="application/json" id="d">{"image":"\\u003c/script\\u003e\\u00e9"}</script>
+    """
+    text = json.dumps(data, ensure_ascii=True, allow_nan=False, separators=(",", ":"))
+    text = text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026")
+    return f'<script type="application/json" id="{esc(element_id)}">{text}</script>'
+
+
+def page(title: str, style_sheet: str, body: Iterable[str],
+         script: str | Iterable[str] | None = None) -> str:
     """A whole page: ``page.html`` with ``base.css`` and ``style_sheet`` (a file in ``assets/``)
-    inlined, and ``body`` (lines of HTML) inside ``<main>``; ``script``, a file in ``assets/``,
-    inlined after it.
+    inlined, and ``body`` (lines of HTML) inside ``<main>``; ``script``, a file in ``assets/`` (or
+    several, in order), inlined after it.
 
     Examples
     --------
@@ -72,6 +90,8 @@ def page(title: str, style_sheet: str, body: Iterable[str], script: str | None =
     (True, True)
     """
     style = "\n" + asset("base.css") + asset(style_sheet)
-    code = "" if script is None else "\n<script>\n" + asset(script) + "</script>\n"
+    scripts = [] if script is None else [script] if isinstance(script, str) else list(script)
+    code = "".join("\n<script>\n" + asset(name) + "</script>" for name in scripts)
+    code += "\n" if scripts else ""
     return Template(asset("page.html")).substitute(title=esc(title), style=style,
                                                    body="\n".join(body), script=code)

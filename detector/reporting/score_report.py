@@ -35,11 +35,12 @@ from detector.evaluation import DEFAULT_SIZE_BUCKETS, Evaluation, check_targets,
 from detector.io.files import same_file, write_text
 from detector.io.npzfile import file_sha256
 from detector.scan import describe_settings, provenance_of
-from detector.reporting._html import card, esc, page, swatch
+from detector.reporting._html import card, esc, json_script, page, swatch
 from detector.reporting.drawing import BOX_STYLES, thumbnail, write_png
 from detector.reporting.inputs import at_threshold, name_mismatches, read_score_inputs
 from detector.reporting.plots import plot_miss_rate, plot_precision_recall, plot_score_histogram
 from detector.reporting.summary import _summary_text, ap_name, build_summary, fmt, percent
+from detector.reporting.threshold_data import counts_at, threshold_data
 
 __all__ = [
     "GALLERY_SIZE",
@@ -276,7 +277,8 @@ def write_report(report_dir: str | os.PathLike, evaluation: Evaluation, point: d
                             errors=errors if errors is not evaluation else None,
                             provenance=provenance, warnings=warnings)
     write_text(out / "summary.json", _summary_text(summary))
-    write_text(out / "report.html", _html(summary, evaluation, galleries, errors))
+    slider = None if detections is None else threshold_data(evaluation, detections, point)
+    write_text(out / "report.html", _html(summary, evaluation, galleries, errors, slider))
     return summary
 
 
@@ -442,8 +444,53 @@ def _provenance_html(record: dict | None) -> str:
     return f'<p class="inputs">made by: {" &middot; ".join(parts)}</p>'
 
 
+def _threshold_html(data: dict | None, point: dict) -> list[str]:
+    """The threshold slider's section: the slider, the counts at its threshold (written here at
+    the start value, so the page reads right without scripts too), the curve's place, the data."""
+    parts = ['<h2 id="choose-threshold">Choose a threshold</h2>']
+    if data is None:
+        return parts + ['<p class="empty">No slider: the report was written without the '
+                        'detections themselves.</p>']
+    start = data["start"]
+    counts = counts_at(data, start)
+    where = ("the recommended threshold" if data["recommended"] is not None
+             else "0 (there is no recommended threshold)")
+    parts.append('<p class="read">How to read this: move the slider (or focus it and use the '
+                 'arrow keys, steps of 0.01) to see what a scan at another threshold would give: '
+                 'the detections scoring the threshold or more, matched to the labels at IoU '
+                 f'{data["iou_threshold"]:.2f} as above. It starts at {esc(where)}. The dot on the '
+                 "curve is the slider's threshold, the ring the recommended one; the per-image "
+                 'table below follows the slider. The page recounts from the scores and matches '
+                 'written into it; nothing is sent anywhere.</p>')
+    shown = f"{start:.6g}" + (" (recommended)" if data["recommended"] is not None else "")
+    parts.append('<div class="chooser"><div class="controls">'
+                 f'<label for="threshold">score threshold <output id="threshold-value">'
+                 f'{esc(shown)}</output></label>'
+                 f'<input id="threshold" type="range" min="0" max="1" step="0.01" '
+                 f'value="{start!r}">')
+    if data["recommended"] is not None:
+        parts.append('<button type="button" id="to-recommended">back to the recommended '
+                     'threshold</button>')
+    parts.append('<table class="counts">')
+    for key, name in (("detections", "detections kept"), ("true_detections", "true detections"),
+                      ("false_alarms", "false alarms"), ("misses", "misses"),
+                      ("precision", "precision"), ("recall", "recall")):
+        value = counts[key]
+        text = fmt(value) if key in ("precision", "recall") else str(value)
+        parts.append(f'<tr><th scope="row">{name}</th><td id="at-{key.replace("_", "-")}">'
+                     f'{text}</td></tr>')
+    parts.append('</table></div>')
+    parts.append('<svg id="threshold-curve" viewBox="0 0 330 260" role="img" '
+                 'aria-label="precision against recall: the dot is the slider\'s threshold, the '
+                 'ring the recommended one"></svg></div>')
+    parts.append('<noscript><p class="empty">The slider needs JavaScript; the counts shown are at '
+                 'the start value.</p></noscript>')
+    parts.append(json_script("threshold-data", data))
+    return parts
+
+
 def _html(summary: dict, evaluation: Evaluation, galleries,
-          errors: Evaluation | None = None) -> str:
+          errors: Evaluation | None = None, slider: dict | None = None) -> str:
     errors = evaluation if errors is None else errors
     inputs = summary.get("inputs") or {}
     point = summary["operating_point"]
@@ -521,6 +568,8 @@ def _html(summary: dict, evaluation: Evaluation, galleries,
                      f'<figcaption>{esc(caption)}</figcaption></figure>')
     parts.append('</div>')
 
+    parts += _threshold_html(slider, point)
+
     # size buckets
     if evaluation.buckets:
         parts.append('<h3>By object size</h3>')
@@ -585,20 +634,43 @@ def _html(summary: dict, evaluation: Evaluation, galleries,
     rows = sorted(errors.per_image,
                   key=lambda r: (-(r.false_alarms + r.misses), -r.misses, r.image))
     parts.append('<h2>Per image</h2>')
-    which = ("counts keep every detection in the file" if point.get("threshold") is None else
-             f'counts are those of the detections scoring {point["threshold"]:.6g} or more')
+    if slider is not None:
+        which = ("counts follow the threshold slider above; at its start they are those of the "
+                 + ("detections scoring {:.6g} or more".format(point["threshold"])
+                    if point.get("threshold") is not None else "every detection in the file"))
+    elif point.get("threshold") is None:
+        which = "counts keep every detection in the file"
+    else:
+        which = f'counts are those of the detections scoring {point["threshold"]:.6g} or more'
     parts.append('<p class="read">How to read this: one row per labelled image, the images '
                  f'with the most errors (false alarms plus misses) first; {esc(which)}. '
                  'Shaded rows have errors. Click a column\'s header to sort by it.</p>')
+    parts.append('<div class="review-address"><label for="review-address">Address of '
+                 '<code>patchwood review</code></label> '
+                 '<input id="review-address" type="url" spellcheck="false" autocomplete="off" '
+                 'placeholder="the address it printed, with ?token=..."> '
+                 '<span id="review-state">no address given: the "open in review" links are '
+                 'inactive</span></div>')
+    parts.append('<p class="read">To open an image in <code>patchwood review</code>: run it on '
+                 'the same images and labels, and paste the address it printed above. The report '
+                 'cannot know it (the port and token change with every run). The address is kept '
+                 'in this browser\'s local storage, never in the report folder; empty the field '
+                 'to forget it.</p>')
+    if slider is not None:
+        parts.append('<p><button type="button" id="sort-errors">most errors first</button></p>')
+    index = {name: k for k, name in enumerate(slider["images"])} if slider is not None else {}
     parts.append('<table class="sortable" id="per-image"><thead><tr><th>image</th>'
                  + "".join(f'<th data-type="number">{name}</th>' for name in
                            ("objects", "detections", "true", "false alarms", "misses"))
-                 + '</tr></thead><tbody>')
+                 + '<th data-type="none">review</th></tr></thead><tbody>')
     for r in rows:
         cls = "bad" if r.false_alarms + r.misses else "clean"
-        parts.append(f'<tr class="{cls}"><td>{esc(r.image)}</td><td>{r.objects}</td>'
+        at = f' data-index="{index[r.image]}"' if r.image in index else ""
+        parts.append(f'<tr class="{cls}"{at}><td>{esc(r.image)}</td><td>{r.objects}</td>'
                      f'<td>{r.detections}</td><td>{r.true_detections}</td>'
-                     f'<td>{r.false_alarms}</td><td>{r.misses}</td></tr>')
+                     f'<td>{r.false_alarms}</td><td>{r.misses}</td>'
+                     f'<td><a class="review-link" data-image="{esc(r.image)}" '
+                     f'aria-disabled="true">open in review</a></td></tr>')
     parts.append('</tbody></table>')
     if evaluation.unlabelled_images:
         parts.append(f'<h3>Detected images not in the labels '
@@ -611,4 +683,5 @@ def _html(summary: dict, evaluation: Evaluation, galleries,
                  'Lin et al., 2014); all-point and 11-point AP as in PASCAL VOC (Everingham et '
                  'al., 2010); log-average miss rate as in Dollar et al. (PAMI 2012). Every figure '
                  'is in summary.json beside this page.</p>')
-    return page("patchwood score report", "score-report.css", parts, script="sort-table.js")
+    return page("patchwood score report", "score-report.css", parts,
+                script=("sort-table.js", "threshold-slider.js"))
