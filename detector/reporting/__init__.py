@@ -5,6 +5,8 @@
 - :mod:`~detector.reporting.inputs`: reading and checking those two files;
 - :mod:`~detector.reporting.summary`: ``summary.json``, its operating point (read back by
   ``scan --threshold-from``) and the printed table;
+- :mod:`~detector.reporting.threshold_data`: the scores and matches ``report.html`` embeds for
+  its threshold slider;
 - :mod:`~detector.reporting.plots`: precision-recall, miss rate, score histograms;
 - :mod:`~detector.reporting.drawing`: box marks, thumbnails, PNG files;
 - :mod:`~detector.reporting.audit`: ``audit`` -- out-of-bag label audit, its CSV and page;

@@ -5,14 +5,16 @@ The stage after ``scan``: :func:`score_files` reads a detections file and a labe
 COCO JSON, through :mod:`detector.io.labels`), scores them with :func:`detector.evaluation.evaluate`,
 picks an operating point and writes the report folder::
 
-    DIR/report.html            headline figures, plots, galleries, per-image table (no external assets)
+    DIR/report.html            headline figures, plots, a threshold slider, galleries, per-image
+                               table with links to ``patchwood review`` (no external assets)
     DIR/summary.json           every figure, machine-readable; "operating_point" feeds `scan`
     DIR/precision-recall.png   DIR/miss-rate.png   DIR/score-histogram.png
     DIR/gallery/false-alarm-01.png ...   DIR/gallery/missed-01.png ...
 
 The pieces live beside this module in :mod:`detector.reporting`: :mod:`~detector.reporting.inputs`
 (reading and checking the two files), :mod:`~detector.reporting.summary` (``summary.json`` and the
-printed table), :mod:`~detector.reporting.plots`, :mod:`~detector.reporting.drawing` (box marks and
+printed table), :mod:`~detector.reporting.threshold_data` (the slider's data),
+:mod:`~detector.reporting.plots`, :mod:`~detector.reporting.drawing` (box marks and
 thumbnails) and :mod:`~detector.reporting._html` (the page template and style sheets); the
 operating-point policy is :func:`detector.evaluation.choose_operating_point`.
 """
