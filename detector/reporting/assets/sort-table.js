@@ -17,7 +17,11 @@ document.querySelectorAll("table.sortable").forEach(function (table) {
       if (h.hasAttribute("aria-sort")) h.setAttribute("aria-sort", "none");
     });
     th.setAttribute("aria-sort", up ? "ascending" : "descending");
-    rows.forEach(function (row) { body.appendChild(row); });
+    var same = rows.every(function (row, i) { return body.rows[i] === row; });
+    if (same) return;  // already in order: moving thousands of rows costs a layout
+    var fragment = document.createDocumentFragment();
+    rows.forEach(function (row) { fragment.appendChild(row); });
+    body.appendChild(fragment);
   }
   Array.prototype.forEach.call(heads, function (th, col) {
     if (th.getAttribute("data-type") === "none") return;

@@ -91,15 +91,32 @@
   }
 
   // ------------------------------------------------------------------ the per-image table
-  function errorsFirst() {
+  // Rows are rewritten only where a value changed, and moved only when the order changed: a
+  // report of thousands of images stays quick to slide.
+  const rows = table ? Array.from(table.tBodies[0].rows) : [];
+  function setText(cell, value) {
+    const text = String(value);
+    if (cell.textContent !== text) cell.textContent = text;
+  }
+  function reorder(sorted) {
+    const body = table.tBodies[0], now = body.rows;
+    if (sorted.every((row, i) => now[i] === row)) return;
+    const fragment = document.createDocumentFragment();
+    sorted.forEach((row) => fragment.appendChild(row));
+    body.appendChild(fragment);
+  }
+  function errorsFirst(c) {
     // the server's order: most errors (false alarms + misses) first, then most misses, then name
-    const body = table.tBodies[0];
-    const key = (row) => [-(+row.cells[4].textContent + +row.cells[5].textContent),
-                          -row.cells[5].textContent, row.cells[0].textContent];
-    const rows = Array.from(body.rows).map((row) => [key(row), row]);
-    rows.sort((a, b) => a[0][0] - b[0][0] || a[0][1] - b[0][1] ||
-                        (a[0][2] < b[0][2] ? -1 : a[0][2] > b[0][2] ? 1 : 0));
-    rows.forEach(([, row]) => body.appendChild(row));
+    const key = new Map(rows.map((row) => {
+      if (row.dataset.index === undefined) return [row, [Infinity, Infinity, row.cells[0].textContent]];
+      const k = +row.dataset.index, misses = data.objects[k] - c.truth[k];
+      return [row, [-(c.alarms[k] + misses), -misses, data.images[k]]];
+    }));
+    const sorted = rows.slice().sort((a, b) => {
+      const x = key.get(a), y = key.get(b);
+      return x[0] - y[0] || x[1] - y[1] || (x[2] < y[2] ? -1 : x[2] > y[2] ? 1 : 0);
+    });
+    reorder(sorted);
   }
   function sortedByColumn() {
     return Array.from(table.tHead.rows[0].cells).some((th) => {
@@ -109,8 +126,10 @@
   }
 
   // ------------------------------------------------------------------ the slider
-  function show(t, recommended) {
+  let last = null;  // the counts shown, for the "most errors first" button
+  function show(t, recommended, resort) {
     const c = countsAt(t);
+    last = c;
     $("threshold-value").textContent = recommended ? `${+t.toPrecision(6)} (recommended)` : t.toFixed(2);
     $("at-detections").textContent = c.detections;
     $("at-true-detections").textContent = c.tp;
@@ -127,25 +146,53 @@
       dot.dataset.precision = on ? c.precision : "";
     }
     if (table) {
-      for (const row of table.tBodies[0].rows) {
-        if (row.dataset.index === undefined) continue;
-        const k = +row.dataset.index, misses = data.objects[k] - c.truth[k];
-        row.cells[2].textContent = c.kept[k];
-        row.cells[3].textContent = c.truth[k];
-        row.cells[4].textContent = c.alarms[k];
-        row.cells[5].textContent = misses;
-        row.className = c.alarms[k] + misses ? "bad" : "clean";
-      }
-      if (sortedByColumn()) table.dispatchEvent(new Event("rows-changed"));
-      else errorsFirst();
+      if (resort) updateTable(c, true);
+      else scheduleTable(c);
     }
+  }
+
+  // The counts above follow every step at once; the table, the slow part on thousands of images,
+  // catches up once per frame with the latest counts (a held arrow key skips the steps between).
+  const shown = data ? new Array(data.images.length).fill(-1) : [];  // detections kept, as shown
+  const rowIndex = rows.map((row) => (row.dataset.index === undefined ? -1 : +row.dataset.index));
+  let pending = null;
+  function scheduleTable(c) {
+    const idle = pending === null;
+    pending = c;
+    if (idle) {
+      requestAnimationFrame(() => {
+        const latest = pending;
+        pending = null;
+        updateTable(latest, false);
+      });
+    }
+  }
+  function updateTable(c, resort) {
+    let changed = false;
+    rows.forEach((row, i) => {
+      const k = rowIndex[i];
+      // kept detections nest as the threshold moves: the same number is the same detections
+      if (k < 0 || shown[k] === c.kept[k]) return;
+      shown[k] = c.kept[k];
+      changed = true;
+      const misses = data.objects[k] - c.truth[k];
+      setText(row.cells[2], c.kept[k]);
+      setText(row.cells[3], c.truth[k]);
+      setText(row.cells[4], c.alarms[k]);
+      setText(row.cells[5], misses);
+      const cls = c.alarms[k] + misses ? "bad" : "clean";
+      if (row.className !== cls) row.className = cls;
+    });
+    if (!changed && !resort) return;
+    if (sortedByColumn()) table.dispatchEvent(new Event("rows-changed"));
+    else errorsFirst(c);
   }
 
   if (data) {
     const slider = $("threshold");
     drawCurve($("threshold-curve"));
     // the recommended threshold exactly, though the slider's thumb sits on the nearest 0.01
-    show(data.start, data.recommended !== null);
+    show(data.start, data.recommended !== null, true);
     slider.addEventListener("input", () => show(parseFloat(slider.value), false));
     const back = $("to-recommended");
     if (back) {
@@ -160,7 +207,7 @@
         for (const th of table.tHead.rows[0].cells) {
           if (th.hasAttribute("aria-sort")) th.setAttribute("aria-sort", "none");
         }
-        errorsFirst();
+        errorsFirst(last);
       });
     }
   }
