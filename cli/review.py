@@ -5,6 +5,7 @@ labels in place, undo, and retrain from them."""
 from __future__ import annotations
 
 import secrets
+import signal
 import tempfile
 from pathlib import Path
 from typing import Optional
@@ -50,7 +51,14 @@ def review(
         typer.echo(f"retraining writes into {human_path(runs_dir)}")
         typer.echo("stop with Ctrl-C")
 
+    # Ctrl-C and a polite kill both stop the server (waitress ends its loop on KeyboardInterrupt),
+    # also when started from a shell that ignores SIGINT in background jobs
+    signal.signal(signal.SIGINT, signal.default_int_handler)
+    signal.signal(signal.SIGTERM, signal.default_int_handler)
     try:
         serve(app, host, port, ready=ready)
     except KeyboardInterrupt:
-        typer.echo("stopped")
+        pass
+    if app.review.retrainer is not None and app.review.retrainer.cancel():
+        app.review.retrainer.wait(timeout=10)  # a job still running stops with the page
+    typer.echo("stopped")

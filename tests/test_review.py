@@ -291,3 +291,61 @@ def test_retraining_runs_the_three_commands_into_a_new_folder(tmp_path):
 def test_without_a_runs_folder_the_page_runs_no_jobs(client):
     assert client.get("/api/retrain", **GOOD).status_code == 404
     assert client.post("/api/retrain", json={}, **GOOD).status_code == 404
+
+
+def _serve_command(tmp_path, *options):
+    """Start `patchwood review` as a user does, in a process of its own; return it with its first
+    line (the address) and what it printed on stderr before."""
+    import subprocess
+    import sys
+
+    images, labels = folder(tmp_path)
+    process = subprocess.Popen([sys.executable, "-m", "cli.main", "review", str(images),
+                                str(labels), *options], stdout=subprocess.PIPE,
+                               stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True)
+    return process, process.stdout.readline()
+
+
+def _get(url):
+    import urllib.error
+    import urllib.request
+
+    try:
+        with urllib.request.urlopen(url, timeout=10) as r:
+            return r.status, r.read()
+    except urllib.error.HTTPError as err:
+        return err.code, err.read()
+
+
+def test_the_command_serves_on_127_0_0_1_with_a_token(tmp_path):
+    """The real command in its own process: the printed address is on 127.0.0.1 with a token;
+    the page and its state answer with it and refuse without it; Ctrl-C (SIGINT) stops it."""
+    import re
+    import signal
+
+    process, line = _serve_command(tmp_path)
+    try:
+        m = re.search(r"http://127\.0\.0\.1:(\d+)/\?token=([\w-]+)$", line.strip())
+        assert m, line
+        port, token = m.groups()
+        status, body = _get(f"http://127.0.0.1:{port}/api/state?token={token}")
+        assert status == 200 and [im["name"] for im in json.loads(body)["images"]] == \
+            ["a.png", "b.png", "c.png"]
+        assert _get(f"http://127.0.0.1:{port}/api/state")[0] == 403
+        assert _get(f"http://127.0.0.1:{port}/api/state?token=x{token}")[0] == 403
+    finally:
+        process.send_signal(signal.SIGINT)
+        out, err = process.communicate(timeout=20)
+    assert "stopped" in out and "Traceback" not in err
+
+
+def test_another_address_only_when_asked_and_with_a_warning(tmp_path):
+    """--host 127.0.0.2 (another loopback address, so the test opens nothing to the network):
+    a warning first, then the address at that host."""
+    process, line = _serve_command(tmp_path, "--host", "127.0.0.2")
+    try:
+        assert line.startswith("review of ") and "http://127.0.0.2:" in line
+    finally:
+        process.terminate()
+        _, err = process.communicate(timeout=20)
+    assert err.startswith("warning: listening on 127.0.0.2: other machines can reach this review")
