@@ -86,7 +86,7 @@ def demo(
     model, clf, _ = train_with_mining(
         bank, params, rounds=mine_rounds, images_dir=train_dir / "images", items=train_labels.items,
         settings=ScanSettings(), bank_path=bank_path, mine_params=mining_params(params),
-        progress_factory=lambda d, n: progress_bar("      " + d, n, "trees" if d.startswith("growing") else "images"),
+        progress_factory=lambda d, n: progress_bar("      " + d, n, "trees" if d.startswith("growing") else "features" if d.startswith("feature") else "images"),
         report=report)
     model_path = out / "model.npz"
     save_model(model_path, model)

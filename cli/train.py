@@ -111,7 +111,7 @@ def train(
         b, params, rounds=mine_rounds, images_dir=mine_images, items=items,
         settings=ScanSettings(threshold=mine_threshold, overhang=mine_overhang), per_image=mine_per_image,
         per_round=mine_per_round, bank_path=bank, mine_params=mining_params(params),
-        progress_factory=lambda d, n: progress_bar(d, n, "trees" if d.startswith("growing") else "images"),
+        progress_factory=lambda d, n: progress_bar(d, n, "trees" if d.startswith("growing") else "features" if d.startswith("feature") else "images"),
         report=report)
     save_model(out, model)
     if save_bank_to is not None:

@@ -124,18 +124,63 @@ def test_both_growers_classify_well(mode):
     assert sk.model_.metadata["parameters"]["grower"] == "sklearn"
 
 
-def test_pool_values_binned_in_blocks_equal_the_whole_pool_binned(monkeypatch):
-    """The histogram route evaluates and bins the pool a block of features at a time; the model
-    must not depend on the block size (each feature's values and cuts are its own)."""
-    import detector.classifier as classifier
+@pytest.mark.parametrize("channels", ["grey", "gradient"])
+def test_pool_values_binned_in_blocks_equal_the_whole_pool_binned(monkeypatch, channels):
+    """The histogram route evaluates and bins the pool a block of features at a time (with
+    channels, a block of one channel at a time); the model must not depend on the block size
+    (each feature's values and cuts are its own)."""
+    import detector.patch_forest as classifier
 
     patches, y = _patches(seed=6)
-    kw = dict(n_trees=8, pool=300, mode="boosted", random_state=2)
+    kw = dict(n_trees=8, pool=300, mode="boosted", random_state=2, channels=channels)
     whole = PatchClassifier(**kw).fit(patches, y)
     monkeypatch.setattr(classifier, "VALUE_BLOCK", 7)
     blocks = PatchClassifier(**kw).fit(patches, y)
     for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
         np.testing.assert_array_equal(getattr(blocks.model_, name), getattr(whole.model_, name))
+
+
+MODEL_ARRAYS = ("features", "feature_channels", "node_features", "node_thresholds", "leaf_values",
+                "exit_thresholds")
+
+
+def test_a_binned_pool_gives_the_fit_it_saves():
+    """Mining computes the pool once (BinnedPool): on the bank it was made from, the fit is the
+    same model, array for array, as the fit that computes its own pool."""
+    from detector.classifier import BinnedPool
+
+    patches, y = _patches(seed=7)
+    kw = dict(n_trees=8, pool=300, mode="boosted", random_state=2, channels="gradient")
+    plain = PatchClassifier(**kw).fit(patches, y)
+    reused = PatchClassifier(**kw).fit(patches, y, binned=BinnedPool(kw, patches, y))
+    for name in MODEL_ARRAYS:
+        np.testing.assert_array_equal(getattr(reused.model_, name), getattr(plain.model_, name))
+
+
+def test_a_binned_pool_grows():
+    """Mined patches are binned with the first bank's cuts (bin = cuts below the value, as
+    numpy's searchsorted counts them, on values from the plain-numpy evaluation)."""
+    from detector.classifier import BinnedPool
+    from detector.features import evaluate_features_numpy
+
+    patches, y = _patches(seed=8)
+    kw = dict(n_trees=8, pool=400, mode="boosted", random_state=3, channels="gradient")
+    binned = BinnedPool(kw, patches, y)
+    grown_on = binned.bins.shape[1]
+    assert grown_on == len(y) - calibration_count(int(y.sum()))   # the held objects are left out
+    new, _ = _patches(n_objects=0, n_background=9, seed=9)
+    binned.extend(new)
+    assert binned.bins.shape == (400, grown_on + 9)
+    values = evaluate_features_numpy(binned.pool, new, channels=binned.channels)  # (9, P)
+    expected = np.stack([np.searchsorted(binned.cuts[f], values[:, f], side="left")
+                         for f in range(400)])
+    np.testing.assert_array_equal(binned.bins[:, grown_on:], expected)
+    # the bins fit the grown bank: a model grows on them (the held objects are the same)
+    model = PatchClassifier(**kw).fit(np.concatenate([patches, new]), np.r_[y, np.zeros(9, int)],
+                                      binned=binned)
+    assert model.model_.metadata["pool_drawn"] == 400
+    with pytest.raises(InputError, match=f"holds {grown_on + 9} patches to grow on, these patches {grown_on}"):
+        PatchClassifier(**kw).fit(patches, y, binned=binned)
 
 
 @pytest.mark.parametrize(

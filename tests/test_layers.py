@@ -26,7 +26,7 @@ LAYERS = [
     ("harvest",),
     ("forest",),
     ("cascade", "_cascade_kernels"),
-    ("model", "classifier"),
+    ("model", "patch_forest", "classifier"),
     ("scan",),
     ("evaluation",),
     ("training",),

@@ -295,3 +295,42 @@ def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
     assert code == 1 and err.startswith(f"error: {only}: the bank holds no background patches")
     assert err.count("\n") == 1
     assert not out.exists()
+
+
+def test_mining_on_two_threads_finds_what_one_finds(scenario):
+    """`train --jobs 2` scans the mining images two at a time: the same patches, boxes, scores
+    and counts, in the same order, as one at a time."""
+    from detector.training import mine
+
+    test = scenario / "scenario" / "test"
+    model, _ = train_model(load_bank(scenario / "bank.npz"),
+                           dict(n_trees=10, depth=2, mode="bagged", pool=500, random_state=0,
+                                channels=DEFAULT_TRAIN["channels"]))
+    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    one = mine(model, test / "images", items, n_jobs=1)
+    two = mine(model, test / "images", items, n_jobs=2)
+    assert len(one.patches) > 0 and one.images == two.images
+    np.testing.assert_array_equal(one.patches, two.patches)
+    np.testing.assert_array_equal(one.boxes, two.boxes)
+    np.testing.assert_array_equal(one.scores, two.scores)
+    assert (one.false_alarms_per_image, one.recall) == (two.false_alarms_per_image, two.recall)
+
+
+def test_the_final_model_is_the_plain_fit_on_the_final_bank(scenario):
+    """The models that only mine share one pool (BinnedPool); the final one must be exactly what
+    a fit on the final bank gives (its bins cut on that bank), array for array."""
+    from detector.training import mining_params, train_with_mining
+
+    test = scenario / "scenario" / "test"
+    params = dict(n_trees=12, depth=2, mode="boosted", pool=800, random_state=0,
+                  channels=DEFAULT_TRAIN["channels"])
+    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    bank = load_bank(scenario / "bank.npz")
+    model, _, final = train_with_mining(bank, params, rounds=2, images_dir=test / "images",
+                                        items=items, settings=ScanSettings(threshold=0.5),
+                                        mine_params=mining_params(params))
+    assert len(final) > len(bank)   # the rounds mined something
+    plain, _ = train_model(final, params)
+    for name in ("features", "feature_channels", "node_features", "node_thresholds",
+                 "leaf_values", "exit_thresholds"):
+        np.testing.assert_array_equal(getattr(model, name), getattr(plain, name))

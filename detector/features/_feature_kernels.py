@@ -33,8 +33,9 @@ CHUNK = 8
 BLOCK = 64
 
 
-# error_model="numpy": no zero-division check, so the division vectorises (divisors are >= 1)
-@numba.njit(cache=True, error_model="numpy")
+# error_model="numpy": no zero-division check, so the division vectorises (divisors are >= 1);
+# nogil: training evaluates blocks of its feature pool on several threads
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def evaluate_tiles(integrals, indptr, offsets, coefficients, weighted_area, mean, scale,
                    normalize, transpose, buffer, first, out):
     """Evaluate F features on N integral images; write float32 values into ``out``.

@@ -77,6 +77,23 @@ def _as_bins(X) -> np.ndarray:
     return bins
 
 
+def _sklearn_tree(name: str, criterion: str):
+    """scikit-learn's tree learner ``name`` with ``criterion``, imported only for the scikit-learn
+    route (the import takes a second or more: it pulls in scipy.stats)."""
+    import sklearn.tree
+
+    return partial(getattr(sklearn.tree, name), criterion=criterion)
+
+
+def worker_count(n_jobs) -> int:
+    """Threads for ``n_jobs``, by scikit-learn's convention: None 1, -1 every core, -2 all but one.
+
+    >>> worker_count(None), worker_count(3)
+    (1, 3)
+    """
+    return _n_jobs(n_jobs)
+
+
 def _n_jobs(n_jobs) -> int:
     if n_jobs is None:
         return 1
@@ -222,9 +239,8 @@ def grow_forest(
     if mode == "bagged":
         n_draw = max(1, int(round(fraction * n)))
         classes = y.astype(np.float64)
-        from sklearn.tree import DecisionTreeClassifier  # scikit-learn loads only to grow
-
-        entropy_tree = partial(DecisionTreeClassifier, criterion="entropy")
+        entropy_tree = _sklearn_tree("DecisionTreeClassifier", "entropy") \
+            if grower == "sklearn" else None
 
         def fit_one(t):
             boot_ss, tree_ss = children[t].spawn(2)
@@ -257,9 +273,8 @@ def grow_forest(
             oob_error = float(np.mean(predicted != (y[seen] == 1)))
     else:
         signed = np.where(y == 1, 1.0, -1.0)
-        from sklearn.tree import DecisionTreeRegressor
-
-        squared_tree = partial(DecisionTreeRegressor, criterion="squared_error")
+        squared_tree = _sklearn_tree("DecisionTreeRegressor", "squared_error") \
+            if grower == "sklearn" else None
         weights = np.ones(n, np.float64)
         n_sub = max(1, int(round(fraction * n)))
         # boosting is sequential: the histogram grower's threads share each node's candidates

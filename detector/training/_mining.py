@@ -6,11 +6,13 @@ al., PAMI 2010 call them hard negatives).
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
 from detector.evaluation import evaluate
+from detector.forest import worker_count
 from detector.geometry import crop_region, iou
 from detector.io.images import read_gray
 from detector.scan import Engine, ScanSettings
@@ -47,7 +49,7 @@ class MiningRound:
 
 def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_image: int = 20,
          per_round: int = 4000, max_iou: float = 0.3, mining_threshold: float = 0.3,
-         progress=None, count_only: bool = False) -> MiningRound:
+         progress=None, count_only: bool = False, n_jobs=None) -> MiningRound:
     """Scan labelled images and collect the highest-scoring windows that overlap no labelled box.
 
     Parameters
@@ -71,6 +73,9 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
         threshold (``exit_level``), and collect no patches: the check of a final model, several
         times faster than a mining scan (on the cross-data benchmark's horses, 4.4 s against
         14.6 s for 80 images).
+    n_jobs : int, optional
+        Images scanned at once, on threads (the engine's compiled loops release the GIL and its
+        work space is per thread); the result does not depend on it.
     """
     settings = settings or ScanSettings()
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
@@ -79,35 +84,46 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None}) if not count_only
                     else ScanSettings(**{**settings.__dict__, "exit_level": settings.threshold}))
     W, H = engine.window
-    patches, boxes, names, scores = [], [], [], []
-    dets, gts = {}, {}
-    for i, it in enumerate(items):
+
+    def one(it):
+        """The detections of one image, and its mining candidates: (patch, box, score) each."""
         gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
         wboxes, raw, _, _ = engine.candidates(gray)
         size = gray.shape[::-1]
-        found, found_scores = engine.detections(wboxes, raw, threshold=settings.threshold,
-                                                image_size=size)
-        dets[it.image] = (found, found_scores)
-        gts[it.image] = it.boxes
+        found = engine.detections(wboxes, raw, threshold=settings.threshold, image_size=size)
         if count_only:
-            if progress is not None:
-                progress(i + 1, len(items))
-            continue
+            return found, []
         # diverse candidates: looser suppression than detection, then away from every object
         cand, cand_scores, cand_windows = engine.detections(wboxes, raw, nms_iou=0.5,
                                                             image_size=size, windows=True)
         if len(cand) and len(it.boxes):
             far = iou(cand, it.boxes).max(axis=1) < max_iou
             cand, cand_scores, cand_windows = cand[far], cand_scores[far], cand_windows[far]
-        for box, score, (wx, wy, ww, wh) in zip(cand[:per_image], cand_scores[:per_image],
-                                                cand_windows[:per_image]):
-            # the window as the scan saw it (border pixels repeated past the image's edges)
-            patches.append(crop_region(gray, (wx + ww / 2, wy + wh / 2), (ww, wh), (W, H)))
-            boxes.append(box)
-            names.append(it.image)
-            scores.append(score)
-        if progress is not None:
-            progress(i + 1, len(items))
+        # the window as the scan saw it (border pixels repeated past the image's edges)
+        return found, [(crop_region(gray, (wx + ww / 2, wy + wh / 2), (ww, wh), (W, H)), box, score)
+                       for box, score, (wx, wy, ww, wh) in zip(cand[:per_image],
+                                                               cand_scores[:per_image],
+                                                               cand_windows[:per_image])]
+
+    patches, boxes, names, scores = [], [], [], []
+    dets, gts = {}, {}
+    workers = min(worker_count(n_jobs), max(1, len(items)))
+    executor = ThreadPoolExecutor(workers) if workers > 1 else None
+    try:
+        results = map(one, items) if executor is None else executor.map(one, items)
+        for i, (it, (found, candidates)) in enumerate(zip(items, results)):
+            dets[it.image] = found
+            gts[it.image] = it.boxes
+            for patch, box, score in candidates:
+                patches.append(patch)
+                boxes.append(box)
+                names.append(it.image)
+                scores.append(score)
+            if progress is not None:
+                progress(i + 1, len(items))
+    finally:
+        if executor is not None:
+            executor.shutdown(cancel_futures=True)
     ev = evaluate(dets, gts)
     order = np.argsort(-np.asarray(scores), kind="stable")[:per_round]
     return MiningRound(
