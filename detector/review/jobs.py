@@ -67,9 +67,10 @@ class Retrainer:
     """
 
     def __init__(self, images_dir, labels, runs_dir, scan_settings=None, program=None):
-        self.images_dir = Path(images_dir)
-        self.labels = Path(labels)
-        self.runs_dir = Path(runs_dir)
+        # absolute, so the command lines work from any folder a person pastes them into
+        self.images_dir = Path(images_dir).resolve()
+        self.labels = Path(labels).resolve()
+        self.runs_dir = Path(runs_dir).resolve()
         self.scan_settings = scan_settings
         self.program = list(program) if program else [sys.executable, "-m", "cli.main"]
         self._lock = threading.Lock()
