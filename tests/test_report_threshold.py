@@ -24,21 +24,7 @@ from detector.reporting.threshold_data import counts_at, threshold_data
 # the example of tests/test_report.py: a.png: a hit (0.9), a false alarm (0.7), a hit at IoU
 # 16*15/(256+256-240) = 0.882 (0.6); b.png: a false alarm (0.8), its object missed; c.png:
 # object-free, a false alarm (0.5); d.png: not labelled; e.png: labelled, never scanned.
-LABELS_CSV = """image,x,y,width,height
-a.png,4,4,16,16
-a.png,36,20,16,16
-b.png,10,10,20,20
-c.png,,,,
-e.png,20,10,16,16
-"""
-DETECTIONS_CSV = """image,x,y,width,height,score
-a.png,4,4,16,16,0.9
-a.png,30,2,10,10,0.7
-a.png,36,21,16,16,0.6
-b.png,40,30,12,12,0.8
-c.png,0,0,8,8,0.5
-d.png,1,1,5,5,0.95
-"""
+from test_report import DETECTIONS_CSV, LABELS_CSV  # noqa: E402
 
 
 def embedded(report_html):

@@ -118,33 +118,26 @@ class Review:
     def _judged_runs(self, name: str, labels) -> list[tuple[list[dict], str]]:
         return [self._judged(run, name, labels) for _, _, run in self.runs]
 
+    def _image_head(self, name: str) -> dict:
+        """An image's record without its runs: name, labels, reviewed, listed, the audit's flags."""
+        return {"name": name, "labels": self.store.labels_of(name),
+                "reviewed": self.store.images[name].reviewed, "listed": name in self.store.listed,
+                "flags": self.flags.get(name, [])}
+
     def image_record(self, name: str) -> dict:
         """One image for the page: labels; per run its detections, each with the label it matches
         at IoU 0.5 (greedy in descending score, so a scan at any threshold matches a prefix the
         same way); the audit's flags; the reviewed flag."""
-        labels = self.store.labels_of(name)
-        return {"name": name, "labels": labels, "reviewed": self.store.images[name].reviewed,
-                "listed": name in self.store.listed,
-                "runs": [rows for rows, _ in self._judged_runs(name, labels)],
-                "flags": self.flags.get(name, [])}
-
-    def state(self) -> dict:
-        return {"version": self.store.version, "labels_path": str(self.store.path),
-                "styles": STYLES, "runs": [{"name": n, "path": p} for n, p, _ in self.runs],
-                "audit_images": len(self.flags),
-                "images": [self.image_record(n) for n in self.store.images]}
+        head = self._image_head(name)
+        return {**head, "runs": [rows for rows, _ in self._judged_runs(name, head["labels"])]}
 
     def state_json(self) -> str:
-        """:meth:`state` as JSON text (what the page is sent), each run's detections of an image
-        joined in as already encoded."""
+        """The whole review as JSON text (what the page is sent): the labels file, the styles, the
+        runs, and every image's record, each run's detections joined in as already encoded."""
         def record(name):
-            labels = self.store.labels_of(name)
-            head = json.dumps({"name": name, "labels": labels,
-                               "reviewed": self.store.images[name].reviewed,
-                               "listed": name in self.store.listed,
-                               "flags": self.flags.get(name, [])}, separators=(",", ":"))
-            runs = ",".join(text for _, text in self._judged_runs(name, labels))
-            return f'{head[:-1]},"runs":[{runs}]}}'
+            head = self._image_head(name)
+            runs = ",".join(text for _, text in self._judged_runs(name, head["labels"]))
+            return f'{json.dumps(head, separators=(",", ":"))[:-1]},"runs":[{runs}]}}'
         head = json.dumps({"version": self.store.version, "labels_path": str(self.store.path),
                            "styles": STYLES,
                            "runs": [{"name": n, "path": p} for n, p, _ in self.runs],
