@@ -28,10 +28,18 @@ $(VENV)/.installed-test: pyproject.toml $(LOCK) $(LOCK_TEST) | $(BIN)/python
 	$(BIN)/python -m pip install $(SELF)
 	touch $(VENV)/.installed $@
 
-demo: $(VENV)/.installed
+# The scan's compiled loops built ahead of time, so a scan starts without numba (detector/_aot.py);
+# on a machine without a C compiler this prints a note and scans load numba's loops instead.
+AOT_SOURCES := detector/_aot.py detector/_jit.py detector/scan/_kernels.py detector/geometry.py \
+	detector/features/_channel_kernels.py
+$(VENV)/.aot: $(AOT_SOURCES) $(LOCK) | $(VENV)/.installed
+	$(BIN)/python -m detector._aot
+	touch $@
+
+demo: $(VENV)/.installed $(VENV)/.aot
 	$(BIN)/patchwood demo --out $(DEMO_OUT) --jobs $(JOBS) --force
 
-test: $(VENV)/.installed-test
+test: $(VENV)/.installed-test $(VENV)/.aot
 	$(BIN)/python -m pytest -n $(JOBS) -q
 
 # The suite against the newest releases pyproject.toml's ranges allow today, in a separate
@@ -63,4 +71,4 @@ screenshots: $(VENV)/.installed-test
 	PATCHWOOD_SCREENSHOTS=docs $(BIN)/python -m pytest -q tests/test_review_browser.py
 
 clean:
-	rm -rf $(VENV) .venv-newest $(DEMO_OUT) .pytest_cache
+	rm -rf $(VENV) .venv-newest $(DEMO_OUT) .pytest_cache detector/_aot_kernels*

@@ -3,13 +3,13 @@ orchestration and the plain-numpy twin of :func:`greedy_order`."""
 
 from __future__ import annotations
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 __all__ = ["exit_earlier", "greedy_order"]
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def exit_earlier(b, first, cols, bounds, out):
     """Tree evaluations saved when the exits after trees ``cols`` (rising) rise to ``bounds``: a
     window that now leaves after tree ``first[j]`` leaves after the first of ``cols`` before that
@@ -31,7 +31,7 @@ def exit_earlier(b, first, cols, bounds, out):
     return saved
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def greedy_order(o, b):
     """The loop of :func:`order_for_early_exit` (the same sums in the same order as its numpy
     form, so the same order; tests/test_early_exit.py holds them equal)."""

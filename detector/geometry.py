@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 
 import cv2
-import numba
+from detector._jit import kernel
 import numpy as np
 from numpy.typing import ArrayLike
 
@@ -181,7 +181,7 @@ def nms(boxes: ArrayLike, scores: ArrayLike, iou_threshold: float = 0.3) -> np.n
     return _nms_numba(np.ascontiguousarray(b), order, float(iou_threshold))
 
 
-@numba.njit(cache=True)
+@kernel(cache=True)
 def _nms_numba(boxes, order, iou_threshold):  # pragma: no cover - compiled; held equal to _nms_numpy
     """Greedy suppression over boxes already ordered by descending score (compiled loop).
 

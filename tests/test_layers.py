@@ -20,7 +20,7 @@ ROOT = Path(__file__).resolve().parents[1]
 #: public API, sits above them all and imports lazily).
 LAYERS = [
     ("errors", "_validation"),
-    ("io",),
+    ("io", "_jit", "_aot"),
     ("geometry",),
     ("features",),
     ("harvest",),

@@ -13,11 +13,11 @@ from __future__ import annotations
 
 import math
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@kernel(cache=True, nogil=True, inline="always")
 def _gradient(gx, gy):
     """Magnitude (rounded, capped at 255) and orientation bin 0..5 of one gradient (int32), the
     rules of :mod:`detector.features` without a branch."""
@@ -36,7 +36,7 @@ def _gradient(gx, gy):
     return min(m, np.int32(255)), b
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def channel_integrals(gray, out):
     """Integral images of the gradient channels of ``gray`` (uint8, H x W) into planes 1..7 of
     ``out`` ((8, H + 1, W + 1), int32 or float64): 1 the gradient magnitude, 2..7 the magnitude in

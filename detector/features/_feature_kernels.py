@@ -16,7 +16,7 @@ contiguous runs.
 
 from __future__ import annotations
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 #: Patches evaluated together. 64 lets LLVM's loop vectorizer turn the inner loop into packed
@@ -35,7 +35,7 @@ BLOCK = 64
 
 # error_model="numpy": no zero-division check, so the division vectorises (divisors are >= 1);
 # nogil: training evaluates blocks of its feature pool on several threads
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@kernel(cache=True, nogil=True, error_model="numpy")
 def evaluate_tiles(integrals, indptr, offsets, coefficients, weighted_area, mean, scale,
                    normalize, transpose, buffer, first, out):
     """Evaluate F features on N integral images; write float32 values into ``out``.

@@ -6,7 +6,7 @@ from __future__ import annotations
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 from detector.forest._flat import FlatForest, float32_thresholds
@@ -29,7 +29,7 @@ def _column_cuts(v: np.ndarray, max_bins: int) -> tuple[np.ndarray, np.ndarray]:
     return q[keep], distinct[above[keep]]
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def _cut_pairs_kernel(samples, max_bins, low, high, counts):
     """For every sorted row of ``samples``: the (value, next distinct value) pairs to cut between.
 
@@ -145,7 +145,7 @@ def quantile_cuts_numpy(X, max_bins: int = 256, sample_rows: int = 4096, random_
 BIN_ROWS = 256
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def _bin_columns_kernel(columns, cuts, start, stop):
     """Replace columns[f, i] by the number of cuts[f] below it, for f in start..stop.
 

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 SQUARED_ERROR = 0
@@ -31,7 +31,7 @@ N_BINS = 256
 _LN2 = math.log(2.0)
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def _entropy_bits(w, s):
     """Entropy in bits of a side holding weight ``w``, of which ``s`` is class 1."""
     h = 0.0
@@ -44,12 +44,12 @@ def _entropy_bits(w, s):
     return h
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def _entropy_proxy(w_l, s_l, w_r, s_r):
     return -w_r * _entropy_bits(w_r, s_r) - w_l * _entropy_bits(w_l, s_l)
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def node_sums(samples, weight, target):
     """Summed weight, weighted target and weighted squared target of ``samples``, in their order."""
     w = 0.0
@@ -73,7 +73,7 @@ def node_sums_numpy(samples, weight, target):
     return float(np.cumsum(w)[-1]), float(np.cumsum(wy)[-1]), float(np.cumsum(wyy)[-1])
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def best_split(bins, samples, weight, target, candidates, stop_after, criterion, total_w, total_s,
                hist_w, hist_s, node_w, node_s):
     """The best split of one node over candidate features, in candidate order.

@@ -31,7 +31,7 @@ Split tests compare float64 values against ``split_bounds`` (see :func:`detector
 
 from __future__ import annotations
 
-import numba
+from detector._jit import kernel
 import numpy as np
 
 from detector.geometry import _nms_numba
@@ -41,7 +41,7 @@ from detector.geometry import _nms_numba
 CHUNK = 1024
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@kernel(cache=True, nogil=True, inline="always")
 def _corner_sum(ii, base, offsets, weights, count, f):
     acc = 0.0
     for k in range(count):
@@ -49,7 +49,7 @@ def _corner_sum(ii, base, offsets, weights, count, f):
     return acc
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@kernel(cache=True, nogil=True, inline="always")
 def _gather_row(ii, sq, row, xs, y, w0, w1, w2, w3, inv_area, sigma_floor, min_var, normalize, n,
                 base, mean, inv_sigma, score, xpos, ypos, alive):
     """Append the windows of one row that pass the contrast gate, with their mean and 1 / sigma;
@@ -77,7 +77,7 @@ def _gather_row(ii, sq, row, xs, y, w0, w1, w2, w3, inv_area, sigma_floor, min_v
     return n
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
                offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
                exit_thresholds, cutoff, bound, out_x, out_y, out_score):
@@ -212,7 +212,7 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     return kept, trees
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_areas, sigma_floor,
                min_var, normalize, offsets_all, weights_all, counts_all, consts_all, node_features,
                split_bounds, leaf_values, exit_thresholds, cutoff, bound, out_x, out_y, out_score,
@@ -244,7 +244,7 @@ def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_a
     return kept, trees
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, height, nms_iou):
     """The windows a frame's scan kept -> its detections, in one call: what
     :meth:`detector.scan.Engine.candidates` and :meth:`detector.scan.Engine.detections` do with

@@ -63,12 +63,15 @@ def provenance_path(detections_path) -> Path:
 
 
 def _library_versions() -> dict:
+    import importlib.metadata
+
     import cv2
-    import numba
     import numpy as np
 
+    # numba's version from its package metadata: a scan that runs kernels compiled ahead of time
+    # never imports numba (detector._jit)
     return {"python": platform.python_version(), "numpy": np.__version__,
-            "numba": numba.__version__, "opencv": cv2.__version__}
+            "numba": importlib.metadata.version("numba"), "opencv": cv2.__version__}
 
 
 def model_record(model_path, model) -> dict:
