@@ -59,6 +59,20 @@ def numba_module():
     return numba
 
 
+def bind_callees(func) -> None:
+    """Put numba's dispatcher in place of every kernel ``func``'s code names, in its module's
+    globals, before numba compiles ``func``: numba inlines a callee declared ``inline="always"``
+    only when it finds a dispatcher there (typed through the ``typeof`` rule above, the callee was
+    called, not inlined, and the scan ran at half its speed). The module's name then calls numba's
+    loop directly, which numba has been imported for anyway."""
+    names = func.__code__.co_names
+    found = func.__globals__
+    for name in names:
+        v = found.get(name)
+        if isinstance(v, Kernel):
+            found[name] = v.dispatcher()
+
+
 class Kernel:
     """A compiled loop, compiled (or loaded) on first call. ``py_func`` is the plain function."""
 
@@ -76,6 +90,7 @@ class Kernel:
             with _lock:
                 if self._dispatcher is None:
                     numba = numba_module()
+                    bind_callees(self.py_func)
                     self._dispatcher = numba.njit(**self.options)(self.py_func)
         return self._dispatcher
 

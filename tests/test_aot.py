@@ -75,7 +75,8 @@ def test_argument_rules_take_only_the_exact_types():
 
 
 def write_side_file(folder: Path, **changes) -> None:
-    info = {"sources_sha256": _aot.sources_sha256(), "numpy": np.__version__, "exports": {}}
+    info = {"sources_sha256": _aot.sources_sha256(), "numpy": np.__version__,
+            "processor": _aot.processor(), "exports": {}}
     info.update(changes)
     (folder / f"{_aot.MODULE}.json").write_text(json.dumps(info))
 
@@ -83,8 +84,9 @@ def write_side_file(folder: Path, **changes) -> None:
 @pytest.mark.parametrize("changes, why", [
     ({"sources_sha256": "0" * 64}, "built from other sources"),
     ({"numpy": "0.0"}, "built against numpy 0.0"),
+    ({"processor": "x86_64 another"}, "built for another processor"),
 ])
-def test_a_module_built_from_other_sources_or_numpy_is_not_used(tmp_path, monkeypatch, changes,
+def test_a_module_built_elsewhere_is_not_used(tmp_path, monkeypatch, changes,
                                                                  why):
     monkeypatch.setattr(_aot, "HERE", tmp_path)
     monkeypatch.delenv("PATCHWOOD_NO_AOT", raising=False)
