@@ -148,7 +148,7 @@ def build(out_dir: Path = HERE, verbose: bool = False) -> Path:
     import importlib
     import warnings
 
-    from detector._jit import Kernel, numba_module
+    from detector._jit import Kernel, bind_callees, numba_module
     from detector.io.files import write_text
 
     numba = numba_module()
@@ -173,12 +173,11 @@ def build(out_dir: Path = HERE, verbose: bool = False) -> Path:
         k = getattr(importlib.import_module(module), attr)
         if not isinstance(k, Kernel):
             raise TypeError(f"{name} is not a detector._jit.kernel")
-        k.dispatcher()  # binds its callees (detector._jit.bind_callees), for numba to inline them
         table[name] = []
         for i, sig in enumerate(signatures):
             args, _ = sigutils.normalize_signature(sig)
             export = _export_name(name, i)
-            cc.export(export, sig)(k.py_func)
+            cc.export(export, sig)(bind_callees(k.py_func))  # for numba to inline them
             table[name].append({"export": export, "args": [_arg_spec(t) for t in args]})
     side = out_dir / f"{MODULE}.json"
     side.unlink(missing_ok=True)  # an interrupted build leaves no side file: the module is not used

@@ -59,18 +59,23 @@ def numba_module():
     return numba
 
 
-def bind_callees(func) -> None:
-    """Put numba's dispatcher in place of every kernel ``func``'s code names, in its module's
-    globals, before numba compiles ``func``: numba inlines a callee declared ``inline="always"``
-    only when it finds a dispatcher there (typed through the ``typeof`` rule above, the callee was
-    called, not inlined, and the scan ran at half its speed). The module's name then calls numba's
-    loop directly, which numba has been imported for anyway."""
-    names = func.__code__.co_names
+def bind_callees(func):
+    """``func`` with numba's dispatcher in place of every kernel its code names: a copy of the
+    function over a copy of its module's globals (the module itself is left as it is, so its names
+    still reach the ahead-of-time versions). Numba inlines a callee declared
+    ``inline="always"`` only when it finds a dispatcher there; typed through the ``typeof`` rule
+    above, the callee was called instead of inlined, and the scan ran at half its speed."""
+    import types
+
     found = func.__globals__
-    for name in names:
-        v = found.get(name)
-        if isinstance(v, Kernel):
-            found[name] = v.dispatcher()
+    bound = {name: found[name].dispatcher() for name in func.__code__.co_names
+             if isinstance(found.get(name), Kernel)}
+    if not bound:
+        return func
+    copy = types.FunctionType(func.__code__, {**found, **bound}, func.__name__, func.__defaults__,
+                              func.__closure__)
+    copy.__module__, copy.__qualname__, copy.__doc__ = func.__module__, func.__qualname__, func.__doc__
+    return copy
 
 
 class Kernel:
@@ -90,8 +95,7 @@ class Kernel:
             with _lock:
                 if self._dispatcher is None:
                     numba = numba_module()
-                    bind_callees(self.py_func)
-                    self._dispatcher = numba.njit(**self.options)(self.py_func)
+                    self._dispatcher = numba.njit(**self.options)(bind_callees(self.py_func))
         return self._dispatcher
 
     def __call__(self, *args):
