@@ -29,6 +29,10 @@ windows of a crop at scale 1 and scaled by the frame's window count (the output 
 larger scales would also need resizing to 24 x 24 first, which is not counted: the estimate favours
 the reference. Its scores are checked against the scan's on those windows.
 
+The busy-frame case (texture everywhere: a cross-data set enlarged to 640 x 480, the whole
+command on 100 frames beside the HOG + linear SVM peer, and the command's start-up) is
+``benchmarks/textured.py``, also run as ``benchmarks/scan.py --textured -- [its options]``.
+
 Goals (one core): at most 15 ms per frame, at least 1000x faster than the reference route.
 The machine is shared, so the output reports the load average before and after.
 """
@@ -141,7 +145,16 @@ def main(argv=None):
     parser.add_argument("--reference-crop", type=int, default=64,
                         help="side of the crop whose scale-1 windows the reference route scores")
     parser.add_argument("--seed", type=int, default=0)
-    args = parser.parse_args(argv)
+    parser.add_argument("--textured", action="store_true",
+                        help="the busy-frame case instead: benchmarks/textured.py with the "
+                             "arguments after --")
+    args, rest = parser.parse_known_args(argv)
+    if args.textured:
+        import textured
+
+        return textured.main([a for a in rest if a != "--"])
+    if rest:
+        parser.error(f"unrecognized arguments: {' '.join(rest)}")
 
     print("command:", shlex.join([Path(sys.executable).name, *sys.argv]))
     print(f"machine: {cpu_name()}; {os.cpu_count()} logical cores, "

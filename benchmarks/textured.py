@@ -111,6 +111,8 @@ def startup(work: Path, frames: Path, first, repeats: int) -> None:
         print(f"note: no ahead-of-time module ({why})")
     argv = ["scan", str(work / "model.npz"), str(one), "--out", str(work / "one.csv"), "--force",
             "--quiet"]
+    # as on a user's machine, Python keeps the modules' compiled bytecode (the first run writes it)
+    os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
     for label, env in cases:
         walls = [_seconds(lambda: run(argv, env)) for _ in range(repeats + 2)]
         print(f"start-up, command start to first image scanned ({label}): "
