@@ -4,8 +4,9 @@ call (detector/_jit.py).
 Every version in the ahead-of-time module is held equal, output for output, to numba's own
 compiled loop on the arguments real scans pass it (recorded from scans of a grey and a channel
 model, plain and boosted), and again with the integral image in each of its three dtypes. Those
-tests need the module, which ``make`` builds when a C compiler is found; under CI (where
-``.ci/run`` installs the compiler) its absence is a failure, elsewhere a skip.
+tests need the module, which ``make`` builds when a C compiler and Python's headers are found;
+under CI (where ``.ci/run`` installs them) a missing module next to the tools is a failure, and
+otherwise a skip that names what is missing.
 """
 
 from __future__ import annotations
@@ -126,9 +127,10 @@ def test_a_kernel_compiles_on_first_call_and_pickles_by_name():
 def module_or_skip():
     module, info = _aot.module_info()
     if module is None:
-        if os.environ.get("CI"):
-            pytest.fail(f"the ahead-of-time module is missing under CI: {info}")
-        pytest.skip(f"the ahead-of-time module: {info}")
+        lacking = _aot.missing_tools()
+        if os.environ.get("CI") and lacking is None:
+            pytest.fail(f"CI has the tools but not the ahead-of-time module: {info}")
+        pytest.skip(f"the ahead-of-time module: {info}" + (f"; {lacking}" if lacking else ""))
     return module, info
 
 
