@@ -231,8 +231,8 @@ def _load():
 
 
 def _accepts(spec: list):
-    """A test of an argument tuple against the rules of one export (exact types: the compiled
-    code reads memory as the signature says and checks nothing)."""
+    """A test of an argument tuple against the rules of one export (exact types, aligned
+    memory: the compiled code reads memory as the signature says and checks nothing)."""
     rules = []
     for s in spec:
         if s[0] == "array":
@@ -240,7 +240,7 @@ def _accepts(spec: list):
 
             def rule(v, dtype=dtype, ndim=ndim, contiguous=contiguous):
                 return (type(v) is np.ndarray and v.dtype == dtype and v.ndim == ndim
-                        and (not contiguous or v.flags.c_contiguous))
+                        and v.flags.aligned and (not contiguous or v.flags.c_contiguous))
         elif s[0] == "bool":
             def rule(v):
                 return isinstance(v, (bool, np.bool_))

@@ -73,6 +73,10 @@ def test_argument_rules_take_only_the_exact_types():
     assert not accepts((a, b, 3, 0.5, 1))
     assert not accepts((a, b, 3, 0.5))                              # too few
     assert not accepts((list(a), b, 3, 0.5, True))
+    unaligned = np.zeros(25, np.uint8)[1:].view(np.int32)  # six int32 starting at an odd byte
+    assert unaligned.flags.c_contiguous and not unaligned.flags.aligned
+    assert not accepts((unaligned, b, 3, 0.5, True))
+    assert not accepts((a.astype(">i4"), b, 3, 0.5, True))         # another byte order
 
 
 def write_side_file(folder: Path, **changes) -> None:
