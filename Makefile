@@ -11,7 +11,7 @@ LOCK_TEST := requirements/test.lock
 # the editable install of patchwood itself, built with the locked setuptools and nothing else
 SELF   := --quiet --no-deps --no-build-isolation -e .
 
-.PHONY: demo test test-newest lock bench screenshots clean
+.PHONY: demo test test-newest lock bench screenshots clean aot
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -35,6 +35,11 @@ AOT_SOURCES := detector/_aot.py detector/_jit.py detector/scan/_kernels.py detec
 $(VENV)/.aot: $(AOT_SOURCES) $(LOCK) | $(VENV)/.installed
 	$(BIN)/python -m detector._aot
 	touch $@
+
+# compile them again now (say, after installing a C compiler)
+aot: | $(VENV)/.installed
+	$(BIN)/python -m detector._aot
+	touch $(VENV)/.aot
 
 demo: $(VENV)/.installed $(VENV)/.aot
 	$(BIN)/patchwood demo --out $(DEMO_OUT) --jobs $(JOBS) --force
