@@ -18,8 +18,9 @@ When called, a :class:`Kernel` runs, in this order:
 2. else the numba dispatcher, made on first use with the options given (``cache=True`` loops
    load from numba's cache, as before).
 
-A kernel called from inside another kernel is typed as its dispatcher (numba's ``typeof``
-extension below), so compiled loops still call each other, inline or not.
+A kernel that calls other kernels is compiled from a copy of its function whose globals hold
+their numba dispatchers (:func:`bind_callees`), so compiled loops still call and inline each
+other; elsewhere numba types a kernel as its dispatcher (the ``typeof`` rule below).
 """
 
 from __future__ import annotations
@@ -27,11 +28,10 @@ from __future__ import annotations
 import functools
 import threading
 
-__all__ = ["Kernel", "kernel", "numba_module"]
+__all__ = ["Kernel", "bind_callees", "kernel", "numba_module"]
 
 _lock = threading.RLock()
 _registered = False
-_MAIN = threading.main_thread()
 
 
 def _by_name(module: str, qualname: str):
@@ -103,7 +103,8 @@ class Kernel:
             from detector import _aot
 
             self._ahead = _aot.versions(self.name)
-        if self._ahead and threading.current_thread() is _MAIN:
+        # main_thread() asked each time: after a fork from another thread, that thread is main
+        if self._ahead and threading.current_thread() is threading.main_thread():
             for accepts, function in self._ahead:
                 if accepts(args):
                     return function(*args)
