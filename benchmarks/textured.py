@@ -87,21 +87,17 @@ def run(argv: list[str], env: dict | None = None) -> subprocess.CompletedProcess
     return done
 
 
-def startup(work: Path, frames: Path, first, repeats: int) -> None:
+def startup(work: Path, frames: Path, engine, first, repeats: int) -> None:
     """Start-up of `patchwood scan` (command start to first image scanned): the whole command on
     a folder of the first frame alone (best of ``repeats`` + 2), less that frame's scan in
     process with the kernels loaded (best of 5); writing the detections file and exiting stay in,
-    so the figure errs high. Measured with the scan's loops compiled ahead of time (when ``make``
+    so the figure errs high (``engine``: the model's, kernels loaded). Measured with the scan's loops compiled ahead of time (when ``make``
     built them, ``detector/_aot.py``) and with ``PATCHWOOD_NO_AOT=1`` (numba's cached loops)."""
     from detector._aot import module_info
-    from detector.model import load_model
-    from detector.scan import Engine, ScanSettings
 
     one = work / "one-frame"
     one.mkdir(exist_ok=True)
     shutil.copy(sorted(frames.iterdir())[0], one / "frame.png")
-    engine = Engine(load_model(work / "model.npz"), ScanSettings())
-    engine.scan(first)
     inside = min(_seconds(lambda: engine.scan(first)) for _ in range(5))
     module, why = module_info()
     cases = [("numba's cached loops", {"PATCHWOOD_NO_AOT": "1"})]
@@ -185,7 +181,7 @@ def main(argv=None) -> int:
         per_frame.append(1000.0 * (time.perf_counter() - t0))
     print(f"patchwood in process: median {statistics.median(per_frame):.1f} ms per frame "
           f"({statistics.median(per_frame) / (SIZE[0] * SIZE[1] / 1e6):.0f} ms per megapixel)")
-    startup(work, frames, grays[0], args.repeats)
+    startup(work, frames, engine, grays[0], args.repeats)
 
     import baseline as bl
     from detector.harvest import harvest

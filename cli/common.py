@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import contextlib
-import functools
 import os
 import sys
 import time
@@ -13,15 +12,6 @@ import typer
 
 from detector.errors import InputError
 from detector.io.files import display_name, same_file
-
-
-@functools.cache
-def _console():
-    """The stderr console a live progress bar draws on (rich, imported only for one: 30 ms of a
-    command's start-up). Without a terminal, progress is plain lines."""
-    from rich.console import Console
-
-    return Console(stderr=True, highlight=False)
 
 
 def check_output_file(path: Path, force: bool, what: str = "output", inputs=()) -> None:
@@ -174,12 +164,14 @@ def progress_bar(description: str, total: int | None = None, unit: str = "items"
     state = {"done": 0, "total": total, "shown": start}
     lines = not live and bool(os.environ.get("PATCHWOOD_PROGRESS_LINES"))
     if live:
+        # rich only for a bar on a terminal (30 ms of a command's start-up); else plain lines
+        from rich.console import Console
         from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                                    TimeElapsedColumn, TimeRemainingColumn)
 
         bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                        _rate_column(unit), TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
-                       console=_console(), transient=False)
+                       console=Console(stderr=True, highlight=False), transient=False)
         bar.start()
         task = bar.add_task(description, total=total)
     failed = False

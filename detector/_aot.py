@@ -174,15 +174,17 @@ def build(out_dir: Path = HERE, verbose: bool = False) -> Path:
         if not isinstance(k, Kernel):
             raise TypeError(f"{name} is not a detector._jit.kernel")
         table[name] = []
+        func = bind_callees(k.py_func)  # for numba to inline its callees
         for i, sig in enumerate(signatures):
             args, _ = sigutils.normalize_signature(sig)
             export = _export_name(name, i)
-            cc.export(export, sig)(bind_callees(k.py_func))  # for numba to inline them
+            cc.export(export, sig)(func)
             table[name].append({"export": export, "args": [_arg_spec(t) for t in args]})
     side = out_dir / f"{MODULE}.json"
     side.unlink(missing_ok=True)  # an interrupted build leaves no side file: the module is not used
+    compiled_from = sources_sha256()  # the sources as compiled, not as they may be after
     cc.compile()
-    write_text(side, json.dumps({"sources_sha256": sources_sha256(), "numba": numba.__version__,
+    write_text(side, json.dumps({"sources_sha256": compiled_from, "numba": numba.__version__,
                                 "numpy": np.__version__, "processor": processor(),
                                 "exports": table}, indent=1) + "\n")
     return side
