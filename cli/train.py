@@ -16,7 +16,7 @@ from detector.harvest import load_bank, save_bank
 from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, mining_params, mining_source,
+from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params, mining_source,
                                train_with_mining)
 
 
@@ -34,7 +34,7 @@ def train(
     depth: int = typer.Option(DEFAULT_TRAIN["depth"], "--depth", min=1, max=8, help="Depth of every tree."),
     mode: Literal["boosted", "bagged"] = typer.Option(DEFAULT_TRAIN["mode"], "--mode", help="boosted (Gentle AdaBoost; the default: the stronger of the two on the cross-data benchmark) or bagged (random forest, with an out-of-bag error)."),
     pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
-    features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help="Pool features tried at every node. Default: the square root of the pool."),
+    features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help=f"Pool features tried at every node. Default: {DEFAULT_TRAIN['features_per_node']}, or the whole pool when it is smaller (the models that only mine try the square root of their pool)."),
     sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
     exit_budget: float = typer.Option(EXIT_BUDGET, "--exit-budget", min=0.0, max=0.5, help="Share of the held-out object patches that the contrast gate and all the early exits together may give up: a larger budget lets background leave after fewer trees."),
     exit_recall: Optional[float] = typer.Option(None, "--exit-recall", hidden=True),
@@ -73,6 +73,8 @@ def train(
                     "node cannot try more features than the pool holds")
     if save_bank_to is not None and os.path.abspath(save_bank_to) == os.path.abspath(out):
         raise typer.BadParameter("--save-bank names the same file as --out")
+    if features_per_node is None:
+        features_per_node = default_features_per_node(pool)
     b = load_bank(bank)
     if mine_images is None and mine_rounds != 0:
         mine_images, mine_labels = mining_source(b, bank)

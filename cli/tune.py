@@ -76,7 +76,7 @@ def tune(
     depth: str = typer.Option("1..4", "--depth", help=f"Depth of every tree: a value or a range LOW..HIGH (at most {TRAIN_MAX_DEPTH})."),
     mode: str = typer.Option("bagged,boosted", "--mode", help="Modes to try: bagged, boosted, or bagged,boosted."),
     pool: str = typer.Option("1000..20000", "--pool", help="Feature pool size: a value or a range LOW..HIGH (log scale; capped at the features the window holds)."),
-    features_per_node: str = typer.Option("10..300", "--features-per-node", help="Pool features tried at every node: a value or a range LOW..HIGH (log scale; capped at the pool)."),
+    features_per_node: str = typer.Option("100..3000", "--features-per-node", help="Pool features tried at every node: a value or a range LOW..HIGH (log scale; capped at the pool)."),
     sample_fraction: str = typer.Option("0.3..1", "--sample-fraction", help="Bootstrap or subsample fraction: a value or a range LOW..HIGH within 0.01..1."),
     channels: Literal["gradient", "grey"] = channels_option(),
     window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),

@@ -84,7 +84,8 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     assert model.object_sizes["window_object_side"] == sizes["window_object_side"]
     assert model.metadata["date"] == "1970-01-02"
     # the command trains what the library trains with the same parameters
-    params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=None,
+    # (features per node: the default 1000 capped at the pool of 500, so every pool feature)
+    params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=500,
                   sample_fraction=1.0, exit_budget=EXIT_BUDGET, normalize=True, random_state=3, n_jobs=1,
                   channels=DEFAULT_TRAIN["channels"])
     lib, _ = train_model(load_bank(bank), params, bank_path=bank)
@@ -197,6 +198,7 @@ def first_round_recount(bank, test, settings, trees=10):
     """The first mining round's false alarms per image and recall, counted again: the first model
     is the plain model with the same seed; scan the mining frames with the loosest exits (as
     mining scans) and match with detector.evaluation (IoU 0.5)."""
+    # (a model that only mines tries the square root of its pool at every node: None)
     first, _ = train_model(load_bank(bank), dict(n_trees=trees, depth=2, mode="bagged", pool=500,
                                                  features_per_node=None, sample_fraction=1.0,
                                                  exit_budget=EXIT_BUDGET, normalize=True, random_state=0,

@@ -348,7 +348,7 @@ class SearchSpace:
     depth: tuple = (1, 4)
     modes: tuple = ("bagged", "boosted")
     pool: tuple = (1000, 20000)
-    features_per_node: tuple = (10, 300)
+    features_per_node: tuple = (100, 3000)
     sample_fraction: tuple = (0.3, 1.0)
 
     def check(self) -> "SearchSpace":
@@ -373,13 +373,13 @@ class SearchSpace:
         """``patchwood train``'s defaults moved into the ranges: the first trial, so the search
         starts where a user who does not tune would be (``defaults`` default
         :data:`detector.training.DEFAULT_TRAIN`; features per node, None there, is the square root of
-        the pool, as training has it).
+        the pool, as the library's classifier has it).
 
         >>> SearchSpace().start()
-        {'trees': 300, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 141, 'sample_fraction': 1.0}
+        {'trees': 300, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 1000, 'sample_fraction': 1.0}
         >>> SearchSpace(trees=(5, 50), depth=(3, 4), modes=("bagged",), pool=(100, 400),
         ...             features_per_node=(10, 300), sample_fraction=(0.3, 0.5)).start()
-        {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 20, 'sample_fraction': 0.5}
+        {'trees': 50, 'depth': 3, 'mode': 'bagged', 'pool': 400, 'features_per_node': 300, 'sample_fraction': 0.5}
         """
         d = dict(DEFAULT_TRAIN if defaults is None else defaults)
 
@@ -387,7 +387,7 @@ class SearchSpace:
             return min(max(value, pair[0]), pair[1])
 
         pool = int(clip(d["pool"], self.pool))
-        per_node = d["features_per_node"] or max(1, round(math.sqrt(pool)))
+        per_node = min(d["features_per_node"] or max(1, round(math.sqrt(pool))), pool)
         return {"trees": int(clip(d["trees"], self.trees)), "depth": int(clip(d["depth"], self.depth)),
                 "mode": d["mode"] if d["mode"] in self.modes else tuple(self.modes)[0],
                 "pool": pool,
