@@ -17,7 +17,8 @@ from detector.model import save_model
 from detector.reporting.score_report import score_files
 from detector.reporting.summary import summary_table
 from detector.scan import ScanSettings
-from detector.training import DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params, train_with_mining
+from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params,
+                               train_with_mining)
 from synthetic_images import render_scenario
 
 #: What the demo writes inside its folder (and may replace with --force).
@@ -74,8 +75,8 @@ def demo(
          f"{c['background']} background patches -> {human_path(bank_path)}")
 
     echo(f"[3/5] training {trees} {mode} trees with {mine_rounds} mining round(s)")
-    params = dict(n_trees=trees, depth=2, mode=mode, pool=pool, features_per_node=default_features_per_node(pool),
-                  random_state=seed, n_jobs=jobs,
+    params = dict(n_trees=trees, depth=2, mode=mode, pool=pool,
+                  features_per_node=default_features_per_node(pool), random_state=seed, n_jobs=jobs,
                   channels=DEFAULT_TRAIN["channels"])
 
     def report(r, found, counts):

@@ -16,8 +16,8 @@ from detector.harvest import load_bank, save_bank
 from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params, mining_source,
-                               train_with_mining)
+from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params,
+                               mining_source, train_with_mining)
 
 
 #: Options that only shape hard-negative mining (parameter name -> option).

@@ -70,6 +70,7 @@ def default_features_per_node(pool: int) -> int:
     """
     return int(min(DEFAULT_TRAIN["features_per_node"], int(pool)))
 
+
 #: Hard-negative mining rounds of ``patchwood train`` unless told otherwise (chosen on the
 #: cross-data benchmark, ``benchmarks/cross_data.py``; README, "Speed and accuracy").
 DEFAULT_MINE_ROUNDS = 2

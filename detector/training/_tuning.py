@@ -372,8 +372,8 @@ class SearchSpace:
     def start(self, defaults: dict | None = None) -> dict:
         """``patchwood train``'s defaults moved into the ranges: the first trial, so the search
         starts where a user who does not tune would be (``defaults`` default
-        :data:`detector.training.DEFAULT_TRAIN`; features per node, None there, is the square root of
-        the pool, as the library's classifier has it).
+        :data:`detector.training.DEFAULT_TRAIN`; features per node is capped at the pool, and None
+        there is the square root of the pool, as the library's classifier has it).
 
         >>> SearchSpace().start()
         {'trees': 300, 'depth': 2, 'mode': 'boosted', 'pool': 20000, 'features_per_node': 1000, 'sample_fraction': 1.0}
