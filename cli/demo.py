@@ -76,7 +76,8 @@ def demo(
 
     echo(f"[3/5] training {trees} {mode} trees with {mine_rounds} mining round(s)")
     params = dict(n_trees=trees, depth=2, mode=mode, pool=pool,
-                  features_per_node=default_features_per_node(pool), random_state=seed, n_jobs=jobs,
+                  features_per_node=default_features_per_node(pool),
+                  weight_trim=DEFAULT_TRAIN["weight_trim"], random_state=seed, n_jobs=jobs,
                   channels=DEFAULT_TRAIN["channels"])
 
     def report(r, found, counts):

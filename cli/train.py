@@ -36,6 +36,7 @@ def train(
     pool: int = typer.Option(DEFAULT_TRAIN["pool"], "--pool", min=1, help="Size of the random feature pool drawn from every rectangle-difference feature of the window."),
     features_per_node: Optional[int] = typer.Option(None, "--features-per-node", min=1, help=f"Pool features tried at every node. Default: {DEFAULT_TRAIN['features_per_node']}, or the whole pool when it is smaller (the models that only mine try the square root of their pool)."),
     sample_fraction: float = typer.Option(DEFAULT_TRAIN["sample_fraction"], "--sample-fraction", min=0.01, max=1.0, help="Bootstrap sample size (bagged) or per-stage subsample (boosted), as a fraction of the patches."),
+    weight_trim: float = typer.Option(DEFAULT_TRAIN["weight_trim"], "--weight-trim", min=0.0, max=0.5, help="Boosted: every tree grows without the lightest patches that together hold at most this share of the weight (weight trimming); they are still reweighted and come back when they become hard."),
     exit_budget: float = typer.Option(EXIT_BUDGET, "--exit-budget", min=0.0, max=0.5, help="Share of the held-out object patches that the contrast gate and all the early exits together may give up: a larger budget lets background leave after fewer trees."),
     exit_recall: Optional[float] = typer.Option(None, "--exit-recall", hidden=True),
     channels: Literal["gradient", "grey"] = channels_option(),
@@ -68,6 +69,9 @@ def train(
         usage_error(f"{', '.join(unused)} only shape{'s' if len(unused) == 1 else ''} mining "
                     "rounds; leave out --mine-rounds 0 (mining is on by default) or "
                     f"{'it' if len(unused) == 1 else 'them'}")
+    if mode == "bagged" and weight_trim > 0:
+        usage_error(f"--weight-trim {weight_trim:g} trims boosting weights; bagged trees have none "
+                    "(leave it out or use --mode boosted)")
     if features_per_node is not None and features_per_node > pool:
         usage_error(f"--features-per-node {features_per_node} is larger than --pool {pool}: a "
                     "node cannot try more features than the pool holds")
@@ -100,7 +104,7 @@ def train(
          f"of {b.window[0]}x{b.window[1]}")
     params = dict(n_trees=trees, depth=depth, mode=mode, pool=pool,
                   features_per_node=features_per_node, sample_fraction=sample_fraction,
-                  exit_budget=exit_budget, normalize=normalize, random_state=seed,
+                  weight_trim=weight_trim, exit_budget=exit_budget, normalize=normalize, random_state=seed,
                   n_jobs=jobs, channels=channels)
 
     def report(r, found, counts):

@@ -87,6 +87,10 @@ class PatchForest:
         Pool features tried at every node; default ``round(sqrt(pool))``.
     sample_fraction : float in (0, 1], default=1.0
         Bootstrap size (bagged) or per-stage subsample (boosted), as a fraction of the patches.
+    weight_trim : float in [0, 0.5], default=0.0
+        Boosted: each stage grows without the lightest patches that together hold at most this
+        share of the weight (weight trimming, Friedman, Hastie and Tibshirani 2000;
+        :func:`detector.forest.trimmed_weights`). Ignored for bagged forests.
     normalize : bool, default=True
         Contrast-normalise feature values per patch.
     exit_budget : float in [0, 1), default=EXIT_BUDGET
@@ -153,6 +157,7 @@ class PatchForest:
         pool=20000,
         features_per_node=None,
         sample_fraction=1.0,
+        weight_trim=0.0,
         normalize=True,
         exit_budget=EXIT_BUDGET,
         exit_shift=1.0,
@@ -169,6 +174,7 @@ class PatchForest:
         self.pool = pool
         self.features_per_node = features_per_node
         self.sample_fraction = sample_fraction
+        self.weight_trim = weight_trim
         self.normalize = normalize
         self.exit_budget = exit_budget
         self.exit_shift = exit_shift
@@ -214,6 +220,9 @@ class PatchForest:
         v = self.sample_fraction
         if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 < v <= 1.0:
             raise InputError(f"sample_fraction must be a number in (0, 1], got {v!r}")
+        v = self.weight_trim
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 <= v <= 0.5:
+            raise InputError(f"weight_trim must be a number in [0, 0.5], got {v!r}")
         v = self.exit_budget
         if isinstance(v, bool) or not isinstance(v, numbers.Real) or not 0.0 <= v < 1.0:
             raise InputError(f"exit_budget must be a number in [0, 1), got {v!r}")
@@ -295,6 +304,7 @@ class PatchForest:
         forest = grow_forest(
             values.T, grow_y, mode=self.mode, n_trees=int(self.n_trees), depth=int(self.depth),
             features_per_node=self.features_per_node, sample_fraction=float(self.sample_fraction),
+            weight_trim=float(self.weight_trim) if self.mode == "boosted" else 0.0,
             random_state=forest_ss, progress=progress, n_jobs=self.n_jobs, grower=grower,
         )
         del values

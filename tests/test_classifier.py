@@ -190,6 +190,7 @@ def test_a_binned_pool_grows():
         (dict(n_trees=0), "n_trees must be an integer >= 1"),
         (dict(depth=13), "depth must be an integer 1..12"),
         (dict(sample_fraction=0.0), "sample_fraction must be a number in (0, 1]"),
+        (dict(weight_trim=0.6), "weight_trim must be a number in [0, 0.5]"),
         (dict(exit_budget=1.0), "exit_budget must be a number in [0, 1)"),
         (dict(pool=2.5), "pool must be an integer >= 1"),
         (dict(max_bins=1), "max_bins must be an integer 2..256"),

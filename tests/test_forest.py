@@ -16,7 +16,7 @@ from detector.cascade import calibrate_exit, trees_evaluated
 from detector.forest import (FlatForest, bin_columns, bin_columns_numpy, flatten_tree,
                              float32_thresholds, forest_leaves, forest_running_scores,
                              forest_score, grow_forest, quantile_cuts, quantile_cuts_numpy,
-                             thresholds_from_bins)
+                             thresholds_from_bins, trimmed_weights)
 
 
 def _data(n=300, f=24, seed=0, ties=False):
@@ -85,6 +85,57 @@ def test_boosted_weights_follow_gentle_adaboost():
         for i in range(len(w)):
             w[i] = w[i] * np.exp(-signed[i] * f[i])
         w = w / w.mean()
+
+
+def _trim_by_hand(w, beta):
+    """Weight trimming as Friedman, Hastie and Tibshirani (2000, section 9) state it, one sample at
+    a time: drop the lightest samples while the mass dropped stays at most beta of the total (ties:
+    the lower index first)."""
+    out, dropped, limit = w.copy(), 0.0, beta * w.sum()
+    for i in sorted(range(len(w)), key=lambda i: (w[i], i)):
+        if dropped + w[i] > limit:
+            break
+        dropped += w[i]
+        out[i] = 0.0
+    return out
+
+
+def test_weight_trimming_follows_friedman_hastie_tibshirani():
+    """Every stage refit by scikit-learn on the weights of a slow loop: Gentle AdaBoost's update on
+    every sample, each stage fitted on the trimmed weights only. The trees must come out the same,
+    and the stages must really leave samples out."""
+    X, y = _data(n=240, seed=11)
+    beta = 0.1
+    forest = grow_forest(X, y, mode="boosted", n_trees=8, depth=2, weight_trim=beta,
+                         random_state=4, keep_estimators=True)
+    signed = np.where(y == 1, 1.0, -1.0)
+    w = np.ones(len(y))
+    left_out = []
+    for t, est in enumerate(forest.estimators):
+        stage = _trim_by_hand(w, beta)
+        np.testing.assert_array_equal(forest.in_bag[t], stage > 0)
+        left_out.append(int((stage == 0).sum()))
+        again = DecisionTreeRegressor(**est.get_params()).fit(X, signed, sample_weight=stage)
+        np.testing.assert_array_equal(again.tree_.feature, est.tree_.feature)
+        np.testing.assert_array_equal(again.tree_.threshold, est.tree_.threshold)
+        f = est.predict(X).astype(np.float32).astype(np.float64)
+        w = w * np.exp(-signed * f)  # every sample, trimmed or not
+        w = np.maximum(w / w.mean(), 1e-10)
+    # the first stage's equal weights: 24 of 240 samples hold exactly 0.1 of the mass
+    assert left_out[0] == 24 and max(left_out[1:]) > 24
+
+
+@settings(max_examples=200, deadline=None)
+@given(w=hnp.arrays(np.float64, st.integers(1, 40),
+                    elements=st.sampled_from([1e-10, 0.001, 0.5, 1.0, 2.0, 7.25])),
+       beta=st.sampled_from([0.0, 0.01, 0.05, 0.1, 0.3, 0.5]))
+def test_trimmed_weights_drop_the_lightest_within_the_share(w, beta):
+    out = trimmed_weights(w, beta)
+    np.testing.assert_array_equal(out, _trim_by_hand(w, beta))
+    dropped = out == 0
+    assert w[dropped].sum() <= beta * w.sum()
+    if dropped.any() and (~dropped).any():
+        assert w[dropped].max() <= w[~dropped].min()  # the lightest go first
 
 
 def test_padding_of_a_leaf_above_the_last_level():
@@ -211,6 +262,8 @@ def test_bad_inputs_are_refused():
         grow_forest(X, y, mode="stacked")
     with pytest.raises(ValueError, match="sample_fraction"):
         grow_forest(X, y, sample_fraction=1.5)
+    with pytest.raises(ValueError, match="weight_trim"):
+        grow_forest(X, y, mode="boosted", weight_trim=-0.1)
 
 
 def test_running_scores_and_trees_evaluated_by_hand():

@@ -86,8 +86,8 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     # the command trains what the library trains with the same parameters
     # (features per node: the default 1000 capped at the pool of 500, so every pool feature)
     params = dict(n_trees=10, depth=2, mode="bagged", pool=500, features_per_node=500,
-                  sample_fraction=1.0, exit_budget=EXIT_BUDGET, normalize=True, random_state=3, n_jobs=1,
-                  channels=DEFAULT_TRAIN["channels"])
+                  sample_fraction=1.0, weight_trim=DEFAULT_TRAIN["weight_trim"], exit_budget=EXIT_BUDGET,
+                  normalize=True, random_state=3, n_jobs=1, channels=DEFAULT_TRAIN["channels"])
     lib, _ = train_model(load_bank(bank), params, bank_path=bank)
     for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
         np.testing.assert_array_equal(getattr(model, name), getattr(lib, name))
@@ -101,13 +101,20 @@ def test_train_options_reach_the_model(scenario, cli_env, tmp_path):
     out = tmp_path / "boosted.npz"
     code, text, err = cli_env("train", scenario / "bank.npz", "--out", out, "--trees", 6, "--pool", 300,
                               "--depth", 3, "--mode", "boosted", "--features-per-node", 40,
-                              "--sample-fraction", 0.5, "--exit-budget", 0.1, "--no-normalize")
+                              "--sample-fraction", 0.5, "--exit-budget", 0.1, "--no-normalize",
+                              "--weight-trim", 0.2)
     assert code == 0, err
     model = load_model(out)
     assert (model.n_trees, model.depth, model.mode, model.normalize) == (6, 3, "boosted", False)
     assert "trees: 6 of depth 3, Gentle AdaBoost (boosted)" in text
     p = model.metadata["parameters"]
-    assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_budget"]) == (300, 40, 0.5, 0.1)
+    assert (p["pool"], p["features_per_node"], p["sample_fraction"], p["exit_budget"],
+            p["weight_trim"]) == (300, 40, 0.5, 0.1, 0.2)
+    # weight trimming is a boosting option: with bagged trees it is one line, not a silent no-op
+    code, _, err = cli_env("train", scenario / "bank.npz", "--out", tmp_path / "bagged.npz",
+                           "--mode", "bagged", "--weight-trim", 0.1)
+    assert code == 2 and "--weight-trim 0.1 trims boosting weights" in err
+    assert not (tmp_path / "bagged.npz").exists()
     # the option's old name, recall kept rather than budget given up, says what to write instead
     code, _, err = cli_env("train", scenario / "bank.npz", "--out", tmp_path / "old.npz",
                            "--exit-recall", 0.995)

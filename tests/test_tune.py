@@ -225,7 +225,8 @@ def test_classifier_params_maps_the_option_words():
               "sample_fraction": 0.75}
     p = classifier_params(values, seed=5, exit_budget=0.01)
     assert p == dict(n_trees=7, depth=3, mode="boosted", pool=123, features_per_node=9,
-                     sample_fraction=0.75, exit_budget=0.01, random_state=5, n_jobs=None,
+                     sample_fraction=0.75, weight_trim=DEFAULT_TRAIN["weight_trim"],
+                     exit_budget=0.01, random_state=5, n_jobs=None,
                      channels=DEFAULT_TRAIN["channels"])  # train's features by default
     PatchClassifier(**p)._check_parameters()  # every key is a classifier parameter
     assert classifier_params(values, channels="grey")["channels"] == "grey"

@@ -61,7 +61,7 @@ from detector.forest._flat import (MAX_DEPTH, MODES, FlatForest, final_score, fl
                                    float32_thresholds, forest_leaf_scores, forest_leaves,
                                    forest_running_scores, forest_score, tree_depth)
 from detector.forest._growing import (GROWERS, forest_oob_scores, grow_forest, oob_scores,
-                                      seed_sequence, worker_count)
+                                      seed_sequence, trimmed_weights, worker_count)
 from detector.forest._histogram import grow_histogram_tree
 
 __all__ = [
@@ -69,5 +69,5 @@ __all__ = [
     "forest_leaf_scores", "forest_running_scores", "forest_score", "final_score", "seed_sequence",
     "quantile_cuts", "quantile_cuts_numpy", "bin_columns", "bin_columns_numpy",
     "thresholds_from_bins", "forest_oob_scores", "oob_scores", "grow_histogram_tree", "MODES",
-    "GROWERS", "MAX_DEPTH", "tree_depth", "worker_count",
+    "GROWERS", "MAX_DEPTH", "tree_depth", "worker_count", "trimmed_weights",
 ]

@@ -15,13 +15,35 @@ from detector.forest._flat import MAX_DEPTH, MODES, FlatForest, flatten_tree, fo
 from detector.forest._histogram import grow_histogram_tree
 from detector.forest._tree_kernels import ENTROPY, SQUARED_ERROR
 
-__all__ = ["GROWERS", "seed_sequence", "grow_forest", "forest_oob_scores", "oob_scores"]
+__all__ = ["GROWERS", "seed_sequence", "grow_forest", "forest_oob_scores", "oob_scores",
+           "trimmed_weights"]
 
 GROWERS = ("sklearn", "histogram")
 
 
 #: Smallest boosting weight, relative to the mean weight 1.
 BOOST_WEIGHT_FLOOR = 1e-10
+
+
+def trimmed_weights(weights: np.ndarray, share: float) -> np.ndarray:
+    """``weights`` with the lightest samples set to 0, as many as together hold at most ``share``
+    of the total weight (weight trimming; Friedman, Hastie and Tibshirani 2000, section 9: late
+    boosting stages put almost all the weight on a few hard samples, and the rest can sit a stage
+    out). Ties are broken by index, so the result does not depend on anything but the weights.
+
+    >>> trimmed_weights(np.array([5.0, 1.0, 2.0, 2.0]), 0.3)   # 1 + 2 = 3 <= 0.3 * 10
+    array([5., 0., 0., 2.])
+    >>> trimmed_weights(np.array([5.0, 1.0, 2.0, 2.0]), 0.25)  # 1 <= 2.5 < 1 + 2
+    array([5., 0., 2., 2.])
+    """
+    if share <= 0.0:
+        return weights
+    order = np.argsort(weights, kind="stable")
+    mass = np.cumsum(weights[order])
+    k = int(np.searchsorted(mass, share * float(np.sum(weights)), side="right"))
+    out = weights.copy()
+    out[order[:k]] = 0.0
+    return out
 
 
 def _check_finite(X: np.ndarray, block: int = 256) -> bool:
@@ -31,7 +53,7 @@ def _check_finite(X: np.ndarray, block: int = 256) -> bool:
     return all(np.isfinite(X[a : a + block]).all() for a in range(0, X.shape[0], block))
 
 
-def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
+def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction, weight_trim=0.0):
     X = np.asarray(X)
     if X.ndim != 2:
         raise ValueError(f"X must be 2-D (patches x features), got shape {X.shape}")
@@ -57,11 +79,13 @@ def _validate(X, y, mode, n_trees, depth, features_per_node, sample_fraction):
     features_per_node = min(check_int(features_per_node, "features_per_node", low=1), n_features)
     sample_fraction = check_real(sample_fraction, "sample_fraction", low=0.0, high=1.0,
                                  low_open=True)
+    weight_trim = check_real(weight_trim, "weight_trim", low=0.0, high=0.5)
     if n_features < 1:
         raise ValueError("X has no feature columns")
     if X.dtype != np.uint8 and not _check_finite(X):
         raise ValueError("X holds non-finite feature values")
-    return X, y, int(n_trees), int(depth), features_per_node, float(sample_fraction)
+    return (X, y, int(n_trees), int(depth), features_per_node, float(sample_fraction),
+            float(weight_trim))
 
 
 def _as_bins(X) -> np.ndarray:
@@ -111,6 +135,7 @@ def grow_forest(
     depth: int = 2,
     features_per_node: int | None = None,
     sample_fraction: float = 1.0,
+    weight_trim: float = 0.0,
     random_state=None,
     progress=None,
     n_jobs: int | None = None,
@@ -140,6 +165,11 @@ def grow_forest(
     sample_fraction : float in (0, 1], default=1.0
         Bagged: bootstrap draws per tree as a fraction of N (with replacement). Boosted: fraction of
         patches (without replacement) that carry weight in each stage.
+    weight_trim : float in [0, 0.5], default=0.0
+        Boosted only: each stage grows on the patches left when the lightest ones, together
+        holding at most this share of the weight, sit it out (:func:`trimmed_weights`); every
+        patch is still reweighted after every stage, so a trimmed patch that becomes hard takes
+        part again. 0 keeps every patch.
     random_state : None, int or numpy generator
         Every tree gets its own child of one :class:`numpy.random.SeedSequence`; the same seed gives
         the same forest, whatever ``n_jobs``.
@@ -174,8 +204,8 @@ def grow_forest(
     """
     if grower not in GROWERS:
         raise ValueError(f"grower must be one of {GROWERS}, got {grower!r}")
-    X, y, n_trees, depth, fpn, fraction = _validate(
-        X, y, mode, n_trees, depth, features_per_node, sample_fraction
+    X, y, n_trees, depth, fpn, fraction, trim = _validate(
+        X, y, mode, n_trees, depth, features_per_node, sample_fraction, weight_trim
     )
     n, n_features = X.shape
     if grower == "histogram":
@@ -287,6 +317,7 @@ def grow_forest(
                 stage_weight[chosen] = weights[chosen]
             else:
                 stage_weight = weights
+            stage_weight = trimmed_weights(stage_weight, trim)
             known = store(t, grow_one(tree_ss, stage_weight, signed, SQUARED_ERROR, squared_tree, node_pool))
             if in_bag is not None:
                 in_bag[t] = stage_weight > 0
@@ -295,7 +326,8 @@ def grow_forest(
             weights /= weights.mean()
             # keep every weight above a floor: after hundreds of stages the easy patches' weights
             # would underflow to 0, and a leaf holding only such patches has no defined value
-            # (weight trimming; Friedman, Hastie and Tibshirani 2000, section 9)
+            # (a floor, not weight trimming: trimming, above, leaves a stage's lightest patches
+            # out on purpose and only when asked to)
             np.maximum(weights, BOOST_WEIGHT_FLOOR, out=weights)
             if progress is not None:
                 progress(t + 1, n_trees)

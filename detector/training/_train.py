@@ -59,7 +59,8 @@ def bank_to_xy(bank: PatchBank):
 #: 1000 rather than the square root of the pool (141) raised the mean AP50 of the cross-data sets
 #: over five harvest and model seeds (DEVELOPERS.md, "Defaults that follow the data").
 DEFAULT_TRAIN = {"trees": 300, "depth": 2, "mode": "boosted", "pool": 20000,
-                 "features_per_node": 1000, "sample_fraction": 1.0, "channels": "gradient"}
+                 "features_per_node": 1000, "sample_fraction": 1.0, "weight_trim": 0.0,
+                 "channels": "gradient"}
 
 
 def default_features_per_node(pool: int) -> int:

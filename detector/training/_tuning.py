@@ -243,7 +243,8 @@ def classifier_params(values: dict, seed: int = 0, n_jobs=None, exit_budget: flo
     """
     return dict(n_trees=int(values["trees"]), depth=int(values["depth"]), mode=str(values["mode"]),
                 pool=int(values["pool"]), features_per_node=int(values["features_per_node"]),
-                sample_fraction=float(values["sample_fraction"]), exit_budget=float(exit_budget),
+                sample_fraction=float(values["sample_fraction"]),
+                weight_trim=DEFAULT_TRAIN["weight_trim"], exit_budget=float(exit_budget),
                 random_state=int(seed), n_jobs=n_jobs,
                 channels=DEFAULT_TRAIN["channels"] if channels is None else str(channels))
 
