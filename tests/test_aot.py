@@ -189,7 +189,8 @@ def other_integral_dtypes(name, args):
     holds a version for: the sums are small integers, exact in all three."""
     index = {"detector.features._channel_kernels.channel_integrals": 1}.get(name, 0)
     if name not in ("detector.scan._kernels.scan_scale", "detector.scan._kernels.scan_frame",
-                    "detector.features._channel_kernels.channel_integrals"):
+                    "detector.features._channel_kernels.channel_integrals",
+                    "detector.scan._kernels.area_shrink"):
         return [args]
     return [args[:index] + (args[index].astype(t),) + args[index + 1:]
             for t in (np.int32, np.uint32, np.float64)]

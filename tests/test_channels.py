@@ -221,10 +221,12 @@ def test_scan_scores_equal_classifier_scores_at_scale_one_with_channels(channel_
 
 def test_pyramid_scores_equal_classifier_scores_on_the_shrunk_frame(channel_model):
     """A model with channel features is scanned on an image pyramid: at every scale the frame is
-    shrunk with area averaging (``cv2.resize``, INTER_AREA, as harvest shrinks a labelled box) and
-    its windows are the window's own size. So every window's score at every scale is
-    predict_proba of the patch cut by hand from the frame shrunk to that level's size."""
-    import cv2
+    shrunk with area averaging (as harvest shrinks a labelled box with ``cv2.resize``, INTER_AREA;
+    the scan reads the means off the frame's integral image, ``scan.shrink_level``, held to
+    cv2's within one grey level in tests/test_scan.py) and its windows are the window's own size.
+    So every window's score at every scale is predict_proba of the patch cut by hand from the
+    frame shrunk to that level's size."""
+    from detector.scan import level_edges, shrink_level
 
     gray = render_frame(4, 200, 170).image
     boxes, raw, _, _ = every_window(channel_model, stride=3, overhang=0.0,
@@ -237,7 +239,8 @@ def test_pyramid_scores_equal_classifier_scores_on_the_shrunk_frame(channel_mode
         fx = boxes[at[0], 2] / WINDOW[0]
         fy = boxes[at[0], 3] / WINDOW[1]
         lw, lh = int(round(200 / fx)), int(round(170 / fy))   # the level's size
-        level = cv2.resize(gray, (lw, lh), interpolation=cv2.INTER_AREA)
+        ii = np.zeros((171, 201)); ii[1:, 1:] = gray.cumsum(0).cumsum(1)
+        level = shrink_level(ii, (level_edges(200, lw), level_edges(170, lh)), use_numpy=True)
         xs = np.rint(boxes[at, 0] / fx).astype(int)
         ys = np.rint(boxes[at, 1] / fy).astype(int)
         np.testing.assert_allclose(xs * fx, boxes[at, 0], rtol=1e-12)  # on the level's grid

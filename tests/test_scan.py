@@ -795,3 +795,96 @@ def test_numpy_route_scan_equals_the_compiled_scan(model, settings):
         np.testing.assert_allclose(numpy_route.scores, compiled.scores, rtol=0, atol=1e-12)
         found += len(compiled.scores)
     assert found > 0  # at threshold 0 (the flat frame aside, which the contrast gate empties)
+
+
+# --- the pyramid's levels: area averaging read off the frame's integral image ---------------------
+
+def _integral(img, dtype):
+    ii = np.zeros((img.shape[0] + 1, img.shape[1] + 1), dtype)
+    ii[1:, 1:] = img.astype(np.int64).cumsum(0).cumsum(1)
+    return ii
+
+
+def test_area_shrink_by_hand():
+    from detector.scan import area_shrink_numpy, level_edges
+    from detector.scan._kernels import area_shrink
+
+    # 4 x 2 halved along x: block means (0 + 1 + 4 + 5) / 4 = 2.5 -> 2 (ties to even),
+    # (2 + 3 + 6 + 7) / 4 = 4.5 -> 4
+    img = np.arange(8, dtype=np.uint8).reshape(2, 4)
+    for shrink in (area_shrink, area_shrink_numpy):
+        out = shrink(_integral(img, np.int32), level_edges(4, 2), level_edges(2, 1),
+                     np.empty((1, 2), np.uint8))
+        assert out.tolist() == [[2, 4]]
+    # 3 x 1 to 2 x 1: pixels 30, 60, 90; edges 0, 1.5, 3: (30 + 60 / 2) / 1.5 = 40 and
+    # (60 / 2 + 90) / 1.5 = 80
+    img = np.array([[30, 60, 90]], np.uint8)
+    for shrink in (area_shrink, area_shrink_numpy):
+        out = shrink(_integral(img, np.float64), level_edges(3, 2), level_edges(1, 1),
+                     np.empty((1, 2), np.uint8))
+        assert out.tolist() == [[40, 80]]
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(h=st.integers(2, 40), w=st.integers(2, 40), data=st.data(),
+       dtype=st.sampled_from([np.int32, np.uint32, np.float64]))
+def test_area_shrink_kernel_equals_its_numpy_twin(h, w, data, dtype):
+    from detector.scan import area_shrink_numpy, level_edges
+    from detector.scan._kernels import area_shrink
+
+    lh = data.draw(st.integers(1, h))
+    lw = data.draw(st.integers(1, w))
+    seed = data.draw(st.integers(0, 2**16))
+    img = np.random.default_rng(seed).integers(0, 256, (h, w)).astype(np.uint8)
+    ii = _integral(img, dtype)
+    xe, ye = level_edges(w, lw), level_edges(h, lh)
+    a = area_shrink(ii, xe, ye, np.empty((lh, lw), np.uint8))
+    b = area_shrink_numpy(ii, xe, ye, np.empty((lh, lw), np.uint8))
+    np.testing.assert_array_equal(a, b)
+
+
+def _exact_area_mean(img, size, u, v):
+    """The area mean of level pixel (u, v) in exact rational arithmetic."""
+    from fractions import Fraction
+    from math import ceil, floor
+
+    h, w = img.shape
+    x0, x1 = Fraction(u * w, size[0]), Fraction((u + 1) * w, size[0])
+    y0, y1 = Fraction(v * h, size[1]), Fraction((v + 1) * h, size[1])
+    total = Fraction(0)
+    for j in range(floor(y0), ceil(y1)):
+        oy = min(y1, j + 1) - max(y0, j)
+        for i in range(floor(x0), ceil(x1)):
+            total += oy * (min(x1, i + 1) - max(x0, i)) * int(img[j, i])
+    return total / ((x1 - x0) * (y1 - y0))
+
+
+@pytest.mark.parametrize("size", [(345, 259), (287, 216), (200, 150), (96, 72), (80, 60), (13, 7)])
+def test_shrunk_levels_agree_with_cv2_inter_area(size):
+    """Reference library: ``cv2.resize(..., interpolation=cv2.INTER_AREA)`` computes the same area
+    means (in float32). The two may only part where the exact mean is a tie, k + 1/2, which
+    either may round either way; everywhere else they are equal. The exact means are checked in
+    rational arithmetic."""
+    import cv2
+
+    from detector.scan import frame_integrals, level_edges, shrink_level
+
+    rng = np.random.default_rng(size[0])
+    # texture and flat regions: noise, a ramp (many exact ties), and a constant block
+    img = rng.integers(0, 256, (480, 640)).astype(np.uint8)
+    img[:, :200] = np.tile(np.linspace(0, 255, 200).astype(np.uint8), (480, 1))
+    img[300:, 400:] = 77
+    ii = frame_integrals(img)[0].reshape(481, 641)
+    ours = shrink_level(ii, (level_edges(640, size[0]), level_edges(480, size[1])))
+    ref = cv2.resize(img, size, interpolation=cv2.INTER_AREA)
+    assert np.abs(ours.astype(int) - ref).max() <= 1
+    differ = np.argwhere(ours != ref)
+    assert len(differ) < 0.03 * ours.size
+    for v, u in differ[:: max(1, len(differ) // 200)]:  # at most about 200, spread over the level
+        mean = _exact_area_mean(img, size, int(u), int(v))
+        assert mean - int(mean) == 0.5, (u, v, mean)
+    # a sample of the pixels where they agree: ours is the exact mean rounded
+    for v, u in rng.integers(0, [size[1], size[0]], (100, 2)):
+        mean = _exact_area_mean(img, size, int(u), int(v))
+        if mean - int(mean) != 0.5:
+            assert ours[v, u] == round(mean), (u, v, mean)

@@ -298,3 +298,47 @@ def finish(out_x, out_y, out_scale, scores, sizes, pad, up, margin, width, heigh
         out_boxes[i] = boxes[keep[i]]
         out_scores[i] = scores[keep[i]]
     return out_boxes, out_scores
+
+
+@kernel(cache=True, nogil=True)
+def area_shrink(ii, xe, ye, out):
+    """``out[v, u]``: the mean grey level of the source image over the rectangle ``[xe[u], xe[u +
+    1]) x [ye[v], ye[v + 1])`` (fractional pixel edges; a pixel counts by the share of it the
+    rectangle covers: area averaging, what ``cv2.resize(..., INTER_AREA)`` computes when it
+    shrinks), rounded to the nearest integer, ties to even, read off the source's integral image
+    ``ii`` (``(H + 1, W + 1)``).
+
+    The source is constant on each pixel, so its integral over ``[0, x) x [0, y)`` is bilinear in
+    ``(x, y)`` between the integral image's integer corners: the bilinear interpolation of ``ii``
+    at ``(x, y)`` is exact, and a level of the pyramid costs four reads per pixel of the level, not
+    a pass over the whole frame. The numpy twin is :func:`detector.scan.area_shrink_numpy` (the
+    same arithmetic in the same order).
+    """
+    h, w = out.shape
+    rows, cols = ii.shape
+    ix = np.empty(w + 1, np.int64)
+    fx = np.empty(w + 1, np.float64)
+    for u in range(w + 1):
+        i = min(int(xe[u]), cols - 2)
+        ix[u] = i
+        fx[u] = xe[u] - i
+    prev = np.empty(w + 1, np.float64)
+    cur = np.empty(w + 1, np.float64)
+    for v in range(h + 1):
+        j = min(int(ye[v]), rows - 2)
+        fy = ye[v] - j
+        r0 = ii[j]
+        r1 = ii[j + 1]
+        for u in range(w + 1):
+            i = ix[u]
+            a = r0[i] + fx[u] * (np.float64(r0[i + 1]) - np.float64(r0[i]))
+            b = r1[i] + fx[u] * (np.float64(r1[i + 1]) - np.float64(r1[i]))
+            cur[u] = a + fy * (b - a)
+        if v > 0:
+            inv = 1.0 / (ye[v] - ye[v - 1])
+            o = out[v - 1]
+            for u in range(w):
+                val = (cur[u + 1] - cur[u] - prev[u + 1] + prev[u]) * inv / (xe[u + 1] - xe[u])
+                o[u] = np.uint8(min(max(np.rint(val), 0.0), 255.0))
+        prev, cur = cur, prev
+    return out
