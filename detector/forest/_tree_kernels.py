@@ -111,55 +111,85 @@ def best_split(bins, samples, weight, target, candidates, stop_after, criterion,
         i = samples[j]
         node_w[j] = weight[i]
         node_s[j] = weight[i] * target[i]
+    # a second histogram: candidates are binned two at a time, in one pass over the node's
+    # samples (their indices and weights are read once for both), then scanned one after the
+    # other in candidate order, so the result is the one-at-a-time loop's exactly
+    hist_w2 = np.empty(N_BINS)
+    hist_s2 = np.empty(N_BINS)
     best = -np.inf
     best_f = -1
     best_l = -1
     best_r = -1
     examined = 0
     splittable = 0
-    for c in range(candidates.shape[0]):
+    n_cand = candidates.shape[0]
+    c = 0
+    while c < n_cand:
         if splittable >= stop_after:
             break
-        f = candidates[c]
-        examined += 1
-        row = bins[f]
+        pair = c + 1 < n_cand
+        row = bins[candidates[c]]
         for b in range(N_BINS):
             hist_w[b] = 0.0
             hist_s[b] = 0.0
-        for j in range(n):
-            b = row[samples[j]]
-            hist_w[b] += node_w[j]
-            hist_s[b] += node_s[j]
-        lo = 0
-        while lo < N_BINS and hist_w[lo] == 0.0:
-            lo += 1
-        hi = N_BINS - 1
-        while hi > lo and hist_w[hi] == 0.0:
-            hi -= 1
-        if hi <= lo:
-            continue
-        splittable += 1
-        w_l = 0.0
-        s_l = 0.0
-        for k in range(lo, hi):
-            if hist_w[k] == 0.0:
+        if pair:
+            row2 = bins[candidates[c + 1]]
+            for b in range(N_BINS):
+                hist_w2[b] = 0.0
+                hist_s2[b] = 0.0
+            for j in range(n):
+                i = samples[j]
+                wj = node_w[j]
+                sj = node_s[j]
+                b = row[i]
+                hist_w[b] += wj
+                hist_s[b] += sj
+                b2 = row2[i]
+                hist_w2[b2] += wj
+                hist_s2[b2] += sj
+        else:
+            for j in range(n):
+                b = row[samples[j]]
+                hist_w[b] += node_w[j]
+                hist_s[b] += node_s[j]
+        for second in range(2 if pair else 1):
+            if second == 1 and splittable >= stop_after:
+                break
+            f = candidates[c + second]
+            hw = hist_w2 if second == 1 else hist_w
+            hs = hist_s2 if second == 1 else hist_s
+            examined += 1
+            lo = 0
+            while lo < N_BINS and hw[lo] == 0.0:
+                lo += 1
+            hi = N_BINS - 1
+            while hi > lo and hw[hi] == 0.0:
+                hi -= 1
+            if hi <= lo:
                 continue
-            w_l += hist_w[k]
-            s_l += hist_s[k]
-            w_r = total_w - w_l
-            s_r = total_s - s_l
-            if criterion == SQUARED_ERROR:
-                proxy = s_l * s_l / w_l + s_r * s_r / w_r
-            else:
-                proxy = _entropy_proxy(w_l, s_l, w_r, s_r)
-            if proxy > best:
-                best = proxy
-                best_f = f
-                best_l = k
-                r = k + 1
-                while hist_w[r] == 0.0:
-                    r += 1
-                best_r = r
+            splittable += 1
+            w_l = 0.0
+            s_l = 0.0
+            for k in range(lo, hi):
+                if hw[k] == 0.0:
+                    continue
+                w_l += hw[k]
+                s_l += hs[k]
+                w_r = total_w - w_l
+                s_r = total_s - s_l
+                if criterion == SQUARED_ERROR:
+                    proxy = s_l * s_l / w_l + s_r * s_r / w_r
+                else:
+                    proxy = _entropy_proxy(w_l, s_l, w_r, s_r)
+                if proxy > best:
+                    best = proxy
+                    best_f = f
+                    best_l = k
+                    r = k + 1
+                    while hw[r] == 0.0:
+                        r += 1
+                    best_r = r
+        c += 2
     return best, best_f, best_l, best_r, examined, splittable
 
 
