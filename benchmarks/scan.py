@@ -249,8 +249,12 @@ def main(argv=None):
         x0 = int(np.clip(bx - 8, 0, 640 - c))
         y0 = int(np.clip(by - 8, 0, 480 - c))
         positions = [(x0 + x, y0 + y) for y in range(0, c - 24 + 1, 2) for x in range(0, c - 24 + 1, 2)]
+        # objects from the window's own object side up, so that scale 1 is scanned and the frame
+        # is not enlarged (a model that records smaller labelled objects would enlarge it)
+        side = min(model.window) / (1.0 + 2.0 * model.margin)
         checker = Engine(model, ScanSettings(stride=2.0, scale_step=2.0, threshold=0.0,
-                                             early_exit=False, overhang=0.0))
+                                             early_exit=False, overhang=0.0, min_object=side,
+                                             max_object=4.0 * side))
         boxes, raw, _, _ = checker.candidates(gray[y0:y0 + c, x0:x0 + c])
         at1 = boxes[:, 2] == 24
         ours = {(int(x) + x0, int(y) + y0): r for (x, y), r in zip(boxes[at1, :2], raw[at1])}
