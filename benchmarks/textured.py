@@ -16,7 +16,7 @@ first ``--hog-frames`` frames (it takes seconds per frame).
 
 Printed: the whole command's wall seconds for the folder (best of ``--repeats``, Python start-up
 and PNG decoding included) and its milliseconds per megapixel; in-process milliseconds per frame
-and mean trees per window; the peer's milliseconds per megapixel, with the baseline's numpy HOG
+and mean trees per window; the same engine with the pyramid's levels made by ``cv2.resize`` (the route before) taking turns with it; the peer's milliseconds per megapixel, with the baseline's numpy HOG
 and again with ``skimage.feature.hog`` computing the same blocks (the issue's peer); the ratios. The issue's goal:
 at least 200x faster per megapixel than the peer, at most 3 trees per window. The machine is
 shared: the load average is printed before and after.
@@ -77,6 +77,30 @@ def timed_scans(detector, grays) -> tuple[list[float], float]:
         detector.scan(g)
         seconds.append(time.perf_counter() - t0)
     return seconds, 1000.0 * sum(seconds) / (len(seconds) * SIZE[0] * SIZE[1] / 1e6)
+
+
+def levels_by_resize(engine, grays, repeats: int = 3) -> None:
+    """The pyramid's levels read off the frame's integral image (the scan's route,
+    ``scan.shrink_level``) against ``cv2.resize`` with INTER_AREA of the whole frame for every
+    level (the route before; taken when a level has no ``edges``), the same model and frames, the
+    two taking turns frame by frame, best of ``repeats`` per frame. Both reuse the same integral
+    tables, so this is the levels' share alone."""
+    if not engine.pyramid:
+        return
+    other = type(engine)(engine.model, engine.settings)
+    frame, up = other._enlarged(grays[0])
+    for lv in other._levels((frame.shape[1], frame.shape[0]), up):
+        lv.edges = None
+    ours, theirs, kept = [], [], [0, 0]
+    for g in grays:
+        ours.append(min(_seconds(lambda: engine.candidates(g)) for _ in range(repeats)))
+        theirs.append(min(_seconds(lambda: other.candidates(g)) for _ in range(repeats)))
+        kept[0] += len(engine.candidates(g)[1])
+        kept[1] += len(other.candidates(g)[1])
+    a, b = 1000.0 * statistics.median(ours), 1000.0 * statistics.median(theirs)
+    print(f"pyramid levels from the integral image: {a:.1f} ms per frame in process against "
+          f"{b:.1f} with cv2.resize per level ({b / a:.2f}x; medians over {len(grays)} frames, "
+          f"taking turns); windows kept {kept[0]} against {kept[1]}")
 
 
 def run(argv: list[str], env: dict | None = None) -> subprocess.CompletedProcess:
@@ -181,6 +205,7 @@ def main(argv=None) -> int:
         per_frame.append(1000.0 * (time.perf_counter() - t0))
     print(f"patchwood in process: median {statistics.median(per_frame):.1f} ms per frame "
           f"({statistics.median(per_frame) / (SIZE[0] * SIZE[1] / 1e6):.0f} ms per megapixel)")
+    levels_by_resize(engine, grays)
     startup(work, frames, engine, grays[0], args.repeats)
 
     import baseline as bl
