@@ -575,7 +575,8 @@ class Cascade:
 def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, objects: np.ndarray,
               background: np.ndarray, *, exit_budget: float = EXIT_BUDGET, shift: float = 1.0,
               scale: float = 1.1, contrast_gate: bool = True,
-              random_state: RandomState = None) -> Cascade:
+              random_state: RandomState = None,
+              background_leaves: np.ndarray | None = None) -> Cascade:
     """Calibrate the early exit of a grown forest.
 
     Parameters
@@ -597,6 +598,9 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
         Calibrate the contrast gate (only meaningful with contrast-normalised features).
     random_state : None, int, SeedSequence or generator
         Seeds the misaligned copies.
+    background_leaves : ndarray of float32, shape (M, T), optional
+        ``leaf_scores(background)``, when the caller already knows it (the fit reads it off the
+        bins the trees were grown on, without computing the background's feature values again).
 
     Examples
     --------
@@ -614,7 +618,11 @@ def calibrate(leaf_scores: Callable[[np.ndarray], np.ndarray], mode: str, object
     1.0
     """
     share = float(exit_budget)
-    bg_leaf = leaf_scores(background)
+    bg_leaf = leaf_scores(background) if background_leaves is None else \
+        np.asarray(background_leaves, dtype=np.float32)
+    if len(bg_leaf) != len(background):
+        raise ValueError(f"background_leaves holds {len(bg_leaf)} rows for {len(background)} "
+                         "background patches")
     n_trees = bg_leaf.shape[1]
     # leaf values once; running scores in any tree order are their cumulative sums
     bg_running = np.cumsum(bg_leaf, axis=1, dtype=np.float64)

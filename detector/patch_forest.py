@@ -23,8 +23,9 @@ from detector import features as _features
 from detector.features import CHOICES as CHANNEL_CHOICES
 from detector.errors import InputError
 from detector.cascade import EXIT_BUDGET, calibrate, calibration_count
-from detector.forest import (GROWERS, MAX_DEPTH, MODES, bin_columns, final_score, grow_forest,
-                             quantile_cuts, seed_sequence, thresholds_from_bins, worker_count)
+from detector.forest import (GROWERS, MAX_DEPTH, MODES, bin_columns, final_score,
+                             forest_leaf_scores, grow_forest, quantile_cuts, seed_sequence,
+                             thresholds_from_bins, worker_count)
 from detector.model import Model, library_versions, training_date
 
 __all__ = ["PatchForest", "BinnedPool", "check_patches", "NotFitted"]
@@ -307,6 +308,14 @@ class PatchForest:
             weight_trim=float(self.weight_trim) if self.mode == "boosted" else 0.0,
             random_state=forest_ss, progress=progress, n_jobs=self.n_jobs, grower=grower,
         )
+        background_leaves = None
+        if self.max_bins is not None:
+            # the background's leaf values, read off the bins the trees were grown on (a value is
+            # <= cuts[f, k] exactly when its bin is <= k, and a padding node's two sides hold the
+            # same leaves): calibrate need not compute the background's feature values again
+            bin_used, bin_forest = forest.reindex()
+            background_leaves = forest_leaf_scores(
+                bin_forest, values[bin_used][:, grow_y == 0].T)
         del values
         if self.max_bins is not None:
             forest = thresholds_from_bins(forest, cuts)
@@ -323,7 +332,8 @@ class PatchForest:
         cascade = calibrate(grown_model.leaf_scores, self.mode, patches[held],
                             grow_patches[grow_y == 0], exit_budget=float(self.exit_budget),
                             shift=float(self.exit_shift), scale=float(self.exit_scale),
-                            contrast_gate=bool(self.normalize), random_state=exit_ss)
+                            contrast_gate=bool(self.normalize), random_state=exit_ss,
+                            background_leaves=background_leaves)
         order = cascade.order
         model = Model(
             window=(width, height), features=pool[used], node_features=small.node_features[order],

@@ -246,3 +246,60 @@ def test_caller_metadata_reaches_the_model_file(tmp_path):
     back = load_model(tmp_path / "m.npz")
     assert back.metadata["bank_sha256"] == digest and back.margin == 0.1
     assert f"bank sha256 {digest[:12]}" in back.summary()[-1]
+
+
+@pytest.mark.parametrize("mode,grower,channels,mined", [
+    ("boosted", "histogram", "gradient", False), ("bagged", "histogram", "grey", False),
+    ("boosted", "sklearn", "grey", False), ("boosted", "histogram", "gradient", True)])
+def test_background_leaves_read_off_the_bins_are_the_models_own(monkeypatch, mode, grower,
+                                                                channels, mined):
+    """The fit hands calibrate the background's leaf values read off the bins it grew on (bin
+    <= k exactly when value <= cuts[f, k]); they must be what the grown model's trees give the
+    background patches from their feature values, tree for tree. ``mined``: bins of patches
+    added to a BinnedPool with the first bank's cuts (as hard-negative mining adds them), where a
+    value may fall exactly on a cut."""
+    import detector.patch_forest as classifier
+    from detector.classifier import BinnedPool
+
+    seen = []
+    calibrate = classifier.calibrate
+
+    def checked(leaf_scores, mode_, objects, background, **kw):
+        given = kw["background_leaves"]
+        assert given is not None and given.shape == (len(background), leaf_scores(objects[:1]).shape[1])
+        np.testing.assert_array_equal(given, leaf_scores(background))
+        seen.append(len(background))
+        return calibrate(leaf_scores, mode_, objects, background, **kw)
+
+    monkeypatch.setattr(classifier, "calibrate", checked)
+    patches, y = _patches(seed=11)
+    kw = dict(n_trees=12, pool=300, mode=mode, random_state=4, channels=channels, grower=grower)
+    binned = None
+    if mined:
+        binned = BinnedPool(kw, patches, y)
+        new, _ = _patches(n_objects=0, n_background=30, seed=12)
+        binned.extend(new)
+        patches, y = np.concatenate([patches, new]), np.r_[y, np.zeros(30, int)]
+    PatchClassifier(**kw).fit(patches, y, binned=binned)
+    assert seen == [int((y == 0).sum())]   # every background patch grows (none is held out)
+
+
+def test_calibration_computes_background_leaves_itself_when_not_given():
+    """Without ``background_leaves`` calibrate evaluates the trees on the background itself,
+    and the cascade is the same as with them given."""
+    from detector.cascade import calibrate
+
+    fitted = PatchClassifier(n_trees=10, pool=200, random_state=1).fit(*_patches(seed=13))
+    model = fitted.model_
+    patches, y = _patches(seed=14)
+    objects, background = patches[y == 1][:20], patches[y == 0]
+    plain = calibrate(model.leaf_scores, "boosted", objects, background, random_state=0)
+    given = calibrate(model.leaf_scores, "boosted", objects, background, random_state=0,
+                      background_leaves=model.leaf_scores(background))
+    np.testing.assert_array_equal(plain.order, given.order)
+    np.testing.assert_array_equal(plain.exit_thresholds, given.exit_thresholds)
+    np.testing.assert_array_equal(plain.exit_table, given.exit_table)
+    assert plain.min_sigma == given.min_sigma and plain.temperature == given.temperature
+    with pytest.raises(ValueError, match="background_leaves holds 3 rows for 60"):
+        calibrate(model.leaf_scores, "boosted", objects, background, random_state=0,
+                  background_leaves=model.leaf_scores(background[:3]))
