@@ -302,7 +302,7 @@ def test_calibrate_exit_without_objects_never_exits():
 # binned growing
 
 
-@pytest.mark.parametrize("max_bins", [2, 3, 16, 256])
+@pytest.mark.parametrize("max_bins", [2, 3, 16, 100, 256])
 def test_binning_kernel_equals_its_numpy_twin(max_bins):
     X, _ = _data(n=700, f=9, seed=max_bins)
     X[:, 2] = np.round(X[:, 2])  # few distinct values
@@ -318,6 +318,9 @@ def test_binning_kernel_equals_its_numpy_twin(max_bins):
         b = bin_columns_numpy(probe.copy(), cuts, n_cuts)
         np.testing.assert_array_equal(a, b)
     assert a.max() <= max_bins - 1
+    # cuts padded wider than quantile_cuts pads them (the kernel's step loop for any width)
+    wide = np.pad(cuts, ((0, 0), (0, 512 - cuts.shape[1])), constant_values=np.inf)
+    np.testing.assert_array_equal(bin_columns(probe.copy(order="F"), wide, n_cuts), b)
 
 
 @settings(max_examples=40, deadline=None)

@@ -110,9 +110,14 @@ def quantile_cuts(X, max_bins: int = 256, sample_rows: int = 4096, random_state=
     low = np.zeros((n_features, max_bins - 1), np.float32)
     high = np.zeros((n_features, max_bins - 1), np.float32)
     n_cuts = np.zeros(n_features, np.int32)
+    # the sampled rows of a block of columns, one column per row: from a Fortran-ordered X (the
+    # pool's values, columns contiguous) np.take gathers them 8 times faster than fancy indexing
+    # through the transpose (10 against 82 ms for 4,096 x 2,048 values)
+    columns = X.T if X.flags.f_contiguous else None
     for a in range(0, n_features, block):
         b = min(n_features, a + block)
-        sample = np.ascontiguousarray(X[rows, a:b].T)
+        sample = np.take(columns[a:b], rows, axis=1) if columns is not None \
+            else np.ascontiguousarray(X[rows, a:b].T)
         sample.sort(axis=1)
         _cut_pairs_kernel(sample, int(max_bins), low[a:b], high[a:b], n_cuts[a:b])
     filled = np.arange(max_bins - 1)[None, :] < n_cuts[:, None]
@@ -141,8 +146,44 @@ def quantile_cuts_numpy(X, max_bins: int = 256, sample_rows: int = 4096, random_
     return cuts, n_cuts
 
 
-#: Rows searched together by the binning kernel: their independent searches overlap in the CPU.
-BIN_ROWS = 256
+@kernel(cache=True, nogil=True, inline="always")
+def _search_row(c, row, top):
+    """Replace every value of ``row`` by the number of entries of the sorted, ``+inf``-padded
+    ``c`` below it: a branch-free binary search of halving steps ``top, top / 2, .., 1`` (``top``
+    is half of ``c``'s power-of-two length), four values at a time so that their independent
+    searches overlap in the CPU."""
+    n = row.shape[0]
+    r = 0
+    while r + 4 <= n:
+        x0 = row[r]
+        x1 = row[r + 1]
+        x2 = row[r + 2]
+        x3 = row[r + 3]
+        b0 = 0
+        b1 = 0
+        b2 = 0
+        b3 = 0
+        h = top
+        while h > 0:
+            b0 += h if c[b0 + h - 1] < x0 else 0
+            b1 += h if c[b1 + h - 1] < x1 else 0
+            b2 += h if c[b2 + h - 1] < x2 else 0
+            b3 += h if c[b3 + h - 1] < x3 else 0
+            h >>= 1
+        row[r] = b0
+        row[r + 1] = b1
+        row[r + 2] = b2
+        row[r + 3] = b3
+        r += 4
+    while r < n:
+        x = row[r]
+        b = 0
+        h = top
+        while h > 0:
+            b += h if c[b + h - 1] < x else 0
+            h >>= 1
+        row[r] = b
+        r += 1
 
 
 @kernel(cache=True, nogil=True)
@@ -150,27 +191,33 @@ def _bin_columns_kernel(columns, cuts, start, stop):
     """Replace columns[f, i] by the number of cuts[f] below it, for f in start..stop.
 
     Branch-free binary search over the ``+inf``-padded row of cuts, whose length ``W`` is a power
-    of two: ``log2(W)`` halving steps, each a ``select``; the steps run over ``BIN_ROWS`` rows at a
-    time so that independent searches overlap (about 3 times faster than one row after another).
-    NaN compares false and becomes bin 0; callers check finiteness first.
+    of two (:func:`_search_row`). The first step is a constant for each possible ``W`` (2 to
+    256), so that the compiler unrolls the steps and drops the negative-index checks: 1.8 times
+    faster than a loop over a run-time step, with the same bins (a one-off timing on 2,048 x
+    5,666 float32 values). NaN compares false and becomes bin 0; callers check finiteness first.
     """
     width = cuts.shape[1]
-    n = columns.shape[1]
-    bases = np.zeros(BIN_ROWS, np.int64)
     for f in range(start, stop):
         c = cuts[f]
         row = columns[f]
-        for a in range(0, n, BIN_ROWS):
-            m = min(BIN_ROWS, n - a)
-            for r in range(m):
-                bases[r] = 0
-            half = width >> 1
-            while half > 0:
-                for r in range(m):
-                    bases[r] += half if c[bases[r] + half - 1] < row[a + r] else 0
-                half >>= 1
-            for r in range(m):
-                row[a + r] = bases[r]
+        if width == 256:
+            _search_row(c, row, 128)
+        elif width == 128:
+            _search_row(c, row, 64)
+        elif width == 64:
+            _search_row(c, row, 32)
+        elif width == 32:
+            _search_row(c, row, 16)
+        elif width == 16:
+            _search_row(c, row, 8)
+        elif width == 8:
+            _search_row(c, row, 4)
+        elif width == 4:
+            _search_row(c, row, 2)
+        elif width == 2:
+            _search_row(c, row, 1)
+        else:
+            _search_row(c, row, width >> 1)
 
 
 def bin_columns(X, cuts, n_cuts=None, n_jobs=None) -> np.ndarray:
