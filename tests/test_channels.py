@@ -334,3 +334,70 @@ def test_bad_channel_files_are_refused(channel_model, tmp_path, change, message)
     np.savez(path, **arrays)
     with pytest.raises(InputError, match=message):
         load_model(path)
+
+
+# ------------------------------------------------------- large levels scanned in bands of rows
+
+@pytest.mark.parametrize("budget", [30_000, 90_000])
+def test_levels_scanned_in_bands_find_what_the_whole_level_finds(channel_model, monkeypatch,
+                                                                 budget):
+    """A level whose tables exceed BAND_BYTES is scanned in bands of rows, each with its own
+    tables (detector.scan.level_bands). The windows, their order, the trees evaluated and every
+    window's box are those of the whole level's scan; the scores are the same up to float64
+    rounding (a band's integral values are smaller, so the rectangle weights multiply other
+    numbers; the window sums themselves are the same integers). The budgets here cut a 200 x 170
+    frame's first levels into several bands."""
+    import detector.scan._engine as engine_module
+
+    gray = render_frame(6, 200, 170).image
+    # every window kept (no exit, threshold 0), then the default exits at a low threshold
+    for kw, least in ((dict(early_exit=False, threshold=0.0), 10_000),
+                      (dict(early_exit=True, threshold=0.05), 30)):
+        kw.update(stride=2, overhang=0.25, scale_step=1.3)
+        monkeypatch.setattr(engine_module, "BAND_BYTES", 64 << 20)
+        whole = every_window(channel_model, **kw)
+        # the plans are made (and kept) on the first look at a frame size
+        assert all(lv.bands is None for lv in whole._levels(gray.shape[::-1]))
+        monkeypatch.setattr(engine_module, "BAND_BYTES", budget)
+        banded = every_window(channel_model, **kw)
+        levels = banded._levels(gray.shape[::-1])
+        cut = [len(lv.bands[1]) for lv in levels if lv.bands is not None]
+        assert len(cut) >= 2 and max(cut) >= 3
+        b1, r1, w1, t1 = whole.candidates(gray)
+        b2, r2, w2, t2 = banded.candidates(gray)
+        assert (w1, t1) == (w2, t2) and len(r1) >= least
+        np.testing.assert_array_equal(b1, b2)
+        np.testing.assert_allclose(r2, r1, rtol=0, atol=1e-9)
+        # the numpy twin on the same bands: the same numbers exactly
+        b3, r3, w3, t3 = banded.candidates(gray, use_numpy=True)
+        assert (w3, t3) == (w2, t2)
+        np.testing.assert_array_equal(b3, b2)
+        np.testing.assert_array_equal(r3, r2)
+
+
+@settings(max_examples=60, deadline=None)
+@given(height=st.integers(30, 400), window=st.integers(4, 40), step=st.integers(1, 5),
+       first=st.integers(0, 6), row_bytes=st.integers(1, 50), budget=st.integers(1, 4000))
+def test_level_bands_cover_every_window_once_with_a_row_of_context(height, window, step, first,
+                                                                   row_bytes, budget):
+    """Every window top lands in exactly one band, in order; every band has the same rows, lies
+    inside the level, and holds its windows with one row above and below them (or the level's
+    edge): the rows a window's gradient reads."""
+    from detector.scan import level_bands
+
+    ys = np.arange(first, height - window + 1, step)
+    got = level_bands(ys, height, window, row_bytes, budget=budget)
+    if got is None:
+        assert (height + 1) * row_bytes <= budget or len(ys) == 0 or \
+            max(4 * (window + 1), budget // row_bytes - 1) >= height
+        return
+    rows, bands = got
+    assert 4 * (window + 1) <= rows < height
+    seen = []
+    for top, a, b in bands:
+        assert 0 <= top and top + rows <= height and a < b
+        inside = ys[a:b]
+        assert inside[0] - 1 >= top or top == 0
+        assert inside[-1] + window + 1 <= top + rows or top + rows == height
+        seen.extend(range(a, b))
+    assert seen == list(range(len(ys)))

@@ -25,7 +25,8 @@ from detector.scan._engine import (MAX_DEFAULT_ENLARGEMENT, MAX_OVERHANG, SCORE_
                                    edge_positions, enlarged_size, final_scores, first_use_order,
                                    frame_integrals, integral_dtype, kernel_cutoff, raw_cutoff,
                                    scale_plan, scales_for, scan_scale_numpy, skipped_sizes_note,
-                                   split_bounds, level_edges, area_shrink_numpy, shrink_level)
+                                   split_bounds, level_edges, area_shrink_numpy, shrink_level,
+                                   BAND_BYTES, level_bands)
 from detector.scan._provenance import (PROVENANCE_FORMAT, PROVENANCE_VERSION, check_same_scan,
                                        check_summary_model, describe_settings, model_differences,
                                        model_record, provenance_of, provenance_path,
@@ -44,5 +45,6 @@ __all__ = [
     "clip_boxes", "scan_scale_numpy", "PROVENANCE_FORMAT", "PROVENANCE_VERSION", "provenance_path",
     "model_record", "scan_record", "write_provenance", "read_provenance", "provenance_of",
     "settings_differences", "model_differences", "check_summary_model", "check_same_scan",
-    "describe_settings", "level_edges", "area_shrink_numpy", "shrink_level",
+    "describe_settings", "level_edges", "area_shrink_numpy", "shrink_level", "BAND_BYTES",
+    "level_bands",
 ]

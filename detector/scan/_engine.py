@@ -376,6 +376,9 @@ class LevelPlan:
     # the level's pixel edges in the frame, along x and y (level_edges), when it shrinks the
     # frame along both; None when it does not (a frame smaller than the window: cv2.resize)
     edges: tuple | None = None
+    # a level too large for BAND_BYTES is scanned in bands of rows: (rows, bands, plan) with
+    # level_bands' rows and bands and the corner plan of a band's tables; None: the whole level
+    bands: tuple | None = None
 
 
 @dataclass
@@ -468,6 +471,53 @@ INT32_PIXELS = (2**31 - 1) // 255
 #: Above that, as uint32 while 255 * pixels < 2**32 (up to 16.8 megapixels: the padded frame of
 #: an 8-megapixel camera picture, say), half the memory of float64 again; float64 beyond.
 UINT32_PIXELS = (2**32 - 1) // 255
+
+
+#: Bytes a pyramid level's integral tables may take before the level is scanned in bands of rows
+#: (:func:`level_bands`): nine tables of a model with gradient channels (4 bytes a cell) and the
+#: squared one (8) come to 44 bytes a pixel of the padded level, so a frame's memory would grow with
+#: its pixels; in bands it is bounded by this much plus the frame itself.
+BAND_BYTES = 64 << 20
+
+
+def level_bands(ys, padded_height: int, window_height: int, row_bytes: int,
+                budget: int | None = None):
+    """Bands of rows a padded pyramid level of ``padded_height`` rows is scanned in, when its
+    integral tables (``row_bytes`` per row of the level) would take more than ``budget`` bytes
+    (:data:`BAND_BYTES`); None when the whole level fits.
+
+    Returns ``(rows, bands)``: every band is an image of ``rows`` consecutive rows of the level,
+    ``bands`` a list of ``(top, first, stop)``: the band's first row in the level and the
+    windows ``ys[first:stop]`` scanned on it. Every band has the same number of rows (the last one
+    starts higher), so one corner plan serves all. A band reaches one row above its first window
+    and one below its last window's bottom row, unless it starts at the level's top or ends at its
+    bottom: the gradient of a row reads the rows above and below, so every row a window covers has
+    the gradient it has in the whole level, and every window sum is the same integer.
+
+    >>> rows, bands = level_bands(np.arange(0, 200, 2), 224, 24, 1000, budget=120_000)
+    >>> rows, bands[:2], bands[-1]   # 119 rows: 94 rows of window tops, a window, 1 row more
+    (119, [(0, 0, 47), (93, 47, 94)], (105, 94, 100))
+    """
+    budget = BAND_BYTES if budget is None else int(budget)
+    ys = np.asarray(ys)
+    if (padded_height + 1) * row_bytes <= budget or len(ys) == 0:
+        return None
+    # rows of a band: as many as the budget holds, but at least four windows' worth, so that the
+    # rows every band computes again (a window and a row above and below) stay a third of the
+    # band or less on very wide levels
+    rows = max(4 * (window_height + 1), budget // max(1, row_bytes) - 1)
+    if rows >= padded_height:
+        return None
+    per_band = rows - window_height - 1  # window tops in a band
+    bands = []
+    first = 0
+    while first < len(ys):
+        start = int(ys[first])
+        stop = int(np.searchsorted(ys, start + per_band, side="left"))
+        top = min(max(start - 1, 0), padded_height - rows)
+        bands.append((top, first, stop))
+        first = stop
+    return rows, bands
 
 
 def integral_dtype(height: int, width: int):
@@ -980,8 +1030,16 @@ class Engine:
                               row * (lh + 2 * pad + 1))
             edges = ((level_edges(iw, lw), level_edges(ih, lh)) if lw <= iw and lh <= ih
                      and (lw, lh) != (iw, ih) else None)
+            from detector.features import N_CHANNELS
+
+            banded = level_bands(ys + pad, lh + 2 * pad, H, row * (4 * N_CHANNELS + 8))
+            bands = None
+            if banded is not None:
+                rows, spans = banded
+                bands = (rows, spans, scale_plan(self.features, self.window, 1.0, row,
+                                                 self.normalize, self.channels, row * (rows + 1)))
             levels.append(LevelPlan(s, (lw, lh), (iw / lw, ih / lh), pad, plan, xs + pad, ys + pad,
-                                    edges))
+                                    edges, bands))
         return levels
 
     def _pyramid_candidates(self, gray, use_numpy: bool = False):
@@ -990,18 +1048,26 @@ class Engine:
         windows are scored at the window's own size, as training scored the patches."""
         import cv2
 
+        from detector.features import N_CHANNELS
+
         gray, up = self._enlarged(gray)
         ih, iw = gray.shape
         levels = self._levels((iw, ih), up)
         windows = sum(len(lv.xs) * len(lv.ys) for lv in levels)
         if not windows:
             return np.zeros((0, 4)), np.zeros(0), 0, 0
-        out_x, out_y, out_s, out_scale = self._work.out(windows)
+        # outputs for the largest kernel call (a level, or a band of one); each call's kept windows
+        # are copied out, so memory does not grow with the frame's windows
+        out_x, out_y, out_s, _ = self._work.out(max(
+            len(lv.xs) * (len(lv.ys) if lv.bands is None
+                          else max(stop - first for _, first, stop in lv.bands[1]))
+            for lv in levels))
         rules = (SIGMA_FLOOR, self.min_var, self.normalize)
         trees_and_exits = (self.node_features, self.split_bounds, self.leaf_values, self.exits,
                            self.cutoff, self.bound)
         scan = scan_scale_numpy if use_numpy else _kernels.scan_scale
-        kept = trees = 0
+        found = []  # (x, y, raw score, level) of the windows kept, call after call
+        trees = 0
         source = None  # the frame's integral image, which every shrunk level is read off
         for i, lv in enumerate(levels):
             level = gray
@@ -1013,18 +1079,33 @@ class Engine:
                 level = cv2.resize(np.ascontiguousarray(gray), lv.size, interpolation=cv2.INTER_AREA)
             if lv.pad:
                 level = self._work.padded(level, lv.pad)
-            if self.channels is None:
-                ii, sq = frame_integrals(level, self._work.tables(level.shape))
-            else:
-                from detector.features import N_CHANNELS
-
-                ii, sq = channel_frame_integrals(level, self._work.tables(level.shape, N_CHANNELS))
-            plan = lv.plan
-            k, t = scan(ii, sq, lv.size[0] + 2 * lv.pad + 1, lv.xs, lv.ys, plan.win, plan.inv_area,
-                        *rules, plan.offsets, plan.weights, plan.counts, plan.consts,
-                        *trees_and_exits, out_x[kept:], out_y[kept:], out_s[kept:])
-            out_scale[kept:kept + k] = i
-            kept, trees = kept + int(k), trees + int(t)
+            row = lv.size[0] + 2 * lv.pad + 1
+            if lv.bands is None:
+                calls = [(0, level, lv.plan, lv.ys)]
+            else:  # bands of rows, each with its own (small) tables: see level_bands
+                rows, spans, band_plan = lv.bands
+                calls = [(top, level[top:top + rows], band_plan, lv.ys[first:stop] - top)
+                         for top, first, stop in spans]
+            for top, image, plan, ys in calls:
+                if self.channels is None:
+                    ii, sq = frame_integrals(image, self._work.tables(image.shape))
+                else:
+                    ii, sq = channel_frame_integrals(image,
+                                                     self._work.tables(image.shape, N_CHANNELS))
+                k, t = scan(ii, sq, row, lv.xs, ys, plan.win, plan.inv_area, *rules,
+                            plan.offsets, plan.weights, plan.counts, plan.consts,
+                            *trees_and_exits, out_x, out_y, out_s)
+                k = int(k)
+                trees += int(t)
+                if k:
+                    found.append((out_x[:k].copy(), out_y[:k] + top, out_s[:k].copy(),
+                                  np.full(k, i, np.int64)))
+        if found:
+            out_x, out_y, out_s, out_scale = (np.concatenate(parts) for parts in zip(*found))
+        else:
+            out_x = out_y = out_scale = np.zeros(0, np.int64)
+            out_s = np.zeros(0)
+        kept = len(out_s)
         scores = detection_scores(self.model, out_s[:kept])
         keep = np.flatnonzero(scores >= self.threshold)
         index = out_scale[keep]
