@@ -308,6 +308,7 @@ class PatchForest:
             weight_trim=float(self.weight_trim) if self.mode == "boosted" else 0.0,
             random_state=forest_ss, progress=progress, n_jobs=self.n_jobs, grower=grower,
         )
+        grown = time.perf_counter()
         background_leaves = None
         if self.max_bins is not None:
             # the background's leaf values, read off the bins the trees were grown on (a value is
@@ -319,7 +320,6 @@ class PatchForest:
         del values
         if self.max_bins is not None:
             forest = thresholds_from_bins(forest, cuts)
-        grown = time.perf_counter()
         used, small = forest.reindex()
 
         grown_model = Model(
