@@ -30,7 +30,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from detector._validation import as_generator
-from detector._cascade_kernels import exit_earlier, greedy_order
+from detector._cascade_kernels import best_raise, exit_earlier, greedy_order
 from detector.forest import final_score, float32_thresholds
 from detector.geometry import crop_region
 
@@ -225,7 +225,7 @@ EXIT_SEARCH_TREES = 64
 
 def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = None,
               exit_budget: float = EXIT_BUDGET, lost: ArrayLike | None = None,
-              search_trees: int = EXIT_SEARCH_TREES) -> np.ndarray:
+              search_trees: int = EXIT_SEARCH_TREES, use_numpy: bool = False) -> np.ndarray:
     """Which calibration objects the early exit keeps (a boolean mask): all but at most
     ``floor(exit_budget * N)``, given up where that lets background windows exit soonest.
 
@@ -253,6 +253,8 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
     lost : boolean ndarray (N,), optional
         Objects lost anyway; never kept.
     search_trees : int
+    use_numpy : bool
+        Search with the plain-numpy twin of the compiled step (:func:`_best_raise_numpy`).
 
     Examples
     --------
@@ -302,36 +304,55 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
     front = min(t, int(search_trees))
     exits = float32_thresholds(minima(keep))
     below = b < exits.astype(np.float64)[None, :]
-    first = np.where(below.any(axis=1), np.argmax(below, axis=1), t)  # tree each window exits at
+    # the tree each window exits after; one that never exits evaluates all t trees, as one that
+    # exits after the last tree does (counting it as t overstated every saving it took part in
+    # by one tree, against trees_evaluated)
+    first = np.where(below.any(axis=1), np.argmax(below, axis=1), t - 1)
+    low_thr = float32_thresholds(low_vals)  # each candidate minimum as the exit it would give
     while budget > 0 and keep.sum() > 1:
-        best = None
+        # the object each tree's lowest kept score belongs to (the first kept one in sorted
+        # order): giving up a group moves only the exits of the trees whose holder is in it
+        holder = low[keep[low].argmax(axis=0), cols]
         at_min = (r[:, :front] == minima(keep)[None, :front]) & keep[:, None]  # who holds
         sizes = at_min.sum(axis=0)                                              # each exit down
-        tried = set()
-        for k in np.flatnonzero((sizes <= budget) & (sizes < keep.sum())):
-            group = np.flatnonzero(at_min[:, k])
-            key = tuple(group.tolist())
-            if key in tried:
-                continue
-            tried.add(key)
-            trial = keep.copy()
-            trial[group] = False
-            new = float32_thresholds(minima(trial))
-            changed = np.flatnonzero(new != exits)
-            if not len(changed):
-                continue
-            bounds = new[changed].astype(np.float64)
-            saved = float(exit_earlier(b, first, changed, bounds, None))
-            gain = saved / len(group)
-            if saved > 0 and (best is None or gain > best[0]):
-                best = (gain, group, new, changed, bounds)
-        if best is None:
+        candidates = np.flatnonzero((sizes <= budget) & (sizes < keep.sum()))
+        search = _best_raise_numpy if use_numpy else best_raise
+        i, _ = search(at_min, candidates, keep, holder, low, low_thr, exits, b, first)
+        if i < 0:
             break
-        _, group, exits, changed, bounds = best
-        exit_earlier(b, first, changed, bounds, first)
+        group = np.flatnonzero(at_min[:, candidates[i]])
         keep[group] = False
+        new = float32_thresholds(minima(keep))
+        changed = np.flatnonzero(new != exits)
+        exit_earlier(b, first, changed, new[changed].astype(np.float64), first)
+        exits = new
         budget -= len(group)
     return keep if evaluations(keep) < evaluations(plain) else plain
+
+
+def _best_raise_numpy(at_min, candidates, keep, holder, low, low_thr, exits, b, first):
+    """Plain-numpy twin of :func:`detector._cascade_kernels.best_raise` (the same groups in the
+    same order, the same savings; tests/test_early_exit.py holds the two equal)."""
+    best, best_gain, best_saved, tried = -1, 0.0, 0.0, set()
+    for i, k in enumerate(candidates):
+        group = np.flatnonzero(at_min[:, k])
+        key = tuple(group.tolist())
+        if key in tried:
+            continue
+        tried.add(key)
+        trial = keep.copy()
+        trial[group] = False
+        moved = np.flatnonzero(~trial[holder])
+        new = low_thr[trial[low[:, moved]].argmax(axis=0), moved]
+        differs = new != exits[moved]
+        changed = moved[differs]
+        if not len(changed):
+            continue
+        saved = exit_earlier.py_func(b, first, changed, new[differs].astype(np.float64), None)
+        gain = saved / len(group)
+        if saved > 0 and (best < 0 or gain > best_gain):
+            best, best_gain, best_saved = i, gain, saved
+    return best, best_saved
 
 
 #: Score thresholds that get exit thresholds of their own (see :func:`calibrate_exit_table`).

@@ -96,8 +96,8 @@ MUTATIONS = (
     Mutation(
         "E3", "early exit: the any-threshold exits calibrated only on the objects scoring 0.5 or more",
         "detector/cascade.py",
-        "running[exit_kept(running, bg_running[past_gate], recall, lost)].min(axis=0))",
-        "running[at][exit_kept(running[at], bg_running[past_gate], recall, lost[at])].min(axis=0))",
+        "running[exit_kept(running, bg_running[past_gate], share, lost)].min(axis=0))",
+        "running[at][exit_kept(running[at], bg_running[past_gate], share, lost[at])].min(axis=0))",
         ("tests/test_early_exit.py",)),
     Mutation(
         "E4", "early exit: a level's exit row keeps only the objects scoring above the level, not at it",

@@ -189,6 +189,66 @@ def test_exit_kept_stays_within_budget_and_beats_the_plain_rule(n, t, n_bg, exit
         assert spend[0] <= spend[1]
 
 
+def _exit_kept_by_brute_force(r, bg, exit_budget, lost, search_trees=64):
+    """exit_kept's greedy search spelt out: every trial's exits from the minimum over all kept
+    objects, every saving by counting the background's tree evaluations both ways."""
+    n, t = r.shape
+    lost = lost.copy()
+    if lost.all():
+        lost[:] = False
+    plain = exit_kept(r, None, exit_budget, lost)
+    if len(bg) == 0:
+        return plain
+    spent = lambda mask: trees_evaluated(bg, float32_thresholds(r[mask].min(axis=0))).sum()
+    keep = ~lost
+    budget = min(int(np.floor(exit_budget * n + 1e-9)), n - 1) - int(lost.sum())
+    front = min(t, search_trees)
+    while budget > 0 and keep.sum() > 1:
+        at_min = (r[:, :front] == r[keep].min(axis=0)[:front]) & keep[:, None]
+        sizes = at_min.sum(axis=0)
+        best, tried = None, []
+        for k in range(front):
+            if not (sizes[k] <= budget and sizes[k] < keep.sum()):
+                continue
+            group = np.flatnonzero(at_min[:, k]).tolist()
+            if group in tried:
+                continue
+            tried.append(group)
+            trial = keep.copy()
+            trial[group] = False
+            saved = spent(keep) - spent(trial)
+            if saved > 0 and (best is None or saved / len(group) > best[0]):
+                best = (saved / len(group), group)
+        if best is None:
+            break
+        keep[best[1]] = False
+        budget -= len(best[1])
+    return keep if spent(keep) < spent(plain) else plain
+
+
+@given(st.integers(1, 60), st.integers(1, 8), st.integers(0, 40), st.floats(0.0, 0.5),
+       st.integers(0, 6), st.integers(1, 4), st.integers(0, 2**32 - 1))
+@settings(max_examples=150, deadline=None)
+def test_exit_kept_equals_its_search_by_brute_force(n, t, n_bg, exit_budget, n_lost, levels,
+                                                    seed):
+    """The search keeps each tree's lowest scores sorted and recomputes only the exits whose
+    holder a trial gives up (compiled: cascade's best_raise kernel; and its numpy twin); the
+    brute-force search recomputes every exit and counts every saving. Few leaf values (ties
+    everywhere) and a search window narrower than the trees included."""
+    rng = np.random.default_rng(seed)
+    r = _leaf_sums(rng, n, t, levels)
+    bg = _leaf_sums(rng, n_bg, t, levels) - 1.0
+    lost = np.zeros(n, bool)
+    lost[rng.choice(n, min(n_lost, n - 1), replace=False)] = True
+    for search in (64, 3):
+        expected = _exit_kept_by_brute_force(r, bg, exit_budget, lost, search)
+        # the compiled search step and its numpy twin
+        for use_numpy in (False, True):
+            np.testing.assert_array_equal(
+                exit_kept(r, bg, exit_budget, lost, search_trees=search, use_numpy=use_numpy),
+                expected)
+
+
 def test_exit_kept_gives_up_a_tied_group_when_that_pays():
     """Hand-worked: objects 0 and 1 tie at the lowest score after tree 0 (0), object 2 alone holds
     tree 1's exit down. Budget 2 of 6 (exit budget 1/3): giving up the pair lifts exit 0 from 0 to
