@@ -18,7 +18,9 @@ Exit status: 0 when every mutation is caught, 1 when one survives, 2 when one co
 Mutation testing is common practice (DeMillo, Lipton and Sayward, "Hints on test data selection",
 IEEE Computer 1978). M2, M3, M5, M6 and M7 are the mutations an audit of this project found the
 suite blind to (project issue 22); E1-E4 are one-line slips in the early-exit calibration and the
-scan's exits, G1-G3 in the contrast gate. Where a mutation runs a ``-k`` selection of
+scan's exits, G1-G3 in the contrast gate; X1, B1, C1 and S1 in the exit search's count, the
+banded scan, the calibration's background leaves and the binning search (S1 survived until the
+binning test put values exactly on cuts in every lane of the four-at-a-time search). Where a mutation runs a ``-k`` selection of
 tests/test_scan.py, the rest of that file is left out: it takes minutes in a fresh copy, and one
 of its tests counts detections of a tiny trained model that vary between library versions.
 """
@@ -123,6 +125,30 @@ MUTATIONS = (
         "var = (flat * flat).sum(axis=1) / area - mean * mean",
         "var = ((flat * flat).sum(axis=1) - area * mean * mean) / (area - 1)",
         ("tests/test_early_exit.py",)),
+    Mutation(
+        "X1", "early exit: a background window that never exits counted as leaving after tree T",
+        "detector/cascade.py",
+        "first = np.where(below.any(axis=1), np.argmax(below, axis=1), t - 1)",
+        "first = np.where(below.any(axis=1), np.argmax(below, axis=1), t)",
+        ("tests/test_early_exit.py", "-k", "exit_kept")),
+    Mutation(
+        "B1", "banded scan: a band starts at its first window's row, without the row of context",
+        "detector/scan/_engine.py",
+        "top = min(max(start - 1, 0), padded_height - rows)",
+        "top = min(max(start, 0), padded_height - rows)",
+        ("tests/test_channels.py", "-k", "band")),
+    Mutation(
+        "C1", "calibration: the background leaves read with the bins one step off",
+        "detector/patch_forest.py",
+        "bin_forest, values[bin_used][:, grow_y == 0].T)",
+        "bin_forest, values[bin_used][:, grow_y == 0].T.astype(np.int16) + 1)",
+        ("tests/test_classifier.py", "-k", "background_leaves")),
+    Mutation(
+        "S1", "binning: a value equal to a cut counted above it",
+        "detector/forest/_binning.py",
+        "b0 += h if c[b0 + h - 1] < x0 else 0",
+        "b0 += h if c[b0 + h - 1] <= x0 else 0",
+        ("tests/test_forest.py", "-k", "bin")),
 )
 
 

@@ -314,7 +314,12 @@ def test_binning_kernel_equals_its_numpy_twin(max_bins):
     np.testing.assert_array_equal(cuts, cuts2)
     np.testing.assert_array_equal(n_cuts, n_cuts2)
     assert (n_cuts <= max_bins - 1).all() and n_cuts[5] == 0
-    probe = np.concatenate([X, cuts[:, :1].T.clip(-9, 9), np.nextafter(cuts[:, :1].T, np.inf).clip(-9, 9)])
+    # values exactly on cuts (bin = cuts strictly below) and just above, in rows 700-706: the
+    # kernel searches four rows at a time, so they fall in each of the four lanes and in the tail
+    on_cuts = [cuts[:, k % cuts.shape[1]] for k in range(5)]
+    probe = np.concatenate([X, np.stack(on_cuts).clip(-9, 9),
+                            np.nextafter(cuts[:, :2].T, np.inf).clip(-9, 9)]).astype(np.float32)
+    assert len(probe) - len(X) >= 5 and len(X) % 4 == 0
     for jobs in (1, 2):
         a = bin_columns(probe.copy(order="F"), cuts, n_cuts, n_jobs=jobs)
         b = bin_columns_numpy(probe.copy(), cuts, n_cuts)
