@@ -1095,6 +1095,9 @@ class Engine:
                 k, t = scan(ii, sq, row, lv.xs, ys, plan.win, plan.inv_area, *rules,
                             plan.offsets, plan.weights, plan.counts, plan.consts,
                             *trees_and_exits, out_x, out_y, out_s)
+                # the tables are views of the work space's buffers: let them go, so that a later
+                # call needing larger buffers frees these before it allocates those
+                ii = sq = None
                 k = int(k)
                 trees += int(t)
                 if k:
