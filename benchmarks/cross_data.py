@@ -45,7 +45,7 @@ through ``detector.scan.Engine`` with the scan command's defaults at threshold 0
 detections are checked against the command's file).
 
 Training uses ``--jobs`` threads (default 2) for every method that can use them: patchwood's
-``train --jobs`` (the model does not depend on it) and the gradient boosting's OpenMP threads; the
+``harvest --jobs`` and ``train --jobs`` (the bank and the model do not depend on it) and the gradient boosting's OpenMP threads; the
 linear SVM uses one. This machine is shared and its speed drifts: the seconds are for scale,
 the AP figures do not depend on them.
 
@@ -154,7 +154,7 @@ def run_patchwood(method: str, root: Path, work: Path, test_frames: dict, truth:
     bank, model, dets = work / "bank.npz", work / "model.npz", work / "detections.csv"
     log = work / "log.txt"
     harvest = [*pw, "harvest", str(train_dir / "images"), str(train_dir / "labels.csv"),
-               "--out", str(bank), "--seed", str(args.seed)]
+               "--out", str(bank), "--seed", str(args.seed), "--jobs", str(args.jobs)]
     train = [*pw, "train", str(bank), "--out", str(model), "--seed", str(args.seed),
              "--jobs", str(args.jobs)]
     scan = [*pw, "scan", str(model), str(test_dir / "images"), "--out", str(dets),

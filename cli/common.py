@@ -115,7 +115,7 @@ def harvest_option(name: str):
 
 def jobs_option():
     """``--jobs``, declared once for every command that takes it: one meaning, one default."""
-    return typer.Option(1, "--jobs", min=1, max=MAX_JOBS, help="Workers: the threads that grow trees and the processes that scan, whichever this command runs (results do not depend on it).")
+    return typer.Option(1, "--jobs", min=1, max=MAX_JOBS, help="Workers: the threads that read images and cut patches or grow trees, and the processes that scan, whichever this command runs (results do not depend on it).")
 
 
 def channels_option():

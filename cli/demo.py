@@ -67,7 +67,8 @@ def demo(
     with progress_bar("      harvesting", len(train_labels), "images") as update:
         # hex nuts look the same every 60 degrees: copies turned by up to 30 degrees cover them
         bank = harvest(train_dir / "images", train_labels.items, seed=seed, rotate=30.0, copies=8,
-                       jitter=0.08, negatives_per_image=100, labels_path=train_dir / "labels.csv", progress=update)
+                       jitter=0.08, negatives_per_image=100, labels_path=train_dir / "labels.csv", progress=update,
+                       jobs=jobs)
     bank_path = out / "bank.npz"
     save_bank(bank_path, bank)
     c = bank.counts()

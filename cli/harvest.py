@@ -9,7 +9,7 @@ import typer
 
 from detector.errors import InputError
 
-from cli.common import (harvest_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
+from cli.common import (harvest_option, jobs_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
 from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
@@ -64,6 +64,7 @@ def harvest(
     background_iou: float = harvest_option("background_iou"),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed gives the same bank."),
     skip_missing: bool = typer.Option(False, "--skip-missing", help="Harvest past labelled images that are not in IMAGES_DIR, naming them (without it the first one stops the harvest)."),
+    jobs: int = jobs_option(),
     quiet: bool = quiet_option(),
     force: bool = typer.Option(False, "--force", help="Replace an existing bank file."),
 ) -> None:
@@ -98,7 +99,7 @@ def harvest(
                             contrast=contrast, negatives_per_image=negatives_per_image,
                             near_negatives=near_negatives,
                             max_background_iou=background_iou, seed=seed, labels_path=labels,
-                            progress=update)
+                            progress=update, jobs=jobs)
     W, H = bank.window
     how = "inferred from the median box aspect ratio, shorter side 24" if size is None else "from --window"
     echo(f"window: {W}x{H} ({how})")

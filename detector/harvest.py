@@ -174,22 +174,21 @@ def _adjust(patch: np.ndarray, gain: float, bias: float) -> np.ndarray:
     return np.clip(patch.astype(np.float32) * gain + bias, 0, 255).round().astype(np.uint8)
 
 
-def sample_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
-                      count: int, rng: np.random.Generator, max_iou: float = 0.3,
-                      max_tries_factor: int = 20) -> tuple[np.ndarray, np.ndarray]:
-    """Random background windows from one image whose reported box overlaps no labelled box.
-
-    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)`` with ``n <= count``.
-    """
+def plan_background(shape, gt_boxes, window: tuple[int, int], margin: float, count: int,
+                    rng: np.random.Generator, max_iou: float = 0.3,
+                    max_tries_factor: int = 20) -> tuple[list, np.ndarray]:
+    """The random background windows :func:`sample_background` cuts from an image of ``shape``
+    (rows, columns): ``([(center, size), ...], boxes (n,4) float32)``. The draws depend on the
+    labels and the image's size only, not on its pixels."""
     W, H = window
-    ih, iw = gray.shape
+    ih, iw = shape
     max_scale = min(iw / W, ih / H)
     if max_scale < 1 or count <= 0:
-        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
-    patches, boxes = [], []
+        return [], np.zeros((0, 4), np.float32)
+    regions, boxes = [], []
     gt = np.asarray(gt_boxes, dtype=np.float64).reshape(-1, 4)
     tries = 0
-    while len(patches) < count and tries < count * max_tries_factor:
+    while len(regions) < count and tries < count * max_tries_factor:
         tries += 1
         s = math.exp(rng.uniform(0.0, math.log(max_scale))) if max_scale > 1 else 1.0
         ww, wh = W * s, H * s
@@ -198,27 +197,39 @@ def sample_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margi
         obj = np.asarray(window_box_to_object_box(x, y, ww, wh, margin), np.float32)
         if len(gt) and np.max(iou(obj[None], gt)) >= max_iou:  # the box as the bank stores it
             continue
-        patches.append(crop_region(gray, (x + ww / 2, y + wh / 2), (ww, wh), window))
+        regions.append(((x + ww / 2, y + wh / 2), (ww, wh)))
         boxes.append(obj)
-    if not patches:
-        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
-    return np.stack(patches), np.asarray(boxes, np.float32)
+    return regions, np.asarray(boxes, np.float32).reshape(-1, 4)
 
 
-def sample_near_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
-                           per_box: int, rng: np.random.Generator,
-                           max_iou: float = 0.3) -> tuple[np.ndarray, np.ndarray]:
-    """Background windows close to the labelled boxes, where a detector goes wrong most: windows
-    much smaller than a box inside it (a hole or a corner of the object) and windows much larger
-    than it (the object with too much around it). Kept only when the reported box has IoU below
-    ``max_iou`` with every labelled box.
-
-    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)``.
-    """
+def _cut(gray, regions, window) -> np.ndarray:
     W, H = window
-    ih, iw = gray.shape
+    if not regions:
+        return np.zeros((0, H, W), np.uint8)
+    return np.stack([crop_region(gray, center, size, window) for center, size in regions])
+
+
+def sample_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
+                      count: int, rng: np.random.Generator, max_iou: float = 0.3,
+                      max_tries_factor: int = 20) -> tuple[np.ndarray, np.ndarray]:
+    """Random background windows from one image whose reported box overlaps no labelled box.
+
+    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)`` with ``n <= count``.
+    """
+    regions, boxes = plan_background(gray.shape, gt_boxes, window, margin, count, rng, max_iou,
+                                     max_tries_factor)
+    return _cut(gray, regions, window), boxes
+
+
+def plan_near_background(shape, gt_boxes, window: tuple[int, int], margin: float, per_box: int,
+                         rng: np.random.Generator, max_iou: float = 0.3) -> tuple[list, np.ndarray]:
+    """The windows :func:`sample_near_background` cuts from an image of ``shape`` (rows,
+    columns): ``([(center, size), ...], boxes (n,4) float32)``, drawn from the labels and the
+    image's size only."""
+    W, H = window
+    ih, iw = shape
     gt = np.asarray(gt_boxes, dtype=np.float64).reshape(-1, 4)
-    patches, boxes = [], []
+    regions, boxes = [], []
     for x, y, bw, bh in gt:
         for k in range(per_box):
             # alternate: smaller inside, larger around
@@ -232,11 +243,24 @@ def sample_near_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], 
                 continue
             if np.max(iou(obj[None], gt)) >= max_iou:  # the box as the bank stores it
                 continue
-            patches.append(crop_region(gray, (cx, cy), (ww, wh), window))
+            regions.append(((cx, cy), (ww, wh)))
             boxes.append(obj)
-    if not patches:
-        return np.zeros((0, H, W), np.uint8), np.zeros((0, 4), np.float32)
-    return np.stack(patches), np.asarray(boxes, np.float32)
+    return regions, np.asarray(boxes, np.float32).reshape(-1, 4)
+
+
+def sample_near_background(gray: np.ndarray, gt_boxes, window: tuple[int, int], margin: float,
+                           per_box: int, rng: np.random.Generator,
+                           max_iou: float = 0.3) -> tuple[np.ndarray, np.ndarray]:
+    """Background windows close to the labelled boxes, where a detector goes wrong most: windows
+    much smaller than a box inside it (a hole or a corner of the object) and windows much larger
+    than it (the object with too much around it). Kept only when the reported box has IoU below
+    ``max_iou`` with every labelled box.
+
+    Returns ``(patches (n,H,W) uint8, boxes (n,4) float32)``.
+    """
+    regions, boxes = plan_near_background(gray.shape, gt_boxes, window, margin, per_box, rng,
+                                          max_iou)
+    return _cut(gray, regions, window), boxes
 
 
 def harvest(
@@ -257,6 +281,7 @@ def harvest(
     seed: int = 0,
     labels_path=None,
     progress=None,
+    jobs: int = 1,
 ) -> PatchBank:
     """Cut object and background patches from labelled images.
 
@@ -288,6 +313,8 @@ def harvest(
         A background window's reported box must have IoU below this with every labelled box.
     seed : int
         Makes the harvest reproducible.
+    jobs : int, default=1
+        Threads that read the images and cut the patches; the bank does not depend on it.
 
     Returns
     -------
@@ -324,8 +351,12 @@ def harvest(
     rng = as_generator(seed)
     patches, labels, kinds, index, boxes, aug = [], [], [], [], [], []
     names = [it.image for it in items]
-    for i, it in enumerate(items):
-        gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
+
+    def plan(i, it, shape):
+        """Every patch of image i: what to cut ((center, size, angle, mirror, gain, bias) or
+        None for an adjustment-free cut) and its bank rows, drawn from ``rng`` in the same order
+        whatever ``jobs``: the draws need the labels and the image's size, never its pixels."""
+        cuts, rows = [], []
         # background windows stay off every labelled box, ignore regions included
         for box in objects(it):
             x, y, bw, bh = (float(v) for v in box)
@@ -333,12 +364,8 @@ def harvest(
                 continue
             cx, cy = x + bw / 2, y + bh / 2
             size = (bw * (1 + 2 * margin), bh * (1 + 2 * margin))
-            patches.append(crop_region(gray, (cx, cy), size, chosen))
-            labels.append(1)
-            kinds.append(KIND_OBJECT)
-            index.append(i)
-            boxes.append(box)
-            aug.append(_IDENTITY)
+            cuts.append(((cx, cy), size, 0.0, False, None))
+            rows.append((1, KIND_OBJECT, box, _IDENTITY))
             for c in range(copies):
                 dx, dy = rng.uniform(-jitter, jitter, 2)
                 sc = 1.0 + rng.uniform(-jitter, jitter)
@@ -346,29 +373,74 @@ def harvest(
                 mir = bool(mirror and c % 2 == 1)
                 gain = 1.0 + rng.uniform(-contrast, contrast)
                 bias = rng.uniform(-brightness, brightness)
-                p = crop_region(gray, (cx + dx * bw, cy + dy * bh), (size[0] * sc, size[1] * sc),
-                                chosen, angle=ang, mirror=mir)
-                patches.append(_adjust(p, gain, bias))
-                labels.append(1)
-                kinds.append(KIND_AUGMENTED)
-                index.append(i)
-                boxes.append(box)
-                aug.append(np.array([dx, dy, sc, ang, float(mir), gain, bias], np.float32))
-        neg, negboxes = sample_background(gray, it.boxes, chosen, margin, negatives_per_image, rng,
-                                          max_background_iou)
+                cuts.append(((cx + dx * bw, cy + dy * bh), (size[0] * sc, size[1] * sc), ang, mir,
+                             (gain, bias)))
+                rows.append((1, KIND_AUGMENTED, box,
+                             np.array([dx, dy, sc, ang, float(mir), gain, bias], np.float32)))
+        regions, negboxes = plan_background(shape, it.boxes, chosen, margin, negatives_per_image,
+                                            rng, max_background_iou)
         if near_negatives and len(it.boxes):
-            near, nearboxes = sample_near_background(gray, it.boxes, chosen, margin,
-                                                     near_negatives, rng, max_background_iou)
-            neg = np.concatenate([neg, near])
+            near, nearboxes = plan_near_background(shape, it.boxes, chosen, margin,
+                                                   near_negatives, rng, max_background_iou)
+            regions = regions + near
             negboxes = np.concatenate([negboxes, nearboxes])
-        patches.extend(neg)
-        labels.extend([0] * len(neg))
-        kinds.extend([KIND_BACKGROUND] * len(neg))
-        index.extend([i] * len(neg))
-        boxes.extend(negboxes)
-        aug.extend([_IDENTITY] * len(neg))
-        if progress is not None:
-            progress(i + 1, len(items))
+        cuts.extend((center, size, 0.0, False, None) for center, size in regions)
+        rows.extend((0, KIND_BACKGROUND, box, _IDENTITY) for box in negboxes)
+        return cuts, rows
+
+    def cut(gray, cuts):
+        out = []
+        for center, size, angle, mir, adjust in cuts:
+            if adjust is None:
+                out.append(crop_region(gray, center, size, chosen))
+            else:
+                out.append(_adjust(crop_region(gray, center, size, chosen, angle=angle,
+                                               mirror=mir), *adjust))
+        return out
+
+    def read(it):
+        return read_gray(os.path.join(os.fspath(images_dir), it.image))
+
+    def add(i, cut_patches, rows):
+        patches.extend(cut_patches)
+        for label, kind, box, a in rows:
+            labels.append(label)
+            kinds.append(kind)
+            index.append(i)
+            boxes.append(box)
+            aug.append(a)
+
+    workers = max(1, int(jobs))
+    if workers == 1:
+        for i, it in enumerate(items):
+            gray = read(it)
+            cuts, rows = plan(i, it, gray.shape)
+            add(i, cut(gray, cuts), rows)
+            if progress is not None:
+                progress(i + 1, len(items))
+    else:
+        # images read and patches cut on threads (OpenCV releases the GIL), a few images ahead;
+        # the draws stay on this thread, in image order, so the bank is the same for any jobs
+        from concurrent.futures import ThreadPoolExecutor
+
+        ahead = 2 * workers
+        with ThreadPoolExecutor(workers) as pool:
+            reading = {k: pool.submit(read, items[k]) for k in range(min(ahead, len(items)))}
+            cutting = []
+            for i, it in enumerate(items):
+                gray = reading.pop(i).result()
+                if i + ahead < len(items):
+                    reading[i + ahead] = pool.submit(read, items[i + ahead])
+                cuts, rows = plan(i, it, gray.shape)
+                cutting.append((i, pool.submit(cut, gray, cuts), rows))
+                del gray
+                while len(cutting) > ahead:  # bound the images held in memory
+                    k, done, rows_done = cutting.pop(0)
+                    add(k, done.result(), rows_done)
+                if progress is not None:
+                    progress(i + 1, len(items))
+            for k, done, rows_done in cutting:
+                add(k, done.result(), rows_done)
     if not any(labels):
         raise InputError("no object patches could be cut", path=labels_path)
     labels_hash = None

@@ -170,7 +170,7 @@ def test_the_walk_sees_the_shared_options():
     from cli.common import MAX_JOBS
 
     found = _options()
-    assert {u[0] for u in found["--jobs"]} == {"train", "scan", "tune", "audit", "demo"}
+    assert {u[0] for u in found["--jobs"]} == {"harvest", "train", "scan", "tune", "audit", "demo"}
     assert {u[1:4] for u in found["--jobs"]} == {(1, 1, MAX_JOBS)}
     assert {"synth", "harvest", "train", "tune", "audit", "demo"} <= {u[0] for u in found["--seed"]}
 

@@ -301,6 +301,17 @@ def test_background_overlaps_no_labelled_box(bank, labels, frames):
         assert wx + ww <= FRAME[0] + 1e-3 and wy + wh <= FRAME[1] + 1e-3
 
 
+@pytest.mark.parametrize("jobs", [2, 3])
+def test_the_bank_does_not_depend_on_jobs(folder, labels, bank, jobs):
+    """Images are read and patches cut on ``jobs`` threads, a few images ahead, while the random
+    draws stay in image order on the calling thread: every array of the bank is the one-thread
+    bank's, row for row (three images, so the threads' read-ahead and the draining both run)."""
+    threaded = _harvest(folder, labels, jobs=jobs)
+    for name in ("patches", "labels", "kinds", "image_index", "boxes", "augmentation"):
+        np.testing.assert_array_equal(getattr(threaded, name), getattr(bank, name))
+    assert threaded.images == bank.images
+
+
 def test_background_iou_option(folder, labels):
     strict = _harvest(folder, labels, max_background_iou=0.05, copies=0, negatives_per_image=20)
     gt = {it.image: it.boxes for it in labels.items}
