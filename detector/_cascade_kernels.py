@@ -89,8 +89,7 @@ def best_raise(at_min, candidates, keep, holder, low, low_thr, exits, b, first):
     """The search step of :func:`detector.cascade.exit_kept`: among the groups of kept objects
     that hold the exit of tree ``candidates[i]`` down (column ``candidates[i]`` of ``at_min``),
     the one whose giving up saves the most background tree evaluations per object; the first of
-    equal gains in candidate order. Returns ``(i, saved)``, ``i = -1`` when no group saves
-    anything.
+    equal gains in candidate order. Returns ``i``, ``-1`` when no group saves anything.
 
     ``holder[c]`` is the kept object with tree ``c``'s lowest score; ``low`` / ``low_thr`` hold
     each tree's lowest scores' objects in rising order and those scores as float32 exits; a trial
@@ -116,7 +115,6 @@ def best_raise(at_min, candidates, keep, holder, low, low_thr, exits, b, first):
     bounds = np.empty(t)
     best = -1
     best_gain = 0.0
-    best_saved = 0.0
     for ci in range(candidates.shape[0]):
         k = candidates[ci]
         key = np.uint64(0)
@@ -171,5 +169,4 @@ def best_raise(at_min, candidates, keep, holder, low, low_thr, exits, b, first):
         if saved > 0 and (best < 0 or gain > best_gain):
             best = ci
             best_gain = gain
-            best_saved = saved
-    return best, best_saved
+    return best

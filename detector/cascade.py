@@ -309,6 +309,7 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
     # by one tree, against trees_evaluated)
     first = np.where(below.any(axis=1), np.argmax(below, axis=1), t - 1)
     low_thr = float32_thresholds(low_vals)  # each candidate minimum as the exit it would give
+    search = _best_raise_numpy if use_numpy else best_raise
     while budget > 0 and keep.sum() > 1:
         # the object each tree's lowest kept score belongs to (the first kept one in sorted
         # order): giving up a group moves only the exits of the trees whose holder is in it
@@ -316,8 +317,7 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
         at_min = (r[:, :front] == minima(keep)[None, :front]) & keep[:, None]  # who holds
         sizes = at_min.sum(axis=0)                                              # each exit down
         candidates = np.flatnonzero((sizes <= budget) & (sizes < keep.sum()))
-        search = _best_raise_numpy if use_numpy else best_raise
-        i, _ = search(at_min, candidates, keep, holder, low, low_thr, exits, b, first)
+        i = search(at_min, candidates, keep, holder, low, low_thr, exits, b, first)
         if i < 0:
             break
         group = np.flatnonzero(at_min[:, candidates[i]])
@@ -333,7 +333,7 @@ def exit_kept(running_scores: ArrayLike, background_running: ArrayLike | None = 
 def _best_raise_numpy(at_min, candidates, keep, holder, low, low_thr, exits, b, first):
     """Plain-numpy twin of :func:`detector._cascade_kernels.best_raise` (the same groups in the
     same order, the same savings; tests/test_early_exit.py holds the two equal)."""
-    best, best_gain, best_saved, tried = -1, 0.0, 0.0, set()
+    best, best_gain, tried = -1, 0.0, set()
     for i, k in enumerate(candidates):
         group = np.flatnonzero(at_min[:, k])
         key = tuple(group.tolist())
@@ -351,8 +351,8 @@ def _best_raise_numpy(at_min, candidates, keep, holder, low, low_thr, exits, b, 
         saved = exit_earlier.py_func(b, first, changed, new[differs].astype(np.float64), None)
         gain = saved / len(group)
         if saved > 0 and (best < 0 or gain > best_gain):
-            best, best_gain, best_saved = i, gain, saved
-    return best, best_saved
+            best, best_gain = i, gain
+    return best
 
 
 #: Score thresholds that get exit thresholds of their own (see :func:`calibrate_exit_table`).
