@@ -154,21 +154,40 @@ def fit_temperature(object_totals: ArrayLike, background_totals: ArrayLike) -> f
     >>> fit_temperature([0.2, 0.3], [-0.2, -0.1])   # already soft: no change
     1.0
     """
-    from scipy.optimize import minimize_scalar
-
     o = np.asarray(object_totals, dtype=np.float64)
     b = np.asarray(background_totals, dtype=np.float64)
     if len(o) == 0 or len(b) == 0:
         return 1.0
+    # In u = 1 / T the loss is (mean softplus(-2 o u) + mean softplus(2 b u)) / 2: a sum of
+    # softplus of linear functions of u, so convex; its minimum on [1 / 1000, 1] is found by
+    # Newton steps on the derivative, kept inside a shrinking bracket (bisection when a step
+    # leaves it). A hand-written solver: scipy.optimize's import alone cost every train command
+    # 0.19 s. tests/test_temperature.py holds it to scikit-learn's logistic regression.
+    x = np.r_[-2.0 * o, 2.0 * b]
+    share = np.r_[np.full(len(o), 0.5 / len(o)), np.full(len(b), 0.5 / len(b))]
 
-    def loss(log_t):
-        t = np.exp(log_t)
-        # log(1 + exp(-z)) computed stably with logaddexp
-        return (np.logaddexp(0.0, -2.0 * o / t).mean() + np.logaddexp(0.0, 2.0 * b / t).mean()) / 2
+    def slopes(u):
+        """The loss's first and second derivative at ``u``."""
+        p = 0.5 * (1.0 + np.tanh(0.5 * x * u))  # sigmoid(x u), without overflow
+        return float(np.dot(share, x * p)), float(np.dot(share, x * x * p * (1.0 - p)))
 
-    res = minimize_scalar(loss, bounds=(0.0, np.log(1000.0)), method="bounded",
-                          options={"xatol": 1e-6})
-    t = float(np.exp(res.x))
+    low, high = 1e-3, 1.0
+    if slopes(high)[0] <= 0.0:  # still falling at T = 1: the scores are not sharper than the data
+        return 1.0
+    if slopes(low)[0] >= 0.0:
+        return 1000.0
+    u = 0.5 * (low + high)
+    for _ in range(200):
+        g, h = slopes(u)
+        if g > 0.0:
+            high = u
+        else:
+            low = u
+        step = u - g / h if h > 0.0 else np.nan
+        before, u = u, (step if low < step < high else 0.5 * (low + high))
+        if g == 0.0 or abs(u - before) <= 1e-12 * before:
+            break
+    t = 1.0 / u
     return 1.0 if t < 1.0 + 1e-3 else round(t, 6)
 
 

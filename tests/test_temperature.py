@@ -58,6 +58,30 @@ def test_fit_temperature_equals_balanced_logistic_regression(seed, n_objects, n_
     assert abs(sklearn_temperature(o, b, class_weight=None) - reference) > 1e-3 * reference
 
 
+@pytest.mark.parametrize("seed", range(6))
+def test_fit_temperature_is_the_bounded_minimum_scipy_finds(seed):
+    """Against scipy.optimize's bounded scalar minimiser (``minimize_scalar(method="bounded")``,
+    tolerance 1e-12 in log T) on the same loss over T in [1, 1000]: sums of every spread, some
+    nearly separable (the fit sharpens: T stays 1), some overlapping with huge values (the minimum
+    sits at the bound T = 1000), the rest in between; equal to the 6 decimals the model stores."""
+    from scipy.optimize import minimize_scalar
+
+    rng = np.random.default_rng(seed)
+    for _ in range(20):
+        shift, spread = rng.choice([0.0, 2.0, 8.0, 300.0]), rng.choice([0.3, 3.0, 2000.0])
+        o = rng.normal(shift, spread, rng.integers(1, 400))
+        b = rng.normal(-shift, spread, rng.integers(1, 400))
+
+        def loss(log_t):
+            t = np.exp(log_t)
+            return (np.logaddexp(0.0, -2.0 * o / t).mean() + np.logaddexp(0.0, 2.0 * b / t).mean()) / 2
+
+        best = float(np.exp(minimize_scalar(loss, bounds=(0.0, np.log(1000.0)), method="bounded",
+                                            options={"xatol": 1e-12}).x))
+        expected = 1.0 if best < 1.0 + 1e-3 else best
+        assert fit_temperature(o, b) == pytest.approx(expected, rel=1e-6, abs=0)
+
+
 def test_fit_temperature_never_sharpens():
     """Sums already soft (the balanced fit would want T < 1, sharper scores): T stays 1."""
     o, b = np.array([0.2, 0.3, 0.1, 0.25]), np.array([-0.2, -0.1, -0.3])
