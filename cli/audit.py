@@ -62,8 +62,8 @@ def audit(
                                                  "the square root of the pool."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed (harvest and forest)."),
     label: Optional[str] = typer.Option(None, "--label", help="Audit only boxes of this class."),
-    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH. Default: the "
-                                                                "median box aspect ratio, shorter side 24."),
+    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH. Default: as "
+                                                                "`harvest` infers it from the boxes."),
     negatives_per_image: int = typer.Option(
         50, "--negatives-per-image", min=0,
         help="Background windows drawn from each image; more of them give an unlabelled object "

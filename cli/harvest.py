@@ -11,7 +11,7 @@ from detector.errors import InputError
 
 from cli.common import (harvest_option, jobs_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
-from detector.harvest import harvest as harvest_bank, save_bank
+from detector.harvest import SHORT_SIDES, SMALL_SHARE, harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
 from detector._validation import named_list
 
@@ -50,7 +50,7 @@ def harvest(
     images_dir: Path = typer.Argument(..., help="Folder the labels' image paths are relative to."),
     labels: Path = typer.Argument(..., help="Labels CSV (image,x,y,width,height[,label]) or COCO JSON."),
     out: Path = typer.Option(..., "--out", help="Patch bank to write (.npz)."),
-    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio with the shorter side 24."),
+    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 32 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     margin: float = harvest_option("margin"),
     copies: int = harvest_option("copies"),
@@ -101,7 +101,10 @@ def harvest(
                             max_background_iou=background_iou, seed=seed, labels_path=labels,
                             progress=update, jobs=jobs)
     W, H = bank.window
-    how = "inferred from the median box aspect ratio, shorter side 24" if size is None else "from --window"
+    small, large = SHORT_SIDES
+    how = (f"inferred: the median box aspect ratio, and the shorter side {large} when at most "
+           f"{SMALL_SHARE:.0%} of the labelled objects are smaller than its object, else {small}"
+           if size is None else "from --window")
     echo(f"window: {W}x{H} ({how})")
     sizes = bank.metadata["object_sizes"]
     echo(f"object sizes: shorter side {sizes['smallest']:g} to {sizes['largest']:g} pixels "

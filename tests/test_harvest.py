@@ -28,6 +28,7 @@ from detector.geometry import iou
 from detector.errors import InputError
 from detector.harvest import (AUGMENTATION_COLUMNS, KIND_AUGMENTED, KIND_BACKGROUND, KIND_MINED,
                               KIND_OBJECT, PatchBank, crop_region, harvest, infer_window,
+                              window_short_side,
                               load_bank, object_box_to_window_box, parse_window, sample_background,
                               sample_near_background, save_bank, window_box_to_object_box)
 from detector.io.images import read_gray
@@ -193,6 +194,36 @@ def test_infer_window_hand_examples():
     # shorter side 20 and ratio 0.8 -> 20 wide, 20 / 0.8 = 25 high
     assert infer_window(np.array([[0, 0, 8, 10]]), short_side=20) == (20, 25)
     assert infer_window(np.array([[3, 4, 17, 17]])) == (24, 24)
+    # objects large enough for the larger window: shorter side 32, the aspect as before
+    assert infer_window(np.array([[0, 0, 80, 40], [0, 0, 120, 60]])) == (64, 32)
+
+
+def test_window_short_side_hand_examples():
+    """32 when at most 20 % of the boxes' shorter sides are below its object side,
+    ``32 / (1 + 2 margin)``; else 24."""
+    big = [[0, 0, 40, 40]]
+    # 2 of 10 boxes at 25 (shorter side): below 32 / 1.2 = 26.67, 20 %, allowed
+    assert window_short_side(np.array(big * 8 + [[0, 0, 30, 25]] * 2)) == 32
+    # 3 of 10: 30 %
+    assert window_short_side(np.array(big * 7 + [[0, 0, 30, 25]] * 3)) == 24
+    # with margin 0.25 the object side is 32 / 1.5 = 21.33: 25 is above it
+    assert window_short_side(np.array(big * 7 + [[0, 0, 30, 25]] * 3), margin=0.25) == 32
+    # a shorter side equal to the object side is not below it: 32 / (1 + 2 * 0.3) = 20
+    assert window_short_side(np.array([[0, 0, 20, 30]] * 5), margin=0.3) == 32
+    assert window_short_side(np.array([[0, 0, 19.5, 30]] * 5), margin=0.3) == 24
+
+
+@given(sides=st.lists(st.floats(2.0, 200.0), min_size=1, max_size=40),
+       margin=st.floats(0.0, 1.0))
+@settings(max_examples=200, deadline=None)
+def test_window_short_side_property(sides, margin):
+    """Property: 32 exactly when the boxes below its object side number at most a fifth of all
+    (counted one by one), else 24; the window infer_window makes has that shorter side."""
+    boxes = np.array([[0.0, 0.0, s * 1.5, s] for s in sides])
+    below = sum(1 for s in sides if s < 32 / (1.0 + 2.0 * margin))
+    expected = 32 if 5 * below <= len(sides) else 24
+    assert window_short_side(boxes, margin) == expected
+    assert min(infer_window(boxes, margin=margin)) == expected
 
 
 def test_parse_window():
@@ -576,7 +607,10 @@ def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
                               "--out", out, "--margin", MARGIN, "--copies", COPIES,
                               "--negatives-per-image", 30)
     assert code == 0, err
-    assert "window: 24x24 (inferred from the median box aspect ratio, shorter side 24)" in text
+    # the boxes' shorter sides 16, 32, 16, 20 with margin 0.25: three of four are below the
+    # larger window's object side, 32 / 1.5 = 21.3
+    assert ("window: 24x24 (inferred: the median box aspect ratio, and the shorter side 32 when "
+            "at most 20% of the labelled objects are smaller than its object, else 24)") in text
     assert "16 object (4 boxes + 12 augmented copies)" in text
     assert "harvesting: 3/3 images" in err  # the progress bar's closing line off a terminal
     # the command writes what the library makes with the same settings

@@ -65,12 +65,12 @@ def test_train_writes_model_and_prints_summary(scenario, cli_env, tmp_path):
     code, text, err = cli_env("train", bank, "--out", out, *TRAIN, "--seed", 3)
     assert code == 0, err
     model = load_model(out)
-    assert model.window == (24, 24) and model.n_trees == 10 and model.depth == 2
+    assert model.window == load_bank(bank).window and model.n_trees == 10 and model.depth == 2
     assert model.mode == "bagged"
     # the printed summary is the model's own, line for line, and it names window, trees, OOB error
     for line in model.summary():
         assert line in text.splitlines()
-    assert "window: 24 x 24 pixels (width x height)" in text
+    assert "window: {} x {} pixels (width x height)".format(*model.window) in text
     assert "trees: 10 of depth 2, random forest (bagged)" in text
     oob = re.search(r"^out-of-bag error: (\d+\.\d\d) %$", text, re.M)
     assert oob and float(oob.group(1)) == round(100 * model.metadata["oob_error"], 2)
