@@ -47,7 +47,7 @@ sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
 
 import datasets  # noqa: E402
-from cross_data import HOG_MINING_ROUNDS, PEER_BANK, patchwood_command  # noqa: E402
+from cross_data import HOG_MINING_ROUNDS, PEER_BANK, hog_window, patchwood_command  # noqa: E402
 from detector.io.labels import ImageLabels, read_labels, write_labels_csv  # noqa: E402
 
 SIZE = (640, 480)
@@ -212,7 +212,8 @@ def main(argv=None) -> int:
     from detector.harvest import harvest
 
     t0 = time.perf_counter()
-    bank = harvest(work / "train" / "images", train_items, seed=args.seed, **PEER_BANK)
+    bank = harvest(work / "train" / "images", train_items, window=hog_window(train_items),
+                   seed=args.seed, **PEER_BANK)
     train_frames = {it.image: cv2.imread(str(work / "train" / "images" / it.image),
                                          cv2.IMREAD_GRAYSCALE) for it in train_items}
     truth = {it.image: it.boxes for it in train_items}
