@@ -11,7 +11,7 @@ from detector.errors import InputError
 
 from cli.common import (harvest_option, jobs_option, quiet_option, check_not_an_input, check_output_file, count, echo, given, human_path,
                         parse_window_option, progress_bar, usage_error)
-from detector.harvest import SHORT_SIDES, SMALL_SHARE, harvest as harvest_bank, save_bank
+from detector.harvest import harvest as harvest_bank, save_bank
 from detector.io.labels import read_labels
 from detector._validation import named_list
 
@@ -101,10 +101,16 @@ def harvest(
                             max_background_iou=background_iou, seed=seed, labels_path=labels,
                             progress=update, jobs=jobs)
     W, H = bank.window
-    small, large = SHORT_SIDES
-    how = (f"inferred: the median box aspect ratio, and the shorter side {large} when at most "
-           f"{SMALL_SHARE:.0%} of the labelled objects are smaller than its object, else {small}"
-           if size is None else "from --window")
+    rule = bank.metadata.get("window_rule")
+    if rule is None:
+        how = "from --window"
+    else:
+        share, side = rule["share_below_larger"], rule["larger_object_side"]
+        how = (f"inferred: the labels' median aspect ratio; shorter side {rule['short_side']}, as "
+               f"{share:.0%} of the labelled objects are smaller than a {rule['larger_side']}-pixel "
+               f"window's object side of {side:.1f} pixels, "
+               + ("at most" if share <= rule["share_allowed"] else "more than")
+               + f" the {rule['share_allowed']:.0%} it allows")
     echo(f"window: {W}x{H} ({how})")
     sizes = bank.metadata["object_sizes"]
     echo(f"object sizes: shorter side {sizes['smallest']:g} to {sizes['largest']:g} pixels "

@@ -161,12 +161,20 @@ def window_short_side(boxes: np.ndarray, margin: float = 0.1) -> int:
     >>> window_short_side(np.array([[0, 0, 40, 40]] * 7 + [[0, 0, 30, 25]] * 3))   # 3 of 10
     24
     """
+    small, large = SHORT_SIDES
+    return large if share_below(boxes, large, margin) <= SMALL_SHARE else small
+
+
+def share_below(boxes: np.ndarray, short_side: float, margin: float = 0.1) -> float:
+    """Share of the boxes whose shorter side is below the object side of a window with this
+    shorter side, ``short_side / (1 + 2 margin)``.
+
+    >>> share_below(np.array([[0, 0, 30, 25], [0, 0, 40, 40]]), 32)   # 25 < 26.67 <= 40
+    0.5
+    """
     boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
     shorter = np.minimum(boxes[:, 2], boxes[:, 3])
-    small, large = SHORT_SIDES
-    if np.mean(shorter < large / (1.0 + 2.0 * margin)) <= SMALL_SHARE:
-        return large
-    return small
+    return float(np.mean(shorter < short_side / (1.0 + 2.0 * margin)))
 
 
 def infer_window(boxes: np.ndarray, short_side: int | None = None,
@@ -506,6 +514,12 @@ def harvest(
                               if labels_path is not None else None)},
         "object_sizes": object_sizes(all_boxes[valid], chosen, margin),
     }
+    if window is None:  # how the window was chosen (window_short_side), for the record and harvest's line
+        large = SHORT_SIDES[1]
+        metadata["window_rule"] = {"short_side": int(min(chosen)), "larger_side": large,
+                                   "share_below_larger": share_below(all_boxes[valid], large, margin),
+                                   "larger_object_side": large / (1.0 + 2.0 * margin),
+                                   "share_allowed": SMALL_SHARE}
     bank = PatchBank(
         window=chosen,
         patches=np.stack(patches).astype(np.uint8),

@@ -601,6 +601,30 @@ def run_cli(monkeypatch, capsys, *args):
     return stop.value.code, captured.out, captured.err
 
 
+def test_harvest_command_says_why_the_larger_window(folder, tmp_path, monkeypatch, capsys):
+    """Boxes of shorter side 36, 40 and 30 on the same frames: none is below the 32-pixel
+    window's object side, 32 / 1.2 = 26.7, so the window is 32 on its shorter side, the median
+    aspect ratio (36 / 36, 40 / 40, 45 / 30 -> 1.0) making it 32 x 32."""
+    labels = tmp_path / "large.csv"
+    labels.write_text("image,x,y,width,height\na.png,4,4,36,36\nb.png,30,20,40,40\n"
+                      "c.png,40,30,45,30\n")
+    out = tmp_path / "bank.npz"
+    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
+                              "--out", out, "--copies", 1, "--negatives-per-image", 5)
+    assert code == 0, err
+    assert ("window: 32x32 (inferred: the labels' median aspect ratio; shorter side 32, as 0% of "
+            "the labelled objects are smaller than a 32-pixel window's object side of 26.7 pixels, "
+            "at most the 20% it allows)") in text
+    assert load_bank(out).window == (32, 32)
+    # a window given is a window given
+    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
+                              "--out", out, "--copies", 1, "--negatives-per-image", 5, "--window",
+                              "24x24", "--force")
+    assert code == 0, err
+    assert "window: 24x24 (from --window)" in text
+    assert "window_rule" not in load_bank(out).metadata
+
+
 def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
     out = tmp_path / "bank.npz"
     code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", folder / "labels.csv",
@@ -609,8 +633,12 @@ def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
     assert code == 0, err
     # the boxes' shorter sides 16, 32, 16, 20 with margin 0.25: three of four are below the
     # larger window's object side, 32 / 1.5 = 21.3
-    assert ("window: 24x24 (inferred: the median box aspect ratio, and the shorter side 32 when "
-            "at most 20% of the labelled objects are smaller than its object, else 24)") in text
+    assert ("window: 24x24 (inferred: the labels' median aspect ratio; shorter side 24, as 75% of "
+            "the labelled objects are smaller than a 32-pixel window's object side of 21.3 pixels, "
+            "more than the 20% it allows)") in text
+    rule = load_bank(out).metadata["window_rule"]
+    assert rule == {"short_side": 24, "larger_side": 32, "share_below_larger": 0.75,
+                    "larger_object_side": 32 / 1.5, "share_allowed": 0.2}
     assert "16 object (4 boxes + 12 augmented copies)" in text
     assert "harvesting: 3/3 images" in err  # the progress bar's closing line off a terminal
     # the command writes what the library makes with the same settings
