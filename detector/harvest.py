@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import json
 import math
+import numbers
 import os
 import re
 from dataclasses import dataclass, field
@@ -372,6 +373,10 @@ def harvest(
         pixels, or a window larger than every image (found from the image headers, before any
         patch is cut).
     """
+    if isinstance(margin, bool) or not isinstance(margin, numbers.Real) \
+            or not math.isfinite(margin) or margin < 0:
+        raise InputError(f"margin must be a number >= 0, got {margin!r}")
+
     def objects(it):   # ignore regions (ImageLabels.ignore) are no objects to learn from
         flags = getattr(it, "ignore", None)
         return it.boxes if flags is None or not np.any(flags) else it.boxes[~np.asarray(flags)]

@@ -601,6 +601,14 @@ def run_cli(monkeypatch, capsys, *args):
     return stop.value.code, captured.out, captured.err
 
 
+@pytest.mark.parametrize("margin", [-0.5, float("nan"), float("inf"), "0.1", True])
+def test_harvest_refuses_a_bad_margin(folder, labels, margin):
+    """A margin that is not a finite number >= 0 is refused by name before any image is read
+    (a margin of -0.5 would make the window's object side a division by zero)."""
+    with pytest.raises(InputError, match="margin must be a number >= 0"):
+        harvest(folder / "images", labels.items, margin=margin)
+
+
 def test_harvest_command_says_why_the_larger_window(folder, tmp_path, monkeypatch, capsys):
     """Boxes of shorter side 36, 40 and 30 on the same frames: none is below the 32-pixel
     window's object side, 32 / 1.2 = 26.7, so the window is 32 on its shorter side, the median
