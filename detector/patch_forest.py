@@ -419,7 +419,7 @@ class PatchForest:
         bins = np.empty((n_pool, n), np.uint8)
         cuts = np.full((n_pool, 1 << (int(self.max_bins) - 1).bit_length()), np.inf, np.float32)
         # the channel images of the patches, made once for every block
-        made = (_features.patch_channels(patches)
+        made = (_features.patch_channels(patches, worker_count(self.n_jobs))
                 if channels is not None and np.any(channels) else None)
         order = np.arange(n_pool) if channels is None else np.argsort(channels, kind="stable")
         groups = [order] if channels is None else \

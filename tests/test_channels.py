@@ -16,7 +16,8 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
-                               gradient_channels, orientation_bins, patch_channels)
+                               gradient_channels, orientation_bins, patch_channels,
+                               patch_channels_numpy)
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
@@ -92,6 +93,23 @@ def test_patch_channels_are_the_channels_of_each_patch_alone():
     made = patch_channels(patches)
     for p, c in zip(patches, made):
         np.testing.assert_array_equal(c, reference_channels(p))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(1, 9), st.integers(1, 9), st.integers(0, 600), st.integers(1, 3),
+       st.integers(0, 2**32 - 1), st.booleans())
+def test_compiled_patch_channels_equal_the_numpy_twin(height, width, n, jobs, seed, binary):
+    """The compiled loop (on 1 to 3 threads: blocks of at least 256 patches each) against
+    patch_channels_numpy (cv2.Sobel and numpy on the patches side by side) and, patch by patch,
+    the arctan2 reference."""
+    rng = np.random.default_rng(seed)
+    patches = (rng.integers(0, 2, (n, height, width)) * 255 if binary
+               else rng.integers(0, 256, (n, height, width))).astype(np.uint8)
+    made = patch_channels(patches, n_jobs=jobs)
+    assert made.shape == (n, N_CHANNELS - 1, height, width) and made.dtype == np.uint8
+    np.testing.assert_array_equal(made, patch_channels_numpy(patches))
+    for i in rng.choice(n, min(n, 3), replace=False) if n else []:
+        np.testing.assert_array_equal(made[i], reference_channels(patches[i]))
 
 
 def test_channel_pool_draws_inside_the_border_ring():

@@ -14,7 +14,8 @@ evaluate_features``).
 
 from detector.features._channels import (CHANNEL_NAMES, CHOICES, N_CHANNELS, ORIENTATIONS,
                                          channel_integrals, channel_integrals_numpy,
-                                         gradient_channels, orientation_bins, patch_channels)
+                                         gradient_channels, orientation_bins, patch_channels,
+                                         patch_channels_numpy)
 from detector.features._integral import (integral_image, integral_images, squared_integral_image,
                                          squared_integral_images, window_mean_var, window_sum)
 from detector.features._rectangles import (CHANNEL_SHAPES, MAX_WINDOW_SIDE, MIN_WINDOW_SIDE,
@@ -29,7 +30,7 @@ __all__ = [
     "window_sum", "window_mean_var",
     # channels
     "N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "gradient_channels",
-    "patch_channels", "orientation_bins", "channel_integrals", "channel_integrals_numpy",
+    "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals", "channel_integrals_numpy",
     # rectangle features
     "SHAPES", "SIGMA_FLOOR", "MIN_WINDOW_SIDE", "MAX_WINDOW_SIDE", "count_features",
     "enumerate_features", "random_pool", "feature_corners", "evaluate_features",

@@ -85,3 +85,26 @@ def channel_integrals(gray, out):
                     acc += np.int32(mr[x]) * np.int32(br[x] == k)
                     below[x + 1] = above[x + 1] + acc
     return out
+
+
+@kernel(cache=True, nogil=True)
+def patch_channels(patches, out, start, stop):
+    """Channels 1..7 of patches ``start .. stop - 1`` of ``patches`` (uint8, N x h x w) into
+    ``out`` (uint8, N x 7 x h x w), each patch on its own with its border repeated: the twin of
+    :func:`detector.features.patch_channels_numpy` (``tests/test_channels.py``)."""
+    n, h, w = patches.shape
+    for i in range(start, stop):
+        p = patches[i]
+        o = out[i]
+        for y in range(h):
+            up = p[y - 1 if y > 0 else 0]
+            mid = p[y]
+            down = p[y + 1 if y < h - 1 else h - 1]
+            for x in range(w):
+                m, b = _gradient(np.int32(mid[x + 1 if x < w - 1 else w - 1])
+                                 - np.int32(mid[x - 1 if x > 0 else 0]),
+                                 np.int32(down[x]) - np.int32(up[x]))
+                o[0, y, x] = m
+                for k in range(6):
+                    o[1 + k, y, x] = m if b == k else 0
+    return out

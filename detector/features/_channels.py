@@ -42,7 +42,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "gradient_channels",
-           "patch_channels", "orientation_bins", "channel_integrals",
+           "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals",
            "channel_integrals_numpy"]
 
 #: Orientation channels over 0..180 degrees.
@@ -54,8 +54,10 @@ CHANNEL_NAMES = ("grey", "gradient magnitude") + tuple(
 #: ``--channels`` choices: grey rectangle differences only, or with gradient channel features too.
 CHOICES = ("grey", "gradient")
 
-# patches whose channels patch_channels makes at once (bounds the work arrays' memory)
+# patches whose channels patch_channels_numpy makes at once (bounds the work arrays' memory)
 _PATCH_BATCH = 4096
+# at least this many patches per thread of patch_channels
+_THREAD_BLOCK = 256
 
 
 def _differences(gray: np.ndarray):
@@ -122,10 +124,46 @@ def gradient_channels(gray, out=None) -> np.ndarray:
     return out
 
 
-def patch_channels(patches) -> np.ndarray:
+def patch_channels(patches, n_jobs: int = 1) -> np.ndarray:
     """Channels 1..7 of every patch of a stack, each computed on the patch alone (border
     repeated): uint8 ``(N, 7, h, w)``. The outermost ring of pixels differs from what the scan
     sees inside a frame; channel features do not read it (see the module notes).
+
+    One compiled pass per patch (:func:`detector.features._channel_kernels.patch_channels`, the
+    per-pixel rules of :func:`channel_integrals`), on ``n_jobs`` threads (an int >= 1) over
+    blocks of patches; :func:`patch_channels_numpy` is its twin. On the cross-data benchmark's
+    cups bank (5,559 patches of 39 x 32) the numpy route took 0.95 s of every ``train``, on one
+    thread while the other waited.
+
+    Examples
+    --------
+    >>> p = np.zeros((2, 4, 4), np.uint8); p[1, :, 2:] = 100          # a vertical edge
+    >>> c = patch_channels(p)
+    >>> c.shape, c[0].max().item(), c[1, 0, 1].tolist()                # columns 1 and 2 see it
+    ((2, 7, 4, 4), 0, [0, 100, 100, 0])
+    """
+    from detector.features._channel_kernels import patch_channels as kernel
+
+    patches = np.ascontiguousarray(patches, dtype=np.uint8)
+    if patches.ndim != 3:
+        raise ValueError(f"patches must be (N, h, w), got shape {patches.shape}")
+    n, h, w = patches.shape
+    out = np.empty((n, N_CHANNELS - 1, h, w), np.uint8)
+    if n == 0 or h == 0 or w == 0:
+        return out
+    workers = max(1, min(int(n_jobs), n // _THREAD_BLOCK))
+    if workers == 1:
+        return kernel(patches, out, 0, n)
+    from concurrent.futures import ThreadPoolExecutor
+
+    bounds = np.linspace(0, n, workers + 1).astype(int)
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        list(pool.map(lambda k: kernel(patches, out, bounds[k], bounds[k + 1]), range(workers)))
+    return out
+
+
+def patch_channels_numpy(patches) -> np.ndarray:
+    """Plain twin of :func:`patch_channels` (cv2.Sobel and numpy on the patches side by side).
 
     Examples
     --------

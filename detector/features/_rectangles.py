@@ -41,7 +41,7 @@ import numpy as np
 
 from detector._validation import as_generator
 from detector.features._feature_kernels import CHUNK, TILE, evaluate_tiles
-from detector.features._channels import N_CHANNELS, patch_channels
+from detector.features._channels import N_CHANNELS, patch_channels, patch_channels_numpy
 from detector.errors import InputError
 from detector.features._integral import integral_images
 
@@ -766,7 +766,7 @@ def evaluate_features_numpy(features, patches=None, *, integrals=None, squared=N
     tables = integrals[:, None]  # (N, channels, h + 1, w + 1): grey, then the gradient channels
     if channels is not None:
         grey, _ = _grey_patches(patches, integrals, squared)
-        made = patch_channels(grey)
+        made = patch_channels_numpy(grey)
         n_made, rows, columns = made.shape[1:]
         made = integral_images(made.reshape(-1, rows, columns)).reshape(
             n, n_made, rows + 1, columns + 1)
