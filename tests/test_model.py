@@ -83,6 +83,31 @@ def test_save_npz_is_deterministic_and_numpy_reads_it(tmp_path):
     back["b"][0, 0] = 5  # arrays come back writable
 
 
+def test_save_npz_stores_large_entries_that_do_not_deflate(tmp_path):
+    """Noise does not deflate (zlib's own figure for it: a few bytes per 16 KB block larger), so a
+    large noise entry is stored; zeros and small entries are deflated; both come back exactly,
+    through numpy's reader, Python's zipfile and the project's own."""
+    rng = np.random.default_rng(3)
+    arrays = {"noise": rng.integers(0, 256, (300, 32, 40), dtype=np.uint8),   # 384,000 bytes
+              "zeros": np.zeros((300, 32, 40), np.uint8),
+              "small": rng.integers(0, 256, 1000, dtype=np.uint8)}
+    path = tmp_path / "x.npz"
+    npzfile.save_npz(path, arrays)
+    with zipfile.ZipFile(path) as zf:
+        kinds = {i.filename: i.compress_type for i in zf.infolist()}
+        assert zf.testzip() is None
+    assert kinds == {"noise.npy": zipfile.ZIP_STORED, "small.npy": zipfile.ZIP_DEFLATED,
+                     "zeros.npy": zipfile.ZIP_DEFLATED}
+    with np.load(path, allow_pickle=False) as npz:
+        for k, v in arrays.items():
+            np.testing.assert_array_equal(npz[k], v)
+    back = npzfile.read_npz(path)
+    for k, v in arrays.items():
+        np.testing.assert_array_equal(back[k], v)
+    npzfile.save_npz(tmp_path / "y.npz", arrays)
+    assert (tmp_path / "y.npz").read_bytes() == path.read_bytes()
+
+
 def test_save_npz_replaces_atomically_and_cleans_up(tmp_path, monkeypatch):
     path = tmp_path / "keep.npz"
     npzfile.save_npz(path, {"a": np.arange(3)})
