@@ -325,6 +325,44 @@ def test_mining_on_two_threads_finds_what_one_finds(scenario):
     assert (one.false_alarms_per_image, one.recall) == (two.false_alarms_per_image, two.recall)
 
 
+def test_mining_rounds_read_each_image_once(scenario, monkeypatch):
+    """Two rounds through one FrameCache: the second reads no image file, both find what a
+    round without the cache finds, and the kept images are the pixels read_gray gives (a scan
+    does not write into them)."""
+    from detector.io.images import read_gray
+    from detector.training import _mining
+    from detector.training._mining import FrameCache, mine
+
+    test = scenario / "scenario" / "test"
+    model, _ = train_model(load_bank(scenario / "bank.npz"),
+                           dict(n_trees=10, depth=2, mode="bagged", pool=500, random_state=0,
+                                channels=DEFAULT_TRAIN["channels"]))
+    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    plain = mine(model, test / "images", items, n_jobs=2)
+    reads = []
+    monkeypatch.setattr(_mining, "read_gray", lambda path: reads.append(path) or read_gray(path))
+    cache = FrameCache()
+    first = mine(model, test / "images", items, n_jobs=2, frames=cache)
+    assert len(reads) == len(items) == len(cache.kept)
+    second = mine(model, test / "images", items, n_jobs=2, frames=cache, count_only=True)
+    assert len(reads) == len(items)
+    again = mine(model, test / "images", items, n_jobs=2, frames=cache)
+    assert len(reads) == len(items)
+    for found in (first, again):
+        assert found.images == plain.images and len(found.patches) > 0
+        np.testing.assert_array_equal(found.patches, plain.patches)
+        np.testing.assert_array_equal(found.scores, plain.scores)
+    assert second.recall == mine(model, test / "images", items, count_only=True).recall
+    for path, gray in cache.kept.items():
+        np.testing.assert_array_equal(gray, read_gray(path))
+    # a cache too small for one image keeps none and reads every time
+    reads.clear()
+    small = FrameCache(limit=100)
+    mine(model, test / "images", items[:3], frames=small)
+    mine(model, test / "images", items[:3], frames=small)
+    assert small.kept == {} and len(reads) == 6
+
+
 def test_the_final_model_is_the_plain_fit_on_the_final_bank(scenario):
     """The models that only mine share one pool (BinnedPool); the final one must be exactly what
     a fit on the final bank gives (its bins cut on that bank), array for array."""

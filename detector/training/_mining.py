@@ -47,9 +47,48 @@ class MiningRound:
     images_scanned: int
 
 
+#: Bytes of grey images a :class:`FrameCache` keeps (mining rounds scan the same images).
+FRAME_CACHE_BYTES = 256 << 20
+
+
+class FrameCache:
+    """Grey images read once for several mining rounds: up to ``limit`` bytes are kept, the
+    rest read again each time (on the cross-data benchmark's cups, 80 images of 480 x 360, a
+    round read them in 0.12 s of CPU).
+
+    >>> cache = FrameCache(limit=10)
+    >>> calls = []
+    >>> read = lambda name: calls.append(name) or np.zeros((2, 3), np.uint8)
+    >>> cache.get("a", read).shape, cache.get("a", read).shape, calls     # read once
+    ((2, 3), (2, 3), ['a'])
+    >>> _ = cache.get("b", read); _ = cache.get("b", read); calls          # 6 + 6 > 10 bytes
+    ['a', 'b', 'b']
+    """
+
+    def __init__(self, limit: int = FRAME_CACHE_BYTES):
+        import threading
+
+        self.limit = int(limit)
+        self.kept: dict = {}
+        self.size = 0
+        self._lock = threading.Lock()
+
+    def get(self, name, read):
+        found = self.kept.get(name)
+        if found is not None:
+            return found
+        gray = read(name)
+        with self._lock:
+            if name not in self.kept and self.size + gray.nbytes <= self.limit:
+                self.kept[name] = gray
+                self.size += gray.nbytes
+        return gray
+
+
 def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_image: int = 20,
          per_round: int = 4000, max_iou: float = 0.3, mining_threshold: float = 0.3,
-         progress=None, count_only: bool = False, n_jobs=None) -> MiningRound:
+         progress=None, count_only: bool = False, n_jobs=None,
+         frames: FrameCache | None = None) -> MiningRound:
     """Scan labelled images and collect the highest-scoring windows that overlap no labelled box.
 
     Parameters
@@ -76,6 +115,8 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     n_jobs : int, optional
         Images scanned at once, on threads (the engine's compiled loops release the GIL and its
         work space is per thread); the result does not depend on it.
+    frames : FrameCache, optional
+        Grey images kept from an earlier round (and filled by this one).
     """
     settings = settings or ScanSettings()
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
@@ -87,7 +128,8 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
 
     def one(it):
         """The detections of one image, and its mining candidates: (patch, box, score) each."""
-        gray = read_gray(os.path.join(os.fspath(images_dir), it.image))
+        path = os.path.join(os.fspath(images_dir), it.image)
+        gray = read_gray(path) if frames is None else frames.get(path, read_gray)
         wboxes, raw, _, _ = engine.candidates(gray)
         size = gray.shape[::-1]
         found = engine.detections(wboxes, raw, threshold=settings.threshold, image_size=size)

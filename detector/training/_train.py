@@ -173,7 +173,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
     from contextlib import nullcontext
 
     from detector.harvest import KIND_MINED
-    from detector.training._mining import mine
+    from detector.training._mining import FrameCache, mine
 
     def bar(description, total):
         if progress_factory is None:
@@ -182,6 +182,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
 
     history = []
     pool = None
+    frames = FrameCache()  # every round scans the same images
     miner = mine_params or params
     if rounds and miner.get("max_bins", 256) is not None and \
             miner.get("grower", "histogram") == "histogram":
@@ -203,7 +204,7 @@ def train_with_mining(bank: PatchBank, params: dict, *, rounds: int = 0, images_
         with bar(f"mining round {r + 1}" if r < rounds else "checking final model", len(items)) as up:
             found = mine(model, images_dir, items, settings=settings, per_image=per_image,
                          per_round=per_round, progress=up, count_only=r == rounds,
-                         n_jobs=params.get("n_jobs"))
+                         n_jobs=params.get("n_jobs"), frames=frames)
         history.append({"round": r, "false_alarms_per_image": found.false_alarms_per_image,
                         "recall": found.recall, "added": 0 if r == rounds else len(found.patches)})
         if report is not None:
