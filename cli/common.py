@@ -234,3 +234,21 @@ def human_path(path) -> str:
 
 def flush() -> None:
     sys.stdout.flush()
+
+
+def mining_stop_line(r: int, found, counts: dict, rounds: int) -> str | None:
+    """The line saying that mining ended early after round ``r + 1`` (``found.last``), else None;
+    ``counts``: the bank the round's model trained on.
+
+    >>> from types import SimpleNamespace
+    >>> mining_stop_line(0, SimpleNamespace(last=True, patches=[0] * 45), {"background": 4589}, 2)
+    'mining stops after round 1 of 2: its 45 false alarms add 1.0 % to the 4589 background patches (another round needs 2 %)'
+    """
+    if not getattr(found, "last", False):
+        return None
+    from detector.training import _train  # the module's value: the one train_with_mining reads
+
+    added, before = len(found.patches), counts["background"]
+    return (f"mining stops after round {r + 1} of {rounds}: its {added} false alarms add "
+            f"{100.0 * added / max(before, 1):.1f} % to the {before} background patches (another "
+            f"round needs {100 * _train.MINING_STOP_SHARE:g} %)")

@@ -8,7 +8,7 @@ from typing import Literal
 
 import typer
 
-from cli.common import quiet_option, jobs_option, echo, human_path, progress_bar
+from cli.common import quiet_option, jobs_option, echo, human_path, mining_stop_line, progress_bar
 from detector.scan import draw_folder, scan_paths
 from detector.errors import InputError
 from detector.harvest import harvest, save_bank
@@ -83,9 +83,12 @@ def demo(
 
     def report(r, found, counts):
         what = "first model" if r == 0 else f"after round {r}"
-        added = "" if r == mine_rounds else f"; {len(found.patches)} false alarms added as background"
+        added = "" if found.counted_only else f"; {len(found.patches)} false alarms added as background"
         echo(f"      training frames, {what}: {found.false_alarms_per_image:.2f} false alarms per "
              f"image, recall {found.recall:.3f}{added}")
+        stop = mining_stop_line(r, found, counts, mine_rounds)
+        if stop:
+            echo(f"      {stop}")
 
     model, clf, _ = train_with_mining(
         bank, params, rounds=mine_rounds, images_dir=train_dir / "images", items=train_labels.items,

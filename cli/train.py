@@ -9,7 +9,7 @@ from typing import Literal, Optional
 import typer
 
 from cli.common import (quiet_option, jobs_option, channels_option, check_channels_option, check_not_an_input,
-                        check_output_file, echo, given, human_path,
+                        check_output_file, echo, given, human_path, mining_stop_line,
                         progress_bar, usage_error)
 from detector.cascade import EXIT_BUDGET
 from detector.harvest import load_bank, save_bank
@@ -43,7 +43,7 @@ def train(
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
     jobs: int = jobs_option(),
-    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees). Without --mine-images, the images the bank came from; none when the bank does not record them and this option is not given."),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds at most: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees); mining stops early after a round whose false alarms add less than 2 %% to the background patches. Without --mine-images, the images the bank came from; none when the bank does not record them and this option is not given."),
     mine_images: Optional[Path] = typer.Option(None, "--mine-images", help="Folder of labelled images to mine false alarms from. Default: the images the bank was harvested from."),
     mine_labels: Optional[Path] = typer.Option(None, "--mine-labels", help="Labels of --mine-images (CSV or COCO JSON); objects there are never mined. Default: the labels the bank was harvested from."),
     mine_per_image: int = typer.Option(20, "--mine-per-image", min=1, help="Most new background patches from one image per round."),
@@ -109,9 +109,12 @@ def train(
 
     def report(r, found, counts):
         what = "first model" if r == 0 else f"after round {r}"
-        added = "" if r == mine_rounds else f"; adding {len(found.patches)} false alarms as background"
+        added = "" if found.counted_only else f"; adding {len(found.patches)} false alarms as background"
         echo(f"mining images, {what}: {found.false_alarms_per_image:.2f} false alarms per image, "
              f"recall {found.recall:.3f} at score {mine_threshold:g}{added}")
+        stop = mining_stop_line(r, found, counts, mine_rounds)
+        if stop:
+            echo(stop)
 
     model, clf, final_bank = train_with_mining(
         b, params, rounds=mine_rounds, images_dir=mine_images, items=items,

@@ -363,6 +363,66 @@ def test_mining_rounds_read_each_image_once(scenario, monkeypatch):
     assert small.kept == {} and len(reads) == 6
 
 
+def test_mining_stops_after_a_round_that_adds_little(scenario, cli_env, tmp_path, monkeypatch):
+    """A round whose false alarms add less than MINING_STOP_SHARE of the bank's background ends
+    mining: its patches are added and the next model is the final one (the plain fit on that
+    bank). With the share at 0 every round runs; at 1 the first round is the last; in between,
+    the stop follows the count."""
+    from detector.training import _train, mining_params, train_with_mining
+
+    test = scenario / "scenario" / "test"
+    params = dict(n_trees=12, depth=2, mode="boosted", pool=800, random_state=0,
+                  channels=DEFAULT_TRAIN["channels"])
+    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    bank = load_bank(scenario / "bank.npz")
+    background = bank.counts()["background"]
+    runs = {}
+    for share in (0.0, 1.0):
+        monkeypatch.setattr(_train, "MINING_STOP_SHARE", share)
+        calls = []
+        model, _, final = train_with_mining(
+            bank, params, rounds=3, images_dir=test / "images", items=items,
+            settings=ScanSettings(threshold=0.5), mine_params=mining_params(params),
+            report=lambda r, found, counts: calls.append((r, found.last, found.counted_only,
+                                                         len(found.patches), counts)))
+        runs[share] = (model, final, calls)
+    model, final, calls = runs[0.0]
+    assert [(r, last, only) for r, last, only, *_ in calls] == [
+        (0, False, False), (1, False, False), (2, False, False), (3, False, True)]
+    assert [h["round"] for h in model.metadata["mining"]] == [0, 1, 2, 3]
+    model, final, calls = runs[1.0]
+    assert [(r, last, only) for r, last, only, *_ in calls] == [(0, True, False), (1, False, True)]
+    added = calls[0][3]
+    assert added > 0 and calls[0][4]["background"] == background
+    assert len(final) == len(bank) + added
+    assert [(h["round"], h["added"]) for h in model.metadata["mining"]] == [(0, added), (1, 0)]
+    plain, _ = train_model(final, params)
+    for name in ("features", "node_features", "node_thresholds", "leaf_values", "exit_thresholds"):
+        np.testing.assert_array_equal(getattr(model, name), getattr(plain, name))
+    # between: the first round adds `added` patches; a share just above added / background stops
+    # there, one just below does not
+    for share, stops in ((added / background * 1.01, True), (added / background * 0.99, False)):
+        monkeypatch.setattr(_train, "MINING_STOP_SHARE", share)
+        calls = []
+        train_with_mining(bank, params, rounds=1, images_dir=test / "images", items=items,
+                          settings=ScanSettings(threshold=0.5), mine_params=mining_params(params),
+                          report=lambda r, found, counts: calls.append(found.last))
+        assert calls == [stops, False]
+    # the command says so in one line
+    monkeypatch.setattr(_train, "MINING_STOP_SHARE", 1.0)
+    code, text, err = cli_env("train", scenario / "bank.npz", "--out", tmp_path / "m.npz", *GROW,
+                              "--mine-rounds", 2, "--mine-images", test / "images",
+                              "--mine-labels", test / "labels.csv")
+    assert code == 0, err
+    n = int(re.search(r"^mining images, first model: .*; adding (\d+) false alarms as background$",
+                      text, re.M).group(1))
+    assert (f"mining stops after round 1 of 2: its {n} false alarms add "
+            f"{100 * n / background:.1f} % to the {background} background patches (another round "
+            f"needs 100 %)") in text.splitlines()
+    assert "mining images, after round 1: " in text and "after round 2" not in text
+    assert [h["round"] for h in load_model(tmp_path / "m.npz").metadata["mining"]] == [0, 1]
+
+
 def test_the_final_model_is_the_plain_fit_on_the_final_bank(scenario):
     """The models that only mine share one pool (BinnedPool); the final one must be exactly what
     a fit on the final bank gives (its bins cut on that bank), array for array."""

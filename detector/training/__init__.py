@@ -9,8 +9,8 @@ Public names of the three are re-exported here.
 
 
 from detector.training._mining import (MiningRound, mine)
-from detector.training._train import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, MINE_TREE_SHARE, bank_to_xy,
-                                       default_features_per_node,
+from detector.training._train import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, MINE_TREE_SHARE,
+                                      MINING_STOP_SHARE, bank_to_xy, default_features_per_node,
                                       mining_params, mining_source, train_model, train_with_mining)
 from detector.training._tuning import (EVALUATION_THRESHOLD, PARAMETERS, FoldData, SearchResult,
                                        SearchSpace, TrialRecord, bank_subset, classifier_params,
@@ -21,7 +21,7 @@ from detector.training._tuning import (EVALUATION_THRESHOLD, PARAMETERS, FoldDat
 
 __all__ = [
     "MiningRound", "mine", "train_model", "bank_to_xy", "DEFAULT_MINE_ROUNDS", "DEFAULT_TRAIN",
-    "MINE_TREE_SHARE", "default_features_per_node",
+    "MINE_TREE_SHARE", "MINING_STOP_SHARE", "default_features_per_node",
     "mining_source", "mining_params", "train_with_mining", "EVALUATION_THRESHOLD", "PARAMETERS",
     "FoldData", "SearchResult", "SearchSpace", "TrialRecord", "bank_subset", "classifier_params",
     "describe", "effective_values", "evaluate_params", "fold_average_precision", "image_folds",

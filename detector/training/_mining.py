@@ -36,6 +36,11 @@ class MiningRound:
     recall : float
         Share of labelled objects found at the scan threshold (IoU >= 0.5).
     images_scanned : int
+    counted_only : bool
+        A final model's check: false alarms and recall counted, nothing collected.
+    last : bool
+        Set by :func:`~detector.training.train_with_mining` when mining ends after this round
+        (its patches added, too few for another round).
     """
 
     patches: np.ndarray
@@ -45,6 +50,8 @@ class MiningRound:
     false_alarms_per_image: float
     recall: float
     images_scanned: int
+    counted_only: bool = False
+    last: bool = False
 
 
 #: Bytes of grey images a :class:`FrameCache` keeps (mining rounds scan the same images).
@@ -176,4 +183,5 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
         false_alarms_per_image=ev.false_alarms / max(ev.images, 1),
         recall=(ev.true_detections / ev.objects) if ev.objects else float("nan"),
         images_scanned=len(items),
+        counted_only=bool(count_only),
     )
