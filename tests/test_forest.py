@@ -330,6 +330,43 @@ def test_binning_kernel_equals_its_numpy_twin(max_bins):
     np.testing.assert_array_equal(bin_columns(probe.copy(order="F"), wide, n_cuts), b)
 
 
+@settings(max_examples=60, deadline=None)
+@given(hnp.arrays(np.float32, st.tuples(st.integers(1, 400), st.integers(1, 4)),
+                  elements=st.one_of(st.floats(width=32, allow_nan=False), st.sampled_from(
+                      [0.0, -0.0, 1.0, -1.0, 1e-40, -1e-40, 3.5, np.inf, -np.inf]))),
+       st.integers(2, 256), st.integers(1, 500))
+def test_compiled_sort_and_cuts_equal_the_numpy_twin(X, max_bins, sample_rows):
+    """The Fortran-ordered float32 route (values read in place, radix-sorted on their bit
+    patterns and cut in one compiled pass) against quantile_cuts_numpy (np.sort, np.unique,
+    np.searchsorted): the same cuts, over signs, zeros of both signs, subnormals, infinities,
+    repeats and huge magnitudes; and the same as the C-ordered route (numpy's sort)."""
+    F = np.asfortranarray(X)
+    cuts, n_cuts = quantile_cuts(F, max_bins=max_bins, sample_rows=sample_rows, random_state=3)
+    cuts2, n_cuts2 = quantile_cuts_numpy(X, max_bins=max_bins, sample_rows=sample_rows,
+                                         random_state=3)
+    np.testing.assert_array_equal(n_cuts, n_cuts2)
+    np.testing.assert_array_equal(cuts, cuts2)
+    cuts3, n_cuts3 = quantile_cuts(np.ascontiguousarray(X), max_bins=max_bins,
+                                   sample_rows=sample_rows, random_state=3)
+    np.testing.assert_array_equal(cuts3, cuts)
+    np.testing.assert_array_equal(n_cuts3, n_cuts)
+
+
+def test_compiled_sort_on_a_pool_sized_block():
+    """4,096 sampled rows of 300 columns of normal values at several scales (every radix pass
+    runs) and of a few values (the upper passes are skipped): the numpy twin's cuts."""
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(6000, 300)).astype(np.float32) * np.float32(10.0) ** rng.integers(
+        -20, 20, 300).astype(np.float32)
+    X[:, ::7] = np.round(X[:, ::7] / np.abs(X[:, ::7]).max(axis=0) * 3)
+    X = np.asfortranarray(X)
+    cuts, n_cuts = quantile_cuts(X, max_bins=256, random_state=0)
+    cuts2, n_cuts2 = quantile_cuts_numpy(X, max_bins=256, random_state=0)
+    np.testing.assert_array_equal(n_cuts, n_cuts2)
+    np.testing.assert_array_equal(cuts, cuts2)
+    assert n_cuts.max() == 255 and n_cuts[::7].max() <= 6
+
+
 @settings(max_examples=40, deadline=None)
 @given(hnp.arrays(np.float32, st.tuples(st.integers(2, 300), st.integers(1, 3)),
                   elements=st.floats(-100, 100, width=32)),

@@ -29,43 +29,103 @@ def _column_cuts(v: np.ndarray, max_bins: int) -> tuple[np.ndarray, np.ndarray]:
     return q[keep], distinct[above[keep]]
 
 
-@kernel(cache=True, nogil=True)
-def _cut_pairs_kernel(samples, max_bins, low, high, counts):
-    """For every sorted row of ``samples``: the (value, next distinct value) pairs to cut between.
+@kernel(cache=True, nogil=True, inline="always")
+def _row_cut_pairs(v, max_bins, low, high):
+    """The (value, next distinct value) pairs to cut one sorted sample ``v`` between, written into
+    ``low`` and ``high``; returns how many.
 
     Every pair of consecutive distinct values when there are at most ``max_bins`` of them; else the
     ``k / max_bins`` quantiles (k = 1 .. max_bins - 1, repeats dropped), each with the next distinct
     value above it.
     """
-    for j in range(samples.shape[0]):
-        v = samples[j]
-        m = v.shape[0]
-        distinct = 1
+    m = v.shape[0]
+    distinct = 1
+    for i in range(1, m):
+        if v[i] != v[i - 1]:
+            distinct += 1
+    c = 0
+    if distinct <= max_bins:
         for i in range(1, m):
             if v[i] != v[i - 1]:
-                distinct += 1
-        c = 0
-        if distinct <= max_bins:
-            for i in range(1, m):
-                if v[i] != v[i - 1]:
-                    low[j, c] = v[i - 1]
-                    high[j, c] = v[i]
-                    c += 1
-        else:
-            for k in range(1, max_bins):
-                p = (k * m) // max_bins
-                q = v[p]
-                if c > 0 and q <= low[j, c - 1]:
-                    continue
-                r = p + 1
-                while r < m and v[r] == q:
-                    r += 1
-                if r >= m:
-                    break
-                low[j, c] = q
-                high[j, c] = v[r]
+                low[c] = v[i - 1]
+                high[c] = v[i]
                 c += 1
-        counts[j] = c
+    else:
+        for k in range(1, max_bins):
+            p = (k * m) // max_bins
+            q = v[p]
+            if c > 0 and q <= low[c - 1]:
+                continue
+            r = p + 1
+            while r < m and v[r] == q:
+                r += 1
+            if r >= m:
+                break
+            low[c] = q
+            high[c] = v[r]
+            c += 1
+    return c
+
+
+@kernel(cache=True, nogil=True)
+def _cut_pairs_kernel(samples, max_bins, low, high, counts):
+    """For every sorted row of ``samples``: the pairs to cut between (:func:`_row_cut_pairs`)."""
+    for j in range(samples.shape[0]):
+        counts[j] = _row_cut_pairs(samples[j], max_bins, low[j], high[j])
+
+
+#: Bits per digit of the radix sort in :func:`_sample_cuts_kernel`: three passes over 32-bit keys.
+_DIGIT = 11
+
+
+@kernel(cache=True, nogil=True)
+def _sample_cuts_kernel(columns, rows, max_bins, low, high, counts):
+    """:func:`_row_cut_pairs` of every row of ``columns`` (float32, F x N, not NaN) at the sampled
+    positions ``rows``, sorted on the way: each value's bits turned into a key that sorts as the
+    value does (the sign bit flipped for positives, every bit for negatives), then a least-
+    significant-digit radix sort in three passes of 11 bits, a pass skipped when every key shares
+    its digit. A sort of 2,048 rows of 4,096 values took 65 ms against ``np.sort``'s 94 (one
+    run); the gather and the cut pairs run in the same pass. Equal values, so equal cuts, as
+    sorting with numpy (``-0.0`` goes before ``0.0``, which compares equal to it)."""
+    m = rows.shape[0]
+    size = 1 << _DIGIT
+    mask = np.uint32(size - 1)
+    bits = columns.view(np.uint32)
+    a = np.empty(m, np.uint32)
+    b = np.empty(m, np.uint32)
+    histogram = np.empty((3, size), np.int64)
+    for f in range(columns.shape[0]):
+        source = bits[f]
+        histogram[:] = 0
+        for i in range(m):
+            u = source[rows[i]]
+            k = ~u if u >> np.uint32(31) else u | np.uint32(0x80000000)
+            a[i] = k
+            histogram[0, k & mask] += 1
+            histogram[1, (k >> np.uint32(_DIGIT)) & mask] += 1
+            histogram[2, k >> np.uint32(2 * _DIGIT)] += 1
+        src = a
+        dst = b
+        for p in range(3):
+            h = histogram[p]
+            shift = np.uint32(p * _DIGIT)
+            if h[(src[0] >> shift) & mask] == m:
+                continue  # every key has this digit: the order stands
+            total = 0
+            for d in range(size):
+                t = h[d]
+                h[d] = total
+                total += t
+            for i in range(m):
+                k = src[i]
+                d = (k >> shift) & mask
+                dst[h[d]] = k
+                h[d] += 1
+            src, dst = dst, src
+        for i in range(m):
+            k = src[i]
+            src[i] = k ^ np.uint32(0x80000000) if k >> np.uint32(31) else ~k
+        counts[f] = _row_cut_pairs(src.view(np.float32), max_bins, low[f], high[f])
 
 
 def quantile_cuts(X, max_bins: int = 256, sample_rows: int = 4096, random_state=None, block: int = 1024):
@@ -110,12 +170,17 @@ def quantile_cuts(X, max_bins: int = 256, sample_rows: int = 4096, random_state=
     low = np.zeros((n_features, max_bins - 1), np.float32)
     high = np.zeros((n_features, max_bins - 1), np.float32)
     n_cuts = np.zeros(n_features, np.int32)
-    # the sampled rows of a block of columns, one column per row: from a Fortran-ordered X (the
-    # pool's values, columns contiguous) np.take gathers them 8 times faster than fancy indexing
-    # through the transpose (10 against 82 ms for 4,096 x 2,048 values)
+    # the sampled rows of a block of columns, one column per row: from a Fortran-ordered float32 X
+    # (the pool's values, columns contiguous) read in place, sorted and cut in one compiled pass
+    # (_sample_cuts_kernel); other inputs gathered (np.take from contiguous columns is 8 times
+    # faster than fancy indexing through the transpose), sorted by numpy, then cut
     columns = X.T if X.flags.f_contiguous else None
+    rows = rows.astype(np.int64)
     for a in range(0, n_features, block):
         b = min(n_features, a + block)
+        if columns is not None and X.dtype == np.float32:
+            _sample_cuts_kernel(columns[a:b], rows, int(max_bins), low[a:b], high[a:b], n_cuts[a:b])
+            continue
         sample = np.take(columns[a:b], rows, axis=1) if columns is not None \
             else np.ascontiguousarray(X[rows, a:b].T)
         sample.sort(axis=1)
