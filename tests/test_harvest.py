@@ -29,7 +29,7 @@ from detector.errors import InputError
 from detector.harvest import (AUGMENTATION_COLUMNS, KIND_AUGMENTED, KIND_BACKGROUND, KIND_MINED,
                               KIND_OBJECT, PatchBank, crop_region, harvest, infer_window,
                               window_short_side,
-                              load_bank, object_box_to_window_box, parse_window, sample_background,
+                              load_bank, object_box_to_window_box, overlaps, parse_window, sample_background,
                               sample_near_background, save_bank, window_box_to_object_box)
 from detector.io.images import read_gray
 from detector.io.labels import read_labels
@@ -695,3 +695,27 @@ def test_harvest_command_errors(folder, tmp_path, monkeypatch, capsys):
                                                "--out", str(out)])
     assert isinstance(result.exception, InputError) and result.exception.path == str(tmp_path / "none.csv")
     assert not out.exists()
+
+
+_coordinate = st.floats(-50, 150, width=32)
+_side = st.one_of(st.floats(0, 80, width=32), st.sampled_from([0.0, 1e-30, 10.0]))
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.tuples(_coordinate, _coordinate, _side, _side),
+       st.lists(st.tuples(_coordinate, _coordinate, _side, _side), max_size=6),
+       st.sampled_from([0.0, 0.1, 0.3, 1 / 3, 0.5, 1.0]))
+def test_overlaps_decides_as_the_iou_matrix_does(box, others, max_iou):
+    """The harvest's per-box check against detector.geometry.iou (numpy, pycocotools' order of
+    arithmetic): the same decision for every box, shared edges, zero areas and a threshold of 0
+    (where iou's 0 for boxes that do not meet is >= 0)."""
+    expected = bool(len(others)) and bool(np.max(iou(np.asarray([box], np.float32), others)) >= max_iou)
+    assert overlaps(box, [tuple(float(v) for v in o) for o in others], max_iou) == expected
+
+
+def test_overlaps_on_touching_and_nested_boxes():
+    # nested: 4 x 4 inside 8 x 8 is 16 / 64 = 0.25; touching edges share no area
+    assert overlaps((2.0, 2.0, 4.0, 4.0), [(0.0, 0.0, 8.0, 8.0)], 0.25)
+    assert not overlaps((2.0, 2.0, 4.0, 4.0), [(0.0, 0.0, 8.0, 8.0)], 0.2501)
+    assert not overlaps((8.0, 0.0, 4.0, 4.0), [(0.0, 0.0, 8.0, 8.0)], 1e-9)
+    assert not overlaps((0.0, 0.0, 4.0, 4.0), [], 0.0)
