@@ -16,8 +16,9 @@ from detector.harvest import load_bank, save_bank
 from detector.io.labels import read_labels
 from detector.model import save_model
 from detector.scan import ScanSettings
-from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, default_features_per_node, mining_params,
-                               mining_source, train_with_mining)
+from detector.training import (DEFAULT_MINE_ROUNDS, DEFAULT_TRAIN, MINING_STOP_SHARE,
+                               default_features_per_node, mining_params, mining_source,
+                               train_with_mining)
 
 
 #: Options that only shape hard-negative mining (parameter name -> option).
@@ -43,7 +44,7 @@ def train(
     normalize: bool = typer.Option(True, "--normalize/--no-normalize", help="Contrast-normalise every patch (and every scanned window)."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed; the same seed and bank give a byte-identical model."),
     jobs: int = jobs_option(),
-    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help="Hard-negative mining rounds at most: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees); mining stops early after a round whose false alarms add less than 2 %% to the background patches. Without --mine-images, the images the bank came from; none when the bank does not record them and this option is not given."),
+    mine_rounds: int = typer.Option(DEFAULT_MINE_ROUNDS, "--mine-rounds", min=0, max=10, help=f"Hard-negative mining rounds at most: scan the mining images, add the false alarms as background, train again (the models before the last grow a quarter of the trees); mining stops early after a round whose false alarms add less than {100 * MINING_STOP_SHARE:g} % to the background patches. Without --mine-images, the images the bank came from; none when the bank does not record them and this option is not given."),
     mine_images: Optional[Path] = typer.Option(None, "--mine-images", help="Folder of labelled images to mine false alarms from. Default: the images the bank was harvested from."),
     mine_labels: Optional[Path] = typer.Option(None, "--mine-labels", help="Labels of --mine-images (CSV or COCO JSON); objects there are never mined. Default: the labels the bank was harvested from."),
     mine_per_image: int = typer.Option(20, "--mine-per-image", min=1, help="Most new background patches from one image per round."),

@@ -352,6 +352,12 @@ def test_compiled_sort_and_cuts_equal_the_numpy_twin(X, max_bins, sample_rows):
     np.testing.assert_array_equal(n_cuts3, n_cuts)
 
 
+def test_compiled_sort_of_no_rows_gives_no_cuts():
+    for X in (np.zeros((0, 3), np.float32, order="F"), np.zeros((0, 3), np.float32)):
+        cuts, n_cuts = quantile_cuts(X, max_bins=16)
+        assert cuts.shape == (3, 16) and np.isinf(cuts).all() and (n_cuts == 0).all()
+
+
 def test_compiled_sort_on_a_pool_sized_block():
     """4,096 sampled rows of 300 columns of normal values at several scales (every radix pass
     runs) and of a few values (the upper passes are skipped): the numpy twin's cuts."""

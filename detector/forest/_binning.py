@@ -84,10 +84,15 @@ def _sample_cuts_kernel(columns, rows, max_bins, low, high, counts):
     positions ``rows``, sorted on the way: each value's bits turned into a key that sorts as the
     value does (the sign bit flipped for positives, every bit for negatives), then a least-
     significant-digit radix sort in three passes of 11 bits, a pass skipped when every key shares
-    its digit. A sort of 2,048 rows of 4,096 values took 65 ms against ``np.sort``'s 94 (one
-    run); the gather and the cut pairs run in the same pass. Equal values, so equal cuts, as
-    sorting with numpy (``-0.0`` goes before ``0.0``, which compares equal to it)."""
+    its digit. The gather, the sort and the cut pairs of 2,048 columns at 4,096 sampled rows took
+    58 ms against 107 for ``np.take``, ``np.sort`` and :func:`_cut_pairs_kernel` (one run). Equal
+    values, so equal cuts, as sorting with numpy (``-0.0`` goes before ``0.0``, which compares
+    equal to it)."""
     m = rows.shape[0]
+    if m == 0:
+        for f in range(columns.shape[0]):
+            counts[f] = 0
+        return
     size = 1 << _DIGIT
     mask = np.uint32(size - 1)
     bits = columns.view(np.uint32)
