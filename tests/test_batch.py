@@ -261,6 +261,8 @@ def test_resume_refuses_an_output_made_another_way(trained, folder, tmp_path, mo
          "other settings: exit_level 0.5 (recorded None)"),
         ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--overhang", 0],
          "other settings: overhang 0.0 (recorded 0.25)"),
+        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--box-voting", 0.5],
+         "other settings: box_voting 0.5 (recorded None)"),
     ]
     for args, message in cases:
         code, _, err = run_main(monkeypatch, capsys, *args)
@@ -281,6 +283,43 @@ def test_resume_refuses_an_output_made_another_way(trained, folder, tmp_path, mo
     code, _, err = run_main(monkeypatch, capsys, model, folder, "--out", out, "--resume",
                             "--threshold", 0.3)
     assert code == 1 and "no provenance side file (d.provenance.json)" in err
+
+
+def test_box_voting_through_the_command(trained, folder, tmp_path):
+    """`scan --box-voting 0.5` writes the detections the engine gives with box_voting=0.5 (the
+    same rows and scores as without it, other boxes), records the setting in the provenance
+    side file, and a side file written before the setting existed reads as without it."""
+    import json
+
+    from detector.io.labels import read_detections
+    from detector.scan import provenance_of
+
+    model = trained / "model.npz"
+    plain, voted = tmp_path / "plain.csv", tmp_path / "voted.csv"
+    assert invoke(model, folder, "--out", plain, "--threshold", 0.1).exit_code == 0
+    result = invoke(model, folder, "--out", voted, "--threshold", 0.1, "--box-voting", 0.5)
+    assert result.exit_code == 0, result.output
+    a, b = read_detections(plain), read_detections(voted)
+    assert [d.image for d in a] == [d.image for d in b]
+    moved = 0
+    engine = Engine(load_model(model), ScanSettings(threshold=0.1, box_voting=0.5))
+    for da, db in zip(a, b):
+        np.testing.assert_array_equal(da.scores, db.scores)
+        moved += int(not np.array_equal(da.boxes, db.boxes))
+        found = engine.scan(read_gray(folder / db.image))
+        np.testing.assert_allclose(db.boxes, found.boxes, atol=5e-3)   # the file's decimals
+    assert moved >= 1
+    side = tmp_path / "voted.provenance.json"
+    record = json.loads(side.read_text())
+    assert record["settings"]["box_voting"] == 0.5
+    assert json.loads((tmp_path / "plain.provenance.json").read_text())["settings"][
+        "box_voting"] is None
+    # a record from before the setting: read as without box voting
+    old = json.loads((tmp_path / "plain.provenance.json").read_text())
+    del old["settings"]["box_voting"]
+    (tmp_path / "plain.provenance.json").write_text(json.dumps(old))
+    found, why = provenance_of(plain)
+    assert why is None and found["settings"]["box_voting"] is None
 
 
 # ------------------------------------------------------------------ refusals

@@ -369,6 +369,7 @@ SETTINGS_DRAWN = st.fixed_dictionaries({
     "nms_iou": st.sampled_from([0.2, 0.3, 0.5]),
     "early_exit": st.booleans(),
     "exit_level": st.sampled_from([None, None, 0.05, 0.3, 0.5, 0.9]),
+    "box_voting": st.sampled_from([None, None, 0.3, 0.5, 1.0]),
 })
 
 
@@ -416,6 +417,39 @@ def test_threshold_invariance_holds_on_the_numpy_route_and_on_candidates(model):
     cut = d_lo.scores >= 0.5
     np.testing.assert_array_equal(d_hi.boxes, d_lo.boxes[cut])
     np.testing.assert_array_equal(d_hi.scores, d_lo.scores[cut])
+
+
+def test_box_voting_moves_only_the_boxes(model):
+    """With box_voting=0.5 a scan at 0.1 keeps the plain scan's detections, scores and order;
+    each box is the score-weighted mean of the object boxes of the windows (candidates of a plain
+    scan at 0.05, half the threshold) that overlap the plain box by IoU >= 0.5 (geometry.iou) and
+    score at least half of it, recomputed here one by one; the numpy route gives the same."""
+    from detector.geometry import iou
+
+    gray = frame(9)
+    plain = Engine(model, ScanSettings(threshold=0.1)).scan(gray)
+    engine = Engine(model, ScanSettings(threshold=0.1, box_voting=0.5))
+    voted = engine.scan(gray)
+    assert len(plain.scores) >= 2
+    np.testing.assert_array_equal(voted.scores, plain.scores)
+    wb, raw, _, _ = Engine(model, ScanSettings(threshold=0.05)).candidates(gray)
+    scores = detection_scores(model, raw)
+    x, y, w, h = window_box_to_object_box(wb[:, 0], wb[:, 1], wb[:, 2], wb[:, 3], engine.margin)
+    boxes = clip_boxes(np.stack([x, y, w, h], axis=1), gray.shape[::-1])
+    moved = 0
+    for box, score, got in zip(plain.boxes, plain.scores, voted.boxes):
+        votes = (iou(box[None], boxes)[0] >= 0.5) & (scores >= 0.5 * score)
+        assert votes.sum() >= 1
+        expected = (scores[votes, None] * boxes[votes]).sum(axis=0) / scores[votes].sum()
+        np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-9)
+        moved += int(votes.sum() > 1)
+    assert moved >= 1 and not np.array_equal(voted.boxes, plain.boxes)
+    again = engine.scan(gray, use_numpy=True)
+    np.testing.assert_array_equal(again.scores, voted.scores)
+    np.testing.assert_allclose(again.boxes, voted.boxes, rtol=1e-12, atol=1e-9)
+    for bad in (0.0, -0.5, 1.5):
+        with pytest.raises(ValueError, match="box_voting"):
+            ScanSettings(box_voting=bad)
 
 
 def test_default_exits_are_the_models_own_and_the_level_picks_a_row(model):

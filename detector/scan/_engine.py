@@ -27,7 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from detector.scan import _kernels
-from detector.geometry import nms
+from detector.geometry import iou, nms
 from detector.errors import InputError
 from detector.features import SIGMA_FLOOR
 from detector.geometry import window_box_to_object_box
@@ -219,6 +219,15 @@ class ScanSettings:
         0.1 is margin); 0.5, the most, lets a window's centre reach the edge, so objects at least
         half inside are looked for, whatever the margin; 0 keeps every window inside. Windows
         inside the image are the same whatever the overhang (the grid only grows outward).
+    box_voting : float in (0, 1] or None
+        None (the default): a detection's box is the object box of the window that scored it. A
+        share ``rho``: each detection kept by non-maximum suppression moves to the score-weighted
+        mean of the object boxes of every window with IoU >= :data:`VOTE_IOU` with it that scores
+        at least ``rho`` times its score, itself included (box voting; Gidaris and Komodakis,
+        ICCV 2015; Viola and Jones, IJCV 2004, averaged overlapping detections). The detections,
+        their scores and their order are those without it; only boxes move, and the scan keeps
+        its windows down to ``rho`` times the threshold, so a scan at threshold T still gives
+        exactly the detections (and boxes) of a scan at a lower threshold that score T or more.
     """
 
     scale_step: float = 1.2
@@ -230,6 +239,7 @@ class ScanSettings:
     early_exit: bool = True
     overhang: float = 0.25
     exit_level: float | None = None
+    box_voting: float | None = None
 
     def __post_init__(self):
         if not 0.0 <= self.overhang <= MAX_OVERHANG:
@@ -241,6 +251,13 @@ class ScanSettings:
                 raise ValueError(f"exit_level must be in [0, 1], got {self.exit_level!r}")
             if not self.early_exit:
                 raise ValueError("exit_level chooses early exits; it needs early_exit")
+        if self.box_voting is not None and not 0.0 < self.box_voting <= 1.0:
+            raise ValueError(f"box_voting must be in (0, 1], got {self.box_voting!r}")
+
+
+#: Box voting (``ScanSettings.box_voting``): a window votes for a detection's box when its object
+#: box has at least this IoU with the detection's (the overlap Gidaris and Komodakis use).
+VOTE_IOU = 0.5
 
 
 #: The scan looks for objects from the smallest labelled size divided by this to the largest
@@ -886,7 +903,11 @@ class Engine:
         gate = model.exit_min_sigma if self.settings.early_exit else 0.0
         self.min_var = gate * gate if gate > 0 else -np.inf
         self.threshold = float(self.settings.threshold)
-        self.cutoff = kernel_cutoff(model, self.threshold)
+        self.voting = self.settings.box_voting
+        # the windows a scan keeps: down to the threshold, or to the share of it whose windows
+        # may vote for a detection's box
+        self.keep_from = self.threshold * (self.voting if self.voting else 1.0)
+        self.cutoff = kernel_cutoff(model, self.keep_from)
         self.normalize = bool(model.normalize)
         # a model with gradient channel features is scanned on an image pyramid (see LevelPlan);
         # a grey model by scaling its rectangles over one integral image
@@ -971,9 +992,9 @@ class Engine:
                                len(self.features))
 
     def candidates(self, gray: np.ndarray, use_numpy: bool = False):
-        """Every window whose score (:func:`detection_scores`) reaches the threshold: ``(boxes
-        (K,4) window boxes, raw (K,), windows, trees)``, before the margin and non-maximum
-        suppression. Window boxes may reach past the image's edges (see
+        """Every window whose score (:func:`detection_scores`) reaches the threshold (with box
+        voting, the share of it whose windows vote): ``(boxes (K,4) window boxes, raw (K,),
+        windows, trees)``, before the margin and non-maximum suppression. Window boxes may reach past the image's edges (see
         ``ScanSettings.overhang``)."""
         if self.pyramid:
             return self._pyramid_candidates(gray, use_numpy)
@@ -1110,7 +1131,7 @@ class Engine:
             out_s = np.zeros(0)
         kept = len(out_s)
         scores = detection_scores(self.model, out_s[:kept])
-        keep = np.flatnonzero(scores >= self.threshold)
+        keep = np.flatnonzero(scores >= self.keep_from)
         index = out_scale[keep]
         pads = np.array([lv.pad for lv in levels], np.float64)[index]
         factors = np.array([lv.factor for lv in levels], np.float64).reshape(-1, 2)[index]
@@ -1165,7 +1186,7 @@ class Engine:
         # the exact rule: the loop kept every window that can score the threshold, and a few
         # just below it (kernel_cutoff)
         scores = detection_scores(self.model, out_s[:kept])
-        reach = scores >= self.threshold
+        reach = scores >= self.keep_from
         if not reach.all():
             keep = np.flatnonzero(reach)
             for out in (out_x, out_y, out_s, out_scale):
@@ -1182,9 +1203,11 @@ class Engine:
         the windows kept into detections in one compiled call (:func:`detector.scan._kernels.finish`):
         the two dozen numpy calls of that way cost a tenth of a small frame's scan.
         """
-        if use_numpy or self.pyramid:
+        if use_numpy or self.pyramid or self.voting:
             wboxes, raw, windows, trees = self.candidates(gray, use_numpy=use_numpy)
-            boxes, scores = self.detections(wboxes, raw, image_size=gray.shape[::-1])
+            boxes, scores = self.detections(
+                wboxes, raw, image_size=gray.shape[::-1],
+                threshold=self.threshold if self.voting else None, box_voting=self.voting)
             return FrameResult(boxes, scores, windows, trees)
         grid, up, (out_x, out_y, out_s, out_scale), scores, kept, trees = self._run(gray)
         if grid is None or not kept:
@@ -1197,7 +1220,7 @@ class Engine:
         return FrameResult(boxes, scores, grid.windows, trees)
 
     def detections(self, window_boxes, raw, nms_iou=None, threshold=None, image_size=None,
-                   windows: bool = False):
+                   windows: bool = False, box_voting: float | None = None):
         """Candidates -> object boxes and 0..1 scores (:func:`detection_scores`), descending, after
         non-maximum suppression (at ``nms_iou``, default the settings'), keeping scores >=
         ``threshold`` (default: all).
@@ -1205,24 +1228,69 @@ class Engine:
         ``image_size=(width, height)``: clip the object boxes to the image first (a window that
         reaches past the edge stands for the part of the object inside, as labels do).
         ``windows=True``: also return the window box of each detection (what the scan scored).
+        ``box_voting=rho``: move each detection's box to the score-weighted mean of the object
+        boxes of the candidates (all of them, also those below ``threshold``) that score at least
+        ``rho`` times its score and overlap it by IoU >= :data:`VOTE_IOU`
+        (``ScanSettings.box_voting``; :func:`vote_boxes`).
         """
-        scores = detection_scores(self.model, raw)
-        if threshold is not None:
-            keep = scores >= threshold
-            window_boxes, scores = window_boxes[keep], scores[keep]
+        all_scores = detection_scores(self.model, raw)
         if not len(window_boxes):
             empty = (np.zeros((0, 4)), np.zeros(0))
             return empty + (np.zeros((0, 4)),) if windows else empty
         x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
                                               window_boxes[:, 2], window_boxes[:, 3], self.margin)
-        obj = np.stack([x, y, w, h], axis=1)
+        all_obj = np.stack([x, y, w, h], axis=1)
         if image_size is not None:
-            obj = clip_boxes(obj, image_size)
+            all_obj = clip_boxes(all_obj, image_size)
+        obj, scores = all_obj, all_scores
+        if threshold is not None:
+            keep = all_scores >= threshold
+            window_boxes, obj, scores = window_boxes[keep], all_obj[keep], all_scores[keep]
+        if not len(obj):
+            empty = (np.zeros((0, 4)), np.zeros(0))
+            return empty + (np.zeros((0, 4)),) if windows else empty
         keep = nms(obj, scores, self.settings.nms_iou if nms_iou is None else nms_iou)
         order = keep[np.argsort(-scores[keep], kind="stable")]
+        boxes = obj[order]
+        if box_voting is not None:
+            boxes = vote_boxes(boxes, scores[order], all_obj, all_scores, box_voting)
         if windows:
-            return obj[order], scores[order], window_boxes[order]
-        return obj[order], scores[order]
+            return boxes, scores[order], window_boxes[order]
+        return boxes, scores[order]
+
+
+def vote_boxes(boxes, scores, voter_boxes, voter_scores, share: float,
+               min_iou: float = VOTE_IOU) -> np.ndarray:
+    """Box voting: each of ``boxes`` (scored ``scores``) moved to the ``voter_scores``-weighted
+    mean of the ``voter_boxes`` that score at least ``share`` times its score and have IoU >=
+    ``min_iou`` with it (:func:`detector.geometry.iou`), summed in the voters' order. A box that is
+    one of the voters votes for itself; a box with no voter stays where it is.
+
+    A 0.75 detection at x = 0 (10 x 10) and three windows: its own, one scoring 0.5 four pixels
+    to the right (IoU 60 / 140 = 0.43, too far to vote) and one scoring 0.25 two pixels to the
+    right (IoU 80 / 120 = 0.67). With share 0.3 the first and the third vote, x = (0.75 * 0 +
+    0.25 * 2) / (0.75 + 0.25) = 0.5; with share 0.5 (0.25 < 0.375) only its own window.
+
+    >>> d = np.array([[0.0, 0.0, 10.0, 10.0]])
+    >>> v = np.array([[0.0, 0, 10, 10], [4.0, 0, 10, 10], [2.0, 0, 10, 10]])
+    >>> vote_boxes(d, [0.75], v, np.array([0.75, 0.5, 0.25]), 0.3).tolist()
+    [[0.5, 0.0, 10.0, 10.0]]
+    >>> vote_boxes(d, [0.75], v, np.array([0.75, 0.5, 0.25]), 0.5).tolist()
+    [[0.0, 0.0, 10.0, 10.0]]
+    """
+    boxes = np.asarray(boxes, np.float64)
+    out = boxes.copy()
+    if not len(boxes) or not len(voter_boxes):
+        return out
+    voter_boxes = np.asarray(voter_boxes, np.float64)
+    voter_scores = np.asarray(voter_scores, np.float64)
+    overlap = iou(boxes, voter_boxes)
+    for k in range(len(boxes)):
+        votes = np.flatnonzero((overlap[k] >= min_iou) & (voter_scores >= share * scores[k]))
+        if len(votes):
+            weights = voter_scores[votes]
+            out[k] = (weights[:, None] * voter_boxes[votes]).sum(axis=0) / weights.sum()
+    return out
 
 
 def clip_boxes(boxes, image_size) -> np.ndarray:

@@ -49,7 +49,10 @@ PROVENANCE_FORMAT = "patchwood scan provenance"
 PROVENANCE_VERSION = 1
 #: The settings that decide which detections a scan gives (every ScanSettings field).
 _SETTING_NAMES = ("scale_step", "stride", "min_object", "max_object", "threshold", "nms_iou",
-                  "early_exit", "overhang", "exit_level")
+                  "early_exit", "overhang", "exit_level", "box_voting")
+#: Settings added after version 1 records were first written, with the value a record without
+#: them was scanned with.
+_LATER_SETTINGS = {"box_voting": None}
 
 
 def provenance_path(detections_path) -> Path:
@@ -128,6 +131,9 @@ def _check_record(doc, path) -> dict:
     model, settings = doc.get("model"), doc.get("settings")
     if not isinstance(model, dict) or not isinstance(model.get("sha256"), str):
         raise InputError("the provenance names no model file SHA-256", path=path)
+    if isinstance(settings, dict):
+        for name, value in _LATER_SETTINGS.items():
+            settings.setdefault(name, value)
     if not isinstance(settings, dict) or any(name not in settings for name in _SETTING_NAMES):
         missing = [n for n in _SETTING_NAMES if not isinstance(settings, dict) or n not in settings]
         raise InputError(f"the provenance lacks the scan setting {missing[0]!r}", path=path)
@@ -285,6 +291,8 @@ def describe_settings(settings: dict) -> str:
     ...                    "max_object": None, "threshold": 0.05, "nms_iou": 0.3,
     ...                    "early_exit": True, "overhang": 0.25, "exit_level": None})
     'threshold 0.05, scale step 1.2, stride 2, NMS IoU 0.3, overhang 0.25, early exit on (exits for every threshold)'
+    >>> describe_settings({"threshold": 0.5, "box_voting": 0.5}).split(", ")[-1]
+    'box voting 0.5'
     """
     def number(v):
         return "any" if v is None else f"{v:g}"
@@ -304,4 +312,6 @@ def describe_settings(settings: dict) -> str:
     else:
         parts.append(f"early exit on (tighter exits for scans at {settings['exit_level']:g} "
                      "or above)")
+    if settings.get("box_voting") is not None:
+        parts.append(f"box voting {settings['box_voting']:g}")
     return ", ".join(parts)
