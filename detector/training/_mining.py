@@ -129,8 +129,12 @@ def mine(model, images_dir, items, *, settings: ScanSettings | None = None, per_
     low = ScanSettings(**{**settings.__dict__, "threshold": min(mining_threshold, settings.threshold)})
     # the default exits keep every calibration object whatever the threshold, so a false alarm a
     # scan could report does not escape mining by exiting early here
-    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None}) if not count_only
-                    else ScanSettings(**{**settings.__dict__, "exit_level": settings.threshold}))
+    # (boxes as the windows scored them: mining cuts those windows, and voting would keep more
+    # windows as candidates)
+    engine = Engine(model, ScanSettings(**{**low.__dict__, "exit_level": None, "box_voting": None})
+                    if not count_only else
+                    ScanSettings(**{**settings.__dict__, "exit_level": settings.threshold,
+                                    "box_voting": None}))
     W, H = engine.window
 
     def one(it):
