@@ -172,8 +172,10 @@ def recorded_calls(bank):
                 clf = PatchClassifier(n_trees=12, pool=1500, mode=mode, random_state=0,
                                       channels=channels)
                 clf.fit(bank.patches, bank.labels, margin=bank.margin)
-                for settings in (ScanSettings(threshold=0.2), ScanSettings(threshold=0.0,
-                                                                           early_exit=False)):
+                # the compiled finish serves scans without box voting
+                for settings in (ScanSettings(threshold=0.2),
+                                 ScanSettings(threshold=0.2, box_voting=None),
+                                 ScanSettings(threshold=0.0, early_exit=False)):
                     engine = Engine(clf.model_, settings)
                     for gray in frames:
                         engine.scan(gray)

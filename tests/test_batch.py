@@ -261,8 +261,10 @@ def test_resume_refuses_an_output_made_another_way(trained, folder, tmp_path, mo
          "other settings: exit_level 0.5 (recorded None)"),
         ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--overhang", 0],
          "other settings: overhang 0.0 (recorded 0.25)"),
-        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--box-voting", 0.5],
-         "other settings: box_voting 0.5 (recorded None)"),
+        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--box-voting", 0],
+         "other settings: box_voting None (recorded 0.5)"),
+        ([model, folder, "--out", out, "--resume", "--threshold", 0.3, "--box-voting", 0.3],
+         "other settings: box_voting 0.3 (recorded 0.5)"),
     ]
     for args, message in cases:
         code, _, err = run_main(monkeypatch, capsys, *args)
@@ -286,9 +288,10 @@ def test_resume_refuses_an_output_made_another_way(trained, folder, tmp_path, mo
 
 
 def test_box_voting_through_the_command(trained, folder, tmp_path):
-    """`scan --box-voting 0.5` writes the detections the engine gives with box_voting=0.5 (the
-    same rows and scores as without it, other boxes), records the setting in the provenance
-    side file, and a side file written before the setting existed reads as without it."""
+    """`scan` votes by default (`--box-voting 0.5`): it writes the detections the engine gives
+    with box_voting=0.5, the same rows and scores as `--box-voting 0` (off) with other boxes,
+    records the setting in the provenance side file (None when off), and a side file written
+    before the setting existed reads as without it."""
     import json
 
     from detector.io.labels import read_detections
@@ -296,8 +299,8 @@ def test_box_voting_through_the_command(trained, folder, tmp_path):
 
     model = trained / "model.npz"
     plain, voted = tmp_path / "plain.csv", tmp_path / "voted.csv"
-    assert invoke(model, folder, "--out", plain, "--threshold", 0.1).exit_code == 0
-    result = invoke(model, folder, "--out", voted, "--threshold", 0.1, "--box-voting", 0.5)
+    assert invoke(model, folder, "--out", plain, "--threshold", 0.1, "--box-voting", 0).exit_code == 0
+    result = invoke(model, folder, "--out", voted, "--threshold", 0.1)
     assert result.exit_code == 0, result.output
     a, b = read_detections(plain), read_detections(voted)
     assert [d.image for d in a] == [d.image for d in b]

@@ -63,9 +63,11 @@ def frame(seed=3, width=160, height=160):
 
 
 def every_window(model, **kw):
-    """Settings that keep every window: threshold 0, no early exit (unless asked)."""
+    """Settings that keep every window: threshold 0, no early exit, boxes as the windows scored
+    them (unless asked)."""
     kw.setdefault("threshold", 0.0)
     kw.setdefault("early_exit", False)
+    kw.setdefault("box_voting", None)
     return Engine(model, ScanSettings(**kw))
 
 
@@ -129,7 +131,7 @@ def test_scan_equals_candidates_then_detections(model, settings):
     rng = np.random.default_rng(8)
     images = [frame(3), frame(4, 200, 160), rng.integers(0, 256, (47, 71), dtype=np.uint8),
               np.full((30, 30), 128, np.uint8)]
-    settings = {"threshold": 0.05, **settings}
+    settings = {"threshold": 0.05, "box_voting": None, **settings}   # voting takes numpy's way
     engine = Engine(model, ScanSettings(**settings))
     every = model.mode == "bagged" and settings["threshold"] == 0.0 and not settings.get(
         "early_exit", True)
@@ -214,9 +216,12 @@ def test_windows_inside_the_image_do_not_depend_on_the_overhang(model):
     assert inside.padding((176, 164)) == 0 < edges.padding((176, 164))
 
 
-def test_detections_are_clipped_to_the_image(model):
+@pytest.mark.parametrize("voting", [None, 0.5])
+def test_detections_are_clipped_to_the_image(model, voting):
+    """Boxes reported never reach past the frame, also when box voting averages boxes that end
+    at its edge (a mean of x and of w may end an ulp past it: clipped again)."""
     gray = frame(6, 176, 164)
-    engine = every_window(model, overhang=0.5)
+    engine = every_window(model, overhang=0.5, box_voting=voting)
     result = engine.scan(gray)
     wboxes, raw, _, _ = engine.candidates(gray)
     assert (wboxes[:, 0] < 0).any()  # some windows reach past the edge ...
@@ -238,7 +243,8 @@ def test_scan_objects_are_window_boxes_shrunk_by_margin(bagged):
     box within the frame keeps the object box's width and height exactly (20 at scale 1, not a
     clipped difference that may be one ulp off); boxes at the edges are cut as clip_boxes cuts."""
     gray = frame(7)
-    engine = Engine(bagged, ScanSettings(threshold=0.0, early_exit=False, overhang=0.5))
+    engine = Engine(bagged, ScanSettings(threshold=0.0, early_exit=False, overhang=0.5,
+                                         box_voting=None))
     result = engine.scan(gray)
     wboxes, raw, windows, trees = engine.candidates(gray)
     assert (result.windows, result.trees) == (windows, trees) and len(raw) == windows
@@ -406,7 +412,7 @@ def test_threshold_invariance_holds_on_the_numpy_route_and_on_candidates(model):
     candidates of a scan at 0.5 are those of the scan at 0.05 whose score is 0.5 or more, in the
     same window order."""
     gray = frame(9)
-    lo, hi = (Engine(model, ScanSettings(threshold=t)) for t in (0.05, 0.5))
+    lo, hi = (Engine(model, ScanSettings(threshold=t, box_voting=None)) for t in (0.05, 0.5))
     b_lo, r_lo, _, _ = lo.candidates(gray)
     b_hi, r_hi, _, _ = hi.candidates(gray)
     keep = detection_scores(model, r_lo) >= 0.5
@@ -427,12 +433,12 @@ def test_box_voting_moves_only_the_boxes(model):
     from detector.geometry import iou
 
     gray = frame(9)
-    plain = Engine(model, ScanSettings(threshold=0.1)).scan(gray)
+    plain = Engine(model, ScanSettings(threshold=0.1, box_voting=None)).scan(gray)
     engine = Engine(model, ScanSettings(threshold=0.1, box_voting=0.5))
     voted = engine.scan(gray)
     assert len(plain.scores) >= 2
     np.testing.assert_array_equal(voted.scores, plain.scores)
-    wb, raw, _, _ = Engine(model, ScanSettings(threshold=0.05)).candidates(gray)
+    wb, raw, _, _ = Engine(model, ScanSettings(threshold=0.05, box_voting=None)).candidates(gray)
     scores = detection_scores(model, raw)
     x, y, w, h = window_box_to_object_box(wb[:, 0], wb[:, 1], wb[:, 2], wb[:, 3], engine.margin)
     boxes = clip_boxes(np.stack([x, y, w, h], axis=1), gray.shape[::-1])

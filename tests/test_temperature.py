@@ -122,7 +122,7 @@ def test_boosted_scan_scores_follow_the_temperature_on_sklearn_sums():
     chosen = np.r_[np.arange(25), 120 + rng.choice(240, 11, replace=False)]
     gray = patches[chosen][:, 1:11, 1:11].reshape(6, 6, 10, 10).transpose(0, 2, 1, 3).reshape(60, 60)
     engine = Engine(model, ScanSettings(threshold=0.0, early_exit=False, stride=3.0, nms_iou=1.0,
-                                        max_object=12.0, overhang=0.0))
+                                        max_object=12.0, overhang=0.0, box_voting=None))
     result = engine.scan(gray)
     assert len(result.scores) == 17 * 17  # (60 - 12) / 3 + 1 = 17 windows a side, all at scale 1
     assert (result.boxes[:, 2:] == 12).all()  # margin 0: the object box is the window

@@ -220,14 +220,16 @@ class ScanSettings:
         half inside are looked for, whatever the margin; 0 keeps every window inside. Windows
         inside the image are the same whatever the overhang (the grid only grows outward).
     box_voting : float in (0, 1] or None
-        None (the default): a detection's box is the object box of the window that scored it. A
-        share ``rho``: each detection kept by non-maximum suppression moves to the score-weighted
-        mean of the object boxes of every window with IoU >= :data:`VOTE_IOU` with it that scores
-        at least ``rho`` times its score, itself included (box voting; Gidaris and Komodakis,
+        A share ``rho``, 0.5 by default: each detection kept by non-maximum suppression moves to
+        the score-weighted mean of the object boxes of every window with IoU >= :data:`VOTE_IOU`
+        with it that scores at least ``rho`` times its score, itself included (box voting;
+        Gidaris and Komodakis,
         ICCV 2015; Viola and Jones, IJCV 2004, averaged overlapping detections). The detections,
         their scores and their order are those without it; only boxes move, and the scan keeps
         its windows down to ``rho`` times the threshold, so a scan at threshold T still gives
         exactly the detections (and boxes) of a scan at a lower threshold that score T or more.
+        None: a detection's box is the object box of the window that scored it (the compiled
+        finish, a little faster). Mining always scans without it.
     """
 
     scale_step: float = 1.2
@@ -239,7 +241,7 @@ class ScanSettings:
     early_exit: bool = True
     overhang: float = 0.25
     exit_level: float | None = None
-    box_voting: float | None = None
+    box_voting: float | None = 0.5
 
     def __post_init__(self):
         if not 0.0 <= self.overhang <= MAX_OVERHANG:
@@ -1254,6 +1256,8 @@ class Engine:
         boxes = obj[order]
         if box_voting is not None:
             boxes = vote_boxes(boxes, scores[order], all_obj, all_scores, box_voting)
+            if image_size is not None:  # a mean of x and of w may end an ulp past the edge
+                boxes = clip_boxes(boxes, image_size)
         if windows:
             return boxes, scores[order], window_boxes[order]
         return boxes, scores[order]
