@@ -113,11 +113,13 @@ def test_compiled_scan_equals_numpy_twin_at_other_depths(bank, depth, early_exit
 
 @pytest.mark.parametrize("settings", [dict(), dict(overhang=0.5, nms_iou=0.6),
                                       dict(overhang=0.0, stride=3.0), dict(min_object=12.0),
-                                      dict(threshold=0.0, early_exit=False)])
+                                      dict(threshold=0.0, early_exit=False),
+                                      dict(box_voting=0.5), dict(box_voting=0.3, overhang=0.5)])
 def test_scan_equals_candidates_then_detections(model, settings):
     """The compiled finish (kernels.finish: window boxes, margin, clipping, suppression in one
     call) gives exactly what candidates() and detections() give with numpy: same boxes, same
-    scores, same order. min_object 12 enlarges the frame: the window's object side is
+    scores, same order; with box voting, the finish of the windows at or above the threshold and
+    the votes of every window kept equal detections() with its threshold and voting. min_object 12 enlarges the frame: the window's object side is
     24 / (1 + 2 * 0.1) = 20 pixels (the bank's margin 0.1), so the smallest scale is 12 / 20 = 0.6
     and the frame grows by 1 / 0.6 = 1.67.
 
@@ -138,7 +140,9 @@ def test_scan_equals_candidates_then_detections(model, settings):
     for gray in images:
         result = engine.scan(gray)
         wboxes, raw, windows, trees = engine.candidates(gray)
-        boxes, scores = engine.detections(wboxes, raw, image_size=gray.shape[::-1])
+        boxes, scores = engine.detections(
+            wboxes, raw, image_size=gray.shape[::-1], box_voting=engine.voting,
+            threshold=engine.threshold if engine.voting else None)
         assert (result.windows, result.trees) == (windows, trees)
         np.testing.assert_array_equal(result.boxes, boxes)
         np.testing.assert_array_equal(result.scores, scores)

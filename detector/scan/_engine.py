@@ -1003,11 +1003,8 @@ class Engine:
         grid, up, (out_x, out_y, out_s, out_scale), _, kept, trees = self._run(gray, use_numpy)
         if grid is None:
             return np.zeros((0, 4)), np.zeros(0), 0, 0
-        boxes = np.empty((kept, 4))
-        boxes[:, 0] = (out_x[:kept] - grid.pad) / up
-        boxes[:, 1] = (out_y[:kept] - grid.pad) / up
-        boxes[:, 2:] = grid.sizes[out_scale[:kept]] / up
-        return boxes, out_s[:kept].copy(), grid.windows, int(trees)
+        return (_window_boxes(grid, up, out_x, out_y, out_scale, kept), out_s[:kept].copy(),
+                grid.windows, int(trees))
 
     def _enlarged(self, gray):
         """``(gray, up)``: the frame enlarged ``up`` times (``cv2.resize``, bilinear) when the
@@ -1203,23 +1200,38 @@ class Engine:
         The same as :meth:`candidates` followed by :meth:`detections` with the image's size (the
         numpy route takes that way, and the tests hold the two equal), but the compiled route turns
         the windows kept into detections in one compiled call (:func:`detector.scan._kernels.finish`):
-        the two dozen numpy calls of that way cost a tenth of a small frame's scan.
+        the two dozen numpy calls of that way cost a tenth of a small frame's scan. With box voting
+        it finishes the windows at or above the threshold that way, then every window kept votes
+        (:func:`vote_boxes`).
         """
-        if use_numpy or self.pyramid or self.voting:
+        if use_numpy or self.pyramid:
             wboxes, raw, windows, trees = self.candidates(gray, use_numpy=use_numpy)
             boxes, scores = self.detections(
                 wboxes, raw, image_size=gray.shape[::-1],
                 threshold=self.threshold if self.voting else None, box_voting=self.voting)
             return FrameResult(boxes, scores, windows, trees)
         grid, up, (out_x, out_y, out_s, out_scale), scores, kept, trees = self._run(gray)
+        empty = FrameResult(np.zeros((0, 4)), np.zeros(0), 0 if grid is None else grid.windows,
+                            trees)
         if grid is None or not kept:
-            return FrameResult(np.zeros((0, 4)), np.zeros(0), 0 if grid is None else grid.windows,
-                               trees)
+            return empty
         ih, iw = gray.shape
-        boxes, scores = _kernels.finish(out_x, out_y, out_scale, scores, grid.sizes, grid.pad,
-                                        float(up), self.margin, float(iw), float(ih),
-                                        float(self.settings.nms_iou))
-        return FrameResult(boxes, scores, grid.windows, trees)
+        finish_args = (grid.sizes, grid.pad, float(up), self.margin, float(iw), float(ih),
+                       float(self.settings.nms_iou))
+        if not self.voting:
+            boxes, scores = _kernels.finish(out_x, out_y, out_scale, scores, *finish_args)
+            return FrameResult(boxes, scores, grid.windows, trees)
+        above = np.flatnonzero(scores >= self.threshold)
+        if not len(above):
+            return empty
+        boxes, found = _kernels.finish(out_x[above], out_y[above], out_scale[above],
+                                       scores[above], *finish_args)
+        windows = _window_boxes(grid, up, out_x, out_y, out_scale, kept)
+        x, y, w, h = window_box_to_object_box(windows[:, 0], windows[:, 1], windows[:, 2],
+                                              windows[:, 3], self.margin)
+        voters = clip_boxes(np.stack([x, y, w, h], axis=1), (iw, ih))
+        boxes = clip_boxes(vote_boxes(boxes, found, voters, scores, self.voting), (iw, ih))
+        return FrameResult(boxes, found, grid.windows, trees)
 
     def detections(self, window_boxes, raw, nms_iou=None, threshold=None, image_size=None,
                    windows: bool = False, box_voting: float | None = None):
@@ -1261,6 +1273,16 @@ class Engine:
         if windows:
             return boxes, scores[order], window_boxes[order]
         return boxes, scores[order]
+
+
+def _window_boxes(grid, up, out_x, out_y, out_scale, kept) -> np.ndarray:
+    """The window boxes ``(x, y, w, h)`` of the first ``kept`` windows a grey model's scan kept,
+    in the frame's pixels (before any enlargement ``up``)."""
+    boxes = np.empty((kept, 4))
+    boxes[:, 0] = (out_x[:kept] - grid.pad) / up
+    boxes[:, 1] = (out_y[:kept] - grid.pad) / up
+    boxes[:, 2:] = grid.sizes[out_scale[:kept]] / up
+    return boxes
 
 
 #: Detections :func:`vote_boxes` takes together against the windows that can meet them.
