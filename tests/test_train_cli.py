@@ -307,16 +307,21 @@ def test_train_usage_and_input_errors(scenario, cli_env, tmp_path):
     assert not out.exists()
 
 
+def small_mining_model(scenario):
+    """``(test folder, a 10-tree model of the scenario's bank, the test split's labels)``."""
+    test = scenario / "scenario" / "test"
+    model, _ = train_model(load_bank(scenario / "bank.npz"),
+                           dict(n_trees=10, depth=2, mode="bagged", pool=500, random_state=0,
+                                channels=DEFAULT_TRAIN["channels"]))
+    return test, model, read_labels(test / "labels.csv", images_dir=test / "images").items
+
+
 def test_mining_on_two_threads_finds_what_one_finds(scenario):
     """`train --jobs 2` scans the mining images two at a time: the same patches, boxes, scores
     and counts, in the same order, as one at a time."""
     from detector.training import mine
 
-    test = scenario / "scenario" / "test"
-    model, _ = train_model(load_bank(scenario / "bank.npz"),
-                           dict(n_trees=10, depth=2, mode="bagged", pool=500, random_state=0,
-                                channels=DEFAULT_TRAIN["channels"]))
-    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    test, model, items = small_mining_model(scenario)
     one = mine(model, test / "images", items, n_jobs=1)
     two = mine(model, test / "images", items, n_jobs=2)
     assert len(one.patches) > 0 and one.images == two.images
@@ -334,11 +339,7 @@ def test_mining_rounds_read_each_image_once(scenario, monkeypatch):
     from detector.training import _mining
     from detector.training._mining import FrameCache, mine
 
-    test = scenario / "scenario" / "test"
-    model, _ = train_model(load_bank(scenario / "bank.npz"),
-                           dict(n_trees=10, depth=2, mode="bagged", pool=500, random_state=0,
-                                channels=DEFAULT_TRAIN["channels"]))
-    items = read_labels(test / "labels.csv", images_dir=test / "images").items
+    test, model, items = small_mining_model(scenario)
     plain = mine(model, test / "images", items, n_jobs=2)
     reads = []
     monkeypatch.setattr(_mining, "read_gray", lambda path: reads.append(path) or read_gray(path))

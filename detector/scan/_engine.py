@@ -1226,10 +1226,8 @@ class Engine:
             return empty
         boxes, found = _kernels.finish(out_x[above], out_y[above], out_scale[above],
                                        scores[above], *finish_args)
-        windows = _window_boxes(grid, up, out_x, out_y, out_scale, kept)
-        x, y, w, h = window_box_to_object_box(windows[:, 0], windows[:, 1], windows[:, 2],
-                                              windows[:, 3], self.margin)
-        voters = clip_boxes(np.stack([x, y, w, h], axis=1), (iw, ih))
+        voters = self._object_boxes(_window_boxes(grid, up, out_x, out_y, out_scale, kept),
+                                    (iw, ih))
         boxes = clip_boxes(vote_boxes(boxes, found, voters, scores, self.voting), (iw, ih))
         return FrameResult(boxes, found, grid.windows, trees)
 
@@ -1248,31 +1246,39 @@ class Engine:
         (``ScanSettings.box_voting``; :func:`vote_boxes`).
         """
         all_scores = detection_scores(self.model, raw)
+        empty = (np.zeros((0, 4)), np.zeros(0))
         if not len(window_boxes):
-            empty = (np.zeros((0, 4)), np.zeros(0))
             return empty + (np.zeros((0, 4)),) if windows else empty
-        x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
-                                              window_boxes[:, 2], window_boxes[:, 3], self.margin)
-        all_obj = np.stack([x, y, w, h], axis=1)
-        if image_size is not None:
-            all_obj = clip_boxes(all_obj, image_size)
-        obj, scores = all_obj, all_scores
+        # every candidate's object box when they all vote; else only those of the kept ones
+        voters = None if box_voting is None else self._object_boxes(window_boxes, image_size)
+        scores = all_scores
         if threshold is not None:
             keep = all_scores >= threshold
-            window_boxes, obj, scores = window_boxes[keep], all_obj[keep], all_scores[keep]
+            window_boxes, scores = window_boxes[keep], all_scores[keep]
+            obj = voters[keep] if voters is not None else self._object_boxes(window_boxes,
+                                                                              image_size)
+        else:
+            obj = voters if voters is not None else self._object_boxes(window_boxes, image_size)
         if not len(obj):
-            empty = (np.zeros((0, 4)), np.zeros(0))
             return empty + (np.zeros((0, 4)),) if windows else empty
         keep = nms(obj, scores, self.settings.nms_iou if nms_iou is None else nms_iou)
         order = keep[np.argsort(-scores[keep], kind="stable")]
         boxes = obj[order]
         if box_voting is not None:
-            boxes = vote_boxes(boxes, scores[order], all_obj, all_scores, box_voting)
+            boxes = vote_boxes(boxes, scores[order], voters, all_scores, box_voting)
             if image_size is not None:  # a mean of x and of w may end an ulp past the edge
                 boxes = clip_boxes(boxes, image_size)
         if windows:
             return boxes, scores[order], window_boxes[order]
         return boxes, scores[order]
+
+    def _object_boxes(self, window_boxes, image_size=None) -> np.ndarray:
+        """The object boxes that window boxes stand for (shrunk by the margin), cut to the image
+        ``(width, height)`` when given."""
+        x, y, w, h = window_box_to_object_box(window_boxes[:, 0], window_boxes[:, 1],
+                                              window_boxes[:, 2], window_boxes[:, 3], self.margin)
+        obj = np.stack([x, y, w, h], axis=1)
+        return obj if image_size is None else clip_boxes(obj, image_size)
 
 
 def _window_boxes(grid, up, out_x, out_y, out_scale, kept) -> np.ndarray:
