@@ -47,6 +47,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from detector.features import evaluate_features, evaluate_features_numpy, random_pool  # noqa: E402
 
+from detector.features._integral import integral_images, integral_images_numpy  # noqa: E402
 from detector.features._rectangles import skimage_coordinates  # noqa: E402
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
@@ -110,6 +111,14 @@ def main(argv=None):
     allocated = timed(lambda: evaluate_features(pool, patches, transpose=True), 1)[0]
     print(f"  {'normalised (F, N), new output array':<20} {allocated:7.3f}  (one run; includes "
           f"page faults of a fresh {n * f * 4 / 1e6:,.0f} MB array)")
+
+    # the integral images alone: training makes them again for every block of its pool
+    integral_images(patches[:10])
+    compiled = timed(lambda: integral_images(patches), args.repeats)[0]
+    plain = timed(lambda: integral_images_numpy(patches), args.repeats)[0]
+    print(f"  integral images of the {n:,} patches (part of each run above): compiled "
+          f"{compiled * 1e3:.1f} ms, numpy twin (two cumsum passes) {plain * 1e3:.1f} ms, "
+          f"{plain / compiled:.1f}x")
 
     k = min(args.reference_patches, n)
     twin_patches = min(n, 500)

@@ -15,6 +15,7 @@ from skimage.transform import integral_image as skimage_integral_image
 from detector.errors import InputError
 from detector.features import (integral_image, integral_images, squared_integral_image,
                                squared_integral_images, window_mean_var, window_sum)
+from detector.features._integral import integral_images_numpy
 
 SETTINGS = settings(max_examples=40, deadline=None)
 sides = st.integers(1, 24)
@@ -104,6 +105,31 @@ def test_batch_forms_equal_single_forms(patches):
     assert ii.shape == (patches.shape[0], patches.shape[1] + 1, patches.shape[2] + 1)
     np.testing.assert_array_equal(ii, np.stack([integral_image(p) for p in patches]))
     np.testing.assert_array_equal(sq, np.stack([squared_integral_image(p) for p in patches]))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.tuples(st.integers(0, 5), sides, sides).flatmap(
+    lambda shape: arrays(np.uint8, shape)), st.booleans())
+def test_compiled_stack_route_equals_cv2_and_the_numpy_twin(patches, strided):
+    # uint8 stacks go through the compiled loop (detector.features._integral_kernels); cv2.integral
+    # per patch and the two-cumsum twin are the references, also for a non-contiguous view
+    if strided:
+        patches = patches[:, :, ::2]
+    ii = integral_images(patches)
+    assert ii.dtype == np.int64
+    assert ii.shape == (patches.shape[0], patches.shape[1] + 1, patches.shape[2] + 1)
+    np.testing.assert_array_equal(ii, integral_images_numpy(patches))
+    for one, table in zip(patches, ii):
+        np.testing.assert_array_equal(table, cv2.integral(np.ascontiguousarray(one),
+                                                          sdepth=cv2.CV_64F))
+
+
+def test_compiled_stack_route_sums_white_patches_exactly():
+    # 64 x 64 patches of 255: every corner r, c holds 255 * r * c (the last 1,044,480)
+    ii = integral_images(np.full((3, 64, 64), 255, np.uint8))
+    r, c = np.meshgrid(np.arange(65), np.arange(65), indexing="ij")
+    np.testing.assert_array_equal(ii, np.broadcast_to(255 * r * c, ii.shape))
+    assert int(ii[2, 64, 64]) == 1_044_480
 
 
 @st.composite
