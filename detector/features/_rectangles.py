@@ -719,7 +719,8 @@ def _evaluate(features, patches, integrals, squared, normalize, out, transpose, 
         partial_bound = largest * int(np.diff(running[indptr]).max())
         exact_in_float32 = partial_bound < _FLOAT32_EXACT
     work = np.float32 if exact_in_float32 else np.float64
-    buffer = np.zeros((CHUNK, (rows + 1) * (columns + 1), TILE), dtype=work)
+    # one tile a chunk for the (F, N) layout, CHUNK for (N, F) (_feature_kernels.CHUNK)
+    buffer = np.zeros((1 if transpose else CHUNK, (rows + 1) * (columns + 1), TILE), dtype=work)
     coefficients = coefficients.astype(work)
     weighted_area = weighted_area.astype(np.float64)
     # from patches, integral images are made a batch at a time to bound the memory they take
