@@ -50,7 +50,7 @@ def harvest(
     images_dir: Path = typer.Argument(..., help="Folder the labels' image paths are relative to."),
     labels: Path = typer.Argument(..., help="Labels CSV (image,x,y,width,height[,label]) or COCO JSON."),
     out: Path = typer.Option(..., "--out", help="Patch bank to write (.npz)."),
-    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 32 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
+    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 40 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     margin: float = harvest_option("margin"),
     copies: int = harvest_option("copies"),

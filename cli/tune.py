@@ -79,7 +79,7 @@ def tune(
     features_per_node: str = typer.Option("100..3000", "--features-per-node", help="Pool features tried at every node: a value or a range LOW..HIGH (log scale; capped at the pool)."),
     sample_fraction: str = typer.Option("0.3..1", "--sample-fraction", help="Bootstrap or subsample fraction: a value or a range LOW..HIGH within 0.01..1."),
     channels: Literal["gradient", "grey"] = channels_option(),
-    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 32 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
+    window: Optional[str] = typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 40 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
     label: Optional[str] = typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     margin: float = harvest_option("margin"),
     copies: int = harvest_option("copies"),

@@ -33,9 +33,10 @@ from detector.io.labels import ImageLabels
 
 BANK_FORMAT_VERSION = 1
 #: An inferred window's shorter side, in pixels: the first (24 x 24 is common practice for
-#: rectangle-feature detectors) or the second (the channel-features peer's,
-#: benchmarks/channel_peer.py) ...
-SHORT_SIDES = (24, 32)
+#: rectangle-feature detectors) or the second, for objects large enough (40: on the cross-data
+#: benchmark with box voting it gave a higher mean AP50 than 32 or 36 at three seeds; DEVELOPERS.md,
+#: "Defaults that follow the data") ...
+SHORT_SIDES = (24, 40)
 #: ... the second when at most this share of the labelled objects is smaller than its object side
 #: (objects that training enlarges and the scan finds only by enlarging the image). Chosen on the
 #: cross-data benchmark (DEVELOPERS.md, "The window follows the labels").
@@ -152,14 +153,15 @@ def window_short_side(boxes: np.ndarray, margin: float = 0.1) -> int:
     (``side / (1 + 2 margin)``), else the smaller.
 
     The larger window sees more of an object's detail: on the cross-data benchmark it raised AP50
-    on the sets of large objects (on average over seven draws coins by 0.02, horses by 0.05,
-    coin-crops by 0.08). But an object smaller than the window's object side is enlarged to it,
-    in training and in the scan, and the two sets where a quarter or more of the objects are
+    on the sets of large objects (32 against 24 on average over seven draws: coins by 0.02,
+    horses by 0.05, coin-crops by 0.08; 40 against 32 at three seeds: horses by 0.03-0.05,
+    coin-crops by 0.03-0.05). But an object smaller than the window's object side is enlarged to
+    it, in training and in the scan, and the two sets where a quarter or more of the objects are
     (galaxies, digits) lost AP50 with it on average.
 
-    >>> window_short_side(np.array([[0, 0, 40, 40]] * 8 + [[0, 0, 30, 25]] * 2))   # 2 of 10 below 26.7
-    32
-    >>> window_short_side(np.array([[0, 0, 40, 40]] * 7 + [[0, 0, 30, 25]] * 3))   # 3 of 10
+    >>> window_short_side(np.array([[0, 0, 50, 50]] * 8 + [[0, 0, 36, 30]] * 2))   # 2 of 10 below 33.3
+    40
+    >>> window_short_side(np.array([[0, 0, 50, 50]] * 7 + [[0, 0, 36, 30]] * 3))   # 3 of 10
     24
     """
     small, large = SHORT_SIDES
@@ -185,8 +187,8 @@ def infer_window(boxes: np.ndarray, short_side: int | None = None,
 
     >>> infer_window(np.array([[0, 0, 40, 20], [0, 0, 60, 30], [0, 0, 10, 10]]))   # small: 24
     (48, 24)
-    >>> infer_window(np.array([[0, 0, 80, 40], [0, 0, 120, 60]]))   # large objects: 32
-    (64, 32)
+    >>> infer_window(np.array([[0, 0, 80, 40], [0, 0, 120, 60]]))   # large objects: 40
+    (80, 40)
     """
     boxes = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
     if short_side is None:

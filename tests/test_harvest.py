@@ -194,34 +194,34 @@ def test_infer_window_hand_examples():
     # shorter side 20 and ratio 0.8 -> 20 wide, 20 / 0.8 = 25 high
     assert infer_window(np.array([[0, 0, 8, 10]]), short_side=20) == (20, 25)
     assert infer_window(np.array([[3, 4, 17, 17]])) == (24, 24)
-    # objects large enough for the larger window: shorter side 32, the aspect as before
-    assert infer_window(np.array([[0, 0, 80, 40], [0, 0, 120, 60]])) == (64, 32)
+    # objects large enough for the larger window: shorter side 40, the aspect as before
+    assert infer_window(np.array([[0, 0, 80, 40], [0, 0, 120, 60]])) == (80, 40)
 
 
 def test_window_short_side_hand_examples():
-    """32 when at most 20 % of the boxes' shorter sides are below its object side,
-    ``32 / (1 + 2 margin)``; else 24."""
-    big = [[0, 0, 40, 40]]
-    # 2 of 10 boxes at 25 (shorter side): below 32 / 1.2 = 26.67, 20 %, allowed
-    assert window_short_side(np.array(big * 8 + [[0, 0, 30, 25]] * 2)) == 32
+    """40 when at most 20 % of the boxes' shorter sides are below its object side,
+    ``40 / (1 + 2 margin)``; else 24."""
+    big = [[0, 0, 50, 50]]
+    # 2 of 10 boxes at 30 (shorter side): below 40 / 1.2 = 33.33, 20 %, allowed
+    assert window_short_side(np.array(big * 8 + [[0, 0, 36, 30]] * 2)) == 40
     # 3 of 10: 30 %
-    assert window_short_side(np.array(big * 7 + [[0, 0, 30, 25]] * 3)) == 24
-    # with margin 0.25 the object side is 32 / 1.5 = 21.33: 25 is above it
-    assert window_short_side(np.array(big * 7 + [[0, 0, 30, 25]] * 3), margin=0.25) == 32
-    # a shorter side equal to the object side is not below it: 32 / (1 + 2 * 0.3) = 20
-    assert window_short_side(np.array([[0, 0, 20, 30]] * 5), margin=0.3) == 32
-    assert window_short_side(np.array([[0, 0, 19.5, 30]] * 5), margin=0.3) == 24
+    assert window_short_side(np.array(big * 7 + [[0, 0, 36, 30]] * 3)) == 24
+    # with margin 0.25 the object side is 40 / 1.5 = 26.67: 30 is above it
+    assert window_short_side(np.array(big * 7 + [[0, 0, 36, 30]] * 3), margin=0.25) == 40
+    # a shorter side equal to the object side is not below it: 40 / (1 + 2 * 0.3) = 25
+    assert window_short_side(np.array([[0, 0, 25, 30]] * 5), margin=0.3) == 40
+    assert window_short_side(np.array([[0, 0, 24.5, 30]] * 5), margin=0.3) == 24
 
 
 @given(sides=st.lists(st.floats(2.0, 200.0), min_size=1, max_size=40),
        margin=st.floats(0.0, 1.0))
 @settings(max_examples=200, deadline=None)
 def test_window_short_side_property(sides, margin):
-    """Property: 32 exactly when the boxes below its object side number at most a fifth of all
+    """Property: 40 exactly when the boxes below its object side number at most a fifth of all
     (counted one by one), else 24; the window infer_window makes has that shorter side."""
     boxes = np.array([[0.0, 0.0, s * 1.5, s] for s in sides])
-    below = sum(1 for s in sides if s < 32 / (1.0 + 2.0 * margin))
-    expected = 32 if 5 * below <= len(sides) else 24
+    below = sum(1 for s in sides if s < 40 / (1.0 + 2.0 * margin))
+    expected = 40 if 5 * below <= len(sides) else 24
     assert window_short_side(boxes, margin) == expected
     assert min(infer_window(boxes, margin=margin)) == expected
 
@@ -610,20 +610,20 @@ def test_harvest_refuses_a_bad_margin(folder, labels, margin):
 
 
 def test_harvest_command_says_why_the_larger_window(folder, tmp_path, monkeypatch, capsys):
-    """Boxes of shorter side 36, 40 and 30 on the same frames: none is below the 32-pixel
-    window's object side, 32 / 1.2 = 26.7, so the window is 32 on its shorter side, the median
-    aspect ratio (36 / 36, 40 / 40, 45 / 30 -> 1.0) making it 32 x 32."""
+    """Boxes of shorter side 40, 45 and 36 on the same frames: none is below the 40-pixel
+    window's object side, 40 / 1.2 = 33.3, so the window is 40 on its shorter side, the median
+    aspect ratio (40 / 40, 45 / 45, 50 / 36 -> 1.0) making it 40 x 40."""
     labels = tmp_path / "large.csv"
-    labels.write_text("image,x,y,width,height\na.png,4,4,36,36\nb.png,30,20,40,40\n"
-                      "c.png,40,30,45,30\n")
+    labels.write_text("image,x,y,width,height\na.png,4,4,40,40\nb.png,30,20,45,45\n"
+                      "c.png,40,30,50,36\n")
     out = tmp_path / "bank.npz"
     code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
                               "--out", out, "--copies", 1, "--negatives-per-image", 5)
     assert code == 0, err
-    assert ("window: 32x32 (inferred: the labels' median aspect ratio; shorter side 32, as 0% of "
-            "the labelled objects are smaller than a 32-pixel window's object side of 26.7 pixels, "
+    assert ("window: 40x40 (inferred: the labels' median aspect ratio; shorter side 40, as 0% of "
+            "the labelled objects are smaller than a 40-pixel window's object side of 33.3 pixels, "
             "at most the 20% it allows)") in text
-    assert load_bank(out).window == (32, 32)
+    assert load_bank(out).window == (40, 40)
     # a window given is a window given
     code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
                               "--out", out, "--copies", 1, "--negatives-per-image", 5, "--window",
@@ -640,13 +640,13 @@ def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
                               "--negatives-per-image", 30)
     assert code == 0, err
     # the boxes' shorter sides 16, 32, 16, 20 with margin 0.25: three of four are below the
-    # larger window's object side, 32 / 1.5 = 21.3
+    # larger window's object side, 40 / 1.5 = 26.7
     assert ("window: 24x24 (inferred: the labels' median aspect ratio; shorter side 24, as 75% of "
-            "the labelled objects are smaller than a 32-pixel window's object side of 21.3 pixels, "
+            "the labelled objects are smaller than a 40-pixel window's object side of 26.7 pixels, "
             "more than the 20% it allows)") in text
     rule = load_bank(out).metadata["window_rule"]
-    assert rule == {"short_side": 24, "larger_side": 32, "share_below_larger": 0.75,
-                    "larger_object_side": 32 / 1.5, "share_allowed": 0.2}
+    assert rule == {"short_side": 24, "larger_side": 40, "share_below_larger": 0.75,
+                    "larger_object_side": 40 / 1.5, "share_allowed": 0.2}
     assert "16 object (4 boxes + 12 augmented copies)" in text
     assert "harvesting: 3/3 images" in err  # the progress bar's closing line off a terminal
     # the command writes what the library makes with the same settings
