@@ -117,7 +117,7 @@ def harvest(
          f"(median {sizes['median']:g}); the scan looks for these by default")
     if sizes["below_window"]:
         echo(f"note: {count(sizes['below_window'], 'labelled object is', 'labelled objects are')} "
-             f"smaller than the window's object side of {sizes['window_object_side']:g} pixels; "
+             f"smaller than the window's object side of {sizes['window_object_side']:.3g} pixels; "
              f"the scan enlarges images to find them (slower; `--window` sets a smaller window)")
     c = bank.counts()
     echo(f"patches: {c['objects']} object ({c['object']} boxes + {c['augmented']} augmented copies), "

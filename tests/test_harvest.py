@@ -633,6 +633,22 @@ def test_harvest_command_says_why_the_larger_window(folder, tmp_path, monkeypatc
     assert "window_rule" not in load_bank(out).metadata
 
 
+def test_harvest_command_notes_objects_below_the_window(folder, tmp_path, monkeypatch, capsys):
+    """Five boxes of shorter side 40, 45, 50, 42 and 30: one of five (20 %) is below the 40-pixel
+    window's object side, 40 / 1.2 = 33.33, which the rule allows; the note names that one and
+    the object side as the window line rounds it (33.3, not 33.3333)."""
+    labels = tmp_path / "note.csv"
+    labels.write_text("image,x,y,width,height\na.png,4,4,40,40\na.png,50,10,45,45\n"
+                      "b.png,30,10,50,50\nc.png,2,2,42,42\nc.png,50,30,30,30\n")
+    out = tmp_path / "bank.npz"
+    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
+                              "--out", out, "--copies", 1, "--negatives-per-image", 5)
+    assert code == 0, err
+    assert "window: 40x40 (inferred:" in text and "as 20% of the labelled objects" in text
+    assert ("note: 1 labelled object is smaller than the window's object side of 33.3 pixels; "
+            "the scan enlarges images to find them") in text
+
+
 def test_harvest_command(folder, tmp_path, monkeypatch, capsys):
     out = tmp_path / "bank.npz"
     code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", folder / "labels.csv",
