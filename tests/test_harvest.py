@@ -724,9 +724,12 @@ _side = st.one_of(st.floats(0, 80, width=32), st.sampled_from([0.0, 1e-30, 10.0]
 def test_overlaps_decides_as_the_iou_matrix_does(box, others, max_iou):
     """The harvest's per-box check against detector.geometry.iou (numpy, pycocotools' order of
     arithmetic): the same decision for every box, shared edges, zero areas and a threshold of 0
-    (where iou's 0 for boxes that do not meet is >= 0)."""
-    expected = bool(len(others)) and bool(np.max(iou(np.asarray([box], np.float32), others)) >= max_iou)
-    assert overlaps(box, [tuple(float(v) for v in o) for o in others], max_iou) == expected
+    (where iou's 0 for boxes that do not meet is >= 0). The box is float32 on both sides, as the
+    bank stores it and plan_background passes it (a side of 1e-30 as a double is another number
+    than as a float32, and then IoU 1 with a box of that double side is not 1 with the other)."""
+    box32 = np.asarray([box], np.float32)
+    expected = bool(len(others)) and bool(np.max(iou(box32, others)) >= max_iou)
+    assert overlaps(box32[0].tolist(), [tuple(float(v) for v in o) for o in others], max_iou) == expected
 
 
 def test_overlaps_on_touching_and_nested_boxes():
