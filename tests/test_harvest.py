@@ -609,16 +609,24 @@ def test_harvest_refuses_a_bad_margin(folder, labels, margin):
         harvest(folder / "images", labels.items, margin=margin)
 
 
+def _small_harvest(folder, tmp_path, monkeypatch, capsys, rows):
+    """``patchwood harvest`` of the fixture's images with these label rows (one copy, 5 background
+    windows an image): (labels path, bank path, exit code, stdout, stderr)."""
+    labels = tmp_path / "rows.csv"
+    labels.write_text("image,x,y,width,height\n" + "".join(row + "\n" for row in rows))
+    out = tmp_path / "bank.npz"
+    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
+                              "--out", out, "--copies", 1, "--negatives-per-image", 5)
+    return labels, out, code, text, err
+
+
 def test_harvest_command_says_why_the_larger_window(folder, tmp_path, monkeypatch, capsys):
     """Boxes of shorter side 40, 45 and 36 on the same frames: none is below the 40-pixel
     window's object side, 40 / 1.2 = 33.3, so the window is 40 on its shorter side, the median
     aspect ratio (40 / 40, 45 / 45, 50 / 36 -> 1.0) making it 40 x 40."""
-    labels = tmp_path / "large.csv"
-    labels.write_text("image,x,y,width,height\na.png,4,4,40,40\nb.png,30,20,45,45\n"
-                      "c.png,40,30,50,36\n")
-    out = tmp_path / "bank.npz"
-    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
-                              "--out", out, "--copies", 1, "--negatives-per-image", 5)
+    labels, out, code, text, err = _small_harvest(
+        folder, tmp_path, monkeypatch, capsys,
+        ["a.png,4,4,40,40", "b.png,30,20,45,45", "c.png,40,30,50,36"])
     assert code == 0, err
     assert ("window: 40x40 (inferred: the labels' median aspect ratio; shorter side 40, as 0% of "
             "the labelled objects are smaller than a 40-pixel window's object side of 33.3 pixels, "
@@ -637,12 +645,10 @@ def test_harvest_command_notes_objects_below_the_window(folder, tmp_path, monkey
     """Five boxes of shorter side 40, 45, 50, 42 and 30: one of five (20 %) is below the 40-pixel
     window's object side, 40 / 1.2 = 33.33, which the rule allows; the note names that one and
     the object side as the window line rounds it (33.3, not 33.3333)."""
-    labels = tmp_path / "note.csv"
-    labels.write_text("image,x,y,width,height\na.png,4,4,40,40\na.png,50,10,45,45\n"
-                      "b.png,30,10,50,50\nc.png,2,2,42,42\nc.png,50,30,30,30\n")
-    out = tmp_path / "bank.npz"
-    code, text, err = run_cli(monkeypatch, capsys, "harvest", folder / "images", labels,
-                              "--out", out, "--copies", 1, "--negatives-per-image", 5)
+    _, _, code, text, err = _small_harvest(
+        folder, tmp_path, monkeypatch, capsys,
+        ["a.png,4,4,40,40", "a.png,50,10,45,45", "b.png,30,10,50,50", "c.png,2,2,42,42",
+         "c.png,50,30,30,30"])
     assert code == 0, err
     assert "window: 40x40 (inferred:" in text and "as 20% of the labelled objects" in text
     assert ("note: 1 labelled object is smaller than the window's object side of 33.3 pixels; "
