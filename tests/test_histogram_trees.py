@@ -268,7 +268,11 @@ def test_best_split_kernel_equals_its_numpy_twin(seed, n, f, n_bins, criterion, 
     scratch = (np.empty(256), np.empty(256), np.empty(n), np.empty(n))
     a = K.best_split(bins, samples, weight, target, candidates, stop_after, criterion, w, s, *scratch)
     b = K.best_split_numpy(bins, samples, weight, target, candidates, stop_after, criterion, w, s)
-    assert tuple(a) == tuple(b)
+    # the same split; its gain to the last bits only up to rounding: the entropy's logarithms come
+    # from LLVM's math library in the kernel and numpy's in the twin (hypothesis found one gain
+    # 1 ulp apart: -136.1240720048781 against -136.12407200487806)
+    assert tuple(a[1:]) == tuple(b[1:])
+    assert a[0] == pytest.approx(b[0], rel=1e-12, abs=1e-12)
     if a[1] >= 0:  # the split lies between two non-empty bins of the node, nothing in between
         row = bins[a[1]][samples]
         assert (row == a[2]).any() and (row == a[3]).any() and not ((row > a[2]) & (row < a[3])).any()
