@@ -129,11 +129,13 @@ def window_sigma(patches: ArrayLike) -> np.ndarray:
     >>> window_sigma(np.array([[[0, 2], [0, 2]], [[5, 5], [5, 5]]], np.uint8)).tolist()
     [1.0, 0.0]
     """
+    from detector.features import pixel_sums
+
     p = np.asarray(patches)
-    flat = p.reshape(len(p), -1).astype(np.int64)
-    area = float(flat.shape[1])
-    mean = flat.sum(axis=1) / area
-    var = (flat * flat).sum(axis=1) / area - mean * mean
+    total, square_total = pixel_sums(p)
+    area = float(np.prod(p.shape[1:]))
+    mean = total / area
+    var = square_total / area - mean * mean
     return np.sqrt(np.maximum(var, 0.0))
 
 

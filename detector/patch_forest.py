@@ -428,18 +428,20 @@ class PatchForest:
         blocks = [group[a:a + VALUE_BLOCK] for group in groups
                   for a in range(0, len(group), VALUE_BLOCK)]
 
-        # each thread evaluates into one block-sized buffer of its own: a new 45 MB array every
-        # block (2,048 features x 5,559 patches) cost 15-25 ms of page faults, a quarter of the
-        # block's evaluation
+        # each thread evaluates into one block-sized buffer of its own, and makes the blocks'
+        # integral images in another: a new 45 MB array every block (2,048 features x 5,559
+        # patches) cost 15-25 ms of page faults, a quarter of the block's evaluation, and a new
+        # 90 MB array of integral images (5,482 patches of 49 x 40) 18 ms against 5 in a used one
         buffers = threading.local()
 
         def value_block(idx):
             if getattr(buffers, "values", None) is None:
                 buffers.values = np.empty((min(VALUE_BLOCK, n_pool), n), np.float32)
+                buffers.integrals = _features.integral_scratch(n, *patches.shape[1:])
             block = _features.evaluate_features(
                 pool[idx], patches, normalize=bool(self.normalize), transpose=True,
                 channels=None if channels is None else channels[idx], channel_images=made,
-                out=buffers.values[:len(idx)])
+                out=buffers.values[:len(idx)], scratch=buffers.integrals)
             block_cuts, n_cuts = quantile_cuts(block.T, int(self.max_bins), random_state=bin_ss)
             bin_columns(block.T, block_cuts, n_cuts, n_jobs=1)
             bins[idx], cuts[idx] = block, block_cuts  # rows of their own: no two blocks share one

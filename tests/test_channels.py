@@ -21,7 +21,7 @@ from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_
 from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.features import (channel_pool, evaluate_features, evaluate_features_numpy,
-                               from_corners, random_pool)
+                               from_corners, integral_scratch, random_pool)
 from detector.harvest import harvest
 from detector.io.labels import read_labels
 from detector.model import CHANNELS_FORMAT_VERSION, FORMAT_VERSION, load_model, model_arrays, \
@@ -153,6 +153,11 @@ def test_channel_features_compiled_equal_numpy_twin(normalize, transpose):
     d = evaluate_features(features, patches, channels=channels, normalize=normalize,
                           transpose=transpose, channel_images=made)
     np.testing.assert_array_equal(d, a)
+    # ... and their integral images made in one work space, channel after channel
+    scratch = integral_scratch(len(patches), *patches.shape[1:])
+    e = evaluate_features(features, patches, channels=channels, normalize=normalize,
+                          transpose=transpose, channel_images=made, scratch=scratch)
+    np.testing.assert_array_equal(e, a)
     with pytest.raises(InputError, match="channel images must have shape"):
         evaluate_features(features, patches, channels=channels, channel_images=made[:-1])
 

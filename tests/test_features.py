@@ -16,7 +16,7 @@ from skimage.transform import integral_image as skimage_integral_image
 from detector.errors import InputError
 from detector.features import (SHAPES, count_features, enumerate_features, evaluate_features,
                                evaluate_features_numpy, feature_corners, random_pool)
-from detector.features import integral_images, squared_integral_images
+from detector.features import integral_images, integral_scratch, squared_integral_images
 
 # skimage's name for each of our shapes, and the weights of its rectangles in its own order
 # (found by fitting skimage 0.26's values to the rectangle sums: right minus left, bottom minus top,
@@ -441,6 +441,13 @@ def test_integral_inputs_out_and_transpose():
     result = evaluate_features(features, patches, out=out, transpose=True)
     assert result is out
     np.testing.assert_array_equal(out, reference.T)
+    # integral images made in a work space of stale contents (as training reuses one per thread)
+    scratch = integral_scratch(70, 10, 12)                # 70 patches of 12 x 10
+    scratch.fill(-7)
+    np.testing.assert_array_equal(evaluate_features(features, patches, scratch=scratch), reference)
+    for wrong in (integral_scratch(70, 11, 12), integral_scratch(69, 10, 12), scratch[:, :, :5]):
+        with pytest.raises(InputError, match=r"scratch must be integral_scratch\(70, 10, 12\)"):
+            evaluate_features(features, patches, scratch=wrong)
     assert evaluate_features(features[:0], patches).shape == (70, 0)
     assert evaluate_features(features, patches[:0]).shape == (0, 90)
     # contents of unused slots (weight 0) are ignored
@@ -455,9 +462,12 @@ def test_patches_are_evaluated_in_batches_with_the_same_values(monkeypatch):
     features = random_pool(9, 8, 70, random_state=14)
     whole = evaluate_features_numpy(features, patches)
     monkeypatch.setattr(module, "_PATCH_BATCH", 100)      # batches of 100, 100 and 50 patches
+    scratch = integral_scratch(250, 8, 9)                 # 250 patches of 9 x 8
+    assert scratch.shape == (100, 9, 10)                  # one batch of integral images
     for transpose in (False, True):
-        values = evaluate_features(features, patches, transpose=transpose)
-        np.testing.assert_array_equal(values.T if transpose else values, whole)
+        for work in (None, scratch):
+            values = evaluate_features(features, patches, transpose=transpose, scratch=work)
+            np.testing.assert_array_equal(values.T if transpose else values, whole)
 
 
 @pytest.mark.parametrize("call", [

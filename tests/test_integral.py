@@ -13,9 +13,9 @@ from hypothesis.extra.numpy import arrays
 from skimage.transform import integral_image as skimage_integral_image
 
 from detector.errors import InputError
-from detector.features import (integral_image, integral_images, squared_integral_image,
+from detector.features import (integral_image, integral_images, pixel_sums, squared_integral_image,
                                squared_integral_images, window_mean_var, window_sum)
-from detector.features._integral import integral_images_numpy
+from detector.features._integral import integral_images_numpy, pixel_sums_numpy
 
 SETTINGS = settings(max_examples=40, deadline=None)
 sides = st.integers(1, 24)
@@ -122,6 +122,43 @@ def test_compiled_stack_route_equals_cv2_and_the_numpy_twin(patches, strided):
     for one, table in zip(patches, ii):
         np.testing.assert_array_equal(table, cv2.integral(np.ascontiguousarray(one),
                                                           sdepth=cv2.CV_64F))
+
+
+def test_integral_images_fill_the_array_given_and_refuse_a_wrong_one():
+    patches = np.random.default_rng(3).integers(0, 256, (4, 7, 5), dtype=np.uint8)
+    out = np.full((4, 8, 6), -1, np.int64)            # stale contents, the zero border included
+    assert integral_images(patches, out=out) is out
+    np.testing.assert_array_equal(out, integral_images_numpy(patches))
+    for wrong in (np.empty((4, 8, 5), np.int64), np.empty((4, 8, 6), np.int32),
+                  np.empty((4, 6, 8), np.int64).transpose(0, 2, 1), [[0]]):
+        with pytest.raises(InputError, match="out must be a C-contiguous int64 array of shape"):
+            integral_images(patches, out=wrong)
+    # other dtypes take the numpy route and leave it alone
+    floats = patches.astype(np.float64)
+    np.testing.assert_array_equal(integral_images(floats, out=out), integral_images_numpy(floats))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.tuples(st.integers(0, 5), sides, sides).flatmap(
+    lambda shape: arrays(np.uint8, shape)), st.booleans())
+def test_compiled_patch_moments_equal_numpy(patches, strided):
+    # the pixel sums and squared sums of the contrast normalisation: the compiled pass
+    # (_integral_kernels.patch_moments) against numpy's sum and einsum, exact in float64
+    if strided:
+        patches = patches[:, ::2]
+    total, square = pixel_sums(patches)
+    pixels = patches.astype(np.int64)
+    np.testing.assert_array_equal(total, pixels.sum(axis=(1, 2)))
+    np.testing.assert_array_equal(square, (pixels ** 2).sum(axis=(1, 2)))
+    for mine, twin in zip((total, square), pixel_sums_numpy(patches)):
+        assert mine.dtype == twin.dtype == np.float64
+        np.testing.assert_array_equal(mine, twin)
+
+
+def test_patch_moments_of_white_patches_by_hand():
+    # 64 x 64 pixels of 255: sum 255 * 4096 = 1,044,480, squares 255 ** 2 * 4096 = 266,342,400
+    total, square = pixel_sums(np.full((2, 64, 64), 255, np.uint8))
+    assert total.tolist() == [1_044_480.0] * 2 and square.tolist() == [266_342_400.0] * 2
 
 
 def test_compiled_stack_route_sums_white_patches_exactly():

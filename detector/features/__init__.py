@@ -16,24 +16,25 @@ from detector.features._channels import (CHANNEL_NAMES, CHOICES, N_CHANNELS, ORI
                                          channel_integrals, channel_integrals_numpy,
                                          gradient_channels, orientation_bins, patch_channels,
                                          patch_channels_numpy)
-from detector.features._integral import (integral_image, integral_images, squared_integral_image,
-                                         squared_integral_images, window_mean_var, window_sum)
+from detector.features._integral import (integral_image, integral_images, pixel_sums,
+                                         squared_integral_image, squared_integral_images,
+                                         window_mean_var, window_sum)
 from detector.features._rectangles import (CHANNEL_SHAPES, MAX_WINDOW_SIDE, MIN_WINDOW_SIDE,
                                            SHAPES, SIGMA_FLOOR, channel_pool, check_channels,
                                            count_features, enumerate_features, evaluate_features,
                                            evaluate_features_numpy, feature_corners, from_corners,
-                                           random_pool, to_corners)
+                                           integral_scratch, random_pool, to_corners)
 
 __all__ = [
     # integral images
     "integral_image", "squared_integral_image", "integral_images", "squared_integral_images",
-    "window_sum", "window_mean_var",
+    "window_sum", "window_mean_var", "pixel_sums",
     # channels
     "N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "gradient_channels",
     "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals", "channel_integrals_numpy",
     # rectangle features
     "SHAPES", "SIGMA_FLOOR", "MIN_WINDOW_SIDE", "MAX_WINDOW_SIDE", "count_features",
     "enumerate_features", "random_pool", "feature_corners", "evaluate_features",
-    "evaluate_features_numpy", "CHANNEL_SHAPES", "channel_pool", "check_channels", "to_corners",
+    "evaluate_features_numpy", "integral_scratch", "CHANNEL_SHAPES", "channel_pool", "check_channels", "to_corners",
     "from_corners",
 ]

@@ -43,7 +43,7 @@ from detector._validation import as_generator
 from detector.features._feature_kernels import CHUNK, TILE, evaluate_tiles
 from detector.features._channels import N_CHANNELS, patch_channels, patch_channels_numpy
 from detector.errors import InputError
-from detector.features._integral import integral_images
+from detector.features._integral import integral_images, pixel_sums
 
 __all__ = [
     "SHAPES",
@@ -56,6 +56,7 @@ __all__ = [
     "feature_corners",
     "evaluate_features",
     "evaluate_features_numpy",
+    "integral_scratch",
     "CHANNEL_SHAPES",
     "channel_pool",
     "check_channels",
@@ -546,10 +547,7 @@ def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarr
 
 def _square_totals(patches) -> np.ndarray:
     """Sum of the squared pixels of every patch (exact for integers), as float64."""
-    flat = patches.reshape(len(patches), int(np.prod(patches.shape[1:])))  # N may be 0
-    exact = np.int64 if np.issubdtype(flat.dtype, np.integer) or flat.dtype == np.bool_ \
-        else np.float64
-    return np.einsum("ij,ij->i", flat, flat, dtype=exact).astype(np.float64)
+    return pixel_sums(patches)[1]
 
 
 def _statistics(total, square_total, area) -> tuple[np.ndarray, np.ndarray]:
@@ -572,7 +570,7 @@ def _check_out(out, shape):
 
 def evaluate_features(features, patches=None, *, integrals=None, squared=None, normalize=True,
                       out=None, transpose=False, channels=None,
-                      channel_images=None) -> np.ndarray:
+                      channel_images=None, scratch=None) -> np.ndarray:
     """Values of F features on N patches at once (compiled loop).
 
     Raw value (``normalize=False``): ``sum_i weight_i * S_i``, with ``S_i`` the pixel sum of
@@ -613,6 +611,10 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     channel_images : (N, 7, h, w) ndarray of uint8, optional
         ``patch_channels(patches)``, when already at hand (training evaluates its pool block by
         block on the same patches).
+    scratch : ndarray of int64, optional
+        :func:`integral_scratch` of these patches: where the integral images of 8-bit patches (or
+        channel images) are made, instead of a new array every call (training evaluates its pool
+        block by block, and a new array of the bank's size was mostly page faults).
 
     Returns
     -------
@@ -636,14 +638,34 @@ def evaluate_features(features, patches=None, *, integrals=None, squared=None, n
     shape = (len(features), n) if transpose else (n, len(features))
     out = _check_out(out, shape)
     channels = check_channels(channels, len(features))
+    if scratch is not None:
+        need = (min(n, _PATCH_BATCH), rows + 1, columns + 1)
+        if not (isinstance(scratch, np.ndarray) and scratch.dtype == np.int64
+                and scratch.flags.c_contiguous and scratch.shape[1:] == need[1:]
+                and scratch.shape[0] >= need[0]):
+            got = (scratch.shape, scratch.dtype) if isinstance(scratch, np.ndarray) \
+                else type(scratch).__name__
+            raise InputError(f"scratch must be integral_scratch({n}, {rows}, {columns}), a "
+                             f"C-contiguous int64 array of shape {need}, got {got}")
     if out.size == 0:
         return out
     if channels is not None:
         _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
-                             transpose, channel_images)
+                             transpose, channel_images, scratch)
     else:
-        _evaluate(features, patches, integrals, squared, normalize, out, transpose)
+        _evaluate(features, patches, integrals, squared, normalize, out, transpose,
+                  scratch=scratch)
     return out
+
+
+def integral_scratch(n: int, height: int, width: int) -> np.ndarray:
+    """Work space for :func:`evaluate_features`'s ``scratch``: integral images of as many patches
+    of ``width`` x ``height`` as one call makes at once (all ``n``, up to a batch of 8,192).
+
+    >>> integral_scratch(10000, 40, 49).shape
+    (8192, 41, 50)
+    """
+    return np.empty((min(int(n), _PATCH_BATCH), int(height) + 1, int(width) + 1), np.int64)
 
 
 def _grey_patches(patches, integrals, squared):
@@ -655,15 +677,15 @@ def _grey_patches(patches, integrals, squared):
             patches.size and (patches.min() < 0 or patches.max() > 255)):
         raise InputError("channel features need 8-bit grey patches (integers 0..255)")
     n, rows, columns = patches.shape
-    total = patches.reshape(n, -1).sum(axis=1, dtype=np.int64).astype(np.float64)
-    square_total = (squared[:, -1, -1].astype(np.float64) if squared is not None
-                    else _square_totals(patches))
+    total, square_total = pixel_sums(patches)
+    if squared is not None:
+        square_total = squared[:, -1, -1].astype(np.float64)
     statistics = _statistics(total, square_total, rows * columns)
     return patches, statistics
 
 
 def _evaluate_by_channel(features, channels, patches, integrals, squared, normalize, out,
-                         transpose, made=None):
+                         transpose, made=None, scratch=None):
     """:func:`evaluate_features` for features on several channels: each channel's block of
     features on its own channel images (a channel feature's value is its rectangles' weighted sum
     over the channel, divided by the grey patch's ``max(sigma, SIGMA_FLOOR) * area``: no mean is
@@ -682,13 +704,14 @@ def _evaluate_by_channel(features, channels, patches, integrals, squared, normal
         else:
             target = np.empty((len(idx), n) if transpose else (n, len(idx)), np.float32)
         if c == 0:
-            _evaluate(features[idx], patches, integrals, squared, normalize, target, transpose)
+            _evaluate(features[idx], patches, integrals, squared, normalize, target, transpose,
+                      scratch=scratch)
         else:
             if made is None:
                 made = patch_channels(patches)
             source = np.ascontiguousarray(made[:, c - 1])
             _evaluate(features[idx], source, None, None, normalize, target, transpose,
-                      statistics=(np.zeros(n), scale))
+                      statistics=(np.zeros(n), scale), scratch=scratch)
         if not contiguous:
             if transpose:
                 out[idx] = target
@@ -696,10 +719,12 @@ def _evaluate_by_channel(features, channels, patches, integrals, squared, normal
                 out[:, idx] = target
 
 
-def _evaluate(features, patches, integrals, squared, normalize, out, transpose, statistics=None):
+def _evaluate(features, patches, integrals, squared, normalize, out, transpose, statistics=None,
+              scratch=None):
     """The compiled evaluation of validated inputs into ``out``; ``statistics``: every patch's
     ``(mean, max(sigma, SIGMA_FLOOR) * area)`` when they come from elsewhere (channel features
-    use the grey patch's)."""
+    use the grey patch's); ``scratch``: :func:`integral_scratch`, where 8-bit patches' integral
+    images are made."""
     source = patches if integrals is None else integrals
     n, rows, columns = source.shape[0], source.shape[1], source.shape[2]
     if integrals is not None:
@@ -727,7 +752,12 @@ def _evaluate(features, patches, integrals, squared, normalize, out, transpose, 
     step = n if integrals is not None else _PATCH_BATCH
     for start in range(0, n, step):
         stop = min(n, start + step)
-        ii = integrals[start:stop] if integrals is not None else integral_images(patches[start:stop])
+        if integrals is not None:
+            ii = integrals[start:stop]
+        else:
+            batch = patches[start:stop]
+            ii = integral_images(batch, out=scratch[:stop - start] if (
+                scratch is not None and batch.dtype == np.uint8) else None)
         if normalize and statistics is not None:
             mean, scale = statistics[0][start:stop], statistics[1][start:stop]
         elif normalize:
