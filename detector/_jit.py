@@ -43,7 +43,7 @@ def _by_name(module: str, qualname: str):
 def numba_module():
     """numba, imported, with :class:`Kernel` known to its typing (once per process)."""
     global _registered
-    import numba
+    numba = _import_numba()
 
     if not _registered:
         with _lock:
@@ -56,6 +56,35 @@ def numba_module():
                     return types.Dispatcher(val.dispatcher())
 
                 _registered = True
+    return numba
+
+
+def _import_numba():
+    """``import numba``, and its array implementations (which the first compiled or cached loop
+    loads), without the scipy.linalg import they start with.
+
+    On import, ``numba.np.arraymath`` imports ``scipy.linalg.cython_blas`` only to learn whether
+    ``np.dot`` may call BLAS (``_HAVE_BLAS``; 0.15-0.2 s of a command's start, about a third of
+    numba's whole import). No compiled loop of patchwood calls BLAS, so that import is held back
+    while numba loads and the flag set from whether scipy is installed, as the import would have
+    set it; numba imports scipy.linalg itself when a loop that needs it compiles
+    (``numba.np.linalg.ensure_blas``), so other numba code in the process works as before
+    (``tests/test_jit.py``). Where scipy.linalg is already loaded, nothing is held back."""
+    import importlib.util
+    import sys
+
+    if "numba.np.arraymath" in sys.modules or "scipy.linalg.cython_blas" in sys.modules:
+        import numba
+
+        return numba
+    sys.modules["scipy.linalg.cython_blas"] = None  # an import of it now raises ImportError
+    try:
+        import numba
+        import numba.np.arraymath as arraymath
+    finally:
+        if sys.modules.get("scipy.linalg.cython_blas", 0) is None:
+            del sys.modules["scipy.linalg.cython_blas"]
+    arraymath._HAVE_BLAS = importlib.util.find_spec("scipy") is not None
     return numba
 
 
