@@ -38,8 +38,10 @@ Figures, all from ``detector.evaluation.evaluate`` on the test split's labels (t
 hold its AP arithmetic to pycocotools'), so that every method is scored alike:
 AP50 (all-point, PASCAL VOC 2010), AP50:95 (101-point, COCO), FPPI at recall 0.9 (false alarms
 per image at the highest score cut reaching recall 0.9; "n/r" when never reached), training
-seconds (wall time from the labelled images to the model, the harvest and every mining round
-included; patchwood's through its command line, start-up included), and scan milliseconds per
+seconds (wall time from the labelled images on disk to the model, the harvest and every mining
+round included, each method in processes of its own, start-up included: patchwood's two commands,
+each peer's ``benchmarks/peer_train.py``; until 2026-12-04 the peers trained inside this process,
+from training images it had already read, with their libraries already imported), and scan milliseconds per
 megapixel (one pass over the decoded test images on one thread, after a warm-up image; patchwood's
 through ``detector.scan.Engine`` with the scan command's defaults at threshold 0.05, whose
 detections are checked against the command's file).
@@ -80,6 +82,8 @@ sys.path.insert(0, str(HERE))
 
 import channel_peer  # noqa: E402
 import datasets  # noqa: E402
+from peer_train import (CHANNEL_MINING_ROUNDS, HOG_MINING_ROUNDS, HOG_SHORT_SIDE,  # noqa: E402,F401
+                        PEER_BANK, hog_window)
 from detector.io.files import write_text  # noqa: E402
 
 METHODS = ("defaults", "recipe", "hog", "channels")
@@ -87,10 +91,7 @@ METHOD_NAMES = {"defaults": "patchwood defaults", "recipe": "patchwood recipe",
                 "hog": "HOG + linear SVM", "channels": "channel features"}
 RECIPE_HARVEST = ["--copies", "8", "--jitter", "0.08", "--negatives-per-image", "100"]
 RECIPE_TRAIN = ["--mode", "boosted", "--trees", "300", "--pool", "10000", "--mine-rounds", "3"]
-PEER_BANK = dict(copies=8, jitter=0.08, negatives_per_image=100)  # the recipe's augmentation
 SCAN_THRESHOLD = 0.05
-HOG_MINING_ROUNDS = 2
-CHANNEL_MINING_ROUNDS = 3
 GOAL_MARGIN = 0.005  # defaults' AP50 >= better peer's - this, on every set
 GOAL_OVER_HOG = 0.05  # mean AP50 of the defaults >= the HOG peer's + this
 
@@ -186,52 +187,27 @@ def run_patchwood(method: str, root: Path, work: Path, test_frames: dict, truth:
     return out
 
 
-#: The HOG peer's window: the labels' median aspect ratio with this shorter side, the window its
-#: 4-pixel cells were chosen for (benchmarks/baseline.py) and the one patchwood inferred for every
-#: set before its window came to follow the object sizes; fixed, so that the peer does not move
-#: with patchwood's defaults (with patchwood's 32-pixel window on cups it trained in 13.1 s
-#: against 8-8.4).
-HOG_SHORT_SIDE = 24
+def run_peer(method: str, root: Path, work: Path, test_frames: dict, truth: dict, args) -> dict:
+    """Train a peer in a process of its own (``benchmarks/peer_train.py``: imports, the reading of
+    the training images, the harvest and every mining round, timed as patchwood's two commands
+    are), then scan the test split in this process."""
+    import pickle
 
-
-def hog_window(items) -> tuple[int, int]:
-    """The HOG peer's window for these labelled images (:data:`HOG_SHORT_SIDE`)."""
-    from detector.harvest import infer_window
-
-    boxes = np.concatenate([np.asarray(it.boxes, np.float64).reshape(-1, 4) for it in items])
-    return infer_window(boxes[(boxes[:, 2] >= 2) & (boxes[:, 3] >= 2)], short_side=HOG_SHORT_SIDE)
-
-
-def _peer_bank(root: Path, items, window, seed: int):
-    from detector.harvest import harvest
-
-    return harvest(root / "train" / "images", items, window=window, seed=seed, **PEER_BANK)
-
-
-def run_peer(method: str, root: Path, train_items, train_frames: dict, test_frames: dict,
-             truth: dict, args) -> dict:
     from threadpoolctl import threadpool_limits
 
-    bl = channel_peer._baseline()
-    train_truth = {it.image: it.boxes for it in train_items}
-    start = time.perf_counter()
-    if method == "hog":
-        bank = _peer_bank(root, train_items, hog_window(train_items), args.seed)
-        det, added = bl.train_baseline(bank, train_frames, train_truth,
-                                       mining_rounds=HOG_MINING_ROUNDS, random_state=args.seed)
-    else:
-        boxes = np.concatenate([it.boxes for it in train_items if len(it.boxes)])
-        bank = _peer_bank(root, train_items, channel_peer.peer_window(boxes), args.seed)
-        with threadpool_limits(limits=args.jobs):
-            det, added = channel_peer.train_channel_peer(
-                bank, train_frames, train_truth, mining_rounds=CHANNEL_MINING_ROUNDS,
-                random_state=args.seed)
-    seconds = time.perf_counter() - start
+    out_file, log = work / "detector.pkl", work / "log.txt"
+    cmd = [sys.executable, str(HERE / "peer_train.py"), method, str(root), str(out_file),
+           "--seed", str(args.seed), "--jobs", str(args.jobs)]
+    seconds = _run(cmd, log)
+    channel_peer._baseline()  # the HOG detector's class, under the name it was pickled with
+    with open(out_file, "rb") as fh:
+        trained = pickle.load(fh)
+    det = trained["detector"]
     with threadpool_limits(limits=1):
         secs, results = _timed_pass(det.scan, test_frames)
     out = _figures({k: (r[0], r[1]) for k, r in results.items()}, truth)
-    out.update(train_seconds=seconds, scan_seconds=secs, mined=[int(a) for a in added],
-               window=[int(v) for v in det.window])
+    out.update(train_seconds=seconds, train_phases=trained["phases"], scan_seconds=secs,
+               mined=trained["mined"], window=[int(v) for v in det.window])
     return out
 
 
@@ -403,11 +379,9 @@ def main(argv=None) -> int:
             print(f"\n== {name} ({info['kind']}; {info['difficulty']}): train "
                   f"{c['train']['images']} images / {c['train']['boxes']} boxes, test "
                   f"{c['test']['images']} / {c['test']['boxes']}; {root}", flush=True)
-            train = read_labels(root / "train" / "labels.csv", images_dir=root / "train" / "images")
             test = read_labels(root / "test" / "labels.csv", images_dir=root / "test" / "images")
             truth = {it.image: it.boxes for it in test}
             test_frames = {it.image: read_gray(root / "test" / "images" / it.image) for it in test}
-            train_frames = None
             results[name] = {}
             for method in args.methods:
                 work = work_root / name / method
@@ -416,11 +390,7 @@ def main(argv=None) -> int:
                     if method in ("defaults", "recipe"):
                         r = run_patchwood(method, root, work, test_frames, truth, args)
                     else:
-                        if train_frames is None:
-                            train_frames = {it.image: read_gray(root / "train" / "images" / it.image)
-                                            for it in train}
-                        r = run_peer(method, root, train.items, train_frames, test_frames, truth,
-                                     args)
+                        r = run_peer(method, root, work, test_frames, truth, args)
                 except RouteFailed as exc:
                     r = {"error": str(exc)}
                     print(f"  {METHOD_NAMES[method]:<19} FAILED: {exc}", flush=True)

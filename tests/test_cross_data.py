@@ -1,5 +1,6 @@
-"""The cross-data benchmark's pieces: the data-set builders (benchmarks/datasets.py) and the
-channel-features peer (benchmarks/channel_peer.py).
+"""The cross-data benchmark's pieces: the data-set builders (benchmarks/datasets.py), the
+channel-features peer (benchmarks/channel_peer.py) and the peers' training in a process of its own
+(benchmarks/peer_train.py).
 
 References: the labels CSV contract as ``detector.io.labels.read_labels`` checks it;
 ``skimage.measure.regionprops`` (bounding boxes of components); ``cv2.sepFilter2D`` (the triangle
@@ -59,6 +60,7 @@ def _one_thread():
 ds = _load("datasets")
 cp = _load("channel_peer")
 cd = _load("cross_data")
+pt = _load("peer_train")
 
 
 @pytest.mark.parametrize("module", [ds, cp, cd], ids=["datasets", "channel_peer", "cross_data"])
@@ -95,6 +97,33 @@ def test_every_set_follows_the_labels_contract_and_its_seed(tmp_path, name):
     stamp = (first / "set.json").stat().st_mtime_ns
     ds.build_set(name, tmp_path / "a", seed=3, train_images=3, test_images=2)
     assert (first / "set.json").stat().st_mtime_ns == stamp
+
+
+def test_a_peer_trained_in_its_own_process_equals_one_trained_here(tmp_path):
+    """benchmarks/peer_train.py, as cross_data runs it: the pickled HOG detector scans a test
+    image as the same peer trained in this process does (same seed, same bank, same mining)."""
+    import pickle
+    import subprocess
+
+    from detector.io.images import read_gray
+
+    root = ds.build_set("cups", tmp_path / "set", seed=3, train_images=3, test_images=1)
+    out = tmp_path / "hog.pkl"
+    subprocess.run([sys.executable, str(BENCH / "peer_train.py"), "hog", str(root), str(out),
+                    "--seed", "5", "--jobs", "1"], check=True, timeout=600,
+                   stdin=subprocess.DEVNULL, capture_output=True)
+    with open(out, "rb") as fh:
+        child = pickle.load(fh)
+    det, mined, phases = pt.train_peer("hog", root, 5, 1)
+    assert child["mined"] == mined and len(mined) == pt.HOG_MINING_ROUNDS
+    assert set(child["phases"]) == set(phases) == {"imports", "read", "harvest_and_train"}
+    assert child["detector"].window == det.window == pt.hog_window(
+        read_labels(root / "train" / "labels.csv").items)
+    test_image = next((root / "test" / "images").iterdir())
+    frame = read_gray(test_image)
+    (boxes_a, scores_a, *_), (boxes_b, scores_b, *_) = child["detector"].scan(frame), det.scan(frame)
+    np.testing.assert_array_equal(boxes_a, boxes_b)
+    np.testing.assert_array_equal(scores_a, scores_b)
 
 
 def test_sources_are_files_inside_the_packages():
