@@ -82,8 +82,6 @@ sys.path.insert(0, str(HERE))
 
 import channel_peer  # noqa: E402
 import datasets  # noqa: E402
-from peer_train import (CHANNEL_MINING_ROUNDS, HOG_MINING_ROUNDS, HOG_SHORT_SIDE,  # noqa: E402,F401
-                        PEER_BANK, hog_window)
 from detector.io.files import write_text  # noqa: E402
 
 METHODS = ("defaults", "recipe", "hog", "channels")

@@ -47,7 +47,8 @@ sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
 
 import datasets  # noqa: E402
-from cross_data import HOG_MINING_ROUNDS, PEER_BANK, hog_window, patchwood_command  # noqa: E402
+from cross_data import patchwood_command  # noqa: E402
+from peer_train import HOG_MINING_ROUNDS, PEER_BANK, hog_window  # noqa: E402
 from detector.io.labels import ImageLabels, read_labels, write_labels_csv  # noqa: E402
 
 SIZE = (640, 480)

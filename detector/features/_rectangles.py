@@ -541,13 +541,8 @@ def _patch_statistics(integrals, patches, squared) -> tuple[np.ndarray, np.ndarr
     else:
         if patches is None:  # recover the pixels from the integral images (exact for integers)
             patches = np.diff(np.diff(integrals, axis=1), axis=2)
-        square_total = _square_totals(patches)
+        square_total = pixel_sums(patches)[1]
     return _statistics(integrals[:, -1, -1].astype(np.float64), square_total, rows * columns)
-
-
-def _square_totals(patches) -> np.ndarray:
-    """Sum of the squared pixels of every patch (exact for integers), as float64."""
-    return pixel_sums(patches)[1]
 
 
 def _statistics(total, square_total, area) -> tuple[np.ndarray, np.ndarray]:
@@ -677,8 +672,8 @@ def _grey_patches(patches, integrals, squared):
             patches.size and (patches.min() < 0 or patches.max() > 255)):
         raise InputError("channel features need 8-bit grey patches (integers 0..255)")
     n, rows, columns = patches.shape
-    total, square_total = pixel_sums(patches)
-    if squared is not None:
+    total, square_total = pixel_sums(patches)  # one pass gives both
+    if squared is not None:  # the squared table's corner is the same sum
         square_total = squared[:, -1, -1].astype(np.float64)
     statistics = _statistics(total, square_total, rows * columns)
     return patches, statistics
