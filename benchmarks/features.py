@@ -47,7 +47,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from detector.features import evaluate_features, evaluate_features_numpy, random_pool  # noqa: E402
 
-from detector.features._integral import integral_images, integral_images_numpy  # noqa: E402
+from detector.features import pixel_sums  # noqa: E402
+from detector.features._integral import (integral_images, integral_images_numpy,  # noqa: E402
+                                         pixel_sums_numpy)
 from detector.features._rectangles import skimage_coordinates  # noqa: E402
 from _machine import cpu_name, load  # noqa: E402  (benchmarks/ is on the path when run as a script)
 
@@ -119,6 +121,16 @@ def main(argv=None):
     print(f"  integral images of the {n:,} patches (part of each run above): compiled "
           f"{compiled * 1e3:.1f} ms, numpy twin (two cumsum passes) {plain * 1e3:.1f} ms, "
           f"{plain / compiled:.1f}x")
+    # ... into an array already used (as training's per-thread work space, integral_scratch), and
+    # the patches' pixel sums and squared sums (every block's contrast normalisation)
+    scratch = np.empty((n, patches.shape[1] + 1, patches.shape[2] + 1), np.int64)
+    integral_images(patches, out=scratch)
+    reused = timed(lambda: integral_images(patches, out=scratch), args.repeats)[0]
+    sums = timed(lambda: pixel_sums(patches), args.repeats)[0]
+    sums_plain = timed(lambda: pixel_sums_numpy(patches), args.repeats)[0]
+    print(f"  the same into one array used before: {reused * 1e3:.1f} ms; "
+          f"pixel sums and squared sums: compiled {sums * 1e3:.1f} ms, numpy twin "
+          f"{sums_plain * 1e3:.1f} ms, {sums_plain / sums:.1f}x")
 
     k = min(args.reference_patches, n)
     twin_patches = min(n, 500)
