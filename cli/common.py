@@ -122,7 +122,7 @@ def channels_option():
     """``--channels``, declared once for ``train`` and ``tune`` (the default is train's)."""
     from detector.training import DEFAULT_TRAIN
 
-    return typer.Option(DEFAULT_TRAIN["channels"], "--channels", help="Features the pool draws: gradient (half of the pool as rectangles and rectangle differences over the gradient magnitude and six orientation channels, the rest grey rectangle differences; scanned on an image pyramid) or grey (rectangle differences of the grey image only; scanned by scaling the rectangles, faster on busy frames).")
+    return typer.Option(DEFAULT_TRAIN["channels"], "--channels", help="Features the pool draws: gradient (half of the pool as rectangles and rectangle differences over the gradient magnitude and six orientation channels, the single rectangles on the magnitude without contrast normalisation, so that the trees see how strong an edge is; the rest grey rectangle differences; scanned on an image pyramid) or grey (rectangle differences of the grey image only; scanned by scaling the rectangles, faster on busy frames).")
 
 
 def check_channels_option(value: str) -> str:

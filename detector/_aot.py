@@ -46,7 +46,8 @@ def _scan_scale(ii: str) -> str:
     return ("Tuple((int64, int64))(" + ", ".join([
         a(ii), a("float64"), "int64", a("int64"), a("int64"), a("int64"), "float64", "float64",
         "float64", "boolean", "int64[:, ::1]", "float64[:, ::1]", a("int64"), a("float64"),
-        "int64[:, ::1]", "float64[:, ::1]", "float64[:, ::1]", a("float64"), "float64",
+        a("float64"), "int64[:, ::1]", "float64[:, ::1]", "float64[:, ::1]", a("float64"),
+        "float64",
         a("float64"), a("int64"), a("int64"), a("float64")]) + ")")
 
 
@@ -55,7 +56,7 @@ def _scan_frame(ii: str) -> str:
     return ("Tuple((int64, int64))(" + ", ".join([
         a(ii), a("float64"), "int64", a("int64"), a("int64"), a("int64"), a("int64"),
         "int64[:, ::1]", a("float64"), "float64", "float64", "boolean", "int64[:, :, ::1]",
-        "float64[:, :, ::1]", "int64[:, ::1]", "float64[:, ::1]", "int64[:, ::1]",
+        "float64[:, :, ::1]", "int64[:, ::1]", "float64[:, ::1]", a("float64"), "int64[:, ::1]",
         "float64[:, ::1]", "float64[:, ::1]", a("float64"), "float64", a("float64"), a("int64"),
         a("int64"), a("float64"), a("int64")]) + ")")
 

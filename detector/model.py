@@ -7,7 +7,7 @@ One ``.npz`` archive (written by :func:`detector.io.npzfile.save_npz`, determini
 =====================  =================  =====================================================
 array                  dtype, shape       meaning
 =====================  =================  =====================================================
-``format_version``     int64, ()          4 (files of versions 1 to 3 are read too, see
+``format_version``     int64, ()          5 (files of versions 1 to 4 are read too, see
                                           :func:`load_model`)
 ``kind``               str, ()            ``"model"``
 ``window``             int32, (2,)        window width and height in pixels
@@ -16,7 +16,8 @@ array                  dtype, shape       meaning
                                           ``y0 <= y < y1`` of the window (corner form; unused
                                           slots all zero)
 ``feature_channels``   int8, (F,)         the channel each feature reads (0 grey, 1..7 the
-                                          gradient channels of :mod:`detector.features`);
+                                          gradient channels of :mod:`detector.features`, 8
+                                          the gradient magnitude not contrast-normalised);
                                           absent: all grey (format 1; optional)
 ``node_features``      int32, (T, 2**D-1) index into ``features``, heap order
 ``node_thresholds``    float32, (T, 2**D-1)  go left when ``value <= threshold``
@@ -48,7 +49,9 @@ Versions 1 (grey features) and 2 (with ``feature_channels``) kept ``margin``,
 ``score_temperature`` and ``exit_min_sigma`` in the metadata JSON (and the object range in the
 bank's harvest record there); :func:`load_model` converts them to the typed values of version 3.
 Versions 1 to 3 stored each rectangle as ``(x, y, width, height, weight)``; version 4 stores its
-corners, and :func:`load_model` converts the older form (``x1 = x + width``, exact). In memory
+corners, and :func:`load_model` converts the older form (``x1 = x + width``, exact). Version 5
+added the edge-strength channel (code 8): a version-4 patchwood refuses the newer files rather than
+scan code 8 as something else. In memory
 (:class:`Model`, :mod:`detector.features`) a rectangle is ``(x, y, width, height, weight)``, the
 form the feature enumeration and the scan plans compute with; only the file holds corners.
 
@@ -74,19 +77,22 @@ from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
 
 __all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe", "exit_budget_of",
            "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
-           "metadata_sha256", "old_format_note", "CORNERS_FORMAT_VERSION"]
+           "metadata_sha256", "old_format_note", "CORNERS_FORMAT_VERSION",
+           "EDGE_STRENGTH_FORMAT_VERSION"]
 
 #: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
 #: arrays instead of metadata JSON; version 4 stores rectangles by their corners.
-FORMAT_VERSION = 4
+FORMAT_VERSION = 5
 #: The first version whose rectangles are ``(x0, y0, x1, y1, weight)``.
 CORNERS_FORMAT_VERSION = 4
 #: Files with channel features (``feature_channels``) are version 2 or later, so that a patchwood
 #: that does not know channels refuses them instead of scanning their features as grey ones.
 CHANNELS_FORMAT_VERSION = 2
+#: Files with edge-strength features (channel code 8) are version 5 or later.
+EDGE_STRENGTH_FORMAT_VERSION = 5
 #: The versions before 3, whose scan settings :func:`load_model` takes from the metadata.
 METADATA_SETTINGS_VERSIONS = (1, CHANNELS_FORMAT_VERSION)
-READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, 3, FORMAT_VERSION)
+READ_VERSIONS = (*METADATA_SETTINGS_VERSIONS, 3, CORNERS_FORMAT_VERSION, FORMAT_VERSION)
 #: The scan settings: model array (and metadata key before version 3) -> default.
 SCAN_SETTINGS = {"margin": 0.0, "score_temperature": 1.0, "exit_min_sigma": 0.0}
 
@@ -361,7 +367,8 @@ class Model:
         pool = d["pool"]
         used = f"features used: {d['features_used']}"
         lines.append(used + (f" of a pool of {_plain(pool)}" if pool else "") +
-                     f" ({'contrast-normalised' if d['normalize'] else 'raw'} values)")
+                     f" ({'contrast-normalised' if d['normalize'] else 'raw'} values"
+                     + _edge_strength_note(d) + ")")
         oob = d["training"]["oob_error"]
         lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
         ee = d["early_exit"]
@@ -402,6 +409,7 @@ def describe(model: Model) -> dict:
     dict
         ``window`` (``width``, ``height``), ``mode``, ``method``, ``trees``, ``depth``, ``splits``
         (real split nodes), ``features_used``, ``pool``, ``features_per_node``, ``normalize``,
+        ``edge_strength_features`` (features on channel code 8),
         ``scan`` (the typed values the scan computes with: ``margin``, ``score_temperature``,
         ``exit_min_sigma``, ``object_range``), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
         ``levels``, ``calibration``: the calibration record as stored) and ``training``
@@ -436,6 +444,7 @@ def describe(model: Model) -> dict:
         "pool": _real(md.get("pool_drawn")) or _real(params.get("pool")),
         "features_per_node": md.get("features_per_node", params.get("features_per_node")),
         "normalize": bool(model.normalize),
+        "edge_strength_features": _edge_strength_count(model),
         "scan": {"margin": model.margin, "score_temperature": model.temperature,
                  "exit_min_sigma": model.exit_min_sigma, "object_range": model.object_range},
         "early_exit": {
@@ -455,6 +464,20 @@ def describe(model: Model) -> dict:
             "versions": versions if isinstance(versions, dict) else {},
         },
     })
+
+
+def _edge_strength_count(model) -> int:
+    """How many of the model's features are edge-strength features (channel code 8)."""
+    from detector.features import EDGE_STRENGTH
+
+    channels = model.feature_channels
+    return 0 if channels is None else int((np.asarray(channels) == EDGE_STRENGTH).sum())
+
+
+def _edge_strength_note(d: dict) -> str:
+    """``"; N of edge strength, not normalised"`` for a :func:`describe` with any, else ""."""
+    n = d.get("edge_strength_features") or 0
+    return f"; {n} of edge strength, not normalised" if n and d["normalize"] else ""
 
 
 def _mapping(value) -> dict:
@@ -608,14 +631,19 @@ def validate_model(a: dict[str, np.ndarray], path: str | os.PathLike) -> tuple[d
         if np.isnan(table).any() or np.isposinf(table).any():
             raise InputError("model exit table must be finite or -inf", path=path)
     if "feature_channels" in a:
-        from detector.features import N_CHANNELS
+        from detector.features import EDGE_STRENGTH, N_FEATURE_CHANNELS
 
         channels = a["feature_channels"]
-        if channels.min() < 0 or channels.max() >= N_CHANNELS:
-            raise InputError(f"model feature channels must be in 0..{N_CHANNELS - 1}", path=path)
+        if channels.min() < 0 or channels.max() >= N_FEATURE_CHANNELS:
+            raise InputError(f"model feature channels must be in 0..{N_FEATURE_CHANNELS - 1}",
+                             path=path)
         if int(a["format_version"]) < CHANNELS_FORMAT_VERSION:
             raise InputError(f"model array 'feature_channels' needs format version "
                              f"{CHANNELS_FORMAT_VERSION}", path=path)
+        if (channels == EDGE_STRENGTH).any() and \
+                int(a["format_version"]) < EDGE_STRENGTH_FORMAT_VERSION:
+            raise InputError(f"model feature channel {EDGE_STRENGTH} (edge strength) needs format "
+                             f"version {EDGE_STRENGTH_FORMAT_VERSION}", path=path)
     if "feature_importances" in a and not np.isfinite(a["feature_importances"]).all():
         raise InputError("model feature importances must be finite", path=path)
     mode = str(a["mode"])
@@ -748,10 +776,11 @@ def old_format_note(model: Model, path) -> str | None:
     >>> m = Model((2, 2), np.zeros((1, 4, 5), np.int32), [[0]], [[0.0]], [[0.0, 1.0]], [-np.inf],
     ...           file_version=3)
     >>> old_format_note(m, "old.npz")
-    'note: old.npz is a format 3 model file (rectangles as x, y, width, height); it was converted on reading and left as it is (patchwood train writes format 4)'
+    'note: old.npz is a format 3 model file (rectangles as x, y, width, height); it was converted on reading and left as it is (patchwood train writes format 5)'
     """
     version = model.file_version
-    if version is None or version >= FORMAT_VERSION:
+    # a format 4 file differs only in what it cannot hold (edge-strength features): nothing to say
+    if version is None or version >= CORNERS_FORMAT_VERSION:
         return None
     return (f"note: {path} is a format {version} model file (rectangles as x, y, width, height); "
             f"it was converted on reading and left as it is (patchwood train writes format "

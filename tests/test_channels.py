@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from detector.features import (N_CHANNELS, channel_integrals, channel_integrals_numpy,
+from detector.features import (EDGE_STRENGTH, FEATURE_PLANES, N_CHANNELS, channel_integrals,
+                               channel_integrals_numpy,
                                gradient_channels, orientation_bins, patch_channels,
                                patch_channels_numpy)
 from detector.classifier import PatchClassifier
@@ -118,14 +119,21 @@ def test_channel_pool_draws_inside_the_border_ring():
     r = features[used]
     assert r[:, 0].min() == 1 and r[:, 1].min() == 1
     assert (r[:, 0] + r[:, 2]).max() == 23 and (r[:, 1] + r[:, 3]).max() == 19
-    assert channels.min() == 1 and channels.max() == N_CHANNELS - 1
-    assert (np.diff(channels) >= 0).all()
+    assert channels.min() == 1 and channels.max() == EDGE_STRENGTH
+    plane = np.asarray(FEATURE_PLANES)[channels]
+    assert (np.diff(plane) >= 0).all()  # sorted by the plane read
     assert len(np.unique(np.c_[features.reshape(len(features), -1), channels], axis=0)) >= 2990
     single = used.sum(axis=1) == 1  # the one-rectangle shape, weight +1
     assert single.any() and (features[single, 0, 4] == 1).all()
+    # edge strength: exactly the single rectangles on the gradient magnitude
+    np.testing.assert_array_equal(channels == EDGE_STRENGTH, single & (plane == 1))
     again = channel_pool(24, 20, 3000, random_state=4)
     np.testing.assert_array_equal(again[0], features)
     np.testing.assert_array_equal(again[1], channels)
+    # without edge strength: the same features, those on channel 1 normalised
+    plain_features, plain = channel_pool(24, 20, 3000, random_state=4, edge_strength=False)
+    np.testing.assert_array_equal(plain_features, features)
+    np.testing.assert_array_equal(plain, plane)
 
 
 @pytest.mark.parametrize("normalize", [True, False])
@@ -176,6 +184,30 @@ def test_channel_feature_value_by_hand():
         assert got[0, 0] == raw
     value = evaluate_features(feature, patch, channels=[2])[0, 0]
     assert value == pytest.approx(800 / (50 * 36), rel=1e-6)
+    # edge strength (code 8): the gradient magnitude's raw sum, 800, normalised or not; the
+    # numpy twin agrees
+    for normalize in (True, False):
+        assert evaluate_features(feature, patch, channels=[EDGE_STRENGTH],
+                                 normalize=normalize)[0, 0] == 800.0
+        assert evaluate_features_numpy(feature, patch, channels=[EDGE_STRENGTH],
+                                       normalize=normalize)[0, 0] == 800.0
+
+
+def test_edge_strength_sees_contrast_that_normalised_features_do_not():
+    """The same step at a quarter of the contrast (25 grey levels instead of 100): every
+    normalised feature gives the same value (sigma falls with the step), the edge-strength feature
+    a quarter (4 rows x 2 columns x 25 = 200 against 800)."""
+    strong = np.zeros((1, 6, 6), np.uint8)
+    strong[0, :, 3:] = 100
+    faint = (strong // 4).astype(np.uint8)
+    feature = np.zeros((1, 4, 5), np.int32)
+    feature[0, 0] = [1, 1, 4, 4, 1]
+    for channel in (0, 1, 2):
+        a = evaluate_features(feature, strong, channels=[channel])[0, 0]
+        b = evaluate_features(feature, faint, channels=[channel])[0, 0]
+        assert a == pytest.approx(b, rel=1e-6)
+    assert evaluate_features(feature, strong, channels=[EDGE_STRENGTH])[0, 0] == 800.0
+    assert evaluate_features(feature, faint, channels=[EDGE_STRENGTH])[0, 0] == 200.0
 
 
 def test_channel_features_refuse_other_than_8_bit():
@@ -203,6 +235,8 @@ def channel_model(request, bank):
     clf.fit(bank.patches, bank.labels, margin=bank.margin)
     model = clf.model_
     assert model.feature_channels is not None and (model.feature_channels > 0).sum() >= 5
+    # the scan tests below cover edge-strength features too
+    assert (model.feature_channels == EDGE_STRENGTH).any()
     return model
 
 
@@ -316,6 +350,18 @@ def test_channel_model_file_round_trip(channel_model, tmp_path):
     np.testing.assert_array_equal(a.scores, b.scores)
 
 
+def test_summary_and_inspection_count_the_edge_strength_features(channel_model):
+    from detector.reporting.inspection import model_report, report_lines
+
+    n = int((channel_model.feature_channels == EDGE_STRENGTH).sum())
+    line = next(ln for ln in channel_model.summary() if ln.startswith("features used:"))
+    assert line.endswith(f"(contrast-normalised values; {n} of edge strength, not normalised)")
+    report = model_report(channel_model)
+    assert report["edge_strength_features"] == n
+    assert any(f"contrast-normalised values ({n} of edge strength, not normalised)" in ln
+               for ln in report_lines(report))
+
+
 def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
     """A grey-only model is written without feature_channels,
     loads with no channels, and its scan reads the one-plane integral image."""
@@ -343,11 +389,15 @@ def test_grey_models_keep_format_one_and_scan_as_before(bank, tmp_path):
 
 @pytest.mark.parametrize("change, message", [
     (dict(format_version=1), "model array 'feature_channels' needs format version 2"),
-    (dict(feature_channels=9), "model feature channels must be in 0..7"),
+    (dict(feature_channels=9), "model feature channels must be in 0..8"),
+    (dict(format_version=4), "model feature channel 8 \\(edge strength\\) needs format version 5"),
 ])
 def test_bad_channel_files_are_refused(channel_model, tmp_path, change, message):
     arrays = model_arrays(channel_model)
-    if "format_version" in change:   # a format 1 file: rectangles as (x, y, width, height)
+    if change.get("format_version") == 4:  # corners, but no edge strength yet
+        assert (arrays["feature_channels"] == EDGE_STRENGTH).any()
+        arrays["format_version"] = np.array(4, np.int64)
+    elif "format_version" in change:   # a format 1 file: rectangles as (x, y, width, height)
         arrays["format_version"] = np.array(change["format_version"], np.int64)
         arrays["features"] = from_corners(arrays["features"])
     else:

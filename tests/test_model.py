@@ -19,7 +19,8 @@ from detector.classifier import PatchClassifier
 from detector.errors import InputError
 from detector.features import evaluate_features, from_corners
 from detector.forest import forest_score
-from detector.model import FORMAT_VERSION, Model, load_model, model_arrays, save_model, training_date
+from detector.model import (FORMAT_VERSION, Model, load_model, model_arrays, old_format_note,
+                            save_model, training_date)
 
 
 def _patches(n_objects=60, n_background=60, size=12, seed=0):
@@ -223,7 +224,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
 @pytest.mark.parametrize(
     "change, message",
     [
-        (dict(format_version=np.array(5, np.int64)), "unsupported model format version 5 (this patchwood reads 1, 2, 3 and 4; train the model again with `patchwood train`)"),
+        (dict(format_version=np.array(6, np.int64)), "unsupported model format version 6 (this patchwood reads 1, 2, 3, 4 and 5; train the model again with `patchwood train`)"),
         (dict(format_version=None), "not a model file: array 'format_version' is missing"),
         (dict(node_thresholds=None), "not a complete model file: array 'node_thresholds' is missing"),
         (dict(kind=np.array("patch-bank")), "this is a patch bank, not a model"),
@@ -249,7 +250,7 @@ def test_object_arrays_are_refused_without_unpickling(model_file, tmp_path):
         (dict(score_temperature=np.array(0.0)), "model array 'score_temperature' must be a number > 0"),
         (dict(margin=np.array(np.nan)), "model array 'margin' must be a number >= 0, got NaN"),
         (dict(margin=np.array(6.0)), "model array 'margin' 6 leaves less than one pixel of the object"),
-        (dict(margin=None), "model array 'margin' is missing (format version 4 needs it)"),
+        (dict(margin=None), "model array 'margin' is missing (format version 5 needs it)"),
         (dict(object_range=np.array([30.0, 6.0])), "model array 'object_range' must hold two sizes > 0, the smaller first"),
         (dict(object_range=np.array([0.0, 6.0])), "model array 'object_range' must hold two sizes > 0"),
         (dict(score_temperature=np.array(2.0, np.float32)), "model array 'score_temperature' has dtype float32; expected float64"),
@@ -515,15 +516,16 @@ def test_model_file_stores_corners(fitted, model_file):
     arrays = model_arrays(m)
     assert arrays["features"][0, :2].tolist() == [[0, 0, 2, 4, -1], [2, 0, 4, 4, 1]]
     with np.load(model_file, allow_pickle=False) as npz:
-        assert int(npz["format_version"]) == FORMAT_VERSION == 4
+        assert int(npz["format_version"]) == FORMAT_VERSION == 5
         np.testing.assert_array_equal(from_corners(npz["features"]), fitted[0].model_.features)
     np.testing.assert_array_equal(load_model(model_file).features, fitted[0].model_.features)
 
 
 def test_format_3_files_are_converted_with_a_note(fitted, model_file, tmp_path):
     """A format 3 file (rectangles as x, y, width, height) loads as the same model, scores every
-    patch bit for bit as the format 4 file does, and the commands that read it say so in one line
-    (the file is left as it is)."""
+    patch bit for bit as the current file does, and the commands that read it say so in one line
+    (the file is left as it is). A format 4 file (corners, written before edge-strength features
+    existed) is read as it is, without a note."""
     from typer.testing import CliRunner
 
     from cli import main as cli_main
@@ -535,7 +537,7 @@ def test_format_3_files_are_converted_with_a_note(fitted, model_file, tmp_path):
     npzfile.save_npz(old, arrays)
     before = old.read_bytes()
     a, b = load_model(old), load_model(model_file)
-    assert (a.file_version, b.file_version) == (3, 4)
+    assert (a.file_version, b.file_version) == (3, 5)
     np.testing.assert_array_equal(a.features, b.features)
     patches = fitted[1]
     np.testing.assert_array_equal(a.running_scores(patches), b.running_scores(patches))
@@ -544,8 +546,15 @@ def test_format_3_files_are_converted_with_a_note(fitted, model_file, tmp_path):
     notes = [ln for ln in result.output.splitlines() if ln.startswith("note: ")]
     assert notes == [f"note: {old} is a format 3 model file (rectangles as x, y, width, height); "
                      "it was converted on reading and left as it is (patchwood train writes "
-                     "format 4)"]
+                     "format 5)"]
     assert old.read_bytes() == before
+    arrays = npzfile.read_npz(model_file)
+    arrays["format_version"] = np.array(4, np.int64)
+    four = tmp_path / "four.npz"
+    npzfile.save_npz(four, arrays)
+    c = load_model(four)
+    assert c.file_version == 4 and old_format_note(c, four) is None
+    np.testing.assert_array_equal(c.running_scores(patches), b.running_scores(patches))
     result = CliRunner().invoke(cli_main.app, ["inspect", str(model_file), "--out",
                                                str(tmp_path / "j")])
     assert result.exit_code == 0 and "note: " not in result.output

@@ -597,7 +597,7 @@ def _damaged(kind: str, trained, folder: Path, marker: Path) -> tuple[Path, str]
         return path, f"not a {what} file (not an .npz archive, or truncated)"
     if case == "version":
         _replaced(src, path, format_version=lambda v: np.array(99, np.int64))
-        reads = "1, 2, 3 and 4; train the model again" if model else "1)"
+        reads = "1, 2, 3, 4 and 5; train the model again" if model else "1)"
         return path, f"unsupported {what} format version 99 (this patchwood reads {reads}"
     if case == "dtype":
         name, want = ("node_features", "int32") if model else ("patches", "uint8")

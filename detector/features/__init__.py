@@ -12,7 +12,8 @@ The public names of all three are re-exported here (``from detector.features imp
 evaluate_features``).
 """
 
-from detector.features._channels import (CHANNEL_NAMES, CHOICES, N_CHANNELS, ORIENTATIONS,
+from detector.features._channels import (CHANNEL_NAMES, CHOICES, EDGE_STRENGTH, FEATURE_PLANES,
+                                         N_CHANNELS, N_FEATURE_CHANNELS, ORIENTATIONS,
                                          channel_integrals, channel_integrals_numpy,
                                          gradient_channels, orientation_bins, patch_channels,
                                          patch_channels_numpy)
@@ -30,7 +31,8 @@ __all__ = [
     "integral_image", "squared_integral_image", "integral_images", "squared_integral_images",
     "window_sum", "window_mean_var", "pixel_sums",
     # channels
-    "N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "gradient_channels",
+    "N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "EDGE_STRENGTH",
+    "N_FEATURE_CHANNELS", "FEATURE_PLANES", "gradient_channels",
     "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals", "channel_integrals_numpy",
     # rectangle features
     "SHAPES", "SIGMA_FLOOR", "MIN_WINDOW_SIDE", "MAX_WINDOW_SIDE", "count_features",

@@ -23,6 +23,14 @@ two integers, so the rounding is exact) and the orientation bin is decided in in
 ``3 gy**2 >= gx**2`` on the right half-plane, and so on), so every channel's integral image holds
 exact integer sums and the compiled scan equals its numpy twin bit for bit.
 
+A feature names the channel it reads by a code (``feature_channels`` in a model): codes 0..7 are
+the planes above, and a feature on them is contrast-normalised as every grey feature is (divided
+by the window's grey standard deviation; a window twice as contrasted gives the same value). Code
+:data:`EDGE_STRENGTH` (8) reads the gradient magnitude plane too, but without that division: the
+absolute edge strength of a rectangle, as aggregated channel features use their channels (Dollár,
+Appel, Belongie and Perona, PAMI 2014). It lets the trees tell a faint object from a bright one
+of the same shape, which normalised features cannot (:data:`FEATURE_PLANES` maps codes to planes).
+
 The scan computes the channels on the whole (padded) frame; training computes them on each patch
 (:func:`patch_channels`), where the gradient of the outermost ring of pixels would use the repeated
 border instead of the true neighbour. Channel features therefore never touch that ring
@@ -41,7 +49,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "gradient_channels",
+__all__ = ["N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "EDGE_STRENGTH",
+           "N_FEATURE_CHANNELS", "FEATURE_PLANES", "gradient_channels",
            "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals",
            "channel_integrals_numpy"]
 
@@ -50,7 +59,14 @@ ORIENTATIONS = 6
 #: Grey, gradient magnitude and the orientation channels.
 N_CHANNELS = 2 + ORIENTATIONS
 CHANNEL_NAMES = ("grey", "gradient magnitude") + tuple(
-    f"gradient {30 * k}-{30 * (k + 1)} degrees" for k in range(ORIENTATIONS))
+    f"gradient {30 * k}-{30 * (k + 1)} degrees" for k in range(ORIENTATIONS)) + (
+    "edge strength (gradient magnitude, not contrast-normalised)",)
+#: The feature channel code of the gradient magnitude read without contrast normalisation.
+EDGE_STRENGTH = N_CHANNELS
+#: Feature channel codes: 0 .. N_FEATURE_CHANNELS - 1.
+N_FEATURE_CHANNELS = N_CHANNELS + 1
+#: The plane (0 .. N_CHANNELS - 1) each feature channel code reads.
+FEATURE_PLANES = tuple(range(N_CHANNELS)) + (1,)
 #: ``--channels`` choices: grey rectangle differences only, or with gradient channel features too.
 CHOICES = ("grey", "gradient")
 

@@ -287,7 +287,9 @@ def model_report(model: Model, top: int = 12) -> dict:
     dict
         ``window`` (``width``, ``height``), ``mode``, ``method``, ``trees``, ``depth``,
         ``splits`` (real split nodes), ``features_used``, ``pool``, ``features_per_node``,
-        ``normalize``, ``rectangles_per_feature`` (count of features with 2, 3 or 4 rectangles),
+        ``normalize``, ``edge_strength_features`` (how many read the gradient magnitude without
+        contrast normalisation), ``rectangles_per_feature`` (count of features with 2, 3 or 4
+        rectangles),
         ``importance`` (``source``, ``total``, ``top``: rank, feature index, importance, share of
         the total, rectangles), ``early_exit`` (``trees_with_exit``, ``first_exit_after_tree``,
         ``calibration``: the model's calibration record as stored) and ``training`` (``date``,
@@ -314,7 +316,8 @@ def model_report(model: Model, top: int = 12) -> dict:
     training = d["training"]
     return json_safe({
         **{k: d[k] for k in ("window", "mode", "method", "trees", "depth", "splits",
-                             "features_used", "pool", "features_per_node", "normalize")},
+                             "features_used", "pool", "features_per_node", "normalize",
+                             "edge_strength_features")},
         "rectangles_per_feature": {str(n): int((n_rect == n).sum()) for n in (2, 3, 4)
                                    if (n_rect == n).any()} | (
             {"other": int((~np.isin(n_rect, (2, 3, 4))).sum())}
@@ -360,6 +363,8 @@ def report_lines(report: dict) -> list[str]:
     if r.get("pool"):
         used += f" of a pool of {r['pool']}"
     used += f", {'contrast-normalised' if r['normalize'] else 'raw'} values"
+    if r.get("edge_strength_features") and r["normalize"]:
+        used += f" ({r['edge_strength_features']} of edge strength, not normalised)"
     shapes = ", ".join(f"{n} with {k} rectangles" if k != "other" else f"{n} other"
                        for k, n in r["rectangles_per_feature"].items())
     lines.append(used + (f" ({shapes})" if shapes else ""))

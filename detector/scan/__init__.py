@@ -26,7 +26,8 @@ from detector.scan._engine import (MAX_DEFAULT_ENLARGEMENT, MAX_OVERHANG, SCORE_
                                    frame_integrals, integral_dtype, kernel_cutoff, raw_cutoff,
                                    scale_plan, scales_for, scan_scale_numpy, skipped_sizes_note,
                                    split_bounds, level_edges, area_shrink_numpy, shrink_level,
-                                   BAND_BYTES, level_bands, VOTE_IOU, vote_boxes)
+                                   BAND_BYTES, level_bands, relative_features, VOTE_IOU,
+                                   vote_boxes)
 from detector.scan._provenance import (PROVENANCE_FORMAT, PROVENANCE_VERSION, check_same_scan,
                                        check_summary_model, describe_settings, model_differences,
                                        model_record, provenance_of, provenance_path,
@@ -46,5 +47,5 @@ __all__ = [
     "model_record", "scan_record", "write_provenance", "read_provenance", "provenance_of",
     "settings_differences", "model_differences", "check_summary_model", "check_same_scan",
     "describe_settings", "level_edges", "area_shrink_numpy", "shrink_level", "BAND_BYTES",
-    "level_bands", "VOTE_IOU", "vote_boxes",
+    "level_bands", "VOTE_IOU", "vote_boxes", "relative_features",
 ]

@@ -94,9 +94,11 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
 
     ``channels`` (one per feature, 0 = grey; see :mod:`detector.features`): a feature on channel
     c reads plane c of a stack of integral images ``plane`` cells apart (its offsets grow by
-    ``c * plane``) and subtracts no window mean (its const is 0). Channel features are planned at
-    scale 1 only: gradients do not scale with the rectangles (see :class:`LevelPlan`), so models
-    with them are scanned on an image pyramid.
+    ``c * plane``) and subtracts no window mean (its const is 0). An edge-strength feature (code
+    8) reads plane 1 with the weights of an unnormalised feature (the kernel does not divide it
+    by the window's standard deviation either: :func:`relative_features`). Channel features are
+    planned at scale 1 only: gradients do not scale with the rectangles (see :class:`LevelPlan`),
+    so models with them are scanned on an image pyramid.
 
     Examples
     --------
@@ -127,8 +129,14 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
     corners = np.stack([y0 * row_stride + x0, y0 * row_stride + x1,
                         y1 * row_stride + x0, y1 * row_stride + x1], axis=-1)
     if channels is not None:
-        channel = np.asarray(channels, dtype=np.int64)
+        from detector.features import EDGE_STRENGTH, FEATURE_PLANES
+
+        code = np.asarray(channels, dtype=np.int64)
+        channel = np.asarray(FEATURE_PLANES, np.int64)[code]
         gradient = channel > 0
+        if normalize:  # an edge-strength feature's value is its raw sum
+            absolute = (code == EDGE_STRENGTH)[:, None]
+            coefs = np.where(absolute, np.where(used, weight * base_area / safe, 0.0), coefs)
         if gradient.any() and scale != 1.0:
             raise ValueError("channel features are scanned at scale 1, on an image pyramid")
         consts = np.where(gradient, 0.0, consts)
@@ -140,6 +148,22 @@ def scale_plan(features: np.ndarray, window, scale: float, row_stride: int,
     win = np.array([0, Ws, Hs * row_stride, Hs * row_stride + Ws], dtype=np.int64)
     return ScalePlan(scale, (Ws, Hs), offsets, weights, counts, np.ascontiguousarray(consts), win,
                      1.0 / (Ws * Hs))
+
+
+def relative_features(channels, n_features: int) -> np.ndarray:
+    """float64 ``(F,)``: 1.0 for each feature whose value the scan divides by the window's
+    standard deviation (contrast-normalised: grey and channels 1..7), 0.0 for an edge-strength
+    feature (code 8, :data:`detector.features.EDGE_STRENGTH`), whose raw sum the trees compare;
+    what the kernels' ``relative`` argument holds (all 1.0 without channels).
+
+    >>> relative_features(None, 2).tolist(), relative_features([0, 8, 1], 3).tolist()
+    ([1.0, 1.0], [1.0, 0.0, 1.0])
+    """
+    if channels is None:
+        return np.ones(n_features)
+    from detector.features import EDGE_STRENGTH
+
+    return np.ascontiguousarray(np.asarray(channels) != EDGE_STRENGTH, dtype=np.float64)
 
 
 def scales_for(image_size, window, scale_step=1.2, min_scale=1.0, max_scale=None):
@@ -914,6 +938,7 @@ class Engine:
         # a model with gradient channel features is scanned on an image pyramid (see LevelPlan);
         # a grey model by scaling its rectangles over one integral image
         self.pyramid = self.channels is not None
+        self.relative = relative_features(self.channels, len(self.features))
         self._grids: dict = {}
         self._lock = threading.Lock()
         self._work = _Workspace()
@@ -1114,6 +1139,7 @@ class Engine:
                                                      self._work.tables(image.shape, N_CHANNELS))
                 k, t = scan(ii, sq, row, lv.xs, ys, plan.win, plan.inv_area, *rules,
                             plan.offsets, plan.weights, plan.counts, plan.consts,
+                            self.relative,
                             *trees_and_exits, out_x, out_y, out_s)
                 # the tables are views of the work space's buffers: let them go, so that a later
                 # call needing larger buffers frees these before it allocates those
@@ -1172,6 +1198,7 @@ class Engine:
             for i, (plan, xs, ys) in enumerate(grid.scales):
                 k, t = scan_scale_numpy(ii, sq, stride, xs, ys, plan.win, plan.inv_area, *rules,
                                         plan.offsets, plan.weights, plan.counts, plan.consts,
+                            self.relative,
                                         *trees_and_exits, out_x[kept:], out_y[kept:],
                                         out_s[kept:])
                 out_scale[kept:kept + k] = i
@@ -1180,6 +1207,7 @@ class Engine:
             kept, trees = _kernels.scan_frame(
                 ii, sq, stride, grid.xs_all, grid.x_start, grid.ys_all, grid.y_start, grid.wins,
                 grid.inv_areas, *rules, grid.offsets, grid.weights, grid.counts, grid.consts,
+                self.relative,
                 *trees_and_exits, out_x, out_y, out_s, out_scale)
         kept = int(kept)
         # the exact rule: the loop kept every window that can score the threshold, and a few
@@ -1373,7 +1401,8 @@ def clip_boxes(boxes, image_size) -> np.ndarray:
 
 
 def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
-                     offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
+                     offsets, weights, counts, consts, relative, node_features, split_bounds,
+                     leaf_values,
                      exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Plain-numpy twin of :func:`detector.scan._kernels.scan_scale` (same arguments, same results),
     vectorised over all windows of the scale. For tests and as a readable reference."""
@@ -1399,7 +1428,7 @@ def scan_scale_numpy(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min
         acc = np.zeros(len(base))
         for k in range(counts[f]):
             acc += weights[f, k] * ii[base + offsets[f, k]].astype(np.float64)
-        values[f] = (acc - consts[f] * mean) * inv_sigma
+        values[f] = (acc - consts[f] * mean) * (inv_sigma if relative[f] else 1.0)
     n_trees, n_nodes = node_features.shape
     depth = int(round(math.log2(n_nodes + 1)))
     score = np.zeros(len(base))

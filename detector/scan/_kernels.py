@@ -9,6 +9,10 @@ Layout the kernels read (built once per scale by :func:`detector.scan.scale_plan
 - ``weights`` float64 ``(F, K)``: the weight of each corner's integral value, so that
   ``value = (sum_k weights[f, k] * ii[base + offsets[f, k]] - consts[f] * mean) / sigma``.
 - ``consts`` float64 ``(F,)``: the weight of the window mean.
+- ``relative`` float64 ``(F,)``: 1.0 for a feature divided by the window's standard deviation, 0.0
+  for an edge-strength feature, whose value is the corner sum alone
+  (:func:`detector.scan.relative_features`); a tree picks its nodes' scale arrays once, so the
+  window loops test nothing.
 - ``win`` int64 ``(4,)``: the window's four corner offsets; ``inv_area`` its 1 / pixel count.
 
 The loop runs breadth-first over a chunk of windows: first the mean, standard deviation and
@@ -79,8 +83,8 @@ def _gather_row(ii, sq, row, xs, y, w0, w1, w2, w3, inv_area, sigma_floor, min_v
 
 @kernel(cache=True, nogil=True)
 def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, normalize,
-               offsets, weights, counts, consts, node_features, split_bounds, leaf_values,
-               exit_thresholds, cutoff, bound, out_x, out_y, out_score):
+               offsets, weights, counts, consts, relative, node_features, split_bounds,
+               leaf_values, exit_thresholds, cutoff, bound, out_x, out_y, out_score):
     """Score every window of one scale; keep those whose running score reaches ``cutoff``.
 
     Parameters
@@ -132,6 +136,7 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
     left = np.empty(size, np.int64)
     right = np.empty(size, np.int64)
     alive = np.empty(size, np.int64)
+    ones = np.ones(size)  # the divisor-free scale of an edge-strength feature (relative 0)
     w0, w1, w2, w3 = win[0], win[1], win[2], win[3]
     kept = 0
     trees = 0
@@ -165,22 +170,26 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
                 l1 = leaf_values[t, 1]
                 l2 = leaf_values[t, 2]
                 l3 = leaf_values[t, 3]
+                # each node's scale array, chosen once per tree (no test in the window loops)
+                g0 = inv_sigma if relative[f0] != 0.0 else ones
+                g1 = inv_sigma if relative[f1] != 0.0 else ones
+                g2 = inv_sigma if relative[f2] != 0.0 else ones
                 nl = 0
                 nr = 0
                 for q in range(n):
                     j = alive[q]
-                    r = (_corner_sum(ii, base[j], offsets, weights, c0, f0) - k0 * mean[j]) * inv_sigma[j] > s0
+                    r = (_corner_sum(ii, base[j], offsets, weights, c0, f0) - k0 * mean[j]) * g0[j] > s0
                     left[nl] = j
                     right[nr] = j
                     nl += 1 - np.int64(r)
                     nr += np.int64(r)
                 for q in range(nl):
                     j = left[q]
-                    v = (_corner_sum(ii, base[j], offsets, weights, c1, f1) - k1 * mean[j]) * inv_sigma[j]
+                    v = (_corner_sum(ii, base[j], offsets, weights, c1, f1) - k1 * mean[j]) * g1[j]
                     score[j] += l1 if v > s1 else l0
                 for q in range(nr):
                     j = right[q]
-                    v = (_corner_sum(ii, base[j], offsets, weights, c2, f2) - k2 * mean[j]) * inv_sigma[j]
+                    v = (_corner_sum(ii, base[j], offsets, weights, c2, f2) - k2 * mean[j]) * g2[j]
                     score[j] += l3 if v > s2 else l2
             else:
                 for q in range(n):
@@ -190,7 +199,7 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
                     for _ in range(depth):
                         f = node_features[t, node]
                         v = (_corner_sum(ii, b, offsets, weights, counts[f], f)
-                             - consts[f] * mean[j]) * inv_sigma[j]
+                             - consts[f] * mean[j]) * (inv_sigma[j] if relative[f] != 0.0 else 1.0)
                         node = 2 * node + 1 + np.int64(v > split_bounds[t, node])
                     score[j] += leaf_values[t, node - n_nodes]
             low = exit_thresholds[t]
@@ -214,9 +223,9 @@ def scan_scale(ii, sq, row_stride, xs, ys, win, inv_area, sigma_floor, min_var, 
 
 @kernel(cache=True, nogil=True)
 def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_areas, sigma_floor,
-               min_var, normalize, offsets_all, weights_all, counts_all, consts_all, node_features,
-               split_bounds, leaf_values, exit_thresholds, cutoff, bound, out_x, out_y, out_score,
-               out_scale):
+               min_var, normalize, offsets_all, weights_all, counts_all, consts_all, relative,
+               node_features, split_bounds, leaf_values, exit_thresholds, cutoff, bound, out_x,
+               out_y, out_score, out_scale):
     """:func:`scan_scale` over every scale of a frame in one call (a small frame's scan spent a
     tenth of its time going in and out of the compiled code scale by scale).
 
@@ -236,7 +245,7 @@ def scan_frame(ii, sq, row_stride, xs_all, x_start, ys_all, y_start, wins, inv_a
         k, t = scan_scale(ii, sq, row_stride, xs_all[x_start[s]:x_start[s + 1]],
                           ys_all[y_start[s]:y_start[s + 1]], wins[s], inv_areas[s], sigma_floor,
                           min_var, normalize, offsets_all[s], weights_all[s], counts_all[s],
-                          consts_all[s], node_features, split_bounds, leaf_values, exit_thresholds,
+                          consts_all[s], relative, node_features, split_bounds, leaf_values, exit_thresholds,
                           cutoff, bound, out_x[kept:], out_y[kept:], out_score[kept:])
         out_scale[kept:kept + k] = s
         kept += k
