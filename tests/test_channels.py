@@ -248,6 +248,9 @@ def every_window(model, **kw):
 
 @pytest.mark.parametrize("early_exit", [False, True])
 def test_compiled_scan_equals_numpy_twin_with_channels(channel_model, early_exit):
+    # trees with an edge-strength node and trees without: both of the kernel's routes
+    edge = (channel_model.feature_channels == EDGE_STRENGTH)[channel_model.node_features]
+    assert edge.any(axis=1).any() and not edge.any(axis=1).all()
     rng = np.random.default_rng(5)
     for gray in (rng.integers(0, 256, (61, 83), dtype=np.uint8), render_frame(3, 160, 160).image):
         engine = every_window(channel_model, early_exit=early_exit, threshold=0.3,
