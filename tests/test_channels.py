@@ -361,7 +361,7 @@ def test_summary_and_inspection_count_the_edge_strength_features(channel_model):
     assert line.endswith(f"(contrast-normalised values; {n} of edge strength, not normalised)")
     report = model_report(channel_model)
     assert report["edge_strength_features"] == n
-    assert any(f"contrast-normalised values ({n} of edge strength, not normalised)" in ln
+    assert any(f"contrast-normalised values; {n} of edge strength, not normalised (" in ln
                for ln in report_lines(report))
 
 

@@ -364,7 +364,7 @@ def report_lines(report: dict) -> list[str]:
         used += f" of a pool of {r['pool']}"
     used += f", {'contrast-normalised' if r['normalize'] else 'raw'} values"
     if r.get("edge_strength_features") and r["normalize"]:
-        used += f" ({r['edge_strength_features']} of edge strength, not normalised)"
+        used += f"; {r['edge_strength_features']} of edge strength, not normalised"
     shapes = ", ".join(f"{n} with {k} rectangles" if k != "other" else f"{n} other"
                        for k, n in r["rectangles_per_feature"].items())
     lines.append(used + (f" ({shapes})" if shapes else ""))
