@@ -78,7 +78,7 @@ from detector.forest import (MODES, FlatForest, final_score, forest_leaf_scores,
 __all__ = ["FORMAT_VERSION", "CHANNELS_FORMAT_VERSION", "Model", "MODEL_SPEC", "describe", "exit_budget_of",
            "save_model", "load_model", "training_date", "library_versions", "model_arrays", "metadata_text",
            "metadata_sha256", "old_format_note", "CORNERS_FORMAT_VERSION",
-           "EDGE_STRENGTH_FORMAT_VERSION"]
+           "EDGE_STRENGTH_FORMAT_VERSION", "edge_strength_note"]
 
 #: Version 3 keeps the values the scan computes with (margin, temperature, contrast gate) as typed
 #: arrays instead of metadata JSON; version 4 stores rectangles by their corners.
@@ -368,7 +368,7 @@ class Model:
         used = f"features used: {d['features_used']}"
         lines.append(used + (f" of a pool of {_plain(pool)}" if pool else "") +
                      f" ({'contrast-normalised' if d['normalize'] else 'raw'} values"
-                     + _edge_strength_note(d) + ")")
+                     + edge_strength_note(d) + ")")
         oob = d["training"]["oob_error"]
         lines.append("out-of-bag error: " + ("n/a" if oob is None else f"{100 * oob:.2f} %"))
         ee = d["early_exit"]
@@ -474,8 +474,9 @@ def _edge_strength_count(model) -> int:
     return 0 if channels is None else int((np.asarray(channels) == EDGE_STRENGTH).sum())
 
 
-def _edge_strength_note(d: dict) -> str:
-    """``"; N of edge strength, not normalised"`` for a :func:`describe` with any, else ""."""
+def edge_strength_note(d: dict) -> str:
+    """``"; N of edge strength, not normalised"`` for a :func:`describe` (or an inspection report)
+    with any, else "": what ``train``'s and ``inspect``'s features lines add."""
     n = d.get("edge_strength_features") or 0
     return f"; {n} of edge strength, not normalised" if n and d["normalize"] else ""
 

@@ -43,7 +43,7 @@ import numpy as np
 from detector._validation import check_int, finite_or_none, json_safe
 from detector.errors import InputError
 from detector.reporting import drawing
-from detector.model import describe, exit_budget_of
+from detector.model import describe, edge_strength_note, exit_budget_of
 
 __all__ = [
     "HEAT_COLOUR_MAP",
@@ -363,8 +363,7 @@ def report_lines(report: dict) -> list[str]:
     if r.get("pool"):
         used += f" of a pool of {r['pool']}"
     used += f", {'contrast-normalised' if r['normalize'] else 'raw'} values"
-    if r.get("edge_strength_features") and r["normalize"]:
-        used += f"; {r['edge_strength_features']} of edge strength, not normalised"
+    used += edge_strength_note(r)
     shapes = ", ".join(f"{n} with {k} rectangles" if k != "other" else f"{n} other"
                        for k, n in r["rectangles_per_feature"].items())
     lines.append(used + (f" ({shapes})" if shapes else ""))
