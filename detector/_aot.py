@@ -68,8 +68,8 @@ EXPORTS = {
     "detector.scan._kernels.finish": [
         "Tuple((float64[:, ::1], float64[::1]))(int64[::1], int64[::1], int64[::1], "
         "float64[::1], float64[:, ::1], int64, float64, float64, float64, float64, float64)"],
-    "detector.features._channel_kernels.channel_integrals": [
-        f"{t}[:, :, ::1](uint8[:, ::1], {t}[:, :, ::1])" for t in _II],
+    "detector.features._channel_kernels.gradient_planes": [
+        "uint8[:, :, ::1](uint8[:, ::1], int64, uint8[:, :, ::1])"],
     "detector.geometry._nms_numba": ["int64[::1](float64[:, ::1], int64[::1], float64)"],
     "detector.scan._kernels.area_shrink": [
         f"uint8[:, ::1]({t}[:, ::1], float64[::1], float64[::1], uint8[:, ::1])" for t in _II],

@@ -189,13 +189,10 @@ def recorded_calls(bank):
 def other_integral_dtypes(name, args):
     """The same call with the integral image (or the channel table) in each dtype the module
     holds a version for: the sums are small integers, exact in all three."""
-    index = {"detector.features._channel_kernels.channel_integrals": 1}.get(name, 0)
     if name not in ("detector.scan._kernels.scan_scale", "detector.scan._kernels.scan_frame",
-                    "detector.features._channel_kernels.channel_integrals",
                     "detector.scan._kernels.area_shrink"):
         return [args]
-    return [args[:index] + (args[index].astype(t),) + args[index + 1:]
-            for t in (np.int32, np.uint32, np.float64)]
+    return [(args[0].astype(t),) + args[1:] for t in (np.int32, np.uint32, np.float64)]
 
 
 def parts(returned) -> list:

@@ -88,6 +88,41 @@ def test_compiled_channel_integrals_equal_numpy_twin(shape, dtype):
         assert sq[-1] == (g * g).sum()
 
 
+@pytest.mark.parametrize("band_rows", [1, 2, 5, 12, 13, 40])
+@pytest.mark.parametrize("dtype", [np.int32, np.uint32, np.float64])
+def test_channel_planes_made_in_bands_equal_the_numpy_twin(band_rows, dtype):
+    """The gradient planes are made a band of rows at a time and summed by cv2.integral from
+    zero, the row above each band added back: any band height gives the twin's exact sums, in
+    every table dtype (uint32 through an int32 view)."""
+    from detector.features import fill_channel_planes
+
+    rng = np.random.default_rng(band_rows)
+    gray = rng.integers(0, 256, (13, 17)).astype(np.uint8)
+    want = channel_integrals_numpy(gray, np.float64)
+    table = np.full((N_CHANNELS, 14, 18), 99, dtype)
+    fill_channel_planes(gray, table, band_rows=band_rows)
+    np.testing.assert_array_equal(table[1:].astype(np.float64), want[1:])
+    assert (table[0] == 99).all()  # plane 0 is the caller's
+
+
+def test_uint32_channel_tables_hold_every_plane(monkeypatch):
+    """Above the int32 limit a frame's channel table is uint32 (limits lowered so that a small
+    frame crosses them): the grey plane too is filled, not left as it was (cv2 cannot write a
+    uint32 array; it is written through an int32 view)."""
+    from detector.scan import _engine as scan
+
+    monkeypatch.setattr(scan, "INT32_PIXELS", 100)
+    gray = np.random.default_rng(3).integers(0, 256, (13, 17)).astype(np.uint8)
+    stale = (np.full((N_CHANNELS, 14, 18), 7, np.uint32), np.zeros((14, 18)))
+    for out in (stale, None):
+        table, sq = channel_frame_integrals(gray, out)
+        assert table.dtype == np.uint32
+        np.testing.assert_array_equal(table.reshape(N_CHANNELS, 14, 18).astype(np.float64),
+                                      channel_integrals_numpy(gray, np.float64))
+    np.testing.assert_array_equal(channel_integrals(gray, np.uint32).astype(np.float64),
+                                  channel_integrals_numpy(gray, np.float64))
+
+
 def test_patch_channels_are_the_channels_of_each_patch_alone():
     rng = np.random.default_rng(1)
     patches = rng.integers(0, 256, (5, 6, 7)).astype(np.uint8)

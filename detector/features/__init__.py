@@ -14,8 +14,9 @@ evaluate_features``).
 
 from detector.features._channels import (CHANNEL_NAMES, CHOICES, EDGE_STRENGTH, FEATURE_PLANES,
                                          N_CHANNELS, N_FEATURE_CHANNELS, ORIENTATIONS,
+                                         PLANE_BAND_BYTES,
                                          channel_integrals, channel_integrals_numpy,
-                                         gradient_channels, orientation_bins, patch_channels,
+                                         fill_channel_planes, gradient_channels, orientation_bins, patch_channels,
                                          patch_channels_numpy)
 from detector.features._integral import (integral_image, integral_images, pixel_sums,
                                          squared_integral_image, squared_integral_images,
@@ -34,6 +35,7 @@ __all__ = [
     "N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "EDGE_STRENGTH",
     "N_FEATURE_CHANNELS", "FEATURE_PLANES", "gradient_channels",
     "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals", "channel_integrals_numpy",
+    "fill_channel_planes", "PLANE_BAND_BYTES",
     # rectangle features
     "SHAPES", "SIGMA_FLOOR", "MIN_WINDOW_SIDE", "MAX_WINDOW_SIDE", "count_features",
     "enumerate_features", "random_pool", "feature_corners", "evaluate_features",

@@ -52,7 +52,7 @@ import numpy as np
 __all__ = ["N_CHANNELS", "ORIENTATIONS", "CHANNEL_NAMES", "CHOICES", "EDGE_STRENGTH",
            "N_FEATURE_CHANNELS", "FEATURE_PLANES", "gradient_channels",
            "patch_channels", "patch_channels_numpy", "orientation_bins", "channel_integrals",
-           "channel_integrals_numpy"]
+           "channel_integrals_numpy", "fill_channel_planes", "PLANE_BAND_BYTES"]
 
 #: Orientation channels over 0..180 degrees.
 ORIENTATIONS = 6
@@ -203,12 +203,60 @@ def patch_channels_numpy(patches) -> np.ndarray:
     return out
 
 
+#: Bytes of the uint8 gradient planes :func:`fill_channel_planes` makes at a time (seven per
+#: pixel): a 640 x 480 frame's padded level at once, a larger one in bands of rows.
+PLANE_BAND_BYTES = 4 << 20
+
+
+def fill_channel_planes(gray, table, scratch=None, band_rows: int | None = None) -> np.ndarray:
+    """Planes 1..7 of ``table`` (``(N_CHANNELS, H + 1, W + 1)``, int32, uint32 or float64): the
+    integral images of the gradient channels of ``gray`` (uint8, H x W). Plane 0 is left to the
+    caller. The channels are made by the compiled loop
+    (:func:`detector.features._channel_kernels.gradient_planes`) as uint8 planes, a band of
+    ``band_rows`` rows at a time (default: :data:`PLANE_BAND_BYTES` of them), and summed by
+    ``cv2.integral`` into the table: each band's sums start from zero, so the row above the band
+    is added to them. Sums are exact integers in every dtype (uint32 tables are filled through an
+    int32 view: the bits of a sum below 2**32 are the same). ``scratch``: a uint8 buffer to make
+    the planes in, used when it is large enough.
+
+    >>> t = np.zeros((8, 3, 4), np.int32)
+    >>> fill_channel_planes(np.array([[0, 10, 20], [0, 10, 20]], np.uint8), t, band_rows=1)[1].tolist()
+    [[0, 0, 0, 0], [0, 10, 30, 40], [0, 20, 60, 80]]
+    """
+    import cv2
+
+    from detector.features._channel_kernels import gradient_planes
+
+    h, w = gray.shape
+    if h == 0 or w == 0:
+        table[1:] = 0
+        return table
+    rows = max(1, PLANE_BAND_BYTES // (7 * w)) if band_rows is None else int(band_rows)
+    rows = min(rows, h)
+    if scratch is None or scratch.size < 7 * rows * w:
+        scratch = np.empty(7 * rows * w, np.uint8)
+    if table.dtype == np.float64:
+        depth, target = cv2.CV_64F, table
+    else:
+        depth, target = cv2.CV_32S, table.view(np.int32)
+    for y0 in range(0, h, rows):
+        y1 = min(h, y0 + rows)
+        planes = gradient_planes(gray, y0, scratch[:7 * (y1 - y0) * w].reshape(7, y1 - y0, w))
+        for c in range(7):
+            sums = target[c + 1, y0:y1 + 1]
+            above = sums[0].copy() if y0 else None
+            cv2.integral(planes[c], sum=sums, sdepth=depth)
+            if y0:
+                sums[0] = above
+                sums[1:] += above  # int32 views wrap as uint32 arithmetic does
+    return table
+
+
 def channel_integrals(gray, dtype=np.int32, out=None) -> np.ndarray:
     """Integral images of all :data:`N_CHANNELS` channels of a grey frame, stacked as planes:
-    ``(N_CHANNELS, H + 1, W + 1)`` of ``dtype`` (int32 while ``255 * H * W`` fits, else float64;
-    exact integers either way). Plane 0 is the grey image's. One compiled pass
-    (:func:`detector.features._channel_kernels.channel_integrals`); :func:`channel_integrals_numpy`
-    is its twin.
+    ``(N_CHANNELS, H + 1, W + 1)`` of ``dtype`` (int32 while ``255 * H * W`` fits, uint32 while
+    it fits in 32 bits, else float64; exact integers either way). Plane 0 is the grey image's, the
+    others :func:`fill_channel_planes`'; :func:`channel_integrals_numpy` is the twin.
 
     Examples
     --------
@@ -216,17 +264,18 @@ def channel_integrals(gray, dtype=np.int32, out=None) -> np.ndarray:
     >>> t.shape, t[0, 1].tolist(), t[1, 1].tolist()     # m = 10, 20, 10 (border repeated)
     ((8, 2, 4), [0, 0, 10, 30], [0, 10, 30, 40])
     """
-    from detector.features._channel_kernels import channel_integrals as kernel
+    import cv2
 
     gray = np.ascontiguousarray(gray, dtype=np.uint8)
     h, w = gray.shape
     shape = (N_CHANNELS, h + 1, w + 1)
     if out is None or out.shape != shape or out.dtype != dtype:
         out = np.empty(shape, dtype)
-    import cv2
-
-    cv2.integral(gray, sum=out[0], sdepth=cv2.CV_32S if dtype == np.int32 else cv2.CV_64F)
-    return kernel(gray, out)
+    if dtype == np.float64:
+        cv2.integral(gray, sum=out[0], sdepth=cv2.CV_64F)
+    else:
+        cv2.integral(gray, sum=out[0].view(np.int32), sdepth=cv2.CV_32S)
+    return fill_channel_planes(gray, out)
 
 
 def channel_integrals_numpy(gray, dtype=np.int32) -> np.ndarray:

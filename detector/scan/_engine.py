@@ -618,19 +618,19 @@ def frame_integrals(gray: np.ndarray, out=None):
             squared_integral_image(gray).ravel().astype(np.float64))
 
 
-def channel_frame_integrals(gray: np.ndarray, out=None):
+def channel_frame_integrals(gray: np.ndarray, out=None, scratch=None):
     """The integral images of a frame's :data:`detector.features.N_CHANNELS` channels stacked as
     planes in one flat table (grey first, then the gradient channels; each plane
     ``(height + 1) * (width + 1)`` cells, :func:`integral_dtype`), and the squared-integral image
     (float64), flattened: what the scan of a model with channel features reads.
 
     ``out``, optional: a ``(N_CHANNELS, height + 1, width + 1)`` table and a ``(height + 1,
-    width + 1)`` float64 array to write into (see :func:`frame_integrals`).
+    width + 1)`` float64 array to write into (see :func:`frame_integrals`); ``scratch``, optional:
+    a uint8 buffer for the gradient planes (:func:`detector.features.fill_channel_planes`).
     """
     import cv2
 
-    from detector.features._channel_kernels import channel_integrals
-    from detector.features import N_CHANNELS
+    from detector.features import N_CHANNELS, fill_channel_planes
 
     gray = np.asarray(gray)
     if gray.dtype != np.uint8:
@@ -644,9 +644,11 @@ def channel_frame_integrals(gray: np.ndarray, out=None):
             or out[1].shape != (h + 1, w + 1)):
         out = (np.empty((N_CHANNELS, h + 1, w + 1), dtype), np.empty((h + 1, w + 1)))
     table, sq = out
-    depth = cv2.CV_32S if dtype == np.int32 else cv2.CV_64F
-    cv2.integral2(gray, sum=table[0], sqsum=sq, sdepth=depth, sqdepth=cv2.CV_64F)
-    channel_integrals(gray, table)
+    # a uint32 table is filled through an int32 view (the same bits for sums below 2**32)
+    depth, grey = ((cv2.CV_64F, table[0]) if dtype == np.float64
+                   else (cv2.CV_32S, table[0].view(np.int32)))
+    cv2.integral2(gray, sum=grey, sqsum=sq, sdepth=depth, sqdepth=cv2.CV_64F)
+    fill_channel_planes(gray, table, scratch)
     return table.ravel(), sq.ravel()
 
 
@@ -659,6 +661,16 @@ class _Workspace(threading.local):
         self.size = 0
         self.outputs = None
         self.frame = None
+        self.planes = None
+
+    def scratch(self) -> np.ndarray:
+        """The uint8 buffer :func:`channel_frame_integrals` makes a band of gradient planes in
+        (:data:`detector.features.PLANE_BAND_BYTES`, made once per thread)."""
+        if self.planes is None:
+            from detector.features import PLANE_BAND_BYTES
+
+            self.planes = np.empty(PLANE_BAND_BYTES, np.uint8)
+        return self.planes
 
     def tables(self, gray_shape, planes: int = 1):
         """Buffers for :func:`frame_integrals` (``planes == 1``) or, with more planes, for
@@ -1136,7 +1148,8 @@ class Engine:
                     ii, sq = frame_integrals(image, self._work.tables(image.shape))
                 else:
                     ii, sq = channel_frame_integrals(image,
-                                                     self._work.tables(image.shape, N_CHANNELS))
+                                                     self._work.tables(image.shape, N_CHANNELS),
+                                                     self._work.scratch())
                 k, t = scan(ii, sq, row, lv.xs, ys, plan.win, plan.inv_area, *rules,
                             plan.offsets, plan.weights, plan.counts, plan.consts,
                             self.relative,
@@ -1187,7 +1200,8 @@ class Engine:
         else:
             from detector.features import N_CHANNELS
 
-            ii, sq = channel_frame_integrals(gray, self._work.tables(gray.shape, N_CHANNELS))
+            ii, sq = channel_frame_integrals(gray, self._work.tables(gray.shape, N_CHANNELS),
+                                             self._work.scratch())
         out_x, out_y, out_s, out_scale = self._work.out(grid.windows)
         stride = iw + 2 * pad + 1
         rules = (SIGMA_FLOOR, self.min_var, self.normalize)
