@@ -422,6 +422,52 @@ def test_two_inputs_giving_the_same_image_name_are_refused(trained, folder, tmp_
 
 # ------------------------------------------------------------------ bad files
 
+def test_reading_ahead_gives_scan_ones_results_in_order(trained, folder, tmp_path, monkeypatch):
+    """A single-worker run reads the next image while it scans this one: the results are
+    scan_one's, image by image, failures in their place; at most one image is read ahead of the
+    one being scanned, and a run that stops early stops reading."""
+    from detector.io.images import list_images
+    from detector.scan import _batch
+
+    mixed = tmp_path / "mixed"
+    shutil.copytree(folder, mixed)
+    make_bad_files(mixed)
+    todo = list_images([mixed])[0]
+    engine = Engine(load_model(trained / "model.npz"), ScanSettings())
+    want = [_batch.scan_one(engine, p, name) for p, name in todo]
+    assert sum(r.error is not None for r in want) == 5
+
+    reads, seen = [], []
+    real_read = _batch.read_gray
+
+    def counted_read(path):
+        reads.append(path)
+        return real_read(path)
+
+    class Counting:
+        def scan(self, gray):
+            seen.append(len(reads))  # images read when this one's scan starts
+            return engine.scan(gray)
+
+    monkeypatch.setattr(_batch, "read_gray", counted_read)
+    got = list(_batch.scan_reading_ahead(Counting(), todo))
+    assert [r.image for r in got] == [name for _, name in todo]
+    for g, w in zip(got, want):
+        assert g.error == w.error
+        np.testing.assert_array_equal(g.boxes, w.boxes)
+        np.testing.assert_array_equal(g.scores, w.scores)
+        assert (g.windows, g.trees) == (w.windows, w.trees)
+    scanned = [k for k, r in enumerate(want) if r.error is None]
+    assert len(seen) == len(scanned) and all(n <= k + 2 for n, k in zip(seen, scanned))
+    assert len(reads) == len(todo)
+
+    reads.clear()
+    first = _batch.scan_reading_ahead(Counting(), todo)
+    next(first)
+    first.close()  # the run stops (an interrupt, say): the reader is waited for, nothing more
+    assert len(reads) <= 2
+
+
 def test_bad_files_are_listed_and_the_run_goes_on(trained, folder, reference, tmp_path,
                                                    monkeypatch, capsys):
     mixed = tmp_path / "mixed"
