@@ -20,8 +20,8 @@ and mean trees per window; the same engine with the pyramid's levels made by ``c
 and again with ``skimage.feature.hog`` computing the same blocks (the issue's peer); the ratios. The issue's goal:
 at least 200x faster per megapixel than the peer, at most 3 trees per window. Where the time goes
 (:func:`where_time_goes`): reading a frame, the scan's work before any tree, the share of windows
-still in the forest after 1 to 100 trees, and the floor those costs and the start-up set under
-any model's whole command. The machine is shared: the load average is printed before and after.
+still in the forest after 1 to 100 trees, and the floor the start-up and that work set under any
+model's whole command (the command reads the next frame while it scans one). The machine is shared: the load average is printed before and after.
 """
 
 from __future__ import annotations
@@ -110,7 +110,7 @@ def levels_by_resize(engine, grays, repeats: int = 3) -> None:
 SURVIVAL_AFTER = (1, 3, 10, 30, 100)
 
 
-def where_time_goes(engine, paths, grays) -> tuple[float, float]:
+def where_time_goes(engine, paths, grays) -> tuple[float, float, float]:
     """What a frame costs before any tree, and how long the windows stay in the forest (the same
     model and frames, in process, medians over the frames):
 
@@ -120,9 +120,11 @@ def where_time_goes(engine, paths, grays) -> tuple[float, float]:
     - the share of the windows still evaluating trees after 1, 3, 10, 30 and 100 trees: the
       exits after tree ``K`` and later set to infinity stop every window by tree ``K``, so the
       trees counted with a cap of ``K + 1`` less those with a cap of ``K`` are the windows alive
-      after ``K`` trees.
+      after ``K`` trees;
+    - the scan with every window stopped by its third tree (the issue's 3 trees per window as
+      a ceiling on every window).
 
-    Returns the reading and the gate-only milliseconds per frame."""
+    Returns the reading, the gate-only and the three-tree milliseconds per frame."""
     reads = [_seconds(lambda p=p: cv2.imread(str(p), cv2.IMREAD_GRAYSCALE)) for p in paths]
     gated = type(engine)(engine.model, engine.settings)
     gated.min_var = np.inf
@@ -147,7 +149,12 @@ def where_time_goes(engine, paths, grays) -> tuple[float, float]:
     print("windows still evaluating trees after " + " / ".join(map(str, SURVIVAL_AFTER))
           + " trees: " + " / ".join(f"{100.0 * a:.1f} %" for a in alive)
           + f" (of {windows / len(grays):,.0f} windows per frame)")
-    return read_ms, fixed_ms
+    # the issue's other goal, at most 3 trees per window: every window stopped by its third tree
+    capped.exits = engine.exits.copy()
+    capped.exits[2:] = np.inf
+    three_ms = 1000.0 * statistics.median([_seconds(lambda g=g: capped.scan(g)) for g in grays])
+    print(f"the scan with every window stopped by its third tree: {three_ms:.1f} ms per frame")
+    return read_ms, fixed_ms, three_ms
 
 
 def run(argv: list[str], env: dict | None = None) -> subprocess.CompletedProcess:
@@ -257,7 +264,8 @@ def main(argv=None) -> int:
     print(f"patchwood in process: median {statistics.median(per_frame):.1f} ms per frame "
           f"({statistics.median(per_frame) / (SIZE[0] * SIZE[1] / 1e6):.0f} ms per megapixel)")
     levels_by_resize(engine, grays)
-    read_ms, fixed_ms = where_time_goes(engine, sorted(frames.iterdir())[:len(grays)], grays)
+    read_ms, fixed_ms, three_ms = where_time_goes(engine, sorted(frames.iterdir())[:len(grays)],
+                                                  grays)
     start_ms = startup(work, frames, engine, grays[0], args.repeats)
 
     import baseline as bl
@@ -284,11 +292,16 @@ def main(argv=None) -> int:
     print(f"ratio (HOG ms per MP / patchwood whole command ms per MP): "
           f"{hog_ms_mp / command_ms_mp:.1f}x; goal: at least 200x, at most 3 trees per window")
     # what no model can go under with these frames: the command's start-up spread over the
-    # folder, reading each frame, and the scan's work before any tree
-    floor = (start_ms / args.frames + read_ms + fixed_ms) / (SIZE[0] * SIZE[1] / 1e6)
+    # folder, and the scan's work before any tree (the command reads the next frame while it
+    # scans one, so reading counts only where it takes longer than that work)
+    floor = (start_ms / args.frames + max(read_ms, fixed_ms)) / (SIZE[0] * SIZE[1] / 1e6)
     print(f"floor before any tree: {floor:.0f} ms per megapixel (start-up over {args.frames} "
-          f"frames, reading, levels and tables): at most {hog_ms_mp / floor:.1f}x the numpy HOG "
-          f"peer and {sk_ms_mp / floor:.1f}x the skimage one, whatever the trees")
+          f"frames, then levels and tables, reading overlapped): at most "
+          f"{hog_ms_mp / floor:.1f}x the numpy HOG peer and {sk_ms_mp / floor:.1f}x the skimage "
+          f"one, whatever the trees")
+    three = (start_ms / args.frames + max(read_ms, three_ms)) / (SIZE[0] * SIZE[1] / 1e6)
+    print(f"with at most 3 trees per window: {three:.0f} ms per megapixel, at most "
+          f"{hog_ms_mp / three:.1f}x and {sk_ms_mp / three:.1f}x")
     print(f"load average after: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 
