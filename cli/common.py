@@ -95,6 +95,8 @@ MAX_JOBS = 256
 
 # The harvest options, declared once for `harvest` and `tune` (tune harvests its folds).
 HARVEST_OPTIONS = {
+    "window": lambda: typer.Option(None, "--window", help="Patch size WxH, e.g. 24x24. Default: the median box aspect ratio; the shorter side 40 when at most 20% of the labelled objects are smaller than the window's object, else 24."),
+    "label": lambda: typer.Option(None, "--label", help="Keep only boxes of this class (when the labels have a label column)."),
     "margin": lambda: typer.Option(0.1, "--margin", min=0.0, max=1.0, help="Context added around each box, as a fraction of its size on every side."),
     "copies": lambda: typer.Option(4, "--copies", min=0, max=100, help="Augmented copies per box, besides the box itself."),
     "jitter": lambda: typer.Option(0.05, "--jitter", min=0.0, max=0.5, help="Largest random shift and scale change of a copy, as a fraction of the box."),
