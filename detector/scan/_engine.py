@@ -760,7 +760,8 @@ def area_shrink_numpy(ii, xe, ye, out):
     b = r1[:, ix] + fx * (r1[:, ix + 1].astype(np.float64) - r1[:, ix].astype(np.float64))
     j = a + fy[:, None] * (b - a)
     inv = 1.0 / (ye[1:] - ye[:-1])
-    val = (j[1:, 1:] - j[1:, :-1] - j[:-1, 1:] + j[:-1, :-1]) * inv[:, None] / (xe[1:] - xe[:-1])
+    inv_width = 1.0 / (xe[1:] - xe[:-1])
+    val = (j[1:, 1:] - j[1:, :-1] - j[:-1, 1:] + j[:-1, :-1]) * inv[:, None] * inv_width
     out[:] = np.minimum(np.maximum(np.rint(val), 0.0), 255.0).astype(np.uint8)
     return out
 

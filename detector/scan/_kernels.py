@@ -368,6 +368,12 @@ def area_shrink(ii, xe, ye, out):
         i = min(int(xe[u]), cols - 2)
         ix[u] = i
         fx[u] = xe[u] - i
+    # the reciprocal of each column's width, once per level: a division per level pixel took
+    # about half the loop's time (0.68 against 0.40 ms at 533 x 400, 0.31 against 0.16 at 320 x
+    # 240, the same pixels on ten busy frames)
+    inv_width = np.empty(w, np.float64)
+    for u in range(w):
+        inv_width[u] = 1.0 / (xe[u + 1] - xe[u])
     prev = np.empty(w + 1, np.float64)
     cur = np.empty(w + 1, np.float64)
     for v in range(h + 1):
@@ -384,7 +390,7 @@ def area_shrink(ii, xe, ye, out):
             inv = 1.0 / (ye[v] - ye[v - 1])
             o = out[v - 1]
             for u in range(w):
-                val = (cur[u + 1] - cur[u] - prev[u + 1] + prev[u]) * inv / (xe[u + 1] - xe[u])
+                val = (cur[u + 1] - cur[u] - prev[u + 1] + prev[u]) * inv * inv_width[u]
                 o[u] = np.uint8(min(max(np.rint(val), 0.0), 255.0))
         prev, cur = cur, prev
     return out
