@@ -16,12 +16,15 @@ first ``--hog-frames`` frames (it takes seconds per frame).
 
 Printed: the whole command's wall seconds for the folder (best of ``--repeats``, Python start-up
 and PNG decoding included) and its milliseconds per megapixel; in-process milliseconds per frame
-and mean trees per window; the same engine with the pyramid's levels made by ``cv2.resize`` (the route before) taking turns with it; the peer's milliseconds per megapixel, with the baseline's numpy HOG
-and again with ``skimage.feature.hog`` computing the same blocks (the issue's peer); the ratios. The issue's goal:
-at least 200x faster per megapixel than the peer, at most 3 trees per window. Where the time goes
-(:func:`where_time_goes`): reading a frame, the scan's work before any tree, the share of windows
-still in the forest after 1 to 100 trees, and the floor the start-up and that work set under any
-model's whole command (the command reads the next frame while it scans one). The machine is shared: the load average is printed before and after.
+and mean trees per window; the same engine with the pyramid's levels made by ``cv2.resize`` (the
+route before) taking turns with it; the peer's milliseconds per megapixel, with the baseline's
+numpy HOG and again with ``skimage.feature.hog`` computing the same blocks (the issue's peer); the
+ratios. The issue's goal: at least 200x faster per megapixel than the peer, at most 3 trees per
+window. Where the time goes (:func:`where_time_goes`): reading a frame, the scan's work before any
+tree, the share of windows still in the forest after 1 to 100 trees, the scan with every window
+stopped by its third tree, and the floors the start-up and that work set under any model's whole
+command (the command reads the next frame while it scans one). The machine is shared: the load
+average is printed before and after.
 """
 
 from __future__ import annotations
